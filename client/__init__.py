@@ -1,0 +1,59 @@
+"""rankfold: archive wide numeric tables as exact column-row (CUR) factors in Parquet, and
+rebuild any cell, row, column or table with an error bound that holds on the data as stored.
+
+    >>> import rankfold
+    >>> archive = rankfold.compress(table, "panel.rfa", rank=12)      # doctest: +SKIP
+    >>> archive.cell(17, "pressure_03")                               # doctest: +SKIP
+    Cell(value=101.32, bound=0.004)
+
+Lossy storage: keep lossless originals wherever law, contract or safety requires them, and
+check the bound before a rebuilt value drives a safety, health or money decision.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Any
+
+from rankfold.udfs.errors import *  # noqa: F401,F403  (the one exception hierarchy)
+from rankfold.udfs.errors import __all__ as _error_names
+from rankfold.udfs.version import __version__
+
+from .archive import Archive, Cell, Keys
+
+__all__ = ["compress", "open", "Archive", "Cell", "Keys", "__version__", *_error_names]
+
+
+def compress(source: Any, path: str | Path, *, rank: int | None = None, seed: int = 0,
+             **options: Any) -> Archive:
+    """Compress ``source`` into an archive directory at ``path`` and open it.
+
+    Parameters
+    ----------
+    source : 2-D numpy array, pyarrow Table, pandas DataFrame, Parquet/CSV path, or a table
+        name or SELECT statement together with ``connection=``.
+    path : the archive directory to create. It must not exist (or pass ``overwrite=True`` to
+        replace an existing archive; other files are never replaced).
+    rank : target rank k (default: the smallest k whose optimal relative error after the
+        transform is at most 1%, capped at a quarter of the numeric columns).
+    seed : seed of the one numpy Generator used for every random choice; written to the manifest.
+    **options : method ('cur' | 'svd'), columns ('pivoted_qr' | 'leverage' | 'length_squared'),
+        rows ('qdeim' | 'leverage' | 'length_squared'), link ('optimal' | 'skeleton' |
+        'textbook' | 'cx'), transform ('standardize' | 'center' | 'none'), n_columns (default
+        2 * rank), n_rows (default 2 * n_columns), replace (sample with replacement), key (a
+        column to address rows by), exact_columns (numeric columns to keep exactly),
+        overwrite, batch_rows, connection.
+
+    Returns
+    -------
+    Archive
+    """
+    from rankfold.udfs.build.compress import compress as _compress
+
+    return Archive(_compress(source, path, rank=rank, seed=seed, **options))
+
+
+def open(path: str | Path, *, log_path: str | Path | None = None, checksums: bool = False) -> Archive:  # noqa: A001
+    """Open the archive at ``path``. ``log_path`` appends rebuild records as JSON Lines;
+    ``checksums=True`` verifies every file's SHA-256 (sizes are always checked)."""
+    return Archive(path, log_path=log_path, checksums=checksums)

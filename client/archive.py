@@ -1,0 +1,161 @@
+"""The ``Archive`` facade: rebuild values, bounds and tables from a rankfold archive."""
+
+from __future__ import annotations
+
+from collections import namedtuple
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pyarrow as pa
+
+from rankfold.udfs.errors import InvalidInputError
+from rankfold.udfs.store import layout
+from rankfold.udfs.store.reader import ArchiveReader, Rebuilt
+from rankfold.udfs.store.rebuild_log import RebuildLog
+
+__all__ = ["Archive", "Cell", "Keys"]
+
+Cell = namedtuple("Cell", ["value", "bound"])
+Cell.__doc__ = """A rebuilt cell: ``value`` (float, or None where the source was NULL) and
+``bound``, a guaranteed limit on |true value - value| (0.0 for cells stored exactly)."""
+
+
+class Keys:
+    """Address rows by the values of the archive's key column: ``archive.to_numpy(rows=Keys(["S-01"]))``."""
+
+    def __init__(self, values: Any):
+        self.values = list(values) if isinstance(values, (list, tuple, np.ndarray)) else [values]
+
+    def __repr__(self) -> str:
+        return f"Keys({self.values!r})"
+
+
+class Archive:
+    """A compressed table, opened read-only.
+
+    Rows are 0-based positions in source order (int, slice or sequence of ints), or
+    :class:`Keys` when the archive was compressed with ``key=``. Columns are numeric column
+    names (a name or a list; None means all). Every rebuild request writes one record to the
+    rebuild log (logger ``rankfold.rebuild``; also to ``log_path`` as JSON Lines if given).
+    """
+
+    def __init__(self, path: str | Path, *, log_path: str | Path | None = None, checksums: bool = False):
+        self._reader = ArchiveReader(path, checksums=checksums)
+        self.path = self._reader.path
+        self._log = RebuildLog(self.manifest["archive_id"], str(self.path), log_path)
+
+    # -- description ---------------------------------------------------------------------------
+    @property
+    def manifest(self) -> dict[str, Any]:
+        return self._reader.manifest
+
+    @property
+    def shape(self) -> tuple[int, int]:
+        """(rows, numeric columns)."""
+        return (self._reader.rows_count, len(self._reader.numeric_columns))
+
+    @property
+    def numeric_columns(self) -> list[str]:
+        return list(self._reader.numeric_columns)
+
+    @property
+    def basis_columns(self) -> list[str]:
+        """Numeric columns kept exactly as the C factor (empty for method='svd')."""
+        return [n for n in self._reader.basis_names if not n.startswith(layout.RESERVED_PREFIX)]
+
+    @property
+    def anchor_rows(self) -> list[int]:
+        """Positions of the rows kept exactly as the R factor."""
+        return [int(p) for p in self._reader.anchor_positions]
+
+    @property
+    def errors(self) -> dict[str, Any]:
+        """The error summary measured when the archive was written."""
+        return dict(self.manifest["errors"])
+
+    def column_ledger(self) -> pa.Table:
+        """Per numeric column: profile, transform, mixing and measured error (err_max, err_l2, rel_rms)."""
+        return self._reader.columns_table
+
+    def __repr__(self) -> str:
+        m, n = self.shape
+        return (f"<rankfold.Archive {self.path} {m} x {n}, {self.manifest['method']['kind']} "
+                f"rank {self.manifest['method']['rank']}>")
+
+    # -- rebuilds --------------------------------------------------------------------------------
+    def _rebuild(self, request: str, rows: Any, columns: Any) -> Rebuilt:
+        positions = (self._reader.locate(rows.values) if isinstance(rows, Keys)
+                     else self._reader.resolve_rows(rows))
+        result = self._reader.rebuild(columns=columns, positions=positions)
+        largest = float(result.bounds.max()) if result.bounds.size else 0.0
+        self._log.record(
+            request,
+            rows=rows.values if isinstance(rows, Keys) else _describe_rows(rows),
+            columns=None if columns is None else result.columns,
+            cells_rebuilt=int((~result.exact).sum()),
+            cells_exact=int(result.exact.sum()),
+            largest_bound=largest,
+        )
+        return result
+
+    def to_numpy(self, rows: Any = None, columns: Any = None) -> np.ndarray:
+        """Rebuilt values, float64, shape (rows, columns); NaN where the source was NULL or NaN."""
+        return self._rebuild("to_numpy", rows, columns).values
+
+    def cell_bounds(self, rows: Any = None, columns: Any = None) -> np.ndarray:
+        """Per-cell guaranteed limit on |true - rebuilt|, same shape as ``to_numpy``; 0 for
+        cells stored exactly (basis columns, anchor rows, NULL/NaN/inf cells)."""
+        return self._rebuild("cell_bounds", rows, columns).bounds
+
+    def cell(self, row: Any, column: str) -> Cell:
+        """One rebuilt cell and its bound, as ``Cell(value, bound)``."""
+        if not isinstance(column, str):
+            raise InvalidInputError(f"cell() takes one column name; got {column!r}.")
+        rows = Keys([row.values[0]]) if isinstance(row, Keys) else [row]
+        result = self._rebuild("cell", rows, [column])
+        value = None if result.nulls[0, 0] else float(result.values[0, 0])
+        return Cell(value, float(result.bounds[0, 0]))
+
+    def rebuild(self, rows: Any = None, columns: Any = None) -> pa.Table:
+        """The table for ``rows``: exact (key and non-numeric) columns plus the requested
+        numeric columns rebuilt, in source column order and source types (integer columns
+        rounded to the nearest integer), with NULLs where the source had NULLs."""
+        result = self._rebuild("rebuild", rows, columns)
+        wanted = set(result.columns)
+        index = {n: t for t, n in enumerate(result.columns)}
+        arrays, names = [], []
+        for field in self.manifest["schema"]:
+            name = field["name"]
+            if field["role"] == "exact":
+                arrays.append(result.rows.column(name))
+            elif name in wanted:
+                arrays.append(_typed(result.values[:, index[name]], result.nulls[:, index[name]],
+                                     field["type"]))
+            else:
+                continue
+            names.append(name)
+        return pa.table(arrays, names=names)
+
+
+def _describe_rows(rows: Any) -> Any:
+    if rows is None:
+        return None
+    if isinstance(rows, slice):
+        return f"{rows.start}:{rows.stop}:{rows.step}"
+    return np.atleast_1d(np.asarray(rows)).tolist()
+
+
+def _typed(values: np.ndarray, nulls: np.ndarray, type_name: str) -> pa.Array:
+    data_type = _arrow_type(type_name)
+    if pa.types.is_integer(data_type):
+        info = np.iinfo(data_type.to_pandas_dtype())
+        safe = np.where(np.isfinite(values), values, 0.0)
+        ints = np.clip(np.rint(safe), info.min, info.max).astype(data_type.to_pandas_dtype())
+        return pa.array(ints, data_type, mask=nulls)
+    return pa.array(values, pa.float64(), mask=nulls).cast(data_type)
+
+
+def _arrow_type(name: str) -> pa.DataType:
+    return {"float": pa.float32(), "double": pa.float64(), "halffloat": pa.float16()}.get(
+        name) or pa.type_for_alias(name)

@@ -1,0 +1,94 @@
+"""The one exception hierarchy of rankfold.
+
+Every error raised on purpose by rankfold derives from :class:`RankfoldError` and from the
+built-in exception a caller would naturally catch, so ``except ValueError`` keeps working::
+
+    RankfoldError
+    +-- InvalidInputError (ValueError)          bad source, option or argument
+    |   +-- EmptySourceError                    the source has no rows
+    |   +-- NoNumericColumnsError               nothing to factor
+    |   +-- RankTooLargeError                   rank or sample sizes exceed the table
+    |   +-- UnknownOptionError (TypeError too)  a misspelled or unsupported option
+    +-- UnknownColumnError (LookupError)        a column name the archive does not hold
+    +-- RowOutOfRangeError (IndexError)         a row position or key the archive does not hold
+    +-- ArchiveExistsError (FileExistsError)    refusing to replace an existing archive
+    +-- ArchiveNotFoundError (FileNotFoundError)
+    +-- CorruptArchiveError (ValueError)        manifest or checksum does not match the files
+    |   +-- UnsupportedVersionError             written by an incompatible format version
+    +-- SourceChangedError (RuntimeError)       the source changed between compress passes
+
+Messages say what was wrong, with which input, and what to do about it.
+"""
+
+from __future__ import annotations
+
+__all__ = [
+    "RankfoldError",
+    "InvalidInputError",
+    "EmptySourceError",
+    "NoNumericColumnsError",
+    "RankTooLargeError",
+    "UnknownOptionError",
+    "UnknownColumnError",
+    "RowOutOfRangeError",
+    "ArchiveExistsError",
+    "ArchiveNotFoundError",
+    "CorruptArchiveError",
+    "UnsupportedVersionError",
+    "SourceChangedError",
+]
+
+
+class RankfoldError(Exception):
+    """Root of every error that rankfold raises on purpose."""
+
+
+class InvalidInputError(RankfoldError, ValueError):
+    """A source, option or argument that rankfold cannot use as given."""
+
+
+class EmptySourceError(InvalidInputError):
+    """The source has no rows."""
+
+
+class NoNumericColumnsError(InvalidInputError):
+    """The source has no numeric column to factor."""
+
+
+class RankTooLargeError(InvalidInputError):
+    """The requested rank or sample size does not fit the table."""
+
+
+class UnknownOptionError(InvalidInputError, TypeError):
+    """An option name or option value that rankfold does not know."""
+
+
+class UnknownColumnError(RankfoldError, LookupError):
+    """A column name that the archive does not hold."""
+
+    def __str__(self) -> str:  # LookupError/KeyError would quote the message
+        return str(self.args[0]) if self.args else ""
+
+
+class RowOutOfRangeError(RankfoldError, IndexError):
+    """A row position or key value that the archive does not hold."""
+
+
+class ArchiveExistsError(RankfoldError, FileExistsError):
+    """The target path exists and replacing it was not asked for."""
+
+
+class ArchiveNotFoundError(RankfoldError, FileNotFoundError):
+    """No archive at the given path."""
+
+
+class CorruptArchiveError(RankfoldError, ValueError):
+    """The archive's files do not match its manifest."""
+
+
+class UnsupportedVersionError(CorruptArchiveError):
+    """The archive was written in a format version this rankfold cannot read."""
+
+
+class SourceChangedError(RankfoldError, RuntimeError):
+    """The source gave different rows in two passes of one compress run."""

@@ -1,0 +1,36 @@
+"""File names and reserved column names of an archive directory.
+
+An archive is a directory::
+
+    manifest.json          format version, schema, options, seed, files with SHA-256, errors
+    rows-00000.parquet     one row per source row, in source order: _rf_row, key columns,
+                           basis columns (exact), _rf_err_max, _rf_err_l2 (row ledger)
+    columns.parquet        one row per numeric column: transform, offset and weights of the
+                           mixing matrix, profile counts, column ledger
+    anchors.parquet        the anchor rows (R factor): _rf_row and every numeric column, exact
+    cells.parquet          cells stored exactly: _rf_row, _rf_column, value, reason
+
+All of it is plain Parquet and JSON, readable by DuckDB or pyarrow without rankfold.
+"""
+
+from __future__ import annotations
+
+MANIFEST = "manifest.json"
+COLUMNS = "columns.parquet"
+ANCHORS = "anchors.parquet"
+CELLS = "cells.parquet"
+ROWS_PATTERN = "rows-{:05d}.parquet"
+
+FORMAT_NAME = "rankfold-archive"
+FORMAT_VERSION = "1.0"
+
+RESERVED_PREFIX = "_rf_"
+ROW_ID = "_rf_row"
+COLUMN_ID = "_rf_column"
+ROW_ERR_MAX = "_rf_err_max"
+ROW_ERR_L2 = "_rf_err_l2"
+SCORE_PATTERN = "_rf_score_{}"
+
+# Rows per Parquet row group in row files: close to DuckDB's own default (122,880), so
+# row-range reads and DuckDB's parallel scans both find several groups per file.
+ROW_GROUP_ROWS = 131_072

@@ -1,0 +1,101 @@
+"""The archive manifest: a JSON document that makes the archive self-describing.
+
+It records the format name and version, the writer (name and version), creation time, the
+source schema (names, Arrow types and roles, in source order), the shape, the method with its
+options and seed, the basis and anchor rows, every file with its size and SHA-256, and an
+error summary. Readers refuse an unknown major version and name both versions.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+from pathlib import Path
+from typing import Any
+
+from ..errors import CorruptArchiveError, UnsupportedVersionError
+from . import layout
+
+__all__ = ["sha256_of", "file_entry", "write_manifest", "read_manifest", "check_files"]
+
+REQUIRED_KEYS = ("format", "format_version", "writer", "archive_id", "shape", "schema",
+                 "numeric_columns", "method", "basis", "anchors", "files", "errors")
+
+
+def sha256_of(path: Path, chunk: int = 1 << 20) -> str:
+    digest = hashlib.sha256()
+    with open(path, "rb") as handle:
+        for block in iter(lambda: handle.read(chunk), b""):
+            digest.update(block)
+    return digest.hexdigest()
+
+
+def file_entry(directory: Path, name: str) -> dict[str, Any]:
+    path = directory / name
+    return {"name": name, "bytes": path.stat().st_size, "sha256": sha256_of(path)}
+
+
+def write_manifest(directory: Path, manifest: dict[str, Any]) -> None:
+    """Write ``manifest.json`` durably (write, flush, fsync)."""
+    path = directory / layout.MANIFEST
+    with open(path, "w", encoding="utf-8") as handle:
+        json.dump(manifest, handle, indent=1, sort_keys=False, allow_nan=False)
+        handle.write("\n")
+        handle.flush()
+        os.fsync(handle.fileno())
+
+
+def read_manifest(directory: Path) -> dict[str, Any]:
+    """Load and validate the manifest of the archive at ``directory``."""
+    path = directory / layout.MANIFEST
+    try:
+        text = path.read_text(encoding="utf-8")
+        manifest = json.loads(text)
+    except FileNotFoundError:
+        raise CorruptArchiveError(
+            f"{directory} has no {layout.MANIFEST}: it is not a rankfold archive, or its "
+            "writing was interrupted; compress the source again."
+        ) from None
+    except (json.JSONDecodeError, UnicodeDecodeError) as exc:
+        raise CorruptArchiveError(
+            f"{path} is not valid JSON ({exc}); the archive is damaged: restore it from a copy "
+            "or compress the source again."
+        ) from None
+    if not isinstance(manifest, dict) or manifest.get("format") != layout.FORMAT_NAME:
+        raise CorruptArchiveError(
+            f"{path} is not a rankfold manifest (format is {manifest.get('format')!r} "
+            f"where {layout.FORMAT_NAME!r} was expected)."
+            if isinstance(manifest, dict) else f"{path} is not a rankfold manifest."
+        )
+    version = str(manifest.get("format_version", ""))
+    if version.split(".")[0] != layout.FORMAT_VERSION.split(".")[0]:
+        writer = manifest.get("writer", {})
+        raise UnsupportedVersionError(
+            f"{directory} uses archive format {version or '?'} (written by "
+            f"{writer.get('name', '?')} {writer.get('version', '?')}); this rankfold reads "
+            f"format {layout.FORMAT_VERSION.split('.')[0]}.x. Open it with a matching rankfold version."
+        )
+    missing = [key for key in REQUIRED_KEYS if key not in manifest]
+    if missing:
+        raise CorruptArchiveError(f"{path} lacks the entries {missing}; the archive is damaged.")
+    return manifest
+
+
+def check_files(directory: Path, manifest: dict[str, Any], *, checksums: bool) -> None:
+    """Check that every listed file exists with its recorded size (and SHA-256 if asked)."""
+    for entry in manifest["files"]:
+        path = directory / entry["name"]
+        if not path.is_file():
+            raise CorruptArchiveError(f"{directory} is missing {entry['name']}; the archive is damaged.")
+        size = path.stat().st_size
+        if size != entry["bytes"]:
+            raise CorruptArchiveError(
+                f"{path} has {size} bytes where the manifest records {entry['bytes']}; "
+                "the archive is damaged or was edited."
+            )
+        if checksums and sha256_of(path) != entry["sha256"]:
+            raise CorruptArchiveError(
+                f"{path} does not match its SHA-256 in the manifest; the archive is damaged "
+                "or was edited."
+            )

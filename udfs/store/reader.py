@@ -1,0 +1,243 @@
+"""Read an archive and rebuild any subset of it with per-cell bounds.
+
+The reader holds the small parts in memory (column table, anchor rows, exact cells: O((c + r) n)
+plus the exceptional cells) and reads row files by row group, only for the rows asked for.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.compute as pc
+import pyarrow.parquet as pq
+
+from ..errors import ArchiveNotFoundError, CorruptArchiveError, RowOutOfRangeError, UnknownColumnError
+from . import arithmetic, layout
+from .manifest import check_files, read_manifest
+
+__all__ = ["ArchiveReader", "Rebuilt"]
+
+
+@dataclass
+class Rebuilt:
+    """A rebuilt block: ``values`` and ``bounds`` (b, q) float64, ``exact`` (b, q) bool,
+    ``nulls`` (b, q) bool (source NULLs), for ``positions`` (b,) and ``columns`` (q names),
+    plus ``rows``: the row-file table of those rows (keys, basis, ledger)."""
+
+    positions: np.ndarray
+    columns: list[str]
+    values: np.ndarray
+    bounds: np.ndarray
+    exact: np.ndarray
+    nulls: np.ndarray
+    rows: pa.Table
+
+
+class ArchiveReader:
+    """Opens an archive directory: validates the manifest and the files' sizes
+    (``checksums=True`` also checks every SHA-256)."""
+
+    def __init__(self, path: str | Path, *, checksums: bool = False):
+        self.path = Path(path)
+        if not self.path.exists():
+            raise ArchiveNotFoundError(f"No archive at {self.path}. Check the path.")
+        if not self.path.is_dir():
+            raise CorruptArchiveError(f"{self.path} is a file, not an archive directory.")
+        self.manifest = read_manifest(self.path)
+        check_files(self.path, self.manifest, checksums=checksums)
+        try:
+            self._load()
+        except (OSError, pa.ArrowException, KeyError) as exc:
+            raise CorruptArchiveError(f"{self.path} could not be read ({exc}); the archive is damaged.") from None
+
+    def _load(self) -> None:
+        m = self.manifest
+        self.numeric_columns: list[str] = list(m["numeric_columns"])
+        self.column_index = {n: j for j, n in enumerate(self.numeric_columns)}
+        self.rows_count = int(m["shape"][0])
+        cols = pq.read_table(self.path / layout.COLUMNS)
+        self.columns_table = cols
+        self.offset = cols.column("offset").to_numpy()
+        self.weights = np.array(cols.column("weights").to_pylist(), dtype=np.float64).T.reshape(
+            len(m["basis"]), len(self.numeric_columns))
+        self.err_max_col = cols.column("err_max").to_numpy()
+        self.basis_names = [b["name"] for b in m["basis"]]
+        self.fill = np.array([b["fill"] for b in m["basis"]], dtype=np.float64)
+        self.is_basis = np.isin(self.numeric_columns, self.basis_names)
+        anchors = pq.read_table(self.path / layout.ANCHORS)
+        self.anchor_positions = anchors.column(layout.ROW_ID).to_numpy()
+        self.anchor_lookup = {int(p): i for i, p in enumerate(self.anchor_positions)}
+        self.anchor_values = np.column_stack(
+            [anchors.column(n).to_numpy(zero_copy_only=False) for n in self.numeric_columns]
+        ) if self.anchor_positions.size else np.zeros((0, len(self.numeric_columns)))
+        self.anchor_nulls = np.column_stack(
+            [anchors.column(n).is_null().to_numpy(zero_copy_only=False) for n in self.numeric_columns]
+        ) if self.anchor_positions.size else np.zeros((0, len(self.numeric_columns)), bool)
+        cells = pq.read_table(self.path / layout.CELLS)
+        self.cell_rows = cells.column(layout.ROW_ID).to_numpy()
+        self.cell_cols = cells.column(layout.COLUMN_ID).to_numpy()
+        self.cell_nulls = cells.column("value").is_null().to_numpy(zero_copy_only=False)
+        self.cell_values = cells.column("value").fill_null(np.nan).to_numpy()
+        self.parts = []
+        for part in m["row_parts"]:
+            meta = pq.ParquetFile(self.path / part["name"]).metadata
+            starts = np.cumsum([0] + [meta.row_group(g).num_rows for g in range(meta.num_row_groups)])
+            self.parts.append((part["first_row"], part["rows"], part["name"], starts))
+        self.key = m.get("key")
+
+    # -- addressing -----------------------------------------------------------------------------
+    def resolve_columns(self, columns: Any) -> list[str]:
+        if columns is None:
+            return list(self.numeric_columns)
+        if isinstance(columns, str):
+            columns = [columns]
+        names = list(columns)
+        for name in names:
+            if name not in self.column_index:
+                raise UnknownColumnError(
+                    f"The archive {self.path} has no numeric column {name!r}. Its numeric "
+                    f"columns are {self.numeric_columns[:20]}{' ...' if len(self.numeric_columns) > 20 else ''}."
+                )
+        return names
+
+    def resolve_rows(self, rows: Any) -> np.ndarray:
+        """Row positions (int64, shape (b,)) from None, an int, a slice or a sequence of ints."""
+        m = self.rows_count
+        if rows is None:
+            return np.arange(m, dtype=np.int64)
+        if isinstance(rows, slice):
+            return np.arange(m, dtype=np.int64)[rows]
+        array = np.atleast_1d(np.asarray(rows))
+        if array.size == 0:
+            return np.zeros(0, dtype=np.int64)
+        if not np.issubdtype(array.dtype, np.integer):
+            raise RowOutOfRangeError(
+                f"Rows are 0-based integer positions; got {rows!r}. To address rows by key "
+                "value, use rankfold.Keys([...])."
+            )
+        out = array.astype(np.int64)
+        out = np.where(out < 0, out + m, out)
+        bad = out[(out < 0) | (out >= m)]
+        if bad.size:
+            raise RowOutOfRangeError(
+                f"Row position {int(bad[0]) if bad[0] >= 0 else int(bad[0]) - m} is out of range "
+                f"for the archive {self.path} with {m} rows (valid: 0 to {m - 1})."
+            )
+        return out
+
+    def locate(self, key_values: Any) -> np.ndarray:
+        """Positions of the rows whose key column equals each of ``key_values`` (in order)."""
+        if not self.key:
+            raise RowOutOfRangeError(
+                f"The archive {self.path} has no key column; it was compressed without key=. "
+                "Address rows by position instead."
+            )
+        wanted = list(key_values) if isinstance(key_values, (list, tuple, np.ndarray)) else [key_values]
+        found: dict[Any, int] = {}
+        for first, _, name, _ in self.parts:
+            table = pq.read_table(self.path / name, columns=[layout.ROW_ID, self.key])
+            keys = table.column(self.key)
+            mask = pc.is_in(keys, value_set=pa.array(wanted, type=keys.type))
+            hits = table.filter(mask)
+            for k, p in zip(hits.column(self.key).to_pylist(), hits.column(layout.ROW_ID).to_pylist()):
+                found.setdefault(k, p)
+        missing = [k for k in wanted if k not in found]
+        if missing:
+            raise RowOutOfRangeError(
+                f"The archive {self.path} has no row with {self.key} = {missing[0]!r}."
+            )
+        return np.array([found[k] for k in wanted], dtype=np.int64)
+
+    # -- reading -----------------------------------------------------------------------------
+    def read_rows(self, positions: np.ndarray, columns: list[str] | None = None) -> pa.Table:
+        """Row-file columns (default: all) for ``positions``, in the order given."""
+        if positions.size == 0:
+            schema = pq.read_schema(self.path / self.parts[0][2])
+            names = columns or schema.names
+            return pa.table({n: pa.array([], schema.field(n).type) for n in names})
+        order = np.argsort(positions, kind="stable")
+        sorted_pos = positions[order]
+        pieces = []
+        for first, count, name, starts in self.parts:
+            lo, hi = np.searchsorted(sorted_pos, [first, first + count])
+            if lo == hi:
+                continue
+            local = sorted_pos[lo:hi] - first
+            groups = np.unique(np.searchsorted(starts, local, side="right") - 1)
+            table = pq.ParquetFile(self.path / name).read_row_groups(groups.tolist(), columns=columns)
+            group_first = starts[groups]
+            offsets = np.cumsum([0] + [starts[g + 1] - starts[g] for g in groups])
+            index_in_read = offsets[np.searchsorted(group_first, local, side="right") - 1] + (
+                local - group_first[np.searchsorted(group_first, local, side="right") - 1])
+            pieces.append(table.take(pa.array(index_in_read)))
+        table = pa.concat_tables(pieces) if len(pieces) > 1 else pieces[0]
+        inverse = np.empty_like(order)
+        inverse[order] = np.arange(order.size)
+        return table.take(pa.array(inverse))
+
+    def basis_block(self, rows: pa.Table) -> np.ndarray:
+        """Filled basis values (b, c) as float64 from a row-file table."""
+        if not self.basis_names:
+            return np.zeros((rows.num_rows, 0))
+        block = np.column_stack([
+            rows.column(n).cast(pa.float64()).fill_null(np.nan).to_numpy() for n in self.basis_names
+        ])
+        return arithmetic.fill_missing(block, self.fill)
+
+    def rebuild(self, rows: Any = None, columns: Any = None, *, positions: np.ndarray | None = None) -> Rebuilt:
+        """Rebuild ``rows`` x ``columns`` with bounds (see :class:`Rebuilt`)."""
+        names = self.resolve_columns(columns)
+        pos = positions if positions is not None else self.resolve_rows(rows)
+        col_idx = np.array([self.column_index[n] for n in names], dtype=np.int64)
+        table = self.read_rows(pos)
+        filled = self.basis_block(table)
+        weights = self.weights[:, col_idx]
+        offset = self.offset[col_idx]
+        values = arithmetic.approximate(filled, weights, offset)
+        slack = arithmetic.slack(filled, weights, offset)
+        row_max = table.column(layout.ROW_ERR_MAX).to_numpy()
+        bounds = np.minimum(row_max[:, None], self.err_max_col[col_idx][None, :]) + slack
+        b, q = values.shape
+        exact = np.zeros((b, q), bool)
+        nulls = np.zeros((b, q), bool)
+        # basis columns: the stored values themselves
+        for t, name in enumerate(names):
+            if self.is_basis[self.column_index[name]]:
+                column = table.column(name)
+                values[:, t] = column.cast(pa.float64()).fill_null(np.nan).to_numpy()
+                nulls[:, t] = column.is_null().to_numpy(zero_copy_only=False)
+                exact[:, t] = True
+        # anchor rows
+        if self.anchor_lookup:
+            for i, p in enumerate(pos):
+                a = self.anchor_lookup.get(int(p))
+                if a is not None:
+                    values[i] = self.anchor_values[a, col_idx]
+                    nulls[i] = self.anchor_nulls[a, col_idx]
+                    exact[i] = True
+        # exact cells
+        if self.cell_rows.size and b:
+            self._apply_cells(pos, col_idx, values, nulls, exact)
+        bounds[exact] = 0.0
+        return Rebuilt(pos, names, values, bounds, exact, nulls, table)
+
+    def _apply_cells(self, pos, col_idx, values, nulls, exact) -> None:
+        in_rows = np.isin(self.cell_rows, pos)
+        in_cols = np.isin(self.cell_cols, col_idx)
+        hit = np.flatnonzero(in_rows & in_cols)
+        if hit.size == 0:
+            return
+        row_slot = {}
+        for i, p in enumerate(pos):
+            row_slot.setdefault(int(p), []).append(i)
+        col_slot = {int(j): t for t, j in enumerate(col_idx)}
+        for h in hit:
+            t = col_slot.get(int(self.cell_cols[h]))
+            for i in row_slot.get(int(self.cell_rows[h]), ()):
+                values[i, t] = self.cell_values[h]
+                nulls[i, t] = self.cell_nulls[h]
+                exact[i, t] = True
