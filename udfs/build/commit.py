@@ -1,0 +1,142 @@
+"""Pass 5, commit: write into a temporary directory beside the target, write the manifest
+last, then move the directory into place. A failed or interrupted compress leaves no
+archive at the target and never touches an existing one; ``overwrite=True`` replaces only
+a directory that already is a rankfold archive (or an empty one).
+"""
+
+from __future__ import annotations
+
+import io
+import os
+import shutil
+import uuid
+from pathlib import Path
+from typing import Any
+
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+from ..errors import ArchiveExistsError, InvalidInputError
+from ..store import layout
+from ..store.manifest import file_entry, write_manifest
+
+__all__ = ["prepare_target", "ArchiveWriter"]
+
+ZSTD_LEVEL = 3
+
+
+def prepare_target(path: str | os.PathLike, overwrite: bool) -> Path:
+    """Check the target before any work: refuse an existing path unless it may be replaced."""
+    target = Path(path)
+    if target.exists() or target.is_symlink():
+        if not overwrite:
+            raise ArchiveExistsError(
+                f"{target} already exists; rankfold never replaces data unasked. Choose another "
+                "path, or pass overwrite=True to replace an existing archive."
+            )
+        is_archive = target.is_dir() and (target / layout.MANIFEST).is_file()
+        is_empty_dir = target.is_dir() and not any(target.iterdir())
+        if not (is_archive or is_empty_dir):
+            raise ArchiveExistsError(
+                f"{target} exists and is not a rankfold archive; refusing to replace it even with "
+                "overwrite=True. Remove it yourself or choose another path."
+            )
+    if not target.parent.exists():
+        raise InvalidInputError(f"The folder {target.parent} does not exist; create it first.")
+    return target
+
+
+def _byte_stream_split_wins(column: pa.Array) -> bool:
+    """Measure on a sample: is BYTE_STREAM_SPLIT (no dictionary) smaller than the default
+    (dictionary, falling back to plain) under zstd? Full-precision floats favour BSS, short
+    decimals favour the default (duckdb-notes section 7: 85% vs 95%, and 84% vs 54%)."""
+    sample = pa.table({"v": column.slice(0, 65_536)})
+    sizes = []
+    for bss in (True, False):
+        sink = io.BytesIO()
+        pq.write_table(sample, sink, compression="zstd", compression_level=ZSTD_LEVEL,
+                       use_dictionary=not bss,
+                       column_encoding={"v": "BYTE_STREAM_SPLIT"} if bss else None)
+        sizes.append(sink.tell())
+    return sizes[0] < sizes[1]
+
+
+class ArchiveWriter:
+    """Writes one archive into a temporary directory; ``commit`` moves it into place."""
+
+    def __init__(self, target: Path, overwrite: bool, part_rows: int = 1 << 22):
+        self.target = target
+        self.overwrite = overwrite
+        self.part_rows = part_rows
+        self.temp = target.parent / f".{target.name}.rankfold-tmp-{uuid.uuid4().hex[:12]}"
+        self.temp.mkdir()
+        self.parts: list[dict[str, Any]] = []
+        self._writer: pq.ParquetWriter | None = None
+        self._part_rows_written = 0
+        self._encodings: tuple[list[str], dict[str, str]] | None = None
+
+    # -- row parts -------------------------------------------------------------------------
+    def write_rows(self, table: pa.Table, first_row: int) -> None:
+        if self._encodings is None:
+            self._encodings = self._choose_encodings(table)
+        if self._writer is None or self._part_rows_written >= self.part_rows:
+            self._close_part()
+            name = layout.ROWS_PATTERN.format(len(self.parts))
+            dictionary, encodings = self._encodings
+            self._writer = pq.ParquetWriter(
+                self.temp / name, table.schema, compression="zstd",
+                compression_level=ZSTD_LEVEL, use_dictionary=dictionary,
+                column_encoding=encodings or None)
+            self.parts.append({"name": name, "first_row": first_row, "rows": 0})
+            self._part_rows_written = 0
+        self._writer.write_table(table, row_group_size=layout.ROW_GROUP_ROWS)
+        self.parts[-1]["rows"] += table.num_rows
+        self._part_rows_written += table.num_rows
+
+    def _choose_encodings(self, table: pa.Table) -> tuple[list[str], dict[str, str]]:
+        dictionary, encodings = [], {}
+        for field in table.schema:
+            column = table.column(field.name).combine_chunks()
+            if pa.types.is_floating(field.type) and _byte_stream_split_wins(column):
+                encodings[field.name] = "BYTE_STREAM_SPLIT"
+            else:
+                dictionary.append(field.name)
+        return dictionary, encodings
+
+    def _close_part(self) -> None:
+        if self._writer is not None:
+            self._writer.close()
+            self._writer = None
+
+    # -- small tables ------------------------------------------------------------------------
+    def write_table(self, name: str, table: pa.Table, *, factor_columns: list[str] = ()) -> None:
+        """Write a small table; ``factor_columns`` are full-precision floats stored with
+        BYTE_STREAM_SPLIT and no dictionary (measured -8% size for such data)."""
+        encodings = {c: "BYTE_STREAM_SPLIT" for c in factor_columns}
+        dictionary = [f.name for f in table.schema if f.name not in encodings]
+        pq.write_table(table, self.temp / name, compression="zstd",
+                       compression_level=ZSTD_LEVEL, use_dictionary=dictionary,
+                       column_encoding=encodings or None)
+
+    # -- finish ----------------------------------------------------------------------------
+    def commit(self, manifest: dict[str, Any], file_names: list[str]) -> Path:
+        """Record files with sizes and SHA-256, write the manifest, move into place."""
+        self._close_part()
+        manifest["files"] = [file_entry(self.temp, name) for name in file_names]
+        write_manifest(self.temp, manifest)
+        if self.target.exists():
+            old = self.target.parent / f".{self.target.name}.rankfold-old-{uuid.uuid4().hex[:12]}"
+            os.replace(self.target, old)
+            try:
+                os.replace(self.temp, self.target)
+            except BaseException:
+                os.replace(old, self.target)
+                raise
+            shutil.rmtree(old, ignore_errors=True)
+        else:
+            os.replace(self.temp, self.target)
+        return self.target
+
+    def abort(self) -> None:
+        self._close_part()
+        shutil.rmtree(self.temp, ignore_errors=True)

@@ -1,0 +1,115 @@
+"""Options of ``compress``: one validation, one sentence shape for every complaint."""
+
+from __future__ import annotations
+
+import difflib
+from dataclasses import dataclass, field, fields
+from typing import Any
+
+from ..errors import InvalidInputError, UnknownOptionError
+from ..factor.cur import COLUMN_METHODS, LINKS, ROW_METHODS
+
+__all__ = ["CompressOptions", "METHODS", "TRANSFORMS"]
+
+METHODS = ("cur", "svd")
+TRANSFORMS = ("standardize", "center", "none")
+
+# Default rank when none is given: the smallest k whose Eckart-Young relative Frobenius
+# error (of the transformed table) is at most this, capped at a quarter of the columns.
+DEFAULT_RANK_ERROR = 0.01
+
+
+@dataclass
+class CompressOptions:
+    """Every option of ``rankfold.compress``. See the README for their meaning."""
+
+    rank: int | None = None
+    seed: int = 0
+    method: str = "cur"
+    columns: str = "pivoted_qr"
+    rows: str = "qdeim"
+    link: str = "optimal"
+    transform: str = "standardize"
+    n_columns: int | None = None
+    n_rows: int | None = None
+    replace: bool | None = None
+    key: str | None = None
+    exact_columns: tuple[str, ...] = ()
+    overwrite: bool = False
+    batch_rows: int = 131_072
+    connection: Any = field(default=None, repr=False)
+
+    @classmethod
+    def from_call(cls, rank: Any, seed: Any, options: dict[str, Any]) -> "CompressOptions":
+        known = {f.name for f in fields(cls)} - {"rank", "seed"}
+        for name in options:
+            if name not in known:
+                close = difflib.get_close_matches(name, sorted(known), n=1)
+                hint = f" Did you mean {close[0]!r}?" if close else ""
+                raise UnknownOptionError(
+                    f"compress has no option {name!r}.{hint} Known options: rank, seed, "
+                    + ", ".join(sorted(known)) + "."
+                )
+        opts = cls(rank=rank, seed=seed, **options)
+        opts._validate()
+        return opts
+
+    def _validate(self) -> None:
+        _positive_int("rank", self.rank, allow_none=True)
+        _positive_int("n_columns", self.n_columns, allow_none=True)
+        _positive_int("n_rows", self.n_rows, allow_none=True)
+        _positive_int("batch_rows", self.batch_rows, allow_none=False)
+        if not isinstance(self.seed, int) or isinstance(self.seed, bool) or self.seed < 0:
+            raise InvalidInputError(
+                f"The 'seed' option of compress must be a non-negative integer. Got {self.seed!r} instead."
+            )
+        _choice("method", self.method, METHODS)
+        _choice("columns", self.columns, COLUMN_METHODS)
+        _choice("rows", self.rows, ROW_METHODS)
+        _choice("link", self.link, LINKS)
+        _choice("transform", self.transform, TRANSFORMS)
+        if self.replace is not None and not isinstance(self.replace, bool):
+            raise InvalidInputError(
+                f"The 'replace' option of compress must be True, False or None. Got {self.replace!r} instead."
+            )
+        if isinstance(self.exact_columns, str):
+            self.exact_columns = (self.exact_columns,)
+        self.exact_columns = tuple(self.exact_columns)
+        if self.key is not None and not isinstance(self.key, str):
+            raise InvalidInputError(
+                f"The 'key' option of compress must be one column name. Got {self.key!r} instead."
+            )
+        if self.link == "textbook" and self.columns == "pivoted_qr":
+            raise InvalidInputError(
+                "The 'textbook' link needs sampled columns (its 1/sqrt(s p) rescaling uses the "
+                "sampling probabilities); use columns='length_squared' or 'leverage' with it."
+            )
+
+    @property
+    def sample_with_replacement(self) -> bool:
+        """i.i.d. draws for the published textbook estimator, distinct draws otherwise."""
+        return (self.link == "textbook") if self.replace is None else self.replace
+
+    def recorded(self) -> dict[str, Any]:
+        """The options as written into the manifest (no connection object)."""
+        return {f.name: getattr(self, f.name) for f in fields(self)
+                if f.name not in ("connection", "overwrite")} | {
+                    "exact_columns": list(self.exact_columns)}
+
+
+def _positive_int(name: str, value: Any, *, allow_none: bool) -> None:
+    if value is None and allow_none:
+        return
+    if not isinstance(value, int) or isinstance(value, bool) or value < 1:
+        raise InvalidInputError(
+            f"The {name!r} option of compress must be a positive integer"
+            f"{' or None' if allow_none else ''}. Got {value!r} instead."
+        )
+
+
+def _choice(name: str, value: Any, allowed: tuple[str, ...]) -> None:
+    if value not in allowed:
+        raise UnknownOptionError(
+            f"The {name!r} option of compress must be one of {', '.join(map(repr, allowed))}. "
+            f"Got {value!r} instead."
+        )

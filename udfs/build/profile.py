@@ -1,0 +1,128 @@
+"""Pass 1, profile: per-column counts, mean, spread and range of each numeric column, plus an
+order-sensitive fingerprint of the rows so later passes can prove they saw the same table.
+
+Means and second moments merge block by block with the pairwise update of Chan, Golub,
+LeVeque ("Algorithms for computing the sample variance", Am. Stat. 37(3), 1983), which stays
+accurate when means are large against the spread.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+__all__ = ["ColumnProfile", "Fingerprint", "profile_block", "Transform"]
+
+
+def _row_weights(first: int, count: int) -> np.ndarray:
+    """Deterministic pseudo-random weights in [-0.5, 0.5) for rows first..first+count-1."""
+    idx = np.arange(first, first + count, dtype=np.uint64)
+    mixed = (idx * np.uint64(2654435761) + np.uint64(40503)) % np.uint64(2**32)
+    return mixed.astype(np.float64) / 2.0**32 - 0.5
+
+
+class Fingerprint:
+    """sum_i g(i) * (sum of row i's finite values): changes when rows change or move."""
+
+    def __init__(self) -> None:
+        self.value = 0.0
+        self.scale = 0.0
+        self.rows = 0
+
+    def update(self, first: int, block: np.ndarray) -> None:
+        finite = np.where(np.isfinite(block), block, 0.0)
+        sums = finite.sum(axis=1)
+        g = _row_weights(first, block.shape[0])
+        self.value += float(g @ sums)
+        self.scale += float(np.abs(g) @ np.abs(finite).sum(axis=1))
+        self.rows += block.shape[0]
+
+    def matches(self, other: "Fingerprint") -> bool:
+        tolerance = 1e-9 * max(self.scale, other.scale) + 1e-300
+        return self.rows == other.rows and abs(self.value - other.value) <= tolerance
+
+
+@dataclass
+class ColumnProfile:
+    """Running statistics of every numeric column (arrays of shape (n,))."""
+
+    valid: np.ndarray
+    nulls: np.ndarray
+    nans: np.ndarray
+    infinities: np.ndarray
+    mean: np.ndarray
+    m2: np.ndarray
+    minimum: np.ndarray
+    maximum: np.ndarray
+
+    @classmethod
+    def empty(cls, width: int) -> "ColumnProfile":
+        z = np.zeros(width)
+        return cls(z.astype(np.int64), z.astype(np.int64), z.astype(np.int64), z.astype(np.int64),
+                   z.copy(), z.copy(), np.full(width, np.inf), np.full(width, -np.inf))
+
+    @property
+    def std(self) -> np.ndarray:
+        """Population standard deviation of the finite values (0 for fewer than 2)."""
+        return np.sqrt(np.divide(self.m2, self.valid, out=np.zeros_like(self.m2), where=self.valid > 0))
+
+    def merge(self, other: "ColumnProfile") -> "ColumnProfile":
+        n = self.valid + other.valid
+        safe = np.maximum(n, 1)
+        delta = other.mean - self.mean
+        mean = self.mean + delta * (other.valid / safe)
+        m2 = self.m2 + other.m2 + delta**2 * (self.valid * other.valid / safe)
+        return ColumnProfile(n, self.nulls + other.nulls, self.nans + other.nans,
+                             self.infinities + other.infinities, mean, m2,
+                             np.minimum(self.minimum, other.minimum),
+                             np.maximum(self.maximum, other.maximum))
+
+
+def profile_block(block: np.ndarray, null_mask: np.ndarray | None) -> ColumnProfile:
+    """Statistics of one block (b, n); NULL cells (mask) are NaN in ``block``."""
+    finite = np.isfinite(block)
+    valid = finite.sum(axis=0)
+    nulls = null_mask.sum(axis=0) if null_mask is not None else np.zeros(block.shape[1], np.int64)
+    nan = np.isnan(block).sum(axis=0) - nulls
+    inf = np.isinf(block).sum(axis=0)
+    values = np.where(finite, block, 0.0)
+    safe = np.maximum(valid, 1)
+    mean = values.sum(axis=0) / safe
+    m2 = (np.where(finite, block - mean, 0.0) ** 2).sum(axis=0)
+    with np.errstate(invalid="ignore"):
+        lo = np.where(valid > 0, np.min(np.where(finite, block, np.inf), axis=0), np.inf)
+        hi = np.where(valid > 0, np.max(np.where(finite, block, -np.inf), axis=0), -np.inf)
+    return ColumnProfile(valid.astype(np.int64), nulls.astype(np.int64), nan.astype(np.int64),
+                         inf.astype(np.int64), mean, m2, lo, hi)
+
+
+@dataclass(frozen=True)
+class Transform:
+    """Per-column transform z = (x - shift) / scale (arrays of shape (n,)).
+
+    ``standardize``: shift = mean, scale = standard deviation (1 for constant columns);
+    ``center``: shift = mean, scale = 1; ``none``: shift = 0, scale = 1. Means and spreads
+    come from the finite values only.
+    """
+
+    kind: str
+    shift: np.ndarray
+    scale: np.ndarray
+
+    @classmethod
+    def fit(cls, kind: str, profile: ColumnProfile) -> "Transform":
+        width = profile.mean.size
+        shift = profile.mean.copy() if kind in ("center", "standardize") else np.zeros(width)
+        if kind == "standardize":
+            std = profile.std
+            scale = np.where((std > 0) & np.isfinite(std), std, 1.0)
+        else:
+            scale = np.ones(width)
+        return cls(kind, shift, scale)
+
+    def apply(self, block: np.ndarray) -> np.ndarray:
+        """Transformed block with missing and non-finite cells set to 0 (the column mean)."""
+        with np.errstate(invalid="ignore", over="ignore"):
+            z = (block - self.shift) / self.scale
+        return np.where(np.isfinite(z), z, 0.0)

@@ -1,0 +1,176 @@
+"""Sources: anything rankfold can compress, read as a stream of Arrow record batches through
+DuckDB (``to_arrow_reader``), so every pass sees the same rows in the same order with memory
+bounded by the batch size.
+
+Accepted: a 2-D numpy array; a pyarrow Table or RecordBatch; a pandas DataFrame; a path to a
+Parquet file, directory or glob, or to a CSV/TSV file; a table name or a SELECT statement
+together with ``connection=`` (a DuckDB connection).
+"""
+
+from __future__ import annotations
+
+import re
+from collections.abc import Iterator
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import duckdb
+import numpy as np
+import pyarrow as pa
+
+from ..errors import InvalidInputError
+
+__all__ = ["Source", "open_source", "quote_identifier", "block_from_batch"]
+
+_PARQUET_SUFFIXES = (".parquet", ".pq", ".parq")
+_CSV_SUFFIXES = (".csv", ".tsv", ".txt", ".csv.gz", ".tsv.gz", ".csv.zst")
+
+
+def quote_identifier(name: str) -> str:
+    """Quote a column or table name for DuckDB SQL."""
+    return '"' + name.replace('"', '""') + '"'
+
+
+def quote_literal(text: str) -> str:
+    return "'" + text.replace("'", "''") + "'"
+
+
+@dataclass
+class Source:
+    """A relation on a DuckDB connection that can be streamed any number of times.
+
+    ``relation`` is SQL usable after FROM; ``description`` names the source in messages.
+    """
+
+    connection: duckdb.DuckDBPyConnection
+    relation: str
+    schema: pa.Schema
+    description: str
+    owns_connection: bool = False
+
+    def batches(self, columns: list[str], batch_rows: int) -> Iterator[pa.RecordBatch]:
+        """Stream ``columns`` (all when empty) in source order, ``batch_rows`` rows at a time."""
+        select = ", ".join(quote_identifier(c) for c in columns) if columns else "*"
+        cursor = self.connection.cursor()
+        try:
+            reader = cursor.sql(f"SELECT {select} FROM {self.relation}").to_arrow_reader(batch_rows)
+            for batch in reader:
+                if batch.num_rows:
+                    yield batch
+        finally:
+            cursor.close()
+
+    def close(self) -> None:
+        if self.owns_connection:
+            self.connection.close()
+
+
+def _schema_of(connection: duckdb.DuckDBPyConnection, relation: str) -> pa.Schema:
+    return connection.sql(f"SELECT * FROM {relation} LIMIT 0").to_arrow_table().schema
+
+
+def _from_arrow(table: pa.Table, description: str) -> Source:
+    con = duckdb.connect()
+    # a view over the Arrow table (unlike con.register) is visible from cursors
+    con.from_arrow(table).create_view("rankfold_source")
+    return Source(con, "rankfold_source", table.schema, description, owns_connection=True)
+
+
+def _numpy_table(array: np.ndarray) -> pa.Table:
+    if array.ndim != 2:
+        raise InvalidInputError(
+            f"A numpy source must be 2-D (rows x columns); got an array of shape {array.shape}. "
+            "Reshape it, e.g. array.reshape(-1, 1) for a single column."
+        )
+    if not (np.issubdtype(array.dtype, np.number) or array.dtype == np.bool_):
+        raise InvalidInputError(
+            f"A numpy source must hold numbers; got dtype {array.dtype}. Convert it with "
+            "array.astype(float), or pass a pyarrow Table to keep non-numeric columns."
+        )
+    return pa.table({f"x{j}": np.ascontiguousarray(array[:, j]) for j in range(array.shape[1])})
+
+
+def open_source(source: Any, connection: duckdb.DuckDBPyConnection | None = None) -> Source:
+    """Resolve ``source`` to a streamable :class:`Source`."""
+    if isinstance(source, np.ndarray):
+        return _from_arrow(_numpy_table(source), f"numpy array {source.shape}")
+    if isinstance(source, pa.RecordBatch):
+        source = pa.Table.from_batches([source])
+    if isinstance(source, pa.Table):
+        return _from_arrow(source, f"Arrow table ({source.num_rows} rows)")
+    if isinstance(source, pa.RecordBatchReader):
+        raise InvalidInputError(
+            "A RecordBatchReader can be read only once, but compress reads its source several "
+            "times. Pass reader.read_all(), a Parquet file, or a DuckDB table instead."
+        )
+    if type(source).__module__.split(".")[0] == "pandas" and hasattr(source, "columns"):
+        return _from_arrow(pa.Table.from_pandas(source, preserve_index=False), "pandas DataFrame")
+    if isinstance(source, (str, Path)):
+        return _open_text_source(str(source), connection)
+    raise InvalidInputError(
+        f"Cannot compress a source of type {type(source).__name__}. Pass a 2-D numpy array, "
+        "a pyarrow Table, a pandas DataFrame, a Parquet or CSV path, or a table name or SELECT "
+        "statement with connection=<duckdb connection>."
+    )
+
+
+def _open_text_source(text: str, connection: duckdb.DuckDBPyConnection | None) -> Source:
+    lowered = text.lower().strip()
+    is_query = re.match(r"^\s*(select|with|from|values|table)\b", lowered) is not None
+    path = Path(text)
+    looks_like_path = lowered.endswith(_PARQUET_SUFFIXES + _CSV_SUFFIXES) or path.is_dir() or any(
+        ch in text for ch in "*?"
+    )
+    if not is_query and looks_like_path:
+        con = duckdb.connect()
+        if lowered.endswith(_CSV_SUFFIXES):
+            if not path.exists():
+                raise InvalidInputError(f"No CSV file at {text}. Check the path.")
+            relation = f"read_csv({quote_literal(text)})"
+        else:
+            target = f"{text}/**/*.parquet" if path.is_dir() else text
+            if not path.is_dir() and not any(ch in text for ch in "*?") and not path.exists():
+                raise InvalidInputError(f"No Parquet file at {text}. Check the path.")
+            relation = f"read_parquet({quote_literal(target)})"
+        try:
+            schema = _schema_of(con, relation)
+        except duckdb.Error as exc:
+            con.close()
+            raise InvalidInputError(f"DuckDB cannot read {text}: {exc}") from None
+        return Source(con, relation, schema, text, owns_connection=True)
+    if connection is None:
+        raise InvalidInputError(
+            f"The source {text!r} is neither a Parquet nor a CSV path; to compress a table or a "
+            "query, pass connection=<the DuckDB connection that holds it>."
+        )
+    relation = f"({text})" if is_query else (
+        text if "." in text or '"' in text else quote_identifier(text)
+    )
+    try:
+        schema = _schema_of(connection, relation)
+    except duckdb.Error as exc:
+        raise InvalidInputError(f"DuckDB cannot read the source {text!r}: {exc}") from None
+    return Source(connection, relation, schema, text)
+
+
+def block_from_batch(batch: pa.RecordBatch, names: list[str]) -> tuple[np.ndarray, np.ndarray | None]:
+    """Numeric columns of a batch as a float64 block (b, n) and a NULL mask (or None).
+
+    NULL cells become NaN in the block; the mask tells them apart from NaN in the source.
+    """
+    rows = batch.num_rows
+    block = np.empty((rows, len(names)), dtype=np.float64, order="F")
+    mask = None
+    for j, name in enumerate(names):
+        column = batch.column(name)
+        if column.null_count:
+            if mask is None:
+                mask = np.zeros((rows, len(names)), dtype=bool, order="F")
+            mask[:, j] = column.is_null().to_numpy(zero_copy_only=False)
+            column = column.fill_null(0)
+        values = column.to_numpy(zero_copy_only=False)
+        block[:, j] = values
+        if mask is not None and mask[:, j].any():
+            block[mask[:, j], j] = np.nan
+    return block, mask

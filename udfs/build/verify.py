@@ -1,0 +1,182 @@
+"""Pass 4, verify: rebuild every block from the factors exactly as they will be stored,
+measure the residual, fill the error ledger, route cells that cannot be approximated to the
+exact-cell table, and write the row files.
+
+Guarantee established here: for every approximated cell (i, j),
+|x_ij - xhat_ij| <= min(err_max_row_i, err_max_col_j) + slack_ij, where xhat is computed by
+``store.arithmetic`` in any evaluation order (see its docstring for the slack). Cells of basis
+columns, anchor rows and NULL, NaN, +-inf or overflowing cells are stored exactly (error 0).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterator
+from dataclasses import dataclass, field
+
+import numpy as np
+import pyarrow as pa
+
+from ..errors import SourceChangedError
+from ..store import arithmetic, layout
+from .commit import ArchiveWriter
+from .link import Mixing
+from .profile import Fingerprint, Transform
+from .select import AnchorRows
+
+__all__ = ["ColumnLedger", "ExactCells", "verify_pass"]
+
+Stream = Iterator[tuple[int, pa.RecordBatch, np.ndarray, "np.ndarray | None"]]
+
+
+@dataclass
+class ColumnLedger:
+    """Residual statistics per numeric column over approximated cells (arrays (n,))."""
+
+    err_max: np.ndarray
+    err_l2: np.ndarray
+    err_sum: np.ndarray
+    cells: np.ndarray
+
+    @classmethod
+    def empty(cls, width: int) -> "ColumnLedger":
+        return cls(np.zeros(width), np.zeros(width), np.zeros(width), np.zeros(width, np.int64))
+
+    def add(self, residual: np.ndarray, approximated: np.ndarray) -> None:
+        e = np.where(approximated, residual, 0.0)
+        a = np.abs(e)
+        block_max = a.max(axis=0) if a.size else np.zeros(a.shape[1])
+        scale = np.where(block_max > 0, block_max, 1.0)
+        block_l2 = scale * np.sqrt(((a / scale) ** 2).sum(axis=0))
+        self.err_max = np.maximum(self.err_max, block_max)
+        self.err_l2 = np.hypot(self.err_l2, block_l2)
+        self.err_sum += e.sum(axis=0)
+        self.cells += approximated.sum(axis=0)
+
+
+@dataclass
+class ExactCells:
+    """Cells stored exactly outside basis columns and anchor rows."""
+
+    rows: list[np.ndarray] = field(default_factory=list)
+    columns: list[np.ndarray] = field(default_factory=list)
+    values: list[np.ndarray] = field(default_factory=list)
+    nulls: list[np.ndarray] = field(default_factory=list)
+    reasons: list[np.ndarray] = field(default_factory=list)
+
+    def add(self, first: int, cells: np.ndarray, block: np.ndarray, mask: np.ndarray | None,
+            reason: np.ndarray) -> None:
+        r, c = np.nonzero(cells)
+        if r.size == 0:
+            return
+        self.rows.append(first + r.astype(np.int64))
+        self.columns.append(c.astype(np.int32))
+        self.values.append(block[r, c])
+        self.nulls.append(mask[r, c] if mask is not None else np.zeros(r.size, bool))
+        self.reasons.append(reason[r, c])
+
+    def table(self) -> pa.Table:
+        cat = (lambda parts, dtype: np.concatenate(parts) if parts else np.zeros(0, dtype))
+        nulls = cat(self.nulls, bool)
+        return pa.table({
+            layout.ROW_ID: pa.array(cat(self.rows, np.int64), pa.int64()),
+            layout.COLUMN_ID: pa.array(cat(self.columns, np.int32), pa.int32()),
+            "value": pa.array(cat(self.values, np.float64), pa.float64(), mask=nulls),
+            "reason": pa.array(cat(self.reasons, object), pa.string()).dictionary_encode(),
+        })
+
+    @property
+    def count(self) -> int:
+        return int(sum(r.size for r in self.rows))
+
+
+def _reasons(block: np.ndarray, mask: np.ndarray | None) -> np.ndarray:
+    reason = np.full(block.shape, "overflow", dtype=object)
+    reason[np.isinf(block)] = "inf"
+    reason[np.isnan(block)] = "nan"
+    if mask is not None:
+        reason[mask] = "null"
+    return reason
+
+
+def _same_row(a: np.ndarray, b: np.ndarray) -> bool:
+    return bool(np.all((a == b) | (np.isnan(a) & np.isnan(b))))
+
+
+@dataclass
+class VerifyResult:
+    ledger: ColumnLedger
+    cells: ExactCells
+    fingerprint: Fingerprint
+    rows: int
+
+
+def verify_pass(
+    stream: Stream,
+    names: list[str],
+    passthrough: list[str],
+    mixing: Mixing,
+    anchors: AnchorRows,
+    transform: Transform,
+    score_right: np.ndarray | None,
+    writer: ArchiveWriter,
+) -> VerifyResult:
+    """Run the verify pass and write the row files (see the module docstring)."""
+    width = len(names)
+    ledger = ColumnLedger.empty(width)
+    cells = ExactCells()
+    fingerprint = Fingerprint()
+    basis = mixing.basis_columns
+    is_basis = np.zeros(width, dtype=bool)
+    if basis is not None:
+        is_basis[basis] = True
+    anchor_lookup = {int(p): i for i, p in enumerate(anchors.positions)}
+    rows = 0
+    for first, batch, block, mask in stream:
+        b = block.shape[0]
+        if basis is not None:
+            filled = arithmetic.fill_missing(block[:, basis], mixing.fill)
+        else:
+            filled = transform.apply(block) @ score_right
+        xhat = arithmetic.approximate(filled, mixing.weights, mixing.offset)
+        slack = arithmetic.slack(filled, mixing.weights, mixing.offset)
+        with np.errstate(invalid="ignore", over="ignore"):
+            residual = block - xhat
+        source_exceptional = ~np.isfinite(block)
+        unstable = ~np.isfinite(residual) | ~np.isfinite(slack)
+        kept_exact = np.zeros((b, width), dtype=bool)
+        kept_exact[:, is_basis] = True
+        local_anchors = [p - first for p in anchor_lookup if first <= p < first + b]
+        for local in local_anchors:
+            row = anchor_lookup[first + local]
+            same_nulls = mask[local] if mask is not None else np.zeros(width, bool)
+            if not (_same_row(block[local], anchors.values[row])
+                    and np.array_equal(same_nulls, anchors.nulls[row])):
+                raise SourceChangedError(
+                    f"Row {first + local} of the source differs between two passes of one "
+                    "compress run. The source must give the same rows in the same order each "
+                    "time it is read: add an ORDER BY to the query, or compress a snapshot."
+                )
+            kept_exact[local] = True
+        stored_cells = (source_exceptional | unstable) & ~kept_exact
+        cells.add(first, stored_cells, block, mask, _reasons(block, mask))
+        approximated = ~(kept_exact | stored_cells)
+        ledger.add(residual, approximated)
+        abs_e = np.where(approximated, np.abs(residual), 0.0)
+        row_max = abs_e.max(axis=1) if width else np.zeros(b)
+        scale = np.where(row_max > 0, row_max, 1.0)
+        row_l2 = scale * np.sqrt(((abs_e / scale[:, None]) ** 2).sum(axis=1))
+        fingerprint.update(first, block)
+        columns = {layout.ROW_ID: pa.array(np.arange(first, first + b, dtype=np.int64))}
+        for name in passthrough:
+            columns[name] = batch.column(name)
+        if basis is not None:
+            for k in basis:
+                columns[names[k]] = batch.column(names[k])
+        else:
+            for k in range(filled.shape[1]):
+                columns[layout.SCORE_PATTERN.format(k)] = pa.array(filled[:, k])
+        columns[layout.ROW_ERR_MAX] = pa.array(arithmetic.round_up(row_max))
+        columns[layout.ROW_ERR_L2] = pa.array(arithmetic.round_up(row_l2))
+        writer.write_rows(pa.table(columns), first)
+        rows += b
+    return VerifyResult(ledger, cells, fingerprint, rows)
