@@ -19,11 +19,12 @@ from ..version import __version__
 from ..errors import (EmptySourceError, InvalidInputError, NoNumericColumnsError,
                       RankTooLargeError, SourceChangedError)
 from ..factor import cur as _cur
+from ..factor.svd import gavish_donoho_rank
 from ..store import layout
 from ..store.arithmetic import round_up
 from . import link as _link
 from .commit import ArchiveWriter, prepare_target
-from .options import DEFAULT_RANK_ERROR, CompressOptions
+from .options import DEFAULT_RANK_CAP_DIVISOR, CompressOptions
 from .profile import ColumnProfile, Fingerprint, Transform, profile_block
 from .select import AnchorRows, anchor_pass, sketch_pass
 from .sources import Source, block_from_batch, open_source
@@ -102,11 +103,11 @@ def _sizes(opts: CompressOptions, rows: int, width: int, spectrum) -> tuple[int,
             )
         rank, why = opts.rank, "given"
     else:
-        cap = max(1, width // 4)
-        rank = next((k for k in range(1, cap + 1)
-                     if spectrum.optimal_relative_error(k) <= DEFAULT_RANK_ERROR), cap)
-        rank, why = min(rank, limit), (
-            f"smallest rank with optimal relative error <= {DEFAULT_RANK_ERROR} (capped at n/4)")
+        rank = gavish_donoho_rank(spectrum.values, rows, width)
+        cap = max(1, width // DEFAULT_RANK_CAP_DIVISOR)
+        why = (f"Gavish-Donoho hard threshold on the singular values ({rank}), capped at "
+               f"n/{DEFAULT_RANK_CAP_DIVISOR}")
+        rank = max(1, min(rank, cap, limit))
     if opts.method == "svd":
         return rank, rank, 0, why
     c = opts.n_columns if opts.n_columns is not None else min(2 * rank, width)
@@ -139,10 +140,12 @@ def _compress(src: Source, target: Path, opts: CompressOptions) -> Path:
         raise EmptySourceError(f"The source {src.description} has no rows; there is nothing to compress.")
     too_big = [n for j, n in enumerate(numeric)
                if pa.types.is_integer(src.schema.field(n).type)
+               and profile.valid[j] > 0  # an all-NULL column has range (inf, -inf)
                and max(abs(profile.minimum[j]), abs(profile.maximum[j])) > _EXACT_INTEGER_LIMIT]
     if too_big:  # keep exactly, outside the factorization
         keep = [j for j, n in enumerate(numeric) if n not in too_big]
         profile = ColumnProfile(*(getattr(profile, f)[keep] for f in profile.__dataclass_fields__))
+        fingerprint = fingerprint.select(keep)
         numeric = [numeric[j] for j in keep]
         passthrough = [n for n in src.schema.names if n not in numeric]
         if not numeric:
@@ -176,7 +179,8 @@ def _compress(src: Source, target: Path, opts: CompressOptions) -> Path:
     writer = ArchiveWriter(target, opts.overwrite)
     try:
         result = verify_pass(_stream(src, numeric, opts.batch_rows, passthrough), numeric,
-                             passthrough, mixing, anchors, transform, score_right, writer)
+                             passthrough, mixing, anchors, transform, score_right, writer,
+                             ledger_scale(profile))
         if not result.fingerprint.matches(fingerprint):
             raise SourceChangedError(
                 f"The source {src.description} gave different rows in the profile and verify "
@@ -194,6 +198,12 @@ def _compress(src: Source, target: Path, opts: CompressOptions) -> Path:
         raise
 
 
+def ledger_scale(profile: ColumnProfile) -> np.ndarray:
+    """Units of the row ledger per column: the standard deviation, or 1 when it is 0 or not finite."""
+    std = profile.std
+    return np.where((std > 0) & np.isfinite(std), std, 1.0)
+
+
 def _column_table(schema, numeric, profile, transform, mixing, result) -> pa.Table:
     width = len(numeric)
     is_basis = np.zeros(width, bool)
@@ -209,6 +219,7 @@ def _column_table(schema, numeric, profile, transform, mixing, result) -> pa.Tab
         "type": pa.array([str(schema.field(n).type) for n in numeric], pa.string()),
         "role": pa.array(np.where(is_basis, "basis", "derived").tolist(), pa.string()),
         "shift": transform.shift, "scale": transform.scale,
+        "ledger_scale": ledger_scale(profile),
         "offset": mixing.offset,
         "weights": pa.array(list(np.ascontiguousarray(mixing.weights.T)), pa.list_(pa.float64())),
         "valid": profile.valid, "nulls": profile.nulls, "nans": profile.nans,

@@ -14,9 +14,10 @@ __all__ = ["CompressOptions", "METHODS", "TRANSFORMS"]
 METHODS = ("cur", "svd")
 TRANSFORMS = ("standardize", "center", "none")
 
-# Default rank when none is given: the smallest k whose Eckart-Young relative Frobenius
-# error (of the transformed table) is at most this, capped at a quarter of the columns.
-DEFAULT_RANK_ERROR = 0.01
+# Default rank when none is given: the Gavish-Donoho hard threshold (noise level estimated
+# from the median singular value), capped at n / 10 so that the c = 2k basis columns kept
+# exactly stay a small part of the table. Error and size targets choose better when given.
+DEFAULT_RANK_CAP_DIVISOR = 10
 
 
 @dataclass

@@ -3,7 +3,9 @@ measure the residual, fill the error ledger, route cells that cannot be approxim
 exact-cell table, and write the row files.
 
 Guarantee established here: for every approximated cell (i, j),
-|x_ij - xhat_ij| <= min(err_max_row_i, err_max_col_j) + slack_ij, where xhat is computed by
+|x_ij - xhat_ij| <= min(scale_j * err_max_row_i, err_max_col_j) + slack_ij, where scale_j is
+the column's ledger scale (its standard deviation, 1 when that is 0), the row figures are in
+those units, and xhat is computed by
 ``store.arithmetic`` in any evaluation order (see its docstring for the slack). Cells of basis
 columns, anchor rows and NULL, NaN, +-inf or overflowing cells are stored exactly (error 0).
 """
@@ -63,16 +65,21 @@ class ExactCells:
     nulls: list[np.ndarray] = field(default_factory=list)
     reasons: list[np.ndarray] = field(default_factory=list)
 
-    def add(self, first: int, cells: np.ndarray, block: np.ndarray, mask: np.ndarray | None,
-            reason: np.ndarray) -> None:
+    def add(self, first: int, cells: np.ndarray, block: np.ndarray, mask: np.ndarray | None) -> None:
         r, c = np.nonzero(cells)
         if r.size == 0:
             return
+        values = block[r, c]
+        nulls = mask[r, c] if mask is not None else np.zeros(r.size, bool)
+        reason = np.full(r.size, "overflow", dtype=object)
+        reason[np.isinf(values)] = "inf"
+        reason[np.isnan(values)] = "nan"
+        reason[nulls] = "null"
         self.rows.append(first + r.astype(np.int64))
         self.columns.append(c.astype(np.int32))
-        self.values.append(block[r, c])
-        self.nulls.append(mask[r, c] if mask is not None else np.zeros(r.size, bool))
-        self.reasons.append(reason[r, c])
+        self.values.append(values)
+        self.nulls.append(nulls)
+        self.reasons.append(reason)
 
     def table(self) -> pa.Table:
         cat = (lambda parts, dtype: np.concatenate(parts) if parts else np.zeros(0, dtype))
@@ -87,15 +94,6 @@ class ExactCells:
     @property
     def count(self) -> int:
         return int(sum(r.size for r in self.rows))
-
-
-def _reasons(block: np.ndarray, mask: np.ndarray | None) -> np.ndarray:
-    reason = np.full(block.shape, "overflow", dtype=object)
-    reason[np.isinf(block)] = "inf"
-    reason[np.isnan(block)] = "nan"
-    if mask is not None:
-        reason[mask] = "null"
-    return reason
 
 
 def _same_row(a: np.ndarray, b: np.ndarray) -> bool:
@@ -119,6 +117,7 @@ def verify_pass(
     transform: Transform,
     score_right: np.ndarray | None,
     writer: ArchiveWriter,
+    ledger_scale: np.ndarray,
 ) -> VerifyResult:
     """Run the verify pass and write the row files (see the module docstring)."""
     width = len(names)
@@ -158,10 +157,12 @@ def verify_pass(
                 )
             kept_exact[local] = True
         stored_cells = (source_exceptional | unstable) & ~kept_exact
-        cells.add(first, stored_cells, block, mask, _reasons(block, mask))
+        cells.add(first, stored_cells, block, mask)
         approximated = ~(kept_exact | stored_cells)
         ledger.add(residual, approximated)
-        abs_e = np.where(approximated, np.abs(residual), 0.0)
+        # row figures are in units of each column's ledger scale (its standard deviation),
+        # so one row figure bounds every column of the row, whatever the columns' units
+        abs_e = np.where(approximated, np.abs(residual), 0.0) / ledger_scale[None, :]
         row_max = abs_e.max(axis=1) if width else np.zeros(b)
         scale = np.where(row_max > 0, row_max, 1.0)
         row_l2 = scale * np.sqrt(((abs_e / scale[:, None]) ** 2).sum(axis=1))

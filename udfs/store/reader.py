@@ -65,6 +65,7 @@ class ArchiveReader:
         self.weights = np.array(cols.column("weights").to_pylist(), dtype=np.float64).T.reshape(
             len(m["basis"]), len(self.numeric_columns))
         self.err_max_col = cols.column("err_max").to_numpy()
+        self.ledger_scale = cols.column("ledger_scale").to_numpy()
         self.basis_names = [b["name"] for b in m["basis"]]
         self.fill = np.array([b["fill"] for b in m["basis"]], dtype=np.float64)
         self.is_basis = np.isin(self.numeric_columns, self.basis_names)
@@ -200,7 +201,8 @@ class ArchiveReader:
         values = arithmetic.approximate(filled, weights, offset)
         slack = arithmetic.slack(filled, weights, offset)
         row_max = table.column(layout.ROW_ERR_MAX).to_numpy()
-        bounds = np.minimum(row_max[:, None], self.err_max_col[col_idx][None, :]) + slack
+        by_row = arithmetic.round_up(row_max[:, None] * self.ledger_scale[col_idx][None, :])
+        bounds = np.minimum(by_row, self.err_max_col[col_idx][None, :]) + slack
         b, q = values.shape
         exact = np.zeros((b, q), bool)
         nulls = np.zeros((b, q), bool)
