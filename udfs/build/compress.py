@@ -32,7 +32,8 @@ from .verify import VerifyResult, verify_pass
 
 __all__ = ["compress"]
 
-# Integers above 2^53 do not survive float64; such columns are kept exactly instead.
+# Integers above 2^53 do not survive float64; such columns are kept exactly instead. The
+# profile sees them as float64, where 2^53 + 1 reads as 2^53: so 2^53 itself counts too.
 _EXACT_INTEGER_LIMIT = 2.0**53
 
 
@@ -141,7 +142,7 @@ def _compress(src: Source, target: Path, opts: CompressOptions) -> Path:
     too_big = [n for j, n in enumerate(numeric)
                if pa.types.is_integer(src.schema.field(n).type)
                and profile.valid[j] > 0  # an all-NULL column has range (inf, -inf)
-               and max(abs(profile.minimum[j]), abs(profile.maximum[j])) > _EXACT_INTEGER_LIMIT]
+               and max(abs(profile.minimum[j]), abs(profile.maximum[j])) >= _EXACT_INTEGER_LIMIT]
     if too_big:  # keep exactly, outside the factorization
         keep = [j for j, n in enumerate(numeric) if n not in too_big]
         profile = ColumnProfile(*(getattr(profile, f)[keep] for f in profile.__dataclass_fields__))

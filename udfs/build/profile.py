@@ -23,24 +23,45 @@ def _row_weights(first: int, count: int) -> np.ndarray:
 
 
 class Fingerprint:
-    """sum_i g(i) * (sum of row i's finite values): changes when rows change or move."""
+    """Per column j: sum_i g(i) * x_ij over the finite values; changes when rows change or move.
+
+    Kept per column (arrays of shape (n,), empty until the first block) so that columns
+    dropped from the factorization after profiling (integers beyond 2^53, kept exactly) can
+    be dropped from the fingerprint too, with :meth:`select`.
+    """
 
     def __init__(self) -> None:
-        self.value = 0.0
-        self.scale = 0.0
+        self.value: np.ndarray | None = None
+        self.scale: np.ndarray | None = None
         self.rows = 0
 
     def update(self, first: int, block: np.ndarray) -> None:
         finite = np.where(np.isfinite(block), block, 0.0)
-        sums = finite.sum(axis=1)
         g = _row_weights(first, block.shape[0])
-        self.value += float(g @ sums)
-        self.scale += float(np.abs(g) @ np.abs(finite).sum(axis=1))
+        value, scale = g @ finite, np.abs(g) @ np.abs(finite)
+        if self.value is None:
+            self.value, self.scale = value, scale
+        else:
+            self.value, self.scale = self.value + value, self.scale + scale
         self.rows += block.shape[0]
 
+    def select(self, columns: list[int]) -> "Fingerprint":
+        """The fingerprint of the given columns only (positions into the profiled columns)."""
+        out = Fingerprint()
+        out.rows = self.rows
+        if self.value is not None:
+            out.value, out.scale = self.value[columns], self.scale[columns]
+        return out
+
     def matches(self, other: "Fingerprint") -> bool:
-        tolerance = 1e-9 * max(self.scale, other.scale) + 1e-300
-        return self.rows == other.rows and abs(self.value - other.value) <= tolerance
+        if self.rows != other.rows:
+            return False
+        if self.value is None or other.value is None:
+            return self.value is None and other.value is None
+        if self.value.shape != other.value.shape:
+            return False
+        tolerance = 1e-9 * np.maximum(self.scale, other.scale) + 1e-300
+        return bool(np.all(np.abs(self.value - other.value) <= tolerance))
 
 
 @dataclass
