@@ -1,4 +1,4 @@
-"""Passes 2 and 3, select: sketch the transformed table (streaming tall-skinny QR), choose
+"""Passes 2 and 3, select: sketch the transformed table (its Gram matrix), choose
 basis columns from the sketch, then stream once more to choose anchor rows.
 
 Row choices:
@@ -20,7 +20,7 @@ import numpy as np
 from ..factor import cur as _cur
 from ..factor import selection
 from ..factor.sampling import ReservoirWithoutReplacement, ReservoirWithReplacement
-from ..factor.sketch import Spectrum, StreamingQR
+from ..factor.sketch import GramSketch, Spectrum
 from .profile import Transform
 
 __all__ = ["Sketch", "sketch_pass", "AnchorRows", "anchor_pass"]
@@ -31,17 +31,19 @@ BlockStream = Callable[[], Iterator[tuple[int, np.ndarray, "np.ndarray | None"]]
 
 @dataclass
 class Sketch:
-    """R factor (n, n) of the transformed table and its spectrum."""
+    """An n x n factor F with F^T F = Z^T Z of the transformed table Z, and its spectrum."""
 
     r: np.ndarray
     spectrum: Spectrum
 
 
 def sketch_pass(blocks: BlockStream, transform: Transform, width: int) -> Sketch:
-    qr = StreamingQR(width)
+    """Gram sketch of the transformed table (see ``factor.sketch.GramSketch`` for the trade-off)."""
+    gram = GramSketch(width)
     for _, block, _ in blocks():
-        qr.update(transform.apply(block))
-    return Sketch(qr.factor(), qr.spectrum())
+        gram.update(transform.apply(block))
+    values, right = gram.eigen()
+    return Sketch(values[:, None] * right.T, Spectrum(values, right))
 
 
 @dataclass
@@ -70,8 +72,9 @@ class _RowKeeper:
 
     def anchors(self, positions: np.ndarray, width: int) -> AnchorRows:
         positions = np.unique(np.asarray(positions, dtype=np.int64))
-        values = np.array([self.rows[int(p)][0] for p in positions]).reshape(-1, width)
-        nulls = np.array([self.rows[int(p)][1] for p in positions]).reshape(-1, width)
+        # explicit dtypes: with no rows chosen (all weights zero) the arrays are still typed
+        values = np.array([self.rows[int(p)][0] for p in positions], dtype=np.float64).reshape(-1, width)
+        nulls = np.array([self.rows[int(p)][1] for p in positions], dtype=bool).reshape(-1, width)
         return AnchorRows(positions, values, nulls)
 
 
