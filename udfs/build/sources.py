@@ -50,14 +50,19 @@ class Source:
     owns_connection: bool = False
 
     def batches(self, columns: list[str], batch_rows: int) -> Iterator[pa.RecordBatch]:
-        """Stream ``columns`` (all when empty) in source order, ``batch_rows`` rows at a time."""
+        """Stream ``columns`` (all when empty) in source order, ``batch_rows`` rows at a time.
+
+        Batches carry the source's own Arrow types: DuckDB maps some types onto its own
+        (large_string comes back as string, for one), so they are cast back to ``schema``.
+        """
         select = ", ".join(quote_identifier(c) for c in columns) if columns else "*"
+        wanted = pa.schema([self.schema.field(c) for c in columns]) if columns else self.schema
         cursor = self.connection.cursor()
         try:
             reader = cursor.sql(f"SELECT {select} FROM {self.relation}").to_arrow_reader(batch_rows)
             for batch in reader:
                 if batch.num_rows:
-                    yield batch
+                    yield batch if batch.schema.equals(wanted) else batch.cast(wanted)
         finally:
             cursor.close()
 
