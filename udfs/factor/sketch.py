@@ -1,4 +1,6 @@
-"""Streaming tall-skinny QR: the R factor of a tall matrix, one block of rows at a time.
+"""Streaming sketches of a tall matrix Z, one block of rows at a time: the R factor of a
+tall-skinny QR (``StreamingQR``, accurate to the last digits) and the Gram matrix
+(``GramSketch``, about 15x faster per block here: a matrix product instead of a QR).
 
 The R factor (n x n) determines the Gram matrix Z^T Z = R^T R, so it yields the singular
 values and right singular vectors of Z, column norms, pivoted-QR column selection and the
@@ -15,7 +17,7 @@ from __future__ import annotations
 import numpy as np
 import scipy.linalg
 
-__all__ = ["StreamingQR", "Spectrum"]
+__all__ = ["StreamingQR", "GramSketch", "Spectrum"]
 
 
 class Spectrum:
@@ -68,3 +70,47 @@ class StreamingQR:
     def spectrum(self) -> Spectrum:
         _, values, vt = np.linalg.svd(self.factor(), full_matrices=False)
         return Spectrum(values, vt.T)
+
+
+class GramSketch:
+    """Accumulates the Gram matrix G = Z^T Z (n x n) over row blocks Z_b (shape (b, n)).
+
+    ``factor()`` returns F = diag(s) V^T with G = V diag(s^2) V^T, so F^T F = Z^T Z: F stands
+    in for the R factor wherever only the Gram matrix matters (pivoted-QR column choice,
+    C^+ Z = F[:, J]^+ F, column norms, singular values and right singular vectors).
+
+    Trade-off: forming G squares the condition number, so singular values below about
+    sqrt(n * eps) * s_1 (~1e-7 s_1) are not resolved. Those directions lie far below the
+    noise of the tables rankfold is for; the verify pass measures the real error anyway.
+    Measured here on 131,072 x 120 blocks: 0.1 s per block against 1.3-1.8 s for the QR.
+    ``merge`` adds two sketches of disjoint row sets (associative).
+    """
+
+    def __init__(self, width: int):
+        self.width = width
+        self.gram = np.zeros((width, width))
+
+    def update(self, block: np.ndarray) -> None:
+        if block.shape[0]:
+            self.gram += block.T @ block
+
+    def merge(self, other: "GramSketch") -> "GramSketch":
+        merged = GramSketch(self.width)
+        merged.gram = self.gram + other.gram
+        return merged
+
+    def eigen(self) -> tuple[np.ndarray, np.ndarray]:
+        """(s, V): singular values of Z (descending) and right singular vectors (n, n)."""
+        symmetric = (self.gram + self.gram.T) / 2.0
+        eigenvalues, vectors = np.linalg.eigh(symmetric)
+        order = np.argsort(eigenvalues)[::-1]
+        values = np.sqrt(np.clip(eigenvalues[order], 0.0, None))
+        return values, vectors[:, order]
+
+    def factor(self) -> np.ndarray:
+        values, vectors = self.eigen()
+        return values[:, None] * vectors.T
+
+    def spectrum(self) -> Spectrum:
+        values, vectors = self.eigen()
+        return Spectrum(values, vectors)
