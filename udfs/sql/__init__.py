@@ -1,0 +1,28 @@
+"""rankfold's SQL surface for DuckDB.
+
+``rankfold.udfs.register(con)`` adds these functions (prefix ``rankfold``)::
+
+    rankfold_compress(source, path, rank := NULL, seed := 0, overwrite := false, options := NULL)
+        -> STRUCT(path, archive_id, rows, columns, method, rank, basis_columns, anchor_rows,
+                  relative_frobenius, max_abs_error, numeric_columns)
+    rankfold_info(path)                      -> the same STRUCT, for an existing archive
+    rankfold_cell(path, row, col)            -> DOUBLE  rebuilt value, NULL where the source was NULL
+    rankfold_cell_bound(path, row, col)      -> DOUBLE  guaranteed bound on |true - rebuilt|
+    rankfold_cell_with_bound(path, row, col) -> STRUCT(value DOUBLE, bound DOUBLE)
+    rankfold_row(path, row, cols := NULL)    -> STRUCT("column" VARCHAR, value DOUBLE, bound DOUBLE)[]
+
+``source`` is a table name, a SELECT statement on the same database (read through a separate
+cursor, so it sees committed data only) or a Parquet/CSV path. ``options`` is JSON text or a
+STRUCT literal with any other option of ``rankfold.compress`` (``{'n_columns': 12}``). ``row``
+is a 0-based position in source order; ``col`` a numeric column name.
+
+Why a list of structs for a row: each value keeps its bound next to it, the column order is the
+archive's, NaN survives (arrow UDF), ``unnest(rankfold_row(p, r), recursive := true)`` gives a
+(column, value, bound) table, and ``map_from_entries`` turns it into a MAP when a lookup by
+name is wanted. A STRUCT with one field per column would need a return type per archive, which
+a Python UDF cannot have; a MAP(VARCHAR, DOUBLE) would drop the bounds.
+"""
+
+from .functions import FUNCTIONS, register
+
+__all__ = ["register", "FUNCTIONS"]

@@ -1,0 +1,195 @@
+"""Open archives once per process for the SQL functions, and keep BLAS to one thread inside them.
+
+DuckDB calls a vectorized (arrow) UDF once per vector of at most 2048 rows, so a query over
+100,000 rows makes about 49 calls. Opening an :class:`ArchiveReader` costs a few milliseconds
+(manifest, column table, anchors, exact cells), and the stock reader decodes a whole row group
+(131,072 rows) to serve any row of it: 28 ms per 2048-row call on a 300,000 x 30 archive with
+10 basis columns. So readers are cached per archive path, and the cached reader keeps the last
+few decoded row groups (a byte budget, least recently used first out).
+
+A cached reader is dropped when ``manifest.json`` changes: its inode, size or mtime, or the
+``archive_id`` written in it (an archive replaced with ``overwrite=True`` gets a new id).
+"""
+
+from __future__ import annotations
+
+import contextlib
+import json
+import os
+import re
+import threading
+import warnings
+from collections import OrderedDict
+from pathlib import Path
+from typing import Iterator
+
+import numpy as np
+import pyarrow as pa
+
+from ..errors import ArchiveNotFoundError
+from ..store import layout
+from ..store.reader import ArchiveReader
+
+__all__ = ["ReaderCache", "one_blas_thread"]
+
+# Decoded row groups kept per reader. One group of a 131,072-row file with 60 basis columns
+# is about 66 MB, so this keeps two or three such groups and many more of narrow archives.
+ROW_GROUP_CACHE_BYTES = 192 * 1024 * 1024
+
+_ARCHIVE_ID = re.compile(rb'"archive_id"\s*:\s*"([^"]*)"')
+
+
+class _ScanReader(ArchiveReader):
+    """An :class:`ArchiveReader` whose ``read_rows`` serves rows from cached row groups.
+
+    Same contract as the parent: row-file columns for ``positions``, in the order given.
+    """
+
+    def __init__(self, path: str | Path, budget: int = ROW_GROUP_CACHE_BYTES):
+        super().__init__(path)
+        self._groups: OrderedDict[tuple[int, int], pa.Table] = OrderedDict()
+        self._bytes = 0
+        self._budget = budget
+        self._lock = threading.Lock()
+
+    def _group(self, part: int, group: int) -> pa.Table:
+        key = (part, group)
+        with self._lock:
+            table = self._groups.get(key)
+            if table is not None:
+                self._groups.move_to_end(key)
+                return table
+        import pyarrow.parquet as pq
+
+        table = pq.ParquetFile(self.path / self.parts[part][2]).read_row_group(group)
+        with self._lock:
+            if key not in self._groups:
+                self._groups[key] = table
+                self._bytes += table.nbytes
+                while self._bytes > self._budget and len(self._groups) > 1:
+                    _, old = self._groups.popitem(last=False)
+                    self._bytes -= old.nbytes
+        return table
+
+    def read_rows(self, positions: np.ndarray, columns: list[str] | None = None) -> pa.Table:
+        positions = np.asarray(positions, dtype=np.int64)
+        if positions.size == 0:
+            return super().read_rows(positions, columns)
+        order = np.argsort(positions, kind="stable")
+        sorted_pos = positions[order]
+        pieces = []
+        for part, (first, count, _name, starts) in enumerate(self.parts):
+            lo, hi = np.searchsorted(sorted_pos, [first, first + count])
+            if lo == hi:
+                continue
+            local = sorted_pos[lo:hi] - first
+            group_of = np.searchsorted(starts, local, side="right") - 1
+            # sorted positions give sorted groups: split at the group boundaries
+            cuts = np.flatnonzero(np.diff(group_of)) + 1
+            for chunk, groups in zip(np.split(local, cuts), np.split(group_of, cuts)):
+                group = int(groups[0])
+                table = self._group(part, group)
+                if columns is not None:
+                    table = table.select(columns)
+                pieces.append(table.take(pa.array(chunk - starts[group])))
+        table = pa.concat_tables(pieces) if len(pieces) > 1 else pieces[0]
+        inverse = np.empty_like(order)
+        inverse[order] = np.arange(order.size)
+        return table.take(pa.array(inverse))
+
+
+def _signature(path: Path) -> tuple:
+    """(inode, size, mtime, archive_id) of the manifest; raises ArchiveNotFoundError."""
+    manifest = path / layout.MANIFEST
+    try:
+        stat = manifest.stat()
+    except (FileNotFoundError, NotADirectoryError):
+        return ("missing",)
+    except OSError as exc:
+        raise ArchiveNotFoundError(f"Cannot read the archive at {path} ({exc}). Check the path.") from None
+    # the id is near the top of the manifest (the writer puts it fourth), so 4 KB find it
+    with open(manifest, "rb") as handle:
+        head = handle.read(4096)
+    found = _ARCHIVE_ID.search(head)
+    if found is None:
+        try:
+            archive_id = str(json.loads(manifest.read_bytes()).get("archive_id"))
+        except (ValueError, AttributeError):
+            archive_id = None
+    else:
+        archive_id = found.group(1).decode("utf-8", "replace")
+    return (stat.st_ino, stat.st_size, stat.st_mtime_ns, archive_id)
+
+
+class ReaderCache:
+    """Open readers keyed by absolute archive path, reopened when the manifest changes."""
+
+    def __init__(self) -> None:
+        self._readers: dict[str, tuple[tuple, ArchiveReader]] = {}
+        self._lock = threading.Lock()
+
+    def get(self, path: str) -> ArchiveReader:
+        key = os.path.abspath(os.path.expanduser(path))
+        signature = _signature(Path(key))
+        with self._lock:
+            cached = self._readers.get(key)
+        if cached is not None and cached[0] == signature and signature != ("missing",):
+            return cached[1]
+        reader = _ScanReader(key)  # raises ArchiveNotFoundError / CorruptArchiveError
+        with self._lock:
+            self._readers[key] = (_signature(Path(key)), reader)
+        return reader
+
+    def clear(self) -> None:
+        with self._lock:
+            self._readers.clear()
+
+
+# -- BLAS threads ------------------------------------------------------------------------------
+# DuckDB runs UDFs on its own worker threads; OpenBLAS threads on top of them compete for the
+# same cores (3-4x slower in duckdb-notes.md section 5). threadpoolctl is optional here: when it
+# is importable the SQL functions cap BLAS at one thread while any of them runs, else nothing.
+_blas_lock = threading.Lock()
+_blas_depth = 0
+_blas_limiter = None
+_blas_controller: object | None = None
+_blas_checked = False
+
+
+def _controller():
+    global _blas_controller, _blas_checked
+    if not _blas_checked:
+        _blas_checked = True
+        try:
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore")
+                from threadpoolctl import ThreadpoolController
+
+                _blas_controller = ThreadpoolController()
+        except Exception:  # not installed, or no BLAS found: run uncapped
+            _blas_controller = None
+    return _blas_controller
+
+
+@contextlib.contextmanager
+def one_blas_thread() -> Iterator[None]:
+    """Cap BLAS at one thread while the block runs (re-entrant across DuckDB's threads:
+    the first caller in sets the cap, the last one out restores the previous setting)."""
+    global _blas_depth, _blas_limiter
+    with _blas_lock:
+        controller = _controller()
+        if controller is not None:
+            if _blas_depth == 0:
+                with warnings.catch_warnings():
+                    warnings.simplefilter("ignore")
+                    _blas_limiter = controller.limit(limits=1, user_api="blas")
+            _blas_depth += 1
+    try:
+        yield
+    finally:
+        with _blas_lock:
+            if controller is not None:
+                _blas_depth -= 1
+                if _blas_depth == 0 and _blas_limiter is not None:
+                    _blas_limiter.restore_original_limits()
+                    _blas_limiter = None
