@@ -3,8 +3,11 @@
 from __future__ import annotations
 
 import difflib
+import numbers
 from dataclasses import dataclass, field, fields
 from typing import Any
+
+import numpy as np
 
 from ..errors import InvalidInputError, UnknownOptionError
 from ..factor.cur import COLUMN_METHODS, LINKS, ROW_METHODS
@@ -45,7 +48,7 @@ class CompressOptions:
         known = {f.name for f in fields(cls)} - {"rank", "seed"}
         for name in options:
             if name not in known:
-                close = difflib.get_close_matches(name, sorted(known), n=1)
+                close = difflib.get_close_matches(name, sorted(known | {"rank", "seed"}), n=1)
                 hint = f" Did you mean {close[0]!r}?" if close else ""
                 raise UnknownOptionError(
                     f"compress has no option {name!r}.{hint} Known options: rank, seed, "
@@ -56,14 +59,15 @@ class CompressOptions:
         return opts
 
     def _validate(self) -> None:
-        _positive_int("rank", self.rank, allow_none=True)
-        _positive_int("n_columns", self.n_columns, allow_none=True)
-        _positive_int("n_rows", self.n_rows, allow_none=True)
-        _positive_int("batch_rows", self.batch_rows, allow_none=False)
-        if not isinstance(self.seed, int) or isinstance(self.seed, bool) or self.seed < 0:
+        self.rank = _positive_int("rank", self.rank, allow_none=True)
+        self.n_columns = _positive_int("n_columns", self.n_columns, allow_none=True)
+        self.n_rows = _positive_int("n_rows", self.n_rows, allow_none=True)
+        self.batch_rows = _positive_int("batch_rows", self.batch_rows, allow_none=False)
+        if not _is_integer(self.seed) or self.seed < 0:
             raise InvalidInputError(
                 f"The 'seed' option of compress must be a non-negative integer. Got {self.seed!r} instead."
             )
+        self.seed = int(self.seed)  # a plain int for the manifest (JSON)
         _choice("method", self.method, METHODS)
         _choice("columns", self.columns, COLUMN_METHODS)
         _choice("rows", self.rows, ROW_METHODS)
@@ -98,14 +102,21 @@ class CompressOptions:
                     "exact_columns": list(self.exact_columns)}
 
 
-def _positive_int(name: str, value: Any, *, allow_none: bool) -> None:
+def _is_integer(value: Any) -> bool:
+    """True for Python and numpy integers (``numbers.Integral``), False for booleans."""
+    return isinstance(value, numbers.Integral) and not isinstance(value, (bool, np.bool_))
+
+
+def _positive_int(name: str, value: Any, *, allow_none: bool) -> int | None:
+    """``value`` as a plain int (or None where allowed), or an error naming the option."""
     if value is None and allow_none:
-        return
-    if not isinstance(value, int) or isinstance(value, bool) or value < 1:
+        return None
+    if not _is_integer(value) or value < 1:
         raise InvalidInputError(
             f"The {name!r} option of compress must be a positive integer"
             f"{' or None' if allow_none else ''}. Got {value!r} instead."
         )
+    return int(value)
 
 
 def _choice(name: str, value: Any, allowed: tuple[str, ...]) -> None:
