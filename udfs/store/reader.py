@@ -6,6 +6,7 @@ plus the exceptional cells) and reads row files by row group, only for the rows 
 
 from __future__ import annotations
 
+from collections.abc import Iterable
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -96,6 +97,12 @@ class ArchiveReader:
             return list(self.numeric_columns)
         if isinstance(columns, str):
             columns = [columns]
+        if not isinstance(columns, Iterable):
+            raise UnknownColumnError(
+                f"Columns are a numeric column name or a list of names; got {columns!r}. The "
+                f"archive {self.path} has the numeric columns {self.numeric_columns[:20]}"
+                f"{' ...' if len(self.numeric_columns) > 20 else ''}."
+            )
         names = list(columns)
         for name in names:
             if name not in self.column_index:
@@ -113,6 +120,11 @@ class ArchiveReader:
         if isinstance(rows, slice):
             return np.arange(m, dtype=np.int64)[rows]
         array = np.atleast_1d(np.asarray(rows))
+        if array.ndim > 1:
+            raise RowOutOfRangeError(
+                f"Rows are one position or a flat sequence of positions; got an array of shape "
+                f"{array.shape}. Flatten it first."
+            )
         if array.size == 0:
             return np.zeros(0, dtype=np.int64)
         if not np.issubdtype(array.dtype, np.integer):
@@ -120,15 +132,15 @@ class ArchiveReader:
                 f"Rows are 0-based integer positions; got {rows!r}. To address rows by key "
                 "value, use rankfold.Keys([...])."
             )
-        out = array.astype(np.int64)
-        out = np.where(out < 0, out + m, out)
-        bad = out[(out < 0) | (out >= m)]
+        # checked before any cast, so that e.g. a uint64 beyond 2^63 is reported as given
+        bad = array[(array < -m) | (array >= m)]
         if bad.size:
             raise RowOutOfRangeError(
-                f"Row position {int(bad[0]) if bad[0] >= 0 else int(bad[0]) - m} is out of range "
-                f"for the archive {self.path} with {m} rows (valid: 0 to {m - 1})."
+                f"Row position {int(bad[0])} is out of range for the archive {self.path} with "
+                f"{m} rows (valid: 0 to {m - 1}, or -{m} to -1 from the end)."
             )
-        return out
+        out = array.astype(np.int64)
+        return np.where(out < 0, out + m, out)
 
     def locate(self, key_values: Any) -> np.ndarray:
         """Positions of the rows whose key column equals each of ``key_values`` (in order)."""
