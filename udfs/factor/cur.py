@@ -144,15 +144,20 @@ def cur(
 ) -> CURResult:
     """In-memory CUR of ``a`` (shape (m, n)) with the same choices as the streaming builder.
 
-    Defaults: c = 2k columns, r = 2c rows (clipped to the table). Used as a reference in
+    Defaults: c = 2k columns, r = 2c rows (clipped to the table; given counts are clipped
+    too unless ``replace`` draws i.i.d. samples, which may repeat). Used as a reference in
     tests and for small tables; archives are built by ``rankfold.udfs.build``.
     """
     a = np.asarray(a, dtype=np.float64)
     m, n = a.shape
     rng = rng if rng is not None else np.random.default_rng(0)
-    c = min(n_columns or 2 * rank, n)
-    r = min(n_rows or 2 * c, m)
     replace = (link == "textbook") if replace is None else replace
+    # i.i.d. draws (replace=True) may outnumber the columns or rows: the published estimators
+    # take s draws whatever n is. Distinct choices are clipped to the table.
+    c = n_columns or min(2 * rank, n)
+    r = n_rows or min(2 * c, m)
+    if not replace:
+        c, r = min(c, n), min(r, m)
     qr = StreamingQR(n)
     qr.update(a)
     sketch_r = qr.factor()
