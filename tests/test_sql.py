@@ -490,3 +490,46 @@ def test_one_log_record_per_request_and_path(archive, tmp_path, caplog):
     assert sum(r["cells_rebuilt"] + r["cells_exact"] for r in scan) == MANY
     assert all(r["request"] == "sql:rankfold_cell_bound" and r["largest_bound"] > 0 for r in scan)
     connection.close()
+
+
+# -- reading rows from many row groups and files -----------------------------------------------
+def test_row_groups_and_parts_match_the_stock_reader(con, tmp_path, monkeypatch):
+    from rankfold.udfs.build import commit
+    from rankfold.udfs.sql.readers import _GroupCache, _ScanReader
+    from rankfold.udfs.store.reader import ArchiveReader
+
+    # 700-row batches give 700-row groups; a new rows file after each 1,500 rows
+    monkeypatch.setattr(commit.ArchiveWriter.__init__, "__defaults__", (1500,))
+    path = tmp_path / "groups.rfa"
+    rankfold.compress(_table(), path, rank=8, key="id", batch_rows=700)
+    stock, cached = ArchiveReader(path), _ScanReader(path, _GroupCache(budget=200_000))
+    assert len(stock.parts) >= 3 and all(len(p[3]) > 2 for p in stock.parts)
+    positions = np.random.default_rng(1).integers(0, ROWS, 3000)  # unsorted, repeated
+    for columns in (None, ["id", "c19"]):
+        a, b = cached.read_rows(positions, columns), stock.read_rows(positions, columns)
+        assert a.column_names == b.column_names and a.num_rows == positions.size
+        for name in a.column_names:  # Table.equals would call NaN != NaN
+            x, y = a.column(name), b.column(name)
+            assert x.is_null().equals(y.is_null())
+            assert np.array_equal(x.fill_null(0).to_numpy(), y.fill_null(0).to_numpy(), equal_nan=True)
+    a, b = cached.rebuild(positions=positions), stock.rebuild(positions=positions)
+    assert np.array_equal(a.values, b.values, equal_nan=True) and np.array_equal(a.bounds, b.bounds)
+    con.register("req", pa.table({"i": positions, "c": [NAMES[k % COLS] for k in range(positions.size)]}))
+    out = fetch(con, f"SELECT i AS row, c AS col, {cell_sql(lit(path), 'cell', 'i', 'c')} FROM req")
+    assert check_cells(out["row"], out["col"], out["value"], out["bound"]) == positions.size
+
+
+def test_negative_rows_count_from_the_end_like_the_client(con, archive):
+    value, bound = con.execute(f"SELECT rankfold_cell('{archive}', -1, 'c02'), "
+                               f"rankfold_cell_bound('{archive}', -1, 'c02')").fetchone()
+    check_cells([ROWS - 1], ["c02"], [value], [bound])
+
+
+def test_compress_a_parquet_file(con, tmp_path):
+    con.execute(f"COPY panel TO '{tmp_path}/panel.parquet' (FORMAT parquet)")
+    info = con.execute(f"SELECT rankfold_compress('{tmp_path}/panel.parquet', '{tmp_path}/pq', rank := 8, "
+                       "options := {'key': 'id'})").fetchone()[0]
+    assert (info["rows"], info["columns"]) == (ROWS, COLS)
+    out = fetch(con, f"SELECT i AS row, 'c25' AS col, {cell_sql(lit(info['path']), 'cell', 'i', lit('c25'))} "
+                     "FROM range(1, 5000, 13) t(i)")
+    check_cells(out["row"], out["col"], out["value"], out["bound"])
