@@ -533,3 +533,19 @@ def test_compress_a_parquet_file(con, tmp_path):
     out = fetch(con, f"SELECT i AS row, 'c25' AS col, {cell_sql(lit(info['path']), 'cell', 'i', lit('c25'))} "
                      "FROM range(1, 5000, 13) t(i)")
     check_cells(out["row"], out["col"], out["value"], out["bound"])
+
+
+def test_cells_rebuilt_column_by_column_past_the_block_limit(con, archive, monkeypatch):
+    from rankfold.udfs.sql import functions
+
+    monkeypatch.setattr(functions, "_BLOCK_CELLS", 64)
+    con.register("req", pa.table({"i": (np.arange(MANY) * 7) % ROWS,
+                                  "c": [NAMES[k % COLS] for k in range(MANY)]}))
+    out = fetch(con, f"SELECT i AS row, c AS col, {cell_sql(lit(archive), 'cell_with_bound', 'i', 'c')} FROM req")
+    assert check_cells(out["row"], out["col"], out["value"], out["bound"]) == MANY
+
+
+def test_options_as_json_value(con, tmp_path):
+    info = con.execute(f"SELECT rankfold_compress('panel', '{tmp_path}/j', rank := 8, "
+                       "options := '{\"key\": \"id\"}'::JSON)").fetchone()[0]
+    assert info["columns"] == COLS

@@ -14,7 +14,18 @@
 ``source`` is a table name, a SELECT statement on the same database (read through a separate
 cursor, so it sees committed data only) or a Parquet/CSV path. ``options`` is JSON text or a
 STRUCT literal with any other option of ``rankfold.compress`` (``{'n_columns': 12}``). ``row``
-is a 0-based position in source order; ``col`` a numeric column name.
+is a 0-based position in source order (negative counts from the end, as in the Python client);
+``col`` a numeric column name. NULL arguments give NULL. Wrong argument types, unknown paths,
+columns or rows raise rankfold's errors; DuckDB reports them as ``InvalidInputException`` with
+the error's class name and message, prefixed by the SQL function's name.
+
+Each call of a cell or row UDF (one DuckDB vector, at most 2048 rows) writes one rebuild-log
+record per archive path it touched (logger ``rankfold.rebuild``; also to a JSON Lines file with
+``rankfold.udfs.sql.register(con, log_path=...)``).
+
+Registration: the UDFs belong to the database (DuckDB lets only the connection that created a
+UDF remove it); the public names are TEMP macros, which belong to one connection. So call
+``register`` on every connection or cursor that runs the functions; calling it again is fine.
 
 Why a list of structs for a row: each value keeps its bound next to it, the column order is the
 archive's, NaN survives (arrow UDF), ``unnest(rankfold_row(p, r), recursive := true)`` gives a

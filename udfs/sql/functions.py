@@ -100,7 +100,7 @@ class _Arg:
                     f"WHEN typeof({n}) = 'VARCHAR[]' THEN TRY_CAST({n} AS VARCHAR[]) END")
         if self.kind == "options":  # JSON text, or a STRUCT literal turned into JSON
             return (f"CASE WHEN typeof({n}) LIKE 'STRUCT(%' THEN CAST(to_json({n}) AS VARCHAR) "
-                    f"WHEN typeof({n}) = 'VARCHAR' THEN TRY_CAST({n} AS VARCHAR) END")
+                    f"WHEN typeof({n}) IN ('VARCHAR', 'JSON') THEN TRY_CAST({n} AS VARCHAR) END")
         raise AssertionError(self.kind)
 
     def udf_type(self) -> str:
@@ -118,11 +118,12 @@ class _Arg:
             return sql_type == "BOOLEAN"
         if self.kind == "text_list":
             return sql_type in ("VARCHAR", "VARCHAR[]")
-        return sql_type == "VARCHAR" or sql_type.startswith("STRUCT(")
+        return sql_type in ("VARCHAR", "JSON") or sql_type.startswith("STRUCT(")
 
     def wanted(self) -> str:
-        return {"text": "a VARCHAR", "int": "an integer (0-based row position)" if self.name == "row"
-                else "an integer", "bool": "a BOOLEAN",
+        if self.kind == "int" and self.name == "row":
+            return "an integer (0-based row position)"
+        return {"text": "a VARCHAR", "int": "an integer", "bool": "a BOOLEAN",
                 "text_list": "a VARCHAR or a VARCHAR[] of column names",
                 "options": "JSON text or a STRUCT literal such as {'n_columns': 12}"}[self.kind]
 
