@@ -3,8 +3,9 @@
 Every example invents a table from a drawn seed: a few latent factors plus noise, then per
 column a scale (spanning many decades, a huge mean with a small spread, or values up to
 ~1e150), a dtype (float64, float32, int64, int32) and a pattern of NULL, NaN and +-inf
-cells. It is compressed with a drawn method, column and row choice, link, transform, rank
-and seed, and every cell is checked against the archive's own bound:
+cells. It is compressed with a drawn method, column and row choice, link, transform, rank,
+seed and block size (so passes stream several blocks), and every cell is checked against
+the archive's own bound:
 
 * finite cells: |true - to_numpy| <= cell_bounds, and ``cell()`` gives the same value and bound;
 * NULL cells: NaN in ``to_numpy``, NULL in ``rebuild()``; NaN cells: NaN; +-inf: the same inf;
@@ -101,6 +102,9 @@ def cases(draw):
     options["transform"] = draw(st.sampled_from(TRANSFORMS))
     options["rank"] = draw(st.one_of(st.none(), st.integers(1, min(m, n))))
     options["seed"] = draw(st.integers(0, 2**32 - 1))
+    batch_rows = draw(st.sampled_from([None, 1, 7, 16]))  # several blocks per pass
+    if batch_rows is not None:
+        options["batch_rows"] = batch_rows
     data_seed = draw(st.integers(0, 2**32 - 1))
     return _invent(data_seed, m, n, scale, specials), options
 
