@@ -111,8 +111,11 @@ def _sizes(opts: CompressOptions, rows: int, width: int, spectrum) -> tuple[int,
         rank = max(1, min(rank, cap, limit))
     if opts.method == "svd":
         return rank, rank, 0, why
+    # i.i.d. draws (replace=True) may outnumber the columns or rows, as in the published
+    # estimators; repeats are merged, so the archive keeps at most n distinct columns.
+    iid = opts.sample_with_replacement
     c = opts.n_columns if opts.n_columns is not None else min(2 * rank, width)
-    if c > width:
+    if c > width and not (iid and opts.columns != "pivoted_qr"):
         raise RankTooLargeError(
             f"The 'n_columns' option of compress must be at most the {width} numeric columns. Got {c} instead."
         )
@@ -120,8 +123,8 @@ def _sizes(opts: CompressOptions, rows: int, width: int, spectrum) -> tuple[int,
         raise RankTooLargeError(
             f"The 'n_columns' option of compress must be at least the rank ({rank}). Got {c} instead."
         )
-    r = opts.n_rows if opts.n_rows is not None else min(2 * c, rows)
-    if r > rows:
+    r = opts.n_rows if opts.n_rows is not None else min(2 * min(c, width), rows)
+    if r > rows and not (iid and opts.rows != "qdeim"):
         raise RankTooLargeError(
             f"The 'n_rows' option of compress must be at most the {rows} source rows. Got {r} instead."
         )
