@@ -6,9 +6,13 @@ DuckDB calls a vectorized (arrow) UDF once per vector of at most 2048 rows, so a
 (131,072 rows) to serve any row of it: 28 ms per 2048-row call on a 300,000 x 30 archive with
 10 basis columns. So readers are cached per archive path, and they share a cache of decoded
 row groups (one byte budget for the process, least recently used first out). Measured on a
-300,000 x 60 archive (rank 10, 20 basis columns), ``sum(rankfold_cell(...))`` plus
-``sum(rankfold_cell_bound(...))`` over all rows: 4.1-9.0 s with the stock ``read_rows``,
-1.3-2.5 s with the cache (a shared 2-core machine, so wide ranges).
+300,000 x 60 archive (rank 10, 20 basis columns, 3 row groups), best of 3, shared 2-core machine:
+
+    query                                          stock read_rows   cached groups
+    sum(rankfold_cell(p, i, 'x7')), 300k rows          2.09 s           0.33 s
+    rankfold_cell_with_bound, 60 columns, 300k rows    2.81 s           1.29 s
+    rankfold_row (60 columns), 100k rows               1.13 s           0.64 s
+    rankfold_cell at 100k random rows                  1.37 s           0.17 s
 
 A cached reader is dropped when ``manifest.json`` changes: its inode, size or mtime, or the
 ``archive_id`` written in it (an archive replaced with ``overwrite=True`` gets a new id).
@@ -165,8 +169,11 @@ class ReaderCache:
 
 # -- BLAS threads ------------------------------------------------------------------------------
 # DuckDB runs UDFs on its own worker threads; OpenBLAS threads on top of them compete for the
-# same cores (3-4x slower in duckdb-notes.md section 5). threadpoolctl is optional here: when it
-# is importable the SQL functions cap BLAS at one thread while any of them runs, else nothing.
+# same cores (3-4x slower for a BLAS product per vector, duckdb-notes.md section 5). Only
+# compress uses BLAS here (the reader sums element by element), so only it is capped. One
+# compress of a 200,000 x 60 table from SQL took 1.55 s capped and 1.53 s uncapped (best of 3):
+# no gain alone, but several compress calls in one query run on several DuckDB threads.
+# threadpoolctl is optional (not a dependency): when it is importable the cap applies, else not.
 _blas_lock = threading.Lock()
 _blas_depth = 0
 _blas_limiter = None
