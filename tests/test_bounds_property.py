@@ -151,9 +151,14 @@ def test_no_cell_exceeds_its_bound(tmp_path_factory, case):
         i = int(rng.integers(truth.shape[0]))
         j = int(rng.integers(truth.shape[1]))
         cell = archive.cell(i, archive.numeric_columns[j])
-        assert cell.bound == bounds[i, j]
+        # one cell and the bulk rebuild may sum in different BLAS orders: both are within the
+        # bound of the truth, and they agree to the last bits (the slack covers the difference)
+        assert cell.bound == pytest.approx(bounds[i, j], rel=1e-12, abs=0)
         if nulls[i, j]:
             assert cell.value is None
+        elif np.isfinite(truth[i, j]):
+            assert abs(cell.value - truth[i, j]) <= cell.bound
+            assert abs(cell.value - values[i, j]) <= cell.bound
         else:
             assert cell.value == values[i, j] or (np.isnan(cell.value) and np.isnan(values[i, j]))
 
@@ -173,13 +178,23 @@ def test_subset_rebuild_is_the_slice_of_the_full_rebuild(tmp_path_factory, case,
     bounds = archive.cell_bounds(rows, names)
     expected = np.ix_(np.asarray(rows, dtype=np.int64) % m, cols)
     assert values.shape == bounds.shape == (len(rows), len(cols))
-    assert np.array_equal(values, full_values[expected], equal_nan=True)
-    assert np.array_equal(bounds, full_bounds[expected])
+    # a subset may be summed in another BLAS order than the full rebuild: exact cells are
+    # identical, approximated ones agree within the floating-point slack included in the bound
+    _assert_same_rebuild(values, bounds, full_values[expected], full_bounds[expected])
     # slices address the same rows as the equivalent position lists
     window = slice(picks.draw(st.integers(-m, m), label="start"), None,
                    picks.draw(st.sampled_from([1, 2, -1, -3]), label="step"))
-    assert np.array_equal(archive.to_numpy(window, names),
-                          full_values[:, cols][window], equal_nan=True)
+    _assert_same_rebuild(archive.to_numpy(window, names), archive.cell_bounds(window, names),
+                         full_values[:, cols][window], full_bounds[:, cols][window])
+
+
+def _assert_same_rebuild(values, bounds, ref_values, ref_bounds):
+    exact = ref_bounds == 0
+    assert np.array_equal(bounds == 0, exact)
+    assert np.array_equal(values[exact], ref_values[exact], equal_nan=True)
+    np.testing.assert_allclose(bounds, ref_bounds, rtol=1e-12, atol=0)
+    with np.errstate(invalid="ignore", over="ignore"):
+        assert np.all(np.abs(values[~exact] - ref_values[~exact]) <= ref_bounds[~exact])
 
 
 # -- deterministic edges ------------------------------------------------------------------------
