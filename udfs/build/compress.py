@@ -26,6 +26,7 @@ from . import link as _link
 from .commit import ArchiveWriter, prepare_target
 from .options import DEFAULT_RANK_CAP_DIVISOR, CompressOptions
 from .profile import ColumnProfile, Fingerprint, Transform, profile_block
+from .progress import Progress
 from .select import AnchorRows, anchor_pass, sketch_pass
 from .sources import Source, block_from_batch, open_source
 from .verify import VerifyResult, verify_pass
@@ -41,12 +42,17 @@ def _is_numeric(data_type: pa.DataType) -> bool:
     return (pa.types.is_integer(data_type) or pa.types.is_floating(data_type))
 
 
-def _stream(source: Source, names: list[str], batch_rows: int, extra: list[str] = ()) -> Iterator:
+def _stream(source: Source, names: list[str], opts: CompressOptions, stage: str,
+            extra: list[str] = (), total: int | None = None) -> Iterator:
+    """Blocks (first row, batch, float64 block, NULL mask) of one pass, reporting progress."""
+    report = Progress(opts.progress, stage, total)
     first = 0
-    for batch in source.batches(list(dict.fromkeys(list(extra) + names)), batch_rows):
+    for batch in source.batches(list(dict.fromkeys(list(extra) + names)), opts.batch_rows):
         block, mask = block_from_batch(batch, names)
         yield first, batch, block, mask
         first += batch.num_rows
+        report.advance(batch.num_rows)
+    report.finish()
 
 
 def compress(source: Any, path: str | Path, *, rank: int | None = None, seed: int = 0,
@@ -88,7 +94,7 @@ def _plan_columns(schema: pa.Schema, opts: CompressOptions) -> tuple[list[str], 
 def _profile(src: Source, numeric: list[str], opts: CompressOptions):
     profile = ColumnProfile.empty(len(numeric))
     fingerprint = Fingerprint()
-    for first, _, block, mask in _stream(src, numeric, opts.batch_rows):
+    for first, _, block, mask in _stream(src, numeric, opts, "profile"):
         profile = profile.merge(profile_block(block, mask))
         fingerprint.update(first, block)
     return profile, fingerprint
@@ -159,7 +165,8 @@ def _compress(src: Source, target: Path, opts: CompressOptions) -> Path:
             )
     width = len(numeric)
     transform = Transform.fit(opts.transform, profile)
-    blocks = lambda: ((f, b, m) for f, _, b, m in _stream(src, numeric, opts.batch_rows))
+    passes = iter(("sketch", "select"))
+    blocks = lambda: ((f, b, m) for f, _, b, m in _stream(src, numeric, opts, next(passes), total=rows))
     sketch = sketch_pass(blocks, transform, width)
     rank, c, r, rank_reason = _sizes(opts, rows, width, sketch.spectrum)
     rng = np.random.default_rng(opts.seed)
@@ -182,7 +189,7 @@ def _compress(src: Source, target: Path, opts: CompressOptions) -> Path:
 
     writer = ArchiveWriter(target, opts.overwrite)
     try:
-        result = verify_pass(_stream(src, numeric, opts.batch_rows, passthrough), numeric,
+        result = verify_pass(_stream(src, numeric, opts, "verify", passthrough, rows), numeric,
                              passthrough, mixing, anchors, transform, score_right, writer,
                              ledger_scale(profile))
         if not result.fingerprint.matches(fingerprint):

@@ -42,6 +42,7 @@ class CompressOptions:
     overwrite: bool = False
     batch_rows: int = 131_072
     connection: Any = field(default=None, repr=False)
+    progress: Any = field(default=None, repr=False)
 
     @classmethod
     def from_call(cls, rank: Any, seed: Any, options: dict[str, Any]) -> "CompressOptions":
@@ -80,6 +81,10 @@ class CompressOptions:
         if isinstance(self.exact_columns, str):
             self.exact_columns = (self.exact_columns,)
         self.exact_columns = tuple(self.exact_columns)
+        if self.progress is not None and not callable(self.progress):
+            raise InvalidInputError(
+                f"The 'progress' option of compress must be a callable taking one dict. Got {self.progress!r} instead."
+            )
         if self.key is not None and not isinstance(self.key, str):
             raise InvalidInputError(
                 f"The 'key' option of compress must be one column name. Got {self.key!r} instead."
@@ -98,7 +103,7 @@ class CompressOptions:
     def recorded(self) -> dict[str, Any]:
         """The options as written into the manifest (no connection object)."""
         return {f.name: getattr(self, f.name) for f in fields(self)
-                if f.name not in ("connection", "overwrite")} | {
+                if f.name not in ("connection", "overwrite", "progress")} | {
                     "exact_columns": list(self.exact_columns)}
 
 
