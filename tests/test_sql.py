@@ -549,19 +549,3 @@ def test_options_as_json_value(con, tmp_path):
     info = con.execute(f"SELECT rankfold_compress('panel', '{tmp_path}/j', rank := 8, "
                        "options := '{\"key\": \"id\"}'::JSON)").fetchone()[0]
     assert info["columns"] == COLS
-
-
-def test_blas_cap_applies_inside_and_is_restored(con, tmp_path):
-    from rankfold.udfs.sql import readers
-
-    controller = readers._controller()  # None when threadpoolctl is not installed: no cap
-    threads = lambda: [lib["num_threads"] for lib in controller.info()] if controller else []  # noqa: E731
-    before = threads()
-    with readers.one_blas_thread():
-        inside = threads()
-        with readers.one_blas_thread():  # nested: DuckDB's other worker thread
-            assert threads() == inside
-        assert threads() == inside  # the inner exit does not lift the outer cap
-    assert threads() == before and all(t == 1 for t in inside)
-    con.execute(f"SELECT rankfold_compress('panel', '{tmp_path}/blas', rank := 8)").fetchall()
-    assert threads() == before

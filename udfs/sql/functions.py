@@ -31,7 +31,7 @@ from ..errors import ArchiveExistsError, InvalidInputError, RankfoldError
 from ..store import layout
 from ..store.reader import ArchiveReader
 from ..store.rebuild_log import RebuildLog
-from .readers import ReaderCache, one_blas_thread
+from .readers import ReaderCache
 
 __all__ = ["register", "FUNCTIONS"]
 
@@ -456,11 +456,8 @@ def _compress_udf(prefix: str, con) -> Callable:
         opts = _options(function, options)
         cursor = con.cursor()  # a UDF cannot use the connection that runs it
         try:
-            # the sketch and QR passes use BLAS; the rebuild functions do not (the reader
-            # sums element by element), so only compress caps BLAS threads
-            with one_blas_thread():
-                written = _compress(source, path, rank=rank, seed=0 if seed is None else seed,
-                                    overwrite=bool(overwrite), connection=cursor, **opts)
+            written = _compress(source, path, rank=rank, seed=0 if seed is None else seed,
+                                overwrite=bool(overwrite), connection=cursor, **opts)
         except ArchiveExistsError as exc:
             raise ArchiveExistsError(f"{exc} (In SQL: overwrite := true.)") from None
         except InvalidInputError as exc:

@@ -1,4 +1,4 @@
-"""Open archives once per process for the SQL functions, and keep BLAS to one thread in compress.
+"""Open archives once per process for the SQL functions.
 
 DuckDB calls a vectorized (arrow) UDF once per vector of at most 2048 rows, so a query over
 100,000 rows makes about 49 calls. Opening an :class:`ArchiveReader` costs a few milliseconds
@@ -20,15 +20,12 @@ A cached reader is dropped when ``manifest.json`` changes: its inode, size or mt
 
 from __future__ import annotations
 
-import contextlib
 import json
 import os
 import re
 import threading
-import warnings
 from collections import OrderedDict
 from pathlib import Path
-from typing import Iterator
 
 import numpy as np
 import pyarrow as pa
@@ -38,7 +35,7 @@ from ..errors import ArchiveNotFoundError
 from ..store import layout
 from ..store.reader import ArchiveReader
 
-__all__ = ["ReaderCache", "one_blas_thread"]
+__all__ = ["ReaderCache"]
 
 # Decoded row groups kept for all archives together. One group of a 131,072-row file with 60
 # basis columns is about 66 MB, so this holds two or three such groups, or many narrow ones.
@@ -168,53 +165,11 @@ class ReaderCache:
 
 
 # -- BLAS threads ------------------------------------------------------------------------------
-# DuckDB runs UDFs on its own worker threads; OpenBLAS threads on top of them compete for the
-# same cores (3-4x slower for a BLAS product per vector, duckdb-notes.md section 5). Only
-# compress uses BLAS here (the reader sums element by element), so only it is capped. One
-# compress of a 200,000 x 60 table from SQL took 1.55 s capped and 1.53 s uncapped (best of 3):
-# no gain alone, but several compress calls in one query run on several DuckDB threads.
-# threadpoolctl is optional (not a dependency): when it is importable the cap applies, else not.
-_blas_lock = threading.Lock()
-_blas_depth = 0
-_blas_limiter = None
-_blas_controller: object | None = None
-_blas_checked = False
-
-
-def _controller():
-    global _blas_controller, _blas_checked
-    if not _blas_checked:
-        _blas_checked = True
-        try:
-            with warnings.catch_warnings():
-                warnings.simplefilter("ignore")
-                from threadpoolctl import ThreadpoolController
-
-                _blas_controller = ThreadpoolController()
-        except Exception:  # not installed, or no BLAS found: run uncapped
-            _blas_controller = None
-    return _blas_controller
-
-
-@contextlib.contextmanager
-def one_blas_thread() -> Iterator[None]:
-    """Cap BLAS at one thread while the block runs (re-entrant across DuckDB's threads:
-    the first caller in sets the cap, the last one out restores the previous setting)."""
-    global _blas_depth, _blas_limiter
-    with _blas_lock:
-        controller = _controller()
-        if controller is not None:
-            if _blas_depth == 0:
-                with warnings.catch_warnings():
-                    warnings.simplefilter("ignore")
-                    _blas_limiter = controller.limit(limits=1, user_api="blas")
-            _blas_depth += 1
-    try:
-        yield
-    finally:
-        with _blas_lock:
-            if controller is not None:
-                _blas_depth -= 1
-                if _blas_depth == 0 and _blas_limiter is not None:
-                    _blas_limiter.restore_original_limits()
-                    _blas_limiter = None
+# Not capped here, on purpose. The rebuild functions use no BLAS (the reader sums element by
+# element), and compress from SQL measured 1.55 s capped vs 1.53 s uncapped (200,000 x 60, best
+# of 3). The only dependency-free route, an optional threadpoolctl (3.8), is unsafe inside
+# DuckDB: it lets one Python thread at a time control OpenBLAS, and a DuckDB worker thread is a
+# threading._DummyThread that counts as alive forever. When a UDF first ran on a worker (1 run
+# in 6 of one probe), every later threadpool_limits() in the main thread silently did nothing
+# ([2, 2] threads after asking for 1); when the main thread controlled first, the UDF's cap did
+# nothing. Callers who need one BLAS thread set OPENBLAS_NUM_THREADS=1 before starting Python.
