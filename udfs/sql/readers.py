@@ -9,10 +9,10 @@ row groups (one byte budget for the process, least recently used first out). Mea
 300,000 x 60 archive (rank 10, 20 basis columns, 3 row groups), best of 3, shared 2-core machine:
 
     query                                          stock read_rows   cached groups
-    sum(rankfold_cell(p, i, 'x7')), 300k rows          2.09 s           0.33 s
-    rankfold_cell_with_bound, 60 columns, 300k rows    2.81 s           1.29 s
-    rankfold_row (60 columns), 100k rows               1.13 s           0.64 s
-    rankfold_cell at 100k random rows                  1.37 s           0.17 s
+    sum(rankfold_cell(p, i, 'x7')), 300k rows          1.63 s           0.30 s
+    rankfold_cell_with_bound, 60 columns, 300k rows    2.65 s           0.79 s
+    rankfold_row (60 columns), 100k rows               1.12 s           0.49 s
+    rankfold_cell at 100k random rows                  1.28 s           0.15 s
 
 A cached reader is dropped when ``manifest.json`` changes: its inode, size or mtime, or the
 ``archive_id`` written in it (an archive replaced with ``overwrite=True`` gets a new id).
@@ -165,11 +165,14 @@ class ReaderCache:
 
 
 # -- BLAS threads ------------------------------------------------------------------------------
-# Not capped here, on purpose. The rebuild functions use no BLAS (the reader sums element by
-# element), and compress from SQL measured 1.55 s capped vs 1.53 s uncapped (200,000 x 60, best
-# of 3). The only dependency-free route, an optional threadpoolctl (3.8), is unsafe inside
-# DuckDB: it lets one Python thread at a time control OpenBLAS, and a DuckDB worker thread is a
-# threading._DummyThread that counts as alive forever. When a UDF first ran on a worker (1 run
-# in 6 of one probe), every later threadpool_limits() in the main thread silently did nothing
-# ([2, 2] threads after asking for 1); when the main thread controlled first, the UDF's cap did
-# nothing. Callers who need one BLAS thread set OPENBLAS_NUM_THREADS=1 before starting Python.
+# Not capped here, on purpose. The reader's rebuild is one BLAS product per call, of a block of
+# at most 2048 rows by c basis columns: too small for OpenBLAS to start threads. The table above
+# ran as fast with OPENBLAS_NUM_THREADS=1 (0.31 / 0.62 / 0.41 / 0.14 s) as with its default 2
+# threads (0.26 / 0.54 / 0.42 / 0.13 s), and compress from SQL took 1.55 s vs 1.53 s
+# (200,000 x 60, best of 3). The only dependency-free route, an optional threadpoolctl (3.8),
+# is unsafe inside DuckDB: it lets one Python thread at a time control OpenBLAS, and a DuckDB
+# worker thread is a threading._DummyThread that counts as alive forever. When a UDF first ran
+# on a worker (1 run in 6 of one probe), every later threadpool_limits() in the main thread
+# silently did nothing ([2, 2] threads after asking for 1); when the main thread controlled
+# first, the UDF's cap did nothing. To run BLAS on one thread, set OPENBLAS_NUM_THREADS=1
+# before starting Python.
