@@ -144,7 +144,7 @@ def test_unknown_option_suggests_the_closest(tmp_path):
         rankfold.compress(_table(), tmp_path / "o.rfa", overwite=True)
     with pytest.raises(rankfold.UnknownOptionError, match=r"no option 'ranks'\. Did you mean 'rank'\?"):
         rankfold.compress(_table(), tmp_path / "o.rfa", ranks=2)
-    with pytest.raises(TypeError, match=r"no option 'zzz'\. Known options: rank, seed, batch_rows"):
+    with pytest.raises(TypeError, match=r"no option 'zzz'\. Known options: rank, seed, basis_precision, batch_rows"):
         rankfold.compress(_table(), tmp_path / "o.rfa", zzz=1)
 
 

@@ -9,6 +9,7 @@ import datetime as _dt
 import math
 import uuid
 from collections.abc import Iterator
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
@@ -21,7 +22,7 @@ from ..errors import (EmptySourceError, InvalidInputError, NoNumericColumnsError
 from ..factor import cur as _cur
 from ..factor.svd import gavish_donoho_rank
 from ..store import layout
-from ..store.arithmetic import round_up
+from ..store.arithmetic import round_up, trim_mantissa
 from . import link as _link
 from .commit import ArchiveWriter, prepare_target
 from .options import DEFAULT_RANK_CAP_DIVISOR, CompressOptions
@@ -29,7 +30,8 @@ from .profile import ColumnProfile, Fingerprint, Transform, profile_block
 from .progress import Progress
 from .select import AnchorRows, anchor_pass, sketch_pass
 from .sources import Source, block_from_batch, open_source
-from .verify import VerifyResult, verify_pass
+from .verify import Coding, VerifyResult, verify_pass
+from . import targets
 
 __all__ = ["compress"]
 
@@ -91,13 +93,19 @@ def _plan_columns(schema: pa.Schema, opts: CompressOptions) -> tuple[list[str], 
     return numeric, passthrough
 
 
-def _profile(src: Source, numeric: list[str], opts: CompressOptions):
+def _profile(src: Source, numeric: list[str], opts: CompressOptions, *, keep_sample: bool):
+    """Pass 1; with ``keep_sample`` also the measured bytes per value of every column on the
+    first batch (for the size model of the targets)."""
     profile = ColumnProfile.empty(len(numeric))
     fingerprint = Fingerprint()
-    for first, _, block, mask in _stream(src, numeric, opts, "profile"):
+    sample: dict[str, float] = {}
+    extra = [n for n in src.schema.names if n not in numeric] if keep_sample else []
+    for first, batch, block, mask in _stream(src, numeric, opts, "profile", extra):
         profile = profile.merge(profile_block(block, mask))
         fingerprint.update(first, block)
-    return profile, fingerprint
+        if keep_sample and not sample:
+            sample = targets.column_bytes(batch.slice(0, 65_536))
+    return profile, fingerprint, sample
 
 
 def _sizes(opts: CompressOptions, rows: int, width: int, spectrum) -> tuple[int, int, int, str]:
@@ -137,6 +145,18 @@ def _sizes(opts: CompressOptions, rows: int, width: int, spectrum) -> tuple[int,
     return rank, c, r, why
 
 
+@dataclass
+class _Build:
+    """Everything one attempt needs beyond the source: sizes, coding and a reason."""
+
+    method: str
+    rank: int
+    n_columns: int
+    n_rows: int
+    coding_plan: targets.Plan | None
+    reason: str
+
+
 def _compress(src: Source, target: Path, opts: CompressOptions) -> Path:
     numeric, passthrough = _plan_columns(src.schema, opts)
     if not numeric:
@@ -144,7 +164,7 @@ def _compress(src: Source, target: Path, opts: CompressOptions) -> Path:
             f"The source {src.description} has no numeric column to compress (columns: "
             f"{src.schema.names}). rankfold compresses integer and floating-point columns."
         )
-    profile, fingerprint = _profile(src, numeric, opts)
+    profile, fingerprint, sample = _profile(src, numeric, opts, keep_sample=opts.has_targets)
     rows = int(fingerprint.rows)
     if rows == 0:
         raise EmptySourceError(f"The source {src.description} has no rows; there is nothing to compress.")
@@ -165,33 +185,206 @@ def _compress(src: Source, target: Path, opts: CompressOptions) -> Path:
             )
     width = len(numeric)
     transform = Transform.fit(opts.transform, profile)
-    passes = iter(("sketch", "select"))
-    blocks = lambda: ((f, b, m) for f, _, b, m in _stream(src, numeric, opts, next(passes), total=rows))
-    sketch = sketch_pass(blocks, transform, width)
-    rank, c, r, rank_reason = _sizes(opts, rows, width, sketch.spectrum)
-    rng = np.random.default_rng(opts.seed)
+    blocks = lambda stage: ((f, b, m) for f, _, b, m in _stream(src, numeric, opts, stage, total=rows))
+    sketch = sketch_pass(lambda: blocks("sketch"), transform, width)
+    goal = _Goal.from_options(opts, numeric)
+    build = _first_build(opts, goal, rows, width, sketch, profile, transform, sample, numeric, passthrough)
+    for attempt in range(_MAX_ATTEMPTS):
+        written = _write(src, target, opts, numeric, passthrough, rows, profile, fingerprint,
+                         transform, sketch, build, blocks)
+        verdict = goal.verdict(written, transform, sketch)
+        if verdict is None or attempt == _MAX_ATTEMPTS - 1 or build.n_columns >= width:
+            if verdict is not None and goal.target_bytes is None:
+                written.abort()
+                raise InvalidInputError(f"rankfold could not meet the target: {verdict}")
+            if verdict is not None:
+                written.abort()
+                raise InvalidInputError(
+                    f"target_bytes={goal.target_bytes} cannot be met: {verdict}. Raise the "
+                    "target, or ask for an error target instead."
+                )
+            return written.commit(goal, attempt + 1)
+        written.abort()
+        build = goal.next_build(build, width, rows)
+    raise AssertionError("unreachable")
 
-    if opts.method == "svd":
+
+_MAX_ATTEMPTS = 6
+
+
+@dataclass
+class _Goal:
+    """The user's target, as arrays over the numeric columns (None where not asked)."""
+
+    rel_error: np.ndarray | None
+    rel_error_per_column: bool
+    max_abs_error: np.ndarray | None
+    target_bytes: int | None
+
+    @classmethod
+    def from_options(cls, opts: CompressOptions, names: list[str]) -> "_Goal":
+        rel = targets.per_column(opts.rel_error, names, "rel_error")
+        return cls(rel, isinstance(opts.rel_error, dict),
+                   targets.per_column(opts.max_abs_error, names, "max_abs_error"), opts.target_bytes)
+
+    def recorded(self, names: list[str]) -> dict[str, Any]:
+        def listed(values, per_column):
+            if values is None:
+                return None
+            if per_column:
+                return {n: float(v) for n, v in zip(names, values) if np.isfinite(v)}
+            return float(values[0])
+        return {"rel_error": listed(self.rel_error, self.rel_error_per_column),
+                "max_abs_error": listed(self.max_abs_error, len(set(self.max_abs_error.tolist())) > 1
+                                        if self.max_abs_error is not None else False),
+                "target_bytes": self.target_bytes}
+
+    def verdict(self, written: "_Written", transform: Transform, sketch) -> str | None:
+        """None when the written archive meets the target, else what missed."""
+        if self.target_bytes is not None and written.bytes > self.target_bytes:
+            return f"the archive takes {written.bytes} bytes"
+        if self.rel_error is not None:
+            ledger = written.result.ledger
+            z_err = ledger.err_l2 / transform.scale
+            if self.rel_error_per_column:
+                norms = np.sqrt(np.sum(sketch.r**2, axis=0))
+                with np.errstate(divide="ignore", invalid="ignore"):
+                    rel = np.where(norms > 0, z_err / norms, 0.0)
+                named = np.isfinite(self.rel_error)
+                missed = named & (rel > self.rel_error)
+                if missed.any():
+                    j = int(np.flatnonzero(missed)[0])
+                    return f"column {j} has relative error {rel[j]:.4g} > {self.rel_error[j]:.4g}"
+            else:
+                total = float(np.sqrt(np.sum(sketch.spectrum.values**2)))
+                achieved = float(np.sqrt(np.sum(z_err**2))) / total if total > 0 else 0.0
+                if achieved > self.rel_error[0]:
+                    return f"relative error {achieved:.4g} > {self.rel_error[0]:.4g}"
+        return None
+
+    def next_build(self, build: _Build, width: int, rows: int) -> _Build:
+        if self.target_bytes is not None:
+            c = max(1, int(build.n_columns * 0.75))
+            if c == build.n_columns:
+                c -= 1
+        else:
+            c = min(width, max(build.n_columns + 1, int(np.ceil(build.n_columns * 1.3))))
+        rank = (c + 1) // 2 if build.method == "cur" else c
+        return _Build(build.method, max(rank, 0), c, min(2 * c, rows) if build.method == "cur" else 0,
+                      build.coding_plan, build.reason + f"; retried with {c} columns")
+
+
+def _first_build(opts, goal, rows, width, sketch, profile, transform, sample, numeric, passthrough) -> _Build:
+    method = opts.method or "cur"
+    if goal.target_bytes is not None:
+        exact = np.array([sample.get(n, 8.0) for n in numeric])
+        fixed = rows * sum(sample.get(n, 8.0) for n in passthrough) + rows * 8.0
+        order, res_cur = targets.cur_residuals(sketch.r)
+        res_svd = targets.svd_residuals(sketch.spectrum.values, sketch.spectrum.right)
+        plan = targets.plan_for_bytes(
+            budget=float(goal.target_bytes), rows=rows, width=width, res_cur=res_cur, order=order,
+            res_svd=res_svd, exact_bytes=exact, fixed_bytes=fixed,
+            methods=(opts.method,) if opts.method else ("cur", "svd"))
+        if plan is None:
+            raise InvalidInputError(
+                f"target_bytes={goal.target_bytes} is below the smallest archive rankfold can "
+                f"write for this source (about {int(fixed + rows * exact.min())} bytes: the "
+                "exactly kept columns and row ids alone need most of it). Raise the target."
+            )
+        return _Build(plan.method, plan.rank, plan.columns,
+                      min(2 * plan.columns, rows) if plan.method == "cur" else 0, plan, plan.reason)
+    if goal.max_abs_error is not None:
+        if method == "cur":
+            order, res = targets.cur_residuals(sketch.r)
+        else:
+            order, res = None, targets.svd_residuals(sketch.spectrum.values, sketch.spectrum.right)
+        exact = np.array([sample.get(n, 8.0) for n in numeric])
+        limit = min(width - 1, rows, max(1, width // 2)) if method == "cur" else min(width, rows, max(1, width // 2))
+        plan = targets.plan_for_tolerance(
+            method=method, rows=rows, width=width, tolerance=goal.max_abs_error,
+            scale=transform.scale, std=profile.std, res=res, order=order, exact_bytes=exact,
+            residual=opts.residual, basis_precision=opts.basis_precision, rank=opts.rank,
+            max_columns=max(limit, 0))
+        c = plan.columns
+        return _Build(method, plan.rank, c, min(2 * c, rows) if method == "cur" else 0, plan, plan.reason)
+    if goal.rel_error is not None:
+        order, res = targets.cur_residuals(sketch.r)
+        norms = np.sqrt(np.sum(sketch.r**2, axis=0))
+        total = float(np.sqrt(np.sum(sketch.spectrum.values**2)))
+        c = targets.plan_for_rel_error(goal.rel_error, res, norms, total, goal.rel_error_per_column, width)
+        if method == "svd":
+            res_svd = targets.svd_residuals(sketch.spectrum.values, sketch.spectrum.right)
+            c = targets.plan_for_rel_error(goal.rel_error, res_svd, norms, total, goal.rel_error_per_column, width)
+        c = max(c, 1)
+        rank = (c + 1) // 2 if method == "cur" else c
+        return _Build(method, rank, c, min(2 * c, rows) if method == "cur" else 0, None,
+                      "fewest columns whose predicted error meets rel_error")
+    rank, c, r, why = _sizes(opts, rows, width, sketch.spectrum)
+    return _Build(method, rank, c, r, None, why)
+
+
+class _Written:
+    """One attempt written to a temporary directory, not yet committed."""
+
+    def __init__(self, writer, result, manifest, files):
+        self.writer, self.result, self.manifest, self.files = writer, result, manifest, files
+        self.bytes = sum((writer.temp / f).stat().st_size for f in files)
+
+    def abort(self) -> None:
+        self.writer.abort()
+
+    def commit(self, goal: _Goal, attempts: int) -> Path:
+        self.manifest["targets"] = goal.recorded(self.manifest["numeric_columns"])
+        self.manifest["achieved"] = {
+            "bytes": None,  # filled from the file list below
+            "relative_frobenius": self.manifest["errors"]["relative_frobenius"],
+            "max_abs_error": self.manifest["errors"]["max_abs_error"],
+            "corrections": self.result.corrections,
+            "attempts": attempts,
+        }
+        try:
+            path = self.writer.commit(self.manifest, self.files)
+        except BaseException:
+            self.writer.abort()
+            raise
+        return path
+
+
+def _write(src, target, opts, numeric, passthrough, rows, profile, fingerprint, transform,
+           sketch, build: _Build, blocks) -> _Written:
+    width = len(numeric)
+    rng = np.random.default_rng(opts.seed)
+    plan = build.coding_plan
+    if build.method == "svd":
+        rank = build.n_columns
         mixing = _link.mixing_for_scores(sketch.spectrum.right, rank, transform)
         anchors = AnchorRows(np.zeros(0, np.int64), np.zeros((0, width)), np.zeros((0, width), bool))
         score_right = sketch.spectrum.right[:, :rank]
         basis_names = [layout.SCORE_PATTERN.format(k) for k in range(rank)]
+    elif build.n_columns == 0:  # no low-rank part: offsets (the column means) and the residual
+        mixing = _link.Mixing(np.zeros((0, width)), transform.shift.copy(), np.zeros(0), np.zeros(0, np.int64))
+        anchors = AnchorRows(np.zeros(0, np.int64), np.zeros((0, width)), np.zeros((0, width), bool))
+        score_right, basis_names = None, []
     else:
         replace = opts.sample_with_replacement
-        choice = _cur.choose_columns(opts.columns, sketch.r, sketch.spectrum, rank, c, rng,
-                                     replace=replace)
-        anchors = anchor_pass(blocks, transform, sketch, opts.rows, rank, r, rng, replace=replace)
+        rank = max(1, build.rank)
+        choice = _cur.choose_columns(opts.columns, sketch.r, sketch.spectrum, rank, build.n_columns,
+                                     rng, replace=replace)
+        anchors = anchor_pass(lambda: blocks("select"), transform, sketch, opts.rows, rank,
+                              build.n_rows, rng, replace=replace)
         anchor_z = transform.apply(anchors.values)
         columns, m_transformed = _cur.build_mixing(opts.link, choice, sketch.r, anchor_z)
         mixing = _link.mixing_for_columns(columns, m_transformed, transform)
         score_right = None
         basis_names = [numeric[k] for k in columns]
-
+    coding = _coding(plan, mixing, profile, transform, width, build)
+    if coding is not None and np.isfinite(coding.tolerance).any():
+        mixing = _trim_factors(mixing, coding.tolerance, profile)
     writer = ArchiveWriter(target, opts.overwrite)
     try:
         result = verify_pass(_stream(src, numeric, opts, "verify", passthrough, rows), numeric,
                              passthrough, mixing, anchors, transform, score_right, writer,
-                             ledger_scale(profile))
+                             ledger_scale(profile), coding)
         if not result.fingerprint.matches(fingerprint):
             raise SourceChangedError(
                 f"The source {src.description} gave different rows in the profile and verify "
@@ -199,14 +392,60 @@ def _compress(src: Source, target: Path, opts: CompressOptions) -> Path:
                 "other values or order). Compress a stable snapshot, or add an ORDER BY."
             )
         files = _write_small_tables(writer, src.schema, numeric, profile, transform, mixing,
-                                    anchors, result, basis_names)
-        manifest = _manifest(src, opts, numeric, passthrough, rows, rank, rank_reason,
-                             sketch.spectrum, profile, transform, mixing, anchors, result, basis_names,
-                             writer.parts)
-        return writer.commit(manifest, [p["name"] for p in writer.parts] + files)
+                                    anchors, result, basis_names, coding)
+        manifest = _manifest(src, opts, numeric, passthrough, rows, build, sketch.spectrum,
+                             profile, transform, mixing, anchors, result, basis_names,
+                             writer.parts, coding)
+        return _Written(writer, result, manifest, [p["name"] for p in writer.parts] + files)
     except BaseException:
         writer.abort()
         raise
+
+
+def _coding(plan, mixing, profile, transform, width, build) -> Coding | None:
+    """The verify pass's coding for a plan (None: plain factors, no tolerance)."""
+    if plan is None:
+        if build.method == "svd" and build.reason.startswith("smallest predicted error"):
+            return Coding(np.full(width, np.inf), np.full(width, np.nan),
+                          np.full(mixing.weights.shape[0], np.nan), float32_scores=True)
+        return None
+    c = mixing.weights.shape[0]
+    basis_step = np.full(c, np.nan)
+    if build.method == "svd" and np.isfinite(plan.tolerance).any() and c:
+        # scores rounded finely: their rounding error, spread over the columns by the weights,
+        # stays a quarter of the finest residual step (the residual codes absorb it)
+        finite = np.isfinite(plan.tolerance)
+        weight_norm = np.sqrt(np.sum(mixing.weights**2, axis=0))
+        finest = np.min(2.0 * plan.tolerance[finite] / np.maximum(weight_norm[finite], 1e-300))
+        basis_step = np.full(c, 0.25 * finest / np.sqrt(c))
+    elif build.method == "cur" and plan.basis_step.size == c:
+        basis_step = plan.basis_step
+    return Coding(plan.tolerance, plan.residual_step, basis_step,
+                  float32_scores=build.method == "svd" and not np.isfinite(plan.tolerance).any())
+
+
+def _trim_factors(mixing: _link.Mixing, tolerance: np.ndarray, profile: ColumnProfile) -> _link.Mixing:
+    """Trim the mantissas of offsets and weights so that their rounding moves no rebuilt value
+    by more than 5% of its column's tolerance: |dw| <= |w| 2^-bits, so a value moves at most
+    2^-bits (|offset_j| + sum_k |w_kj| max|x_k|). The verify pass measures with the trimmed
+    factors, so bounds hold whatever the trimming did."""
+    c = mixing.weights.shape[0]
+    if mixing.basis_columns is not None and mixing.basis_columns.size == c:
+        reach = np.maximum(np.abs(profile.minimum), np.abs(profile.maximum))[mixing.basis_columns]
+        reach = np.where(np.isfinite(reach), reach, 0.0)
+    else:
+        return mixing  # synthetic scores: keep full precision
+    magnitude = np.abs(mixing.offset) + reach @ np.abs(mixing.weights)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        needed = np.ceil(np.log2(np.where(np.isfinite(tolerance) & (magnitude > 0),
+                                          magnitude / (0.05 * tolerance), 2.0**52)))
+    bits = np.clip(np.nan_to_num(needed, nan=52), 12, 52).astype(np.int64)
+    weights = trim_mantissa(mixing.weights, bits) if c else mixing.weights
+    offset = trim_mantissa(mixing.offset[None, :], bits)[0]
+    if mixing.basis_columns is not None and c:
+        weights[:, mixing.basis_columns] = np.eye(c)
+        offset[mixing.basis_columns] = 0.0
+    return _link.Mixing(weights, offset, mixing.fill, mixing.basis_columns)
 
 
 def ledger_scale(profile: ColumnProfile) -> np.ndarray:
@@ -215,11 +454,13 @@ def ledger_scale(profile: ColumnProfile) -> np.ndarray:
     return np.where((std > 0) & np.isfinite(std), std, 1.0)
 
 
-def _column_table(schema, numeric, profile, transform, mixing, result) -> pa.Table:
+def _column_table(schema, numeric, profile, transform, mixing, result, coding) -> pa.Table:
     width = len(numeric)
     is_basis = np.zeros(width, bool)
     if mixing.basis_columns is not None:
         is_basis[mixing.basis_columns] = True
+    coding = coding or Coding.plain(width, mixing.weights.shape[0])
+    residual_step = np.where(is_basis, np.nan, coding.residual_step)
     std = profile.std
     ledger = result.ledger
     rms = np.divide(ledger.err_l2, np.sqrt(np.maximum(ledger.cells, 1)))
@@ -239,13 +480,15 @@ def _column_table(schema, numeric, profile, transform, mixing, result) -> pa.Tab
         "err_max": round_up(ledger.err_max), "err_l2": round_up(ledger.err_l2),
         "err_sum": ledger.err_sum, "err_cells": ledger.cells,
         "rel_rms": rel_rms,
+        "tolerance": pa.array(coding.tolerance, mask=~np.isfinite(coding.tolerance)),
+        "residual_step": pa.array(residual_step, mask=~np.isfinite(residual_step)),
     })
 
 
 def _write_small_tables(writer, schema, numeric, profile, transform, mixing, anchors, result,
-                        basis_names) -> list[str]:
+                        basis_names, coding) -> list[str]:
     writer.write_table(layout.COLUMNS,
-                       _column_table(schema, numeric, profile, transform, mixing, result),
+                       _column_table(schema, numeric, profile, transform, mixing, result, coding),
                        factor_columns=["shift", "scale", "offset"])
     anchor_cols = {layout.ROW_ID: pa.array(anchors.positions, pa.int64())}
     for j, name in enumerate(numeric):
@@ -289,8 +532,23 @@ def _error_summary(numeric, profile, transform, result, spectrum, rank) -> dict[
     }
 
 
-def _manifest(src, opts, numeric, passthrough, rows, rank, rank_reason, spectrum,
-              profile, transform, mixing, anchors, result: VerifyResult, basis_names, parts) -> dict:
+def _basis_entries(basis_names, mixing, coding) -> list[dict[str, Any]]:
+    """Manifest entries of the basis: source column or score name, fill, and where the stored
+    values are integer codes, the column holding them and their step."""
+    entries = []
+    for t, (name, fill) in enumerate(zip(basis_names, mixing.fill)):
+        entry = {"name": name, "fill": float(fill)}
+        step = coding.basis_step[t] if coding is not None and t < coding.basis_step.size else np.nan
+        if np.isfinite(step):
+            entry["step"] = float(step)
+            entry["stored_as"] = (layout.BASIS_PATTERN.format(t) if mixing.basis_columns is not None
+                                  else name)
+        entries.append(entry)
+    return entries
+
+
+def _manifest(src, opts, numeric, passthrough, rows, build, spectrum, profile, transform,
+              mixing, anchors, result: VerifyResult, basis_names, parts, coding) -> dict:
     roles = {n: "numeric" for n in numeric} | {n: "exact" for n in passthrough}
     return {
         "format": layout.FORMAT_NAME,
@@ -304,14 +562,14 @@ def _manifest(src, opts, numeric, passthrough, rows, rank, rank_reason, spectrum
         "numeric_columns": numeric,
         "exact_columns": passthrough,
         "key": opts.key,
-        "method": {"kind": opts.method, "rank": rank, "rank_reason": rank_reason,
+        "method": {"kind": build.method, "rank": build.rank, "rank_reason": build.reason,
                    "n_columns": len(basis_names), "n_rows": int(anchors.positions.size),
                    "seed": opts.seed, "options": opts.recorded()},
         "transform": transform.kind,
-        "basis": [{"name": n, "fill": float(f)} for n, f in zip(basis_names, mixing.fill)],
+        "basis": _basis_entries(basis_names, mixing, coding),
         "anchors": [int(p) for p in anchors.positions],
         "row_parts": parts,
         "spectrum": [float(s) for s in spectrum.values],
-        "errors": _error_summary(numeric, profile, transform, result, spectrum, rank),
+        "errors": _error_summary(numeric, profile, transform, result, spectrum, build.rank),
         "files": [],
     }

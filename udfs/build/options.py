@@ -15,6 +15,8 @@ from ..factor.cur import COLUMN_METHODS, LINKS, ROW_METHODS
 __all__ = ["CompressOptions", "METHODS", "TRANSFORMS"]
 
 METHODS = ("cur", "svd")
+RESIDUALS = ("auto", "quantized", "corrections")
+BASIS_PRECISIONS = ("exact", "tolerance")
 TRANSFORMS = ("standardize", "center", "none")
 
 # Default rank when none is given: the Gavish-Donoho hard threshold (noise level estimated
@@ -29,7 +31,7 @@ class CompressOptions:
 
     rank: int | None = None
     seed: int = 0
-    method: str = "cur"
+    method: str | None = None
     columns: str = "pivoted_qr"
     rows: str = "qdeim"
     link: str = "optimal"
@@ -43,6 +45,11 @@ class CompressOptions:
     batch_rows: int = 131_072
     connection: Any = field(default=None, repr=False)
     progress: Any = field(default=None, repr=False)
+    rel_error: Any = None
+    max_abs_error: Any = None
+    target_bytes: int | None = None
+    residual: str = "auto"
+    basis_precision: str = "exact"
 
     @classmethod
     def from_call(cls, rank: Any, seed: Any, options: dict[str, Any]) -> "CompressOptions":
@@ -69,7 +76,27 @@ class CompressOptions:
                 f"The 'seed' option of compress must be a non-negative integer. Got {self.seed!r} instead."
             )
         self.seed = int(self.seed)  # a plain int for the manifest (JSON)
-        _choice("method", self.method, METHODS)
+        if self.method is not None:
+            _choice("method", self.method, METHODS)
+        _choice("residual", self.residual, RESIDUALS)
+        _choice("basis_precision", self.basis_precision, BASIS_PRECISIONS)
+        self.target_bytes = _positive_int("target_bytes", self.target_bytes, allow_none=True)
+        if self.rel_error is not None and self.rank is not None:
+            raise InvalidInputError(
+                "compress takes either 'rank' or 'rel_error', not both: rel_error chooses the "
+                "rank. Drop one of them."
+            )
+        if self.target_bytes is not None and (self.rank is not None or self.rel_error is not None
+                                              or self.max_abs_error is not None):
+            raise InvalidInputError(
+                "compress takes 'target_bytes' alone: it chooses the rank and method to fit the "
+                "size. Drop 'rank', 'rel_error' and 'max_abs_error', or drop 'target_bytes'."
+            )
+        if self.basis_precision == "tolerance" and self.max_abs_error is None:
+            raise InvalidInputError(
+                "basis_precision='tolerance' needs max_abs_error: the basis columns are rounded "
+                "to steps of twice the tolerance."
+            )
         _choice("columns", self.columns, COLUMN_METHODS)
         _choice("rows", self.rows, ROW_METHODS)
         _choice("link", self.link, LINKS)
@@ -96,15 +123,30 @@ class CompressOptions:
             )
 
     @property
+    def has_targets(self) -> bool:
+        return any(v is not None for v in (self.rel_error, self.max_abs_error, self.target_bytes))
+
+    @property
     def sample_with_replacement(self) -> bool:
         """i.i.d. draws for the published textbook estimator, distinct draws otherwise."""
         return (self.link == "textbook") if self.replace is None else self.replace
 
     def recorded(self) -> dict[str, Any]:
         """The options as written into the manifest (no connection object)."""
-        return {f.name: getattr(self, f.name) for f in fields(self)
+        return {f.name: _plain(getattr(self, f.name)) for f in fields(self)
                 if f.name not in ("connection", "overwrite", "progress")} | {
                     "exact_columns": list(self.exact_columns)}
+
+
+def _plain(value: Any) -> Any:
+    """JSON-ready copy: numpy numbers to Python numbers, mappings and sequences recursively."""
+    if isinstance(value, dict):
+        return {str(k): _plain(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_plain(v) for v in value]
+    if isinstance(value, np.generic):
+        return value.item()
+    return value
 
 
 def _is_integer(value: Any) -> bool:

@@ -5,9 +5,14 @@ exact-cell table, and write the row files.
 Guarantee established here: for every approximated cell (i, j),
 |x_ij - xhat_ij| <= min(scale_j * err_max_row_i, err_max_col_j) + slack_ij, where scale_j is
 the column's ledger scale (its standard deviation, 1 when that is 0), the row figures are in
-those units, and xhat is computed by
-``store.arithmetic`` in any evaluation order (see its docstring for the slack). Cells of basis
-columns, anchor rows and NULL, NaN, +-inf or overflowing cells are stored exactly (error 0).
+those units, and xhat is computed by ``store.arithmetic`` in any evaluation order (see its
+docstring for the slack). Cells of exactly stored basis columns, anchor rows and NULL, NaN,
++-inf or overflowing cells are stored exactly (error 0).
+
+With a tolerance t_j (``Coding``), every approximated cell also satisfies
+|x_ij - xhat_ij| <= t_j: the residual may be coded as integers with step 2 t_j (the rebuild
+adds code * step), basis values may be stored quantized with such a step, and any cell that
+would still exceed t_j after the slack is stored exactly as a correction.
 """
 
 from __future__ import annotations
@@ -65,13 +70,16 @@ class ExactCells:
     nulls: list[np.ndarray] = field(default_factory=list)
     reasons: list[np.ndarray] = field(default_factory=list)
 
-    def add(self, first: int, cells: np.ndarray, block: np.ndarray, mask: np.ndarray | None) -> None:
+    def add(self, first: int, cells: np.ndarray, block: np.ndarray, mask: np.ndarray | None,
+            corrections: np.ndarray | None = None) -> None:
         r, c = np.nonzero(cells)
         if r.size == 0:
             return
         values = block[r, c]
         nulls = mask[r, c] if mask is not None else np.zeros(r.size, bool)
         reason = np.full(r.size, "overflow", dtype=object)
+        if corrections is not None:
+            reason[corrections[r, c]] = "correction"
         reason[np.isinf(values)] = "inf"
         reason[np.isnan(values)] = "nan"
         reason[nulls] = "null"
@@ -101,11 +109,60 @@ def _same_row(a: np.ndarray, b: np.ndarray) -> bool:
 
 
 @dataclass
+class Coding:
+    """How values are coded beyond the factors (arrays over the n numeric columns, or over the
+    c basis entries for ``basis_step``).
+
+    tolerance: guaranteed max abs error per column (inf: none); approximated cells whose
+        error plus slack would exceed it are stored exactly as corrections.
+    residual_step: step of the quantized residual per column (NaN: no residual stored).
+    basis_step: step of stored basis values or scores (NaN: stored exactly / as float64).
+    float32_scores: SVD scores stored as float32 (when no step is set).
+    """
+
+    tolerance: np.ndarray
+    residual_step: np.ndarray
+    basis_step: np.ndarray
+    float32_scores: bool = False
+
+    @classmethod
+    def plain(cls, width: int, basis: int) -> "Coding":
+        return cls(np.full(width, np.inf), np.full(width, np.nan), np.full(basis, np.nan))
+
+
+@dataclass
 class VerifyResult:
     ledger: ColumnLedger
     cells: ExactCells
     fingerprint: Fingerprint
     rows: int
+    corrections: int = 0
+    basis_fill: np.ndarray | None = None
+
+
+_CODE_LIMIT = 2.0**31 - 1  # residual codes are stored as int32
+
+
+def _stored_basis(raw: np.ndarray, step: np.ndarray, float32: bool):
+    """Basis values as stored, and the Arrow arrays that store them (NaN = NULL)."""
+    coded = np.isfinite(step)
+    values = raw.copy()
+    arrays = []
+    for k in range(raw.shape[1]):
+        column = raw[:, k]
+        if coded[k]:
+            codes = arithmetic.quantize(column, step[k])
+            bad = ~np.isfinite(codes) | (np.abs(codes) > _CODE_LIMIT)
+            codes = np.where(bad, 0.0, codes)
+            values[:, k] = np.where(bad, np.nan, codes * step[k])
+            arrays.append(pa.array(codes.astype(np.int32), pa.int32(), mask=bad))
+        elif float32:
+            narrow = column.astype(np.float32)
+            values[:, k] = narrow.astype(np.float64)
+            arrays.append(pa.array(narrow, pa.float32(), mask=~np.isfinite(column)))
+        else:
+            arrays.append(pa.array(column, pa.float64(), mask=~np.isfinite(column)))
+    return values, arrays
 
 
 def verify_pass(
@@ -118,26 +175,48 @@ def verify_pass(
     score_right: np.ndarray | None,
     writer: ArchiveWriter,
     ledger_scale: np.ndarray,
+    coding: Coding | None = None,
 ) -> VerifyResult:
     """Run the verify pass and write the row files (see the module docstring)."""
     width = len(names)
+    basis = mixing.basis_columns
+    coding = coding or Coding.plain(width, mixing.weights.shape[0])
     ledger = ColumnLedger.empty(width)
     cells = ExactCells()
     fingerprint = Fingerprint()
-    basis = mixing.basis_columns
     is_basis = np.zeros(width, dtype=bool)
+    coded_basis = np.isfinite(coding.basis_step)
     if basis is not None:
-        is_basis[basis] = True
+        is_basis[basis[~coded_basis]] = True  # exactly stored basis columns
+    steps = coding.residual_step
+    with_residual = np.flatnonzero(np.isfinite(steps) & ~is_basis)
+    tolerance = coding.tolerance
     anchor_lookup = {int(p): i for i, p in enumerate(anchors.positions)}
-    rows = 0
+    rows = corrections_count = 0
     for first, batch, block, mask in stream:
         b = block.shape[0]
         if basis is not None:
-            filled = arithmetic.fill_missing(block[:, basis], mixing.fill)
+            stored, basis_arrays = (_stored_basis(block[:, basis], coding.basis_step, False)
+                                    if coded_basis.any() else (block[:, basis], None))
+            filled = arithmetic.fill_missing(stored, mixing.fill)
         else:
-            filled = transform.apply(block) @ score_right
+            scores = transform.apply(block) @ score_right
+            filled, basis_arrays = _stored_basis(scores, coding.basis_step, coding.float32_scores)
+            filled = arithmetic.fill_missing(filled, mixing.fill)
         xhat = arithmetic.approximate(filled, mixing.weights, mixing.offset)
-        slack = arithmetic.slack(filled, mixing.weights, mixing.offset)
+        codes = None
+        if with_residual.size:
+            with np.errstate(invalid="ignore", over="ignore"):
+                codes = np.zeros((b, width))
+                raw_codes = arithmetic.quantize(block[:, with_residual] - xhat[:, with_residual],
+                                                steps[with_residual])
+                usable = np.isfinite(raw_codes) & (np.abs(raw_codes) <= _CODE_LIMIT)
+                codes[:, with_residual] = np.where(usable, raw_codes, 0.0)
+            residual_term = codes * np.where(np.isfinite(steps), steps, 0.0)[None, :]
+            xhat = arithmetic.add_residual(xhat, codes, steps)
+        else:
+            residual_term = None
+        slack = arithmetic.slack(filled, mixing.weights, mixing.offset, residual_term)
         with np.errstate(invalid="ignore", over="ignore"):
             residual = block - xhat
         source_exceptional = ~np.isfinite(block)
@@ -156,8 +235,14 @@ def verify_pass(
                     "time it is read: add an ORDER BY to the query, or compress a snapshot."
                 )
             kept_exact[local] = True
-        stored_cells = (source_exceptional | unstable) & ~kept_exact
-        cells.add(first, stored_cells, block, mask)
+        # a cell is approximated only if its error, measured here and moved up past its own
+        # rounding, plus the slack of any later rebuild, stays within the column's tolerance
+        with np.errstate(invalid="ignore", over="ignore"):
+            over_tolerance = ~(arithmetic.round_up(np.abs(residual)) + slack <= tolerance[None, :])
+        over_tolerance &= ~(kept_exact | source_exceptional | unstable)
+        stored_cells = (source_exceptional | unstable | over_tolerance) & ~kept_exact
+        cells.add(first, stored_cells, block, mask, over_tolerance)
+        corrections_count += int(over_tolerance.sum())
         approximated = ~(kept_exact | stored_cells)
         ledger.add(residual, approximated)
         # row figures are in units of each column's ledger scale (its standard deviation),
@@ -171,13 +256,18 @@ def verify_pass(
         for name in passthrough:
             columns[name] = batch.column(name)
         if basis is not None:
-            for k in basis:
-                columns[names[k]] = batch.column(names[k])
+            for t, k in enumerate(basis):
+                if coded_basis[t]:
+                    columns[layout.BASIS_PATTERN.format(t)] = basis_arrays[t]
+                else:
+                    columns[names[k]] = batch.column(names[k])
         else:
-            for k in range(filled.shape[1]):
-                columns[layout.SCORE_PATTERN.format(k)] = pa.array(filled[:, k])
+            for k, array in enumerate(basis_arrays):
+                columns[layout.SCORE_PATTERN.format(k)] = array
+        for j in with_residual:
+            columns[layout.CODE_PATTERN.format(j)] = pa.array(codes[:, j].astype(np.int32))
         columns[layout.ROW_ERR_MAX] = pa.array(arithmetic.round_up(row_max))
         columns[layout.ROW_ERR_L2] = pa.array(arithmetic.round_up(row_l2))
         writer.write_rows(pa.table(columns), first)
         rows += b
-    return VerifyResult(ledger, cells, fingerprint, rows)
+    return VerifyResult(ledger, cells, fingerprint, rows, corrections_count)

@@ -24,7 +24,8 @@ from __future__ import annotations
 
 import numpy as np
 
-__all__ = ["UNIT_ROUNDOFF", "fill_missing", "approximate", "slack", "round_up"]
+__all__ = ["UNIT_ROUNDOFF", "fill_missing", "approximate", "add_residual", "slack", "round_up",
+           "quantize", "trim_mantissa"]
 
 UNIT_ROUNDOFF = 2.0**-53
 
@@ -53,14 +54,46 @@ def _gamma(terms: int) -> float:
     return nu / (1.0 - nu)
 
 
-def slack(filled_basis: np.ndarray, weights: np.ndarray, offset: np.ndarray) -> np.ndarray:
-    """Upper limit (b, n) on how far two evaluations of ``approximate`` (in any summation
-    order) can differ: 2 gamma_{c+2} (|offset_j| + sum_k |w_kj| |f(x_ik)|), see the module
+def add_residual(values: np.ndarray, codes: np.ndarray | None, step: np.ndarray | None) -> np.ndarray:
+    """Add a quantized residual: values (b, n) + codes (b, n) * step (n,); NaN steps add nothing."""
+    if codes is None or step is None:
+        return values
+    term = codes * np.where(np.isfinite(step), step, 0.0)[None, :]
+    with np.errstate(over="ignore", invalid="ignore"):
+        return values + term
+
+
+def slack(filled_basis: np.ndarray, weights: np.ndarray, offset: np.ndarray,
+          residual_term: np.ndarray | None = None) -> np.ndarray:
+    """Upper limit (b, n) on how far two evaluations of ``approximate`` (plus an optional
+    quantized residual term, shape (b, n)) in any summation order can differ:
+    2 gamma_{c+3} (|offset_j| + sum_k |w_kj| |f(x_ik)| + |residual_ij|), see the module
     docstring. The sum of non-negative terms is itself a matrix product; its rounding is
-    covered by the step from gamma_{c+1} to gamma_{c+2}."""
+    covered by the step from gamma_{c+2} to gamma_{c+3}."""
     magnitude = approximate(np.abs(filled_basis), np.abs(weights), np.abs(offset))
     with np.errstate(over="ignore", invalid="ignore"):
-        return 2.0 * _gamma(weights.shape[0] + 2) * magnitude
+        if residual_term is not None:
+            magnitude = magnitude + np.abs(residual_term)
+        return 2.0 * _gamma(weights.shape[0] + 3) * magnitude
+
+
+def quantize(values: np.ndarray, step: float | np.ndarray) -> np.ndarray:
+    """Nearest integer codes of values / step as float64 (non-finite values give NaN).
+
+    With code q, q * step is within step / 2 of the value (up to the rounding of the
+    product, which the verify pass measures)."""
+    with np.errstate(over="ignore", invalid="ignore"):
+        return np.rint(values / step)
+
+
+def trim_mantissa(values: np.ndarray, bits: np.ndarray | int) -> np.ndarray:
+    """Round float64 ``values`` to ``bits`` mantissa bits (per column when an array of shape
+    (n,) is given for values of shape (c, n)); the trailing zero bits compress to nothing.
+    The relative change of each value is at most 2^-bits."""
+    bits = np.broadcast_to(np.asarray(bits, dtype=np.int64), values.shape[-1:])
+    mantissa, exponent = np.frexp(values)
+    scale = np.ldexp(1.0, bits)[None, :] if values.ndim == 2 else np.ldexp(1.0, bits)
+    return np.ldexp(np.rint(mantissa * scale) / scale, exponent)
 
 
 def round_up(values: np.ndarray) -> np.ndarray:

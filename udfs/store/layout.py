@@ -31,6 +31,8 @@ COLUMN_ID = "_rf_column"
 ROW_ERR_MAX = "_rf_err_max"
 ROW_ERR_L2 = "_rf_err_l2"
 SCORE_PATTERN = "_rf_score_{}"
+BASIS_PATTERN = "_rf_basis_{}"   # a basis column stored quantized (integer codes x step)
+CODE_PATTERN = "_rf_q_{}"        # quantized residual codes of numeric column {position}
 
 # Rows per Parquet row group in row files: close to DuckDB's own default (122,880), so
 # row-range reads and DuckDB's parallel scans both find several groups per file.

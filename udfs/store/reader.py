@@ -69,7 +69,18 @@ class ArchiveReader:
         self.ledger_scale = cols.column("ledger_scale").to_numpy()
         self.basis_names = [b["name"] for b in m["basis"]]
         self.fill = np.array([b["fill"] for b in m["basis"]], dtype=np.float64)
-        self.is_basis = np.isin(self.numeric_columns, self.basis_names)
+        # where each basis entry is stored, and the step of its integer codes (NaN: values)
+        self.basis_stored = [b.get("stored_as", b["name"]) for b in m["basis"]]
+        self.basis_step = np.array([b.get("step", np.nan) for b in m["basis"]], dtype=np.float64)
+        exact_basis = [b["name"] for b in m["basis"] if "step" not in b]
+        self.is_basis = np.isin(self.numeric_columns, exact_basis)
+        width = len(self.numeric_columns)
+        self.tolerance = (cols.column("tolerance").fill_null(np.inf).to_numpy()
+                          if "tolerance" in cols.column_names else np.full(width, np.inf))
+        self.residual_step = (cols.column("residual_step").fill_null(np.nan).to_numpy()
+                              if "residual_step" in cols.column_names else np.full(width, np.nan))
+        types = {f["name"]: f["type"] for f in m["schema"]}
+        self.is_integer = np.array([types[n].startswith(("int", "uint")) for n in self.numeric_columns])
         anchors = pq.read_table(self.path / layout.ANCHORS)
         self.anchor_positions = anchors.column(layout.ROW_ID).to_numpy()
         self.anchor_lookup = {int(p): i for i, p in enumerate(self.anchor_positions)}
@@ -197,9 +208,24 @@ class ArchiveReader:
         if not self.basis_names:
             return np.zeros((rows.num_rows, 0))
         block = np.column_stack([
-            rows.column(n).cast(pa.float64()).fill_null(np.nan).to_numpy() for n in self.basis_names
+            rows.column(n).cast(pa.float64()).fill_null(np.nan).to_numpy() for n in self.basis_stored
         ])
+        coded = np.isfinite(self.basis_step)
+        if coded.any():
+            block[:, coded] = block[:, coded] * self.basis_step[coded][None, :]
         return arithmetic.fill_missing(block, self.fill)
+
+    def residual_codes(self, rows: pa.Table, col_idx: np.ndarray) -> np.ndarray | None:
+        """Quantized residual codes (b, q) for the requested columns (None if the archive has none)."""
+        steps = self.residual_step[col_idx]
+        if not np.isfinite(steps).any():
+            return None
+        codes = np.zeros((rows.num_rows, col_idx.size))
+        for t, j in enumerate(col_idx):
+            if np.isfinite(steps[t]):
+                codes[:, t] = rows.column(layout.CODE_PATTERN.format(int(j))).to_numpy(
+                    zero_copy_only=False).astype(np.float64)
+        return codes
 
     def rebuild(self, rows: Any = None, columns: Any = None, *, positions: np.ndarray | None = None) -> Rebuilt:
         """Rebuild ``rows`` x ``columns`` with bounds (see :class:`Rebuilt`)."""
@@ -211,10 +237,18 @@ class ArchiveReader:
         weights = self.weights[:, col_idx]
         offset = self.offset[col_idx]
         values = arithmetic.approximate(filled, weights, offset)
-        slack = arithmetic.slack(filled, weights, offset)
+        codes = self.residual_codes(table, col_idx)
+        residual_term = None
+        if codes is not None:
+            steps = self.residual_step[col_idx]
+            residual_term = codes * np.where(np.isfinite(steps), steps, 0.0)[None, :]
+            values = arithmetic.add_residual(values, codes, steps)
+        slack = arithmetic.slack(filled, weights, offset, residual_term)
         row_max = table.column(layout.ROW_ERR_MAX).to_numpy()
         by_row = arithmetic.round_up(row_max[:, None] * self.ledger_scale[col_idx][None, :])
         bounds = np.minimum(by_row, self.err_max_col[col_idx][None, :]) + slack
+        # the verify pass stored every cell whose error plus slack exceeded the tolerance
+        bounds = np.minimum(bounds, self.tolerance[col_idx][None, :])
         b, q = values.shape
         exact = np.zeros((b, q), bool)
         nulls = np.zeros((b, q), bool)
@@ -236,6 +270,11 @@ class ArchiveReader:
         # exact cells
         if self.cell_rows.size and b:
             self._apply_cells(pos, col_idx, values, nulls, exact)
+        # an integer column's true value is an integer: within 0.5 of it, rounding finds it
+        whole = self.is_integer[col_idx][None, :] & ~exact & ~nulls & (bounds < 0.5)
+        if whole.any():
+            values[whole] = np.rint(values[whole])
+            exact |= whole
         bounds[exact] = 0.0
         return Rebuilt(pos, names, values, bounds, exact, nulls, table)
 
