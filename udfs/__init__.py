@@ -14,8 +14,9 @@ from .version import __version__
 __all__ = ["register", "__version__"]
 
 
-def register(con, *, prefix: str = "rankfold"):
-    """Add rankfold's SQL functions to the DuckDB connection ``con`` (see ``rankfold.udfs.sql``)."""
+def register(con, *, prefix: str = "rankfold", **options):
+    """Add rankfold's SQL functions to the DuckDB connection ``con``; returns their names.
+    ``options`` go to ``rankfold.udfs.sql.register`` (e.g. ``log_path=`` for the rebuild log)."""
     from .sql.functions import register as _register
 
-    return _register(con, prefix=prefix)
+    return _register(con, prefix=prefix, **options)
