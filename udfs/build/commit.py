@@ -94,8 +94,10 @@ class ArchiveWriter:
         self._part_rows_written += table.num_rows
 
     def _choose_encodings(self, table: pa.Table) -> tuple[list[str], dict[str, str]]:
-        dictionary, encodings = [], {}
+        dictionary, encodings = [], {layout.ROW_ID: "DELTA_BINARY_PACKED"}  # consecutive ids
         for field in table.schema:
+            if field.name == layout.ROW_ID:
+                continue
             column = table.column(field.name).combine_chunks()
             if pa.types.is_floating(field.type) and _byte_stream_split_wins(column):
                 encodings[field.name] = "BYTE_STREAM_SPLIT"

@@ -418,8 +418,10 @@ def _coding(plan, mixing, profile, transform, width, build) -> Coding | None:
         weight_norm = np.sqrt(np.sum(mixing.weights**2, axis=0))
         finest = np.min(2.0 * plan.tolerance[finite] / np.maximum(weight_norm[finite], 1e-300))
         basis_step = np.full(c, 0.25 * finest / np.sqrt(c))
-    elif build.method == "cur" and plan.basis_step.size == c:
-        basis_step = plan.basis_step
+    elif build.method == "cur" and c and np.isfinite(plan.basis_step).any():
+        # steps follow the basis as built (sorted source positions), not the plan's order
+        tolerance = plan.tolerance[mixing.basis_columns]
+        basis_step = np.where(np.isfinite(tolerance), 2.0 * tolerance, np.nan)
     return Coding(plan.tolerance, plan.residual_step, basis_step,
                   float32_scores=build.method == "svd" and not np.isfinite(plan.tolerance).any())
 

@@ -1,0 +1,198 @@
+"""Error and size targets (rel_error, max_abs_error, target_bytes), checked against numpy.
+
+The guaranteed maximum error is a property: every finite cell of every archive written with
+``max_abs_error`` is rebuilt within the tolerance, whatever the table, dtype, method or coding.
+Integer columns with a tolerance below 0.5 come back exactly (rounding recovers an integer
+within 0.5: common practice). Sizes are compared with the per-column fixed-step quantization
+baseline (round to a step of 2 x tolerance, store integers, Parquet zstd: common practice).
+"""
+
+from __future__ import annotations
+
+import io
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+
+import rankfold
+from tests.test_bounds_property import _invent, _truth
+
+SETTINGS = settings(max_examples=40, deadline=None, derandomize=True,
+                    suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large])
+
+
+def _low_rank(m=3000, n=40, k=5, noise=0.01, seed=0, spikes=0) -> np.ndarray:
+    rng = np.random.default_rng(seed)  # invented data
+    x = rng.standard_normal((m, k)) @ rng.standard_normal((k, n))
+    x = x + noise * x.std() * rng.standard_normal((m, n))
+    x = x * np.logspace(-2, 3, n)[None, :] + rng.normal(0, 50, n)[None, :]
+    for _ in range(spikes):
+        i, j = rng.integers(m), rng.integers(n)
+        x[i, j] += 20 * x[:, j].std()
+    return x
+
+
+def _check_within(archive, truth, tolerance):
+    values, bounds = archive.to_numpy(), archive.cell_bounds()
+    finite = np.isfinite(truth)
+    with np.errstate(invalid="ignore"):  # inf - inf where the source held infinities
+        error = np.abs(truth - values)
+    tol = np.broadcast_to(tolerance, truth.shape)
+    assert np.all(error[finite] <= bounds[finite])
+    assert np.all(bounds[finite] <= tol[finite])
+    assert np.all(error[finite] <= tol[finite])
+    return error, bounds
+
+
+@st.composite
+def tolerance_cases(draw):
+    m = draw(st.integers(1, 50))
+    n = draw(st.integers(1, 10))
+    table = _invent(draw(st.integers(0, 2**32 - 1)), m, n,
+                    draw(st.sampled_from(["unit", "decades", "huge_mean"])), draw(st.booleans()))
+    truth, _ = _truth(table)
+    finite = np.isfinite(truth)
+    count = np.maximum(finite.sum(axis=0), 1)
+    mean = np.where(finite, truth, 0.0).sum(axis=0) / count
+    spread = np.sqrt((np.where(finite, truth - mean, 0.0) ** 2).sum(axis=0) / count)
+    spread = np.where(np.isfinite(spread) & (spread > 0), spread, 1.0)
+    relative = draw(st.sampled_from([1e-4, 1e-2, 0.3]))
+    per_column = draw(st.booleans())
+    if per_column:
+        tolerance = {name: float(relative * s) for name, s in zip(table.column_names, spread)}
+    else:
+        tolerance = float(relative * np.median(spread))
+    options = {"max_abs_error": tolerance,
+               "residual": draw(st.sampled_from(["auto", "quantized", "corrections"])),
+               "basis_precision": draw(st.sampled_from(["exact", "tolerance"])),
+               "method": draw(st.sampled_from(["cur", "svd"])),
+               "seed": draw(st.integers(0, 1000))}
+    if draw(st.booleans()):
+        options["batch_rows"] = draw(st.sampled_from([1, 7]))
+    return table, options
+
+
+@SETTINGS
+@given(case=tolerance_cases())
+def test_every_cell_within_the_tolerance(tmp_path_factory, case):
+    table, options = case
+    archive = rankfold.compress(table, tmp_path_factory.mktemp("t") / "a.rfa", **options)
+    truth, nulls = _truth(table)
+    tol = options["max_abs_error"]
+    tolerance = (np.array([tol[n] for n in table.column_names]) if isinstance(tol, dict)
+                 else np.full(truth.shape[1], tol))
+    _check_within(archive, truth, tolerance[None, :])
+    rebuilt = archive.rebuild()
+    for j, name in enumerate(table.column_names):
+        column = rebuilt.column(name)
+        assert column.type == table.schema.field(name).type
+        assert np.array_equal(column.is_null().to_numpy(zero_copy_only=False), nulls[:, j])
+        if pa.types.is_integer(column.type) and tolerance[j] < 0.5:
+            # integers with a tolerance below 0.5 come back exactly
+            assert column.equals(table.column(name))
+    assert archive.manifest["targets"]["max_abs_error"] is not None
+
+
+def test_integer_columns_are_lossless_below_one_half(tmp_path):
+    rng = np.random.default_rng(3)
+    base = rng.standard_normal((2000, 3)) @ rng.standard_normal((3, 12)) * 40
+    table = pa.table({f"n{j}": pa.array(np.rint(base[:, j]).astype(np.int32)) for j in range(12)})
+    archive = rankfold.compress(table, tmp_path / "i.rfa", max_abs_error=0.49)
+    assert archive.rebuild().equals(table)
+    truth, _ = _truth(table)
+    np.testing.assert_array_equal(archive.to_numpy(), truth)
+    assert np.all(archive.cell_bounds() == 0.0)
+
+
+def test_spiky_low_rank_table_meets_the_tolerance_and_stores_spikes(tmp_path):
+    x = _low_rank(spikes=30)
+    tol = 0.01 * x.std(axis=0)
+    names = [f"x{j}" for j in range(x.shape[1])]
+    archive = rankfold.compress(x, tmp_path / "s.rfa", max_abs_error=dict(zip(names, tol)))
+    _check_within(archive, x, tol[None, :])
+    assert archive.manifest["achieved"]["max_abs_error"] <= tol.max()
+
+
+def _quantized_baseline_bytes(x: np.ndarray, tol: np.ndarray) -> int:
+    codes = np.rint(x / (2 * tol[None, :])).astype(np.int32)
+    sink = io.BytesIO()
+    pq.write_table(pa.table({f"c{j}": codes[:, j] for j in range(x.shape[1])}), sink, compression="zstd")
+    return sink.tell()
+
+
+def test_iid_noise_falls_back_to_no_low_rank_part(tmp_path):
+    x = np.random.default_rng(11).standard_normal((50000, 30))  # no low-rank structure
+    tol = np.full(30, 0.01)
+    archive = rankfold.compress(x, tmp_path / "n.rfa", max_abs_error=0.01)
+    _check_within(archive, x, tol[None, :])
+    assert archive.manifest["method"]["n_columns"] == 0  # the low-rank part does not pay
+    size = sum(f["bytes"] for f in archive.manifest["files"])
+    assert size <= 1.05 * _quantized_baseline_bytes(x, tol)
+
+
+def test_low_rank_beats_per_column_quantization(tmp_path):
+    x = _low_rank(m=20000, n=60, k=6, noise=0.01)
+    tol = 0.01 * x.std(axis=0)
+    names = [f"x{j}" for j in range(x.shape[1])]
+    baseline = _quantized_baseline_bytes(x, tol)
+    for options in ({"method": "svd"}, {"basis_precision": "tolerance"}):
+        archive = rankfold.compress(x, tmp_path / f"{len(options)}{list(options)[0]}.rfa",
+                                    max_abs_error=dict(zip(names, tol)), **options)
+        _check_within(archive, x, tol[None, :])
+        size = sum(f["bytes"] for f in archive.manifest["files"])
+        assert size * 1.5 < baseline, (options, size, baseline)
+
+
+def _relative_error(archive, x: np.ndarray) -> tuple[float, np.ndarray]:
+    ledger = archive.column_ledger()
+    shift, scale = ledger.column("shift").to_numpy(), ledger.column("scale").to_numpy()
+    z = (x - shift) / scale
+    e = (x - archive.to_numpy()) / scale
+    return float(np.linalg.norm(e) / np.linalg.norm(z)), np.linalg.norm(e, axis=0) / np.linalg.norm(z, axis=0)
+
+
+@pytest.mark.parametrize("target", [0.05, 0.012])
+def test_rel_error_is_met_and_recorded(tmp_path, target):
+    x = _low_rank(noise=0.01)
+    archive = rankfold.compress(x, tmp_path / "r.rfa", rel_error=target)
+    whole, _ = _relative_error(archive, x)  # numpy.linalg.norm as the reference
+    assert whole <= target
+    assert archive.manifest["targets"]["rel_error"] == target
+    assert archive.manifest["achieved"]["relative_frobenius"] == pytest.approx(whole, rel=1e-6)
+
+
+def test_rel_error_per_column(tmp_path):
+    x = _low_rank(noise=0.02)
+    archive = rankfold.compress(x, tmp_path / "p.rfa", rel_error={"x3": 0.03, "x17": 0.05})
+    _, per_column = _relative_error(archive, x)
+    assert per_column[3] <= 0.03 and per_column[17] <= 0.05
+
+
+def test_target_bytes_is_met_or_refused(tmp_path):
+    x = _low_rank(m=5000, n=40)
+    archive = rankfold.compress(x, tmp_path / "b.rfa", target_bytes=400_000)
+    size = sum(f["bytes"] for f in archive.manifest["files"])
+    assert size <= 400_000
+    assert archive.manifest["method"]["kind"] in ("cur", "svd")
+    with pytest.raises(rankfold.InvalidInputError, match="target_bytes=1000 is below the smallest archive"):
+        rankfold.compress(x, tmp_path / "tiny.rfa", target_bytes=1000)
+    assert not (tmp_path / "tiny.rfa").exists()
+
+
+@pytest.mark.parametrize("options, message", [
+    ({"rel_error": 0.1, "rank": 3}, "either 'rank' or 'rel_error'"),
+    ({"target_bytes": 10**6, "max_abs_error": 0.1}, "'target_bytes' alone"),
+    ({"basis_precision": "tolerance"}, "needs max_abs_error"),
+    ({"max_abs_error": -1.0}, "'max_abs_error' option of compress must be a positive number"),
+    ({"max_abs_error": {"nope": 0.1}}, "names columns that are not numeric columns"),
+    ({"rel_error": 0.0}, "'rel_error' option of compress must be a positive number"),
+    ({"residual": "zip"}, "'residual' option of compress must be one of"),
+])
+def test_bad_targets_are_refused(tmp_path, options, message):
+    with pytest.raises(rankfold.InvalidInputError, match=message):
+        rankfold.compress(_low_rank(m=50, n=6), tmp_path / "bad.rfa", **options)
+    assert not (tmp_path / "bad.rfa").exists()
