@@ -22,6 +22,7 @@ from ..errors import (EmptySourceError, InvalidInputError, NoNumericColumnsError
 from ..factor import cur as _cur
 from ..factor.svd import gavish_donoho_rank
 from ..store import layout
+from ..store.aggregate import BlockSums
 from ..store.arithmetic import round_up, trim_mantissa
 from . import link as _link
 from .commit import ArchiveWriter, prepare_target
@@ -30,6 +31,7 @@ from .profile import ColumnProfile, Fingerprint, Transform, profile_block
 from .progress import Progress
 from .select import AnchorRows, anchor_pass, sketch_pass
 from .sources import Source, block_from_batch, open_source
+from .refit import KAPPA, OutlierScreen
 from .verify import Coding, VerifyResult, verify_pass
 from . import targets
 
@@ -355,36 +357,45 @@ def _write(src, target, opts, numeric, passthrough, rows, profile, fingerprint, 
     width = len(numeric)
     rng = np.random.default_rng(opts.seed)
     plan = build.coding_plan
+    refit = None
     if build.method == "svd":
         rank = build.n_columns
-        mixing = _link.mixing_for_scores(sketch.spectrum.right, rank, transform)
-        anchors = AnchorRows(np.zeros(0, np.int64), np.zeros((0, width)), np.zeros((0, width), bool))
         score_right = sketch.spectrum.right[:, :rank]
+        mixing = _link.mixing_for_scores(sketch.spectrum.right, rank, transform)
+        if opts.refits and rank:
+            screen = OutlierScreen(transform, mixing, sketch.r, None, rows, score_right)
+            cleaned = sketch_pass(lambda: blocks("refit"), screen, width)
+            refit = {"kappa": KAPPA, "cells_screened": screen.replaced,
+                     "rows_left_out": screen.rows_left_out}
+            score_right = cleaned.spectrum.right[:, :rank]
+            mixing = _link.mixing_for_scores(cleaned.spectrum.right, rank, transform)
+        anchors = AnchorRows(np.zeros(0, np.int64), np.zeros((0, width)), np.zeros((0, width), bool))
         basis_names = [layout.SCORE_PATTERN.format(k) for k in range(rank)]
     elif build.n_columns == 0:  # no low-rank part: offsets (the column means) and the residual
         mixing = _link.Mixing(np.zeros((0, width)), transform.shift.copy(), np.zeros(0), np.zeros(0, np.int64))
         anchors = AnchorRows(np.zeros(0, np.int64), np.zeros((0, width)), np.zeros((0, width), bool))
         score_right, basis_names = None, []
     else:
-        replace = opts.sample_with_replacement
-        rank = max(1, build.rank)
-        choice = _cur.choose_columns(opts.columns, sketch.r, sketch.spectrum, rank, build.n_columns,
-                                     rng, replace=replace)
-        anchors = anchor_pass(lambda: blocks("select"), transform, sketch, opts.rows, rank,
-                              build.n_rows, rng, replace=replace)
-        anchor_z = transform.apply(anchors.values)
-        columns, m_transformed = _cur.build_mixing(opts.link, choice, sketch.r, anchor_z)
-        mixing = _link.mixing_for_columns(columns, m_transformed, transform)
+        mixing, anchors, m_transformed = _fit_cur(opts, build, sketch, transform, transform,
+                                                  lambda: blocks("select"), rng)
+        if opts.refits:
+            screen = OutlierScreen(transform, mixing, sketch.r, m_transformed, rows)
+            cleaned = sketch_pass(lambda: blocks("refit"), screen, width)
+            refit = {"kappa": KAPPA, "cells_screened": screen.replaced,
+                     "rows_left_out": screen.rows_left_out}
+            mixing, anchors, _ = _fit_cur(opts, build, cleaned, screen, transform,
+                                          lambda: blocks("refit-select"), rng)
         score_right = None
-        basis_names = [numeric[k] for k in columns]
+        basis_names = [numeric[k] for k in mixing.basis_columns]
     coding = _coding(plan, mixing, profile, transform, width, build)
     if coding is not None and np.isfinite(coding.tolerance).any():
         mixing = _trim_factors(mixing, coding.tolerance, profile)
     writer = ArchiveWriter(target, opts.overwrite)
+    sums = BlockSums(width, mixing.weights.shape[0], mixing.fill)
     try:
         result = verify_pass(_stream(src, numeric, opts, "verify", passthrough, rows), numeric,
                              passthrough, mixing, anchors, transform, score_right, writer,
-                             ledger_scale(profile), coding)
+                             ledger_scale(profile), coding, block_sums=sums)
         if not result.fingerprint.matches(fingerprint):
             raise SourceChangedError(
                 f"The source {src.description} gave different rows in the profile and verify "
@@ -393,13 +404,28 @@ def _write(src, target, opts, numeric, passthrough, rows, profile, fingerprint, 
             )
         files = _write_small_tables(writer, src.schema, numeric, profile, transform, mixing,
                                     anchors, result, basis_names, coding)
+        files.append(sums.write(writer))
         manifest = _manifest(src, opts, numeric, passthrough, rows, build, sketch.spectrum,
                              profile, transform, mixing, anchors, result, basis_names,
                              writer.parts, coding)
+        manifest["refit"] = refit
         return _Written(writer, result, manifest, [p["name"] for p in writer.parts] + files)
     except BaseException:
         writer.abort()
         raise
+
+
+def _fit_cur(opts, build, sketch, screen, transform, select_blocks, rng):
+    """Basis columns, anchor rows and raw-unit mixing of one CUR fit. ``screen`` is the
+    transform used to read rows (the plain transform, or an OutlierScreen for a refit)."""
+    replace = opts.sample_with_replacement
+    rank = max(1, build.rank)
+    choice = _cur.choose_columns(opts.columns, sketch.r, sketch.spectrum, rank, build.n_columns,
+                                 rng, replace=replace)
+    anchors = anchor_pass(select_blocks, screen, sketch, opts.rows, rank, build.n_rows, rng,
+                          replace=replace)
+    columns, m_transformed = _cur.build_mixing(opts.link, choice, sketch.r, screen.apply(anchors.values))
+    return _link.mixing_for_columns(columns, m_transformed, transform), anchors, m_transformed
 
 
 def _coding(plan, mixing, profile, transform, width, build) -> Coding | None:
@@ -422,7 +448,15 @@ def _coding(plan, mixing, profile, transform, width, build) -> Coding | None:
         # steps follow the basis as built (sorted source positions), not the plan's order
         tolerance = plan.tolerance[mixing.basis_columns]
         basis_step = np.where(np.isfinite(tolerance), 2.0 * tolerance, np.nan)
-    return Coding(plan.tolerance, plan.residual_step, basis_step,
+    # residual steps follow the basis as built too: a column the plan kept as basis that is
+    # derived now (a refit may choose other columns) gets the residual coding of its tolerance
+    steps = plan.residual_step.copy()
+    if mixing.basis_columns is not None:
+        moved = np.setdiff1d(plan.basis, mixing.basis_columns)
+        if plan.residual != "corrections":
+            steps[moved] = 2.0 * plan.tolerance[moved]
+        steps[mixing.basis_columns] = np.nan
+    return Coding(plan.tolerance, steps, basis_step,
                   float32_scores=build.method == "svd" and not np.isfinite(plan.tolerance).any())
 
 

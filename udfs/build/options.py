@@ -50,6 +50,7 @@ class CompressOptions:
     target_bytes: int | None = None
     residual: str = "auto"
     basis_precision: str = "exact"
+    refit_outliers: bool | None = None
 
     @classmethod
     def from_call(cls, rank: Any, seed: Any, options: dict[str, Any]) -> "CompressOptions":
@@ -101,6 +102,10 @@ class CompressOptions:
         _choice("rows", self.rows, ROW_METHODS)
         _choice("link", self.link, LINKS)
         _choice("transform", self.transform, TRANSFORMS)
+        if self.refit_outliers is not None and not isinstance(self.refit_outliers, bool):
+            raise InvalidInputError(
+                f"The 'refit_outliers' option of compress must be True, False or None. Got {self.refit_outliers!r} instead."
+            )
         if self.replace is not None and not isinstance(self.replace, bool):
             raise InvalidInputError(
                 f"The 'replace' option of compress must be True, False or None. Got {self.replace!r} instead."
@@ -121,6 +126,11 @@ class CompressOptions:
                 "The 'textbook' link needs sampled columns (its 1/sqrt(s p) rescaling uses the "
                 "sampling probabilities); use columns='length_squared' or 'leverage' with it."
             )
+
+    @property
+    def refits(self) -> bool:
+        """Refit once without outliers: asked for, or by default with a max_abs_error target."""
+        return self.refit_outliers if self.refit_outliers is not None else self.max_abs_error is not None
 
     @property
     def has_targets(self) -> bool:

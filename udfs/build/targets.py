@@ -142,6 +142,8 @@ class Plan:
     tolerance: np.ndarray
     residual_step: np.ndarray
     basis_step: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    basis: np.ndarray = field(default_factory=lambda: np.zeros(0, np.int64))
+    residual: str = "auto"
     predicted_bytes: float = 0.0
     predicted_error: float = 0.0
     reason: str = ""
@@ -205,7 +207,8 @@ def plan_for_tolerance(
             anchors = 0.0
         total = float(cost.sum() + basis_cost.sum() + anchors + c * width * 8.0)
         plan = Plan(method, (c + 1) // 2 if method == "cur" else c, c, tolerance, step,
-                    basis_step, total, float(np.sqrt(np.sum((res[c]) ** 2))),
+                    basis_step, order[:c] if method == "cur" else np.zeros(0, np.int64), residual,
+                    total, float(np.sqrt(np.sum((res[c]) ** 2))),
                     "fewest predicted bytes at the tolerance")
         if best is None or plan.predicted_bytes < best.predicted_bytes:
             best = plan
@@ -249,6 +252,7 @@ def plan_for_bytes(*, budget: float, rows: int, width: int, res_cur: np.ndarray,
             error = float(np.sqrt(np.sum(res[c] ** 2)))
             if best is None or error < best.predicted_error:
                 best = Plan(method, (c + 1) // 2 if method == "cur" else c, c, none, nan,
-                            np.full(c, np.nan), size, error,
+                            np.full(c, np.nan), order[:c] if method == "cur" else np.zeros(0, np.int64),
+                            "auto", size, error,
                             "smallest predicted error within target_bytes")
     return best
