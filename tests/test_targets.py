@@ -196,3 +196,27 @@ def test_bad_targets_are_refused(tmp_path, options, message):
     with pytest.raises(rankfold.InvalidInputError, match=message):
         rankfold.compress(_low_rank(m=50, n=6), tmp_path / "bad.rfa", **options)
     assert not (tmp_path / "bad.rfa").exists()
+
+
+def test_refit_without_outliers_lowers_the_error_of_the_other_cells(tmp_path):
+    """Spikes pull a low-rank fit towards themselves; screening them (cells beyond 5 residual
+    RMS) and refitting once lowers the per-column error of every other cell (team measurement
+    on a spiky sensor panel: 2.9% -> 0.98%); the guarantee holds either way."""
+    rng = np.random.default_rng(5)  # invented data
+    x = rng.standard_normal((8000, 6)) @ rng.standard_normal((6, 60))
+    x = (x + 0.01 * x.std() * rng.standard_normal(x.shape)) * np.logspace(-3, 3, 60)[None, :]
+    for _ in range(150):
+        i, j = rng.integers(8000), rng.integers(60)
+        x[i, j] += 30 * x[:, j].std()
+    tol = 0.1 * x.std(axis=0)
+    names = [f"x{j}" for j in range(60)]
+    figures = {}
+    for refit in (False, True):
+        archive = rankfold.compress(x, tmp_path / f"{refit}.rfa", rank=6, refit_outliers=refit,
+                                    max_abs_error=dict(zip(names, tol)), residual="corrections")
+        _check_within(archive, x, tol[None, :])
+        figures[refit] = (archive.errors["mean_column_relative_rms"], archive.manifest["achieved"]["corrections"])
+        if refit:
+            assert archive.manifest["refit"]["cells_screened"] >= 100
+    assert figures[True][0] < 0.6 * figures[False][0]
+    assert figures[True][1] < figures[False][1]
