@@ -207,7 +207,7 @@ def _compress(src: Source, target: Path, opts: CompressOptions) -> Path:
                 )
             return written.commit(goal, attempt + 1)
         written.abort()
-        build = goal.next_build(build, width, rows)
+        build = goal.next_build(build, width, rows, last=attempt == _MAX_ATTEMPTS - 2)
     raise AssertionError("unreachable")
 
 
@@ -264,11 +264,15 @@ class _Goal:
                     return f"relative error {achieved:.4g} > {self.rel_error[0]:.4g}"
         return None
 
-    def next_build(self, build: _Build, width: int, rows: int) -> _Build:
+    def next_build(self, build: _Build, width: int, rows: int, *, last: bool) -> _Build:
+        """Shrink for a size target; grow for an error target (the last try keeps every
+        column, whose error is zero, so an error target is always met in the end)."""
         if self.target_bytes is not None:
             c = max(1, int(build.n_columns * 0.75))
             if c == build.n_columns:
                 c -= 1
+        elif last:
+            c = width
         else:
             c = min(width, max(build.n_columns + 1, int(np.ceil(build.n_columns * 1.3))))
         rank = (c + 1) // 2 if build.method == "cur" else c
