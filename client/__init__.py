@@ -20,8 +20,12 @@ from rankfold.udfs.errors import __all__ as _error_names
 from rankfold.udfs.version import __version__
 
 from .archive import Archive, Cell, Keys
+from .report import write_report
+from .sql_view import query
+from .verification import verify
 
-__all__ = ["compress", "open", "Archive", "Cell", "Keys", "__version__", *_error_names]
+__all__ = ["compress", "open", "query", "verify", "write_report", "Archive", "Cell", "Keys",
+           "__version__", *_error_names]
 
 
 def compress(source: Any, path: str | Path, *, rank: int | None = None, seed: int = 0,
