@@ -221,13 +221,15 @@ class _Goal:
     rel_error: np.ndarray | None
     rel_error_per_column: bool
     max_abs_error: np.ndarray | None
+    max_abs_error_per_column: bool
     target_bytes: int | None
 
     @classmethod
     def from_options(cls, opts: CompressOptions, names: list[str]) -> "_Goal":
-        rel = targets.per_column(opts.rel_error, names, "rel_error")
-        return cls(rel, isinstance(opts.rel_error, dict),
-                   targets.per_column(opts.max_abs_error, names, "max_abs_error"), opts.target_bytes)
+        return cls(targets.per_column(opts.rel_error, names, "rel_error"),
+                   isinstance(opts.rel_error, dict),
+                   targets.per_column(opts.max_abs_error, names, "max_abs_error"),
+                   isinstance(opts.max_abs_error, dict), opts.target_bytes)
 
     def recorded(self, names: list[str]) -> dict[str, Any]:
         def listed(values, per_column):
@@ -237,8 +239,7 @@ class _Goal:
                 return {n: float(v) for n, v in zip(names, values) if np.isfinite(v)}
             return float(values[0])
         return {"rel_error": listed(self.rel_error, self.rel_error_per_column),
-                "max_abs_error": listed(self.max_abs_error, len(set(self.max_abs_error.tolist())) > 1
-                                        if self.max_abs_error is not None else False),
+                "max_abs_error": listed(self.max_abs_error, self.max_abs_error_per_column),
                 "target_bytes": self.target_bytes}
 
     def verdict(self, written: "_Written", transform: Transform, sketch) -> str | None:
