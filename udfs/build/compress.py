@@ -392,7 +392,7 @@ def _write(src, target, opts, numeric, passthrough, rows, profile, fingerprint, 
                                           lambda: blocks("refit-select"), rng)
         score_right = None
         basis_names = [numeric[k] for k in mixing.basis_columns]
-    coding = _coding(plan, mixing, profile, transform, width, build)
+    coding = _coding(plan, mixing, build)
     if coding is not None and np.isfinite(coding.tolerance).any():
         mixing = _trim_factors(mixing, coding.tolerance, profile)
     writer = ArchiveWriter(target, opts.overwrite)
@@ -433,12 +433,9 @@ def _fit_cur(opts, build, sketch, screen, transform, select_blocks, rng):
     return _link.mixing_for_columns(columns, m_transformed, transform), anchors, m_transformed
 
 
-def _coding(plan, mixing, profile, transform, width, build) -> Coding | None:
+def _coding(plan, mixing, build) -> Coding | None:
     """The verify pass's coding for a plan (None: plain factors, no tolerance)."""
     if plan is None:
-        if build.method == "svd" and build.reason.startswith("smallest predicted error"):
-            return Coding(np.full(width, np.inf), np.full(width, np.nan),
-                          np.full(mixing.weights.shape[0], np.nan), float32_scores=True)
         return None
     c = mixing.weights.shape[0]
     basis_step = np.full(c, np.nan)
