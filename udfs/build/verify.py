@@ -176,6 +176,7 @@ def verify_pass(
     writer: ArchiveWriter,
     ledger_scale: np.ndarray,
     coding: Coding | None = None,
+    block_sums=None,
 ) -> VerifyResult:
     """Run the verify pass and write the row files (see the module docstring)."""
     width = len(names)
@@ -272,5 +273,7 @@ def verify_pass(
         columns[layout.ROW_ERR_MAX] = pa.array(arithmetic.round_up_compact(row_max, ledger_bits))
         columns[layout.ROW_ERR_L2] = pa.array(arithmetic.round_up_compact(row_l2, ledger_bits))
         writer.write_rows(pa.table(columns), first)
+        if block_sums is not None:  # per row-group sums for aggregates (store/aggregate.py)
+            block_sums.add(first, filled, codes, xhat, block, mask, approximated, row_max)
         rows += b
     return VerifyResult(ledger, cells, fingerprint, rows, corrections_count)

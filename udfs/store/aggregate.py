@@ -1,0 +1,651 @@
+"""Aggregates, covariance and correlation straight from the factors, with hard bounds.
+
+Every numeric column j is rebuilt as xhat_ij = offset_j + sum_t W[t, j] f_it + step_j q_ij
+(f: filled basis values, q: residual codes), then overridden exactly (exactly stored basis
+columns, anchor rows, cells.parquet). A sum over a row set S is therefore linear in per-set
+sums: |S| offset_j + W_j . (sum_S f) + step_j sum_S q_j, plus the exact correction of the
+overridden cells (true value minus xhat; minus xhat alone where the true value is NULL).
+Nothing is rebuilt row by row: one grouped SQL aggregate over the c basis columns (and the
+residual codes of the requested columns) and a c x n product answer every group and column.
+
+Per row-group sums are written at compress time (``blocks.parquet``, see :class:`BlockSums`),
+so an aggregate over all rows, or over a row range, reads no row file except the (at most two)
+row groups cut by the range's ends.
+
+Hard bound of a sum (design.md section 5), over the N_a approximated cells of column j in S:
+|sum e| <= min(ledger_scale_j * sum_S rowmax_i, N_a colmax_j, sqrt(N_a) err_l2_j), plus a
+floating-point term 4 gamma_{|S| + 2c + 16} M_j that covers the verify pass's own rounding of
+each xhat (Higham eq. 3.4-3.5, as in ``arithmetic.slack``) and every summation here, where M_j
+is the same sum taken over absolute values. A mean divides by the count of non-NULL cells.
+The estimate sqrt(N_a) * rms_j (rms_j = err_l2_j / sqrt(err_cells_j)) is labelled as such: it is
+what the error of a sum of N_a independent errors of that size would typically be, not a bound.
+"""
+
+from __future__ import annotations
+
+import math
+import re
+from dataclasses import dataclass
+from typing import Any
+
+import duckdb
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+from ..errors import InvalidInputError, UnknownColumnError
+from . import arithmetic, layout
+
+__all__ = ["BLOCKS", "BlockSums", "aggregate", "covariance", "correlation", "FUNCS",
+           "basis_sql", "rows_source_sql", "sql_literal", "quote_ident"]
+
+BLOCKS = "blocks.parquet"
+FUNCS = ("sum", "avg", "count")
+U = arithmetic.UNIT_ROUNDOFF
+
+
+def _gamma(n):
+    """gamma_n = n u / (1 - n u) (Higham), elementwise; inf once n u reaches 1/2."""
+    nu = np.asarray(n, dtype=np.float64) * U
+    with np.errstate(divide="ignore"):
+        out = np.where(nu < 0.5, nu / np.maximum(1.0 - nu, 0.5), np.inf)
+    return float(out) if out.ndim == 0 else out
+
+
+def _up(x):
+    return arithmetic.round_up(x)
+
+
+# -- written at compress time -----------------------------------------------------------------
+class BlockSums:
+    """Per row-group sums gathered by the verify pass (one record per Parquet row group of the
+    row files: each verify batch is cut at ``layout.ROW_GROUP_ROWS`` like the writer cuts it).
+
+    Per block: first_row, rows, rowmax_sum (sum of the stored row figures), and as lists:
+    f_sum, f_abs (c: sums of filled basis values and of their absolute values), d_sum (c: sums
+    of f - shift), gram, gram_abs (c*c, row-major: sums of (f - shift)(f - shift)^T and of its
+    absolute values), q_sum, q_abs, q_sq (n: residual codes), ov_cells, ov_nulls (n: cells
+    stored exactly and those of them that are NULL), ov_corr (n: sum over those cells of the
+    true value minus xhat, NULL cells counting -xhat), ov_abs (n: sum of |x| + |xhat| there),
+    ov_sq (n: sum of (x - xhat)^2 over the non-NULL ones).
+    """
+
+    def __init__(self, width: int, basis: int, shift: np.ndarray):
+        self.width, self.basis = width, basis
+        self.shift = np.asarray(shift, dtype=np.float64)
+        self.records: list[dict[str, Any]] = []
+
+    def add(self, first: int, filled: np.ndarray, codes: np.ndarray | None, xhat: np.ndarray,
+            block: np.ndarray, mask: np.ndarray | None, approximated: np.ndarray,
+            row_max: np.ndarray) -> None:
+        step = layout.ROW_GROUP_ROWS
+        for lo in range(0, block.shape[0], step):
+            hi = min(lo + step, block.shape[0])
+            self._add(first + lo, filled[lo:hi], None if codes is None else codes[lo:hi],
+                      xhat[lo:hi], block[lo:hi], None if mask is None else mask[lo:hi],
+                      approximated[lo:hi], row_max[lo:hi])
+
+    def _add(self, first, filled, codes, xhat, block, mask, approximated, row_max) -> None:
+        b, n = block.shape
+        d = filled - self.shift[None, :]
+        nulls = mask if mask is not None else np.zeros((b, n), bool)
+        over = ~approximated
+        with np.errstate(invalid="ignore", over="ignore"):
+            delta = block - xhat
+            corr = np.where(over & ~nulls, delta, 0.0).sum(axis=0) - np.where(over & nulls, xhat, 0.0).sum(axis=0)
+            mag = np.where(over, np.abs(np.where(nulls, 0.0, block)) + np.abs(xhat), 0.0)
+            ov_abs = np.where(np.isfinite(mag), mag, 0.0).sum(axis=0)
+            ov_sq = np.where(over & ~nulls, delta * delta, 0.0).sum(axis=0)
+        if codes is None:
+            q_sum = q_abs = q_sq = np.zeros(n)
+        else:
+            q_sum, q_abs, q_sq = codes.sum(axis=0), np.abs(codes).sum(axis=0), (codes * codes).sum(axis=0)
+        self.records.append({
+            "first_row": first, "rows": b,
+            "rowmax_sum": float(arithmetic.round_up(row_max).sum()),
+            "f_sum": filled.sum(axis=0), "f_abs": np.abs(filled).sum(axis=0), "d_sum": d.sum(axis=0),
+            "gram": (d.T @ d).ravel(), "gram_abs": (np.abs(d).T @ np.abs(d)).ravel(),
+            "q_sum": q_sum, "q_abs": q_abs, "q_sq": q_sq,
+            "ov_cells": over.sum(axis=0), "ov_nulls": (over & nulls).sum(axis=0),
+            "ov_corr": corr, "ov_abs": ov_abs, "ov_sq": ov_sq,
+        })
+
+    def table(self) -> pa.Table:
+        lists = ["f_sum", "f_abs", "d_sum", "gram", "gram_abs", "q_sum", "q_abs", "q_sq",
+                 "ov_corr", "ov_abs", "ov_sq"]
+        columns: dict[str, Any] = {
+            "first_row": pa.array([r["first_row"] for r in self.records], pa.int64()),
+            "rows": pa.array([r["rows"] for r in self.records], pa.int64()),
+            "rowmax_sum": pa.array([r["rowmax_sum"] for r in self.records], pa.float64()),
+        }
+        for name in lists:
+            columns[name] = pa.array([np.asarray(r[name], np.float64) for r in self.records],
+                                     pa.list_(pa.float64()))
+        for name in ("ov_cells", "ov_nulls"):
+            columns[name] = pa.array([np.asarray(r[name], np.int64) for r in self.records],
+                                     pa.list_(pa.int64()))
+        return pa.table(columns)
+
+    def write(self, writer) -> str:
+        """Write ``blocks.parquet`` with ``writer`` (an ArchiveWriter); returns the file name."""
+        writer.write_table(BLOCKS, self.table())
+        return BLOCKS
+
+
+@dataclass
+class _Blocks:
+    first: np.ndarray
+    rows: np.ndarray
+    table: pa.Table
+
+    def stack(self, name: str, sel: np.ndarray) -> np.ndarray:
+        column = self.table.column(name).combine_chunks().take(pa.array(np.flatnonzero(sel)))
+        if len(column) == 0:
+            return np.zeros((0, 0))
+        return np.asarray(column.values.to_numpy(zero_copy_only=False), np.float64).reshape(len(column), -1)
+
+
+def _blocks(reader) -> _Blocks | None:
+    cached = getattr(reader, "_rf_blocks", None)
+    if cached is not None:
+        return cached or None
+    names = {f["name"] for f in reader.manifest.get("files", [])}
+    if BLOCKS not in names:
+        reader._rf_blocks = False  # archives written before blocks.parquet: scan instead
+        return None
+    table = pq.read_table(reader.path / BLOCKS)
+    blocks = _Blocks(table.column("first_row").to_numpy(), table.column("rows").to_numpy(), table)
+    reader._rf_blocks = blocks
+    return blocks
+
+
+# -- SQL pieces shared with the scan ----------------------------------------------------------
+def quote_ident(name: str) -> str:
+    return '"' + name.replace('"', '""') + '"'
+
+
+def sql_literal(value: Any) -> str:
+    """A SQL literal that DuckDB reads back as the same value (floats as DOUBLE, exactly)."""
+    if value is None:
+        return "NULL"
+    if isinstance(value, (bool, np.bool_)):
+        return "true" if value else "false"
+    if isinstance(value, (int, np.integer)):
+        return str(int(value))
+    if isinstance(value, (float, np.floating)):
+        v = float(value)
+        if math.isnan(v):
+            return "'nan'::DOUBLE"
+        if math.isinf(v):
+            return "'inf'::DOUBLE" if v > 0 else "'-inf'::DOUBLE"
+        return f"{v:.17e}::DOUBLE"
+    return "'" + str(value).replace("'", "''") + "'"
+
+
+def rows_source_sql(reader) -> str:
+    files = ", ".join(sql_literal(str((reader.path / p[2]).resolve())) for p in reader.parts)
+    return f"read_parquet([{files}])"
+
+
+def basis_sql(reader, t: int) -> str:
+    """SQL of the filled value of basis entry t (code * step where stored as codes; the fill
+    where NULL or not finite), as DOUBLE: the same value ``ArchiveReader.basis_block`` gives."""
+    column = quote_ident(reader.basis_stored[t])
+    fill = sql_literal(float(reader.fill[t]))
+    step = reader.basis_step[t]
+    if np.isfinite(step):
+        value = f"(CAST({column} AS DOUBLE) * {sql_literal(float(step))})"
+    else:
+        value = f"CAST({column} AS DOUBLE)"
+    return f"(CASE WHEN isfinite({value}) THEN {value} ELSE {fill} END)"
+
+
+# -- the partial sums of one row set -----------------------------------------------------------
+@dataclass
+class _Partial:
+    """Sums over a row set for q requested columns (arrays per group: shape (g,) or (g, .))."""
+
+    n: np.ndarray          # (g,) rows
+    rowmax: np.ndarray     # (g,) sum of row figures
+    f_sum: np.ndarray      # (g, c)
+    f_abs: np.ndarray      # (g, c)
+    q_sum: np.ndarray      # (g, q)
+    q_abs: np.ndarray      # (g, q)
+    corr: np.ndarray       # (g, q) exact correction of overridden cells
+    ov_abs: np.ndarray     # (g, q)
+    ov_cells: np.ndarray   # (g, q)
+    ov_nulls: np.ndarray   # (g, q)
+
+    @classmethod
+    def zeros(cls, g: int, c: int, q: int) -> "_Partial":
+        z = lambda *s: np.zeros(s)  # noqa: E731
+        return cls(z(g), z(g), z(g, c), z(g, c), z(g, q), z(g, q), z(g, q), z(g, q), z(g, q), z(g, q))
+
+    def __iadd__(self, other: "_Partial") -> "_Partial":
+        for name in self.__dataclass_fields__:
+            setattr(self, name, getattr(self, name) + getattr(other, name))
+        return self
+
+
+def _check_func(func: Any) -> str:
+    if not isinstance(func, str) or func.lower() not in FUNCS:
+        raise InvalidInputError(
+            f"func must be one of {list(FUNCS)}; got {func!r}. Aggregates from the factors are "
+            "linear: other functions need the rebuilt rows (rankfold_scan in SQL).")
+    return func.lower()
+
+
+def _check_by(reader, by: Any) -> list[str]:
+    if by is None:
+        return []
+    names = [by] if isinstance(by, str) else list(by) if isinstance(by, (list, tuple)) else None
+    if names is None or not all(isinstance(n, str) for n in names):
+        raise InvalidInputError(f"by must be a key column name or a list of names; got {by!r}.")
+    exact = list(reader.manifest.get("exact_columns", []))
+    for name in names:
+        if name not in exact:
+            raise UnknownColumnError(
+                f"The archive {reader.path} has no key (exact) column {name!r} to group by; its "
+                f"key columns are {exact}. Numeric columns are approximated and cannot be group keys.")
+    return names
+
+
+_FORBIDDEN = re.compile(r";|--|/\*")
+
+
+def check_where(reader, con, where: Any) -> str | None:
+    if where is None:
+        return None
+    if not isinstance(where, str) or not where.strip() or _FORBIDDEN.search(where):
+        raise InvalidInputError(
+            f"where must be one SQL predicate on key columns, such as \"site = 'A'\", without "
+            f"';' or comments; got {where!r}.")
+    allowed = set(reader.manifest.get("exact_columns", [])) | {layout.ROW_ID}
+    # bind the predicate against the key columns alone: a numeric column in it fails here
+    keys = ", ".join(quote_ident(n) for n in sorted(allowed))
+    try:
+        con.execute(f"DESCRIBE SELECT * FROM (SELECT {keys} FROM {rows_source_sql(reader)}) "
+                    f"WHERE {where}").fetchall()
+    except duckdb.Error as exc:
+        first = str(exc).splitlines()[0]
+        raise InvalidInputError(
+            f"where {where!r} is not a predicate on the key columns {sorted(allowed)} of the "
+            f"archive {reader.path} ({first}). Numeric columns are approximated: filter on key "
+            "columns, or filter rankfold_scan's rebuilt rows instead.") from None
+    return where
+
+
+def _check_rows(reader, rows: Any) -> tuple[int, int] | None:
+    if rows is None:
+        return None
+    m = reader.rows_count
+    if isinstance(rows, range):
+        rows = slice(rows.start, rows.stop, rows.step)
+    if isinstance(rows, slice):
+        start, stop, step = rows.indices(m)
+        if step != 1:
+            raise InvalidInputError(f"rows must be a contiguous range (step 1); got {rows!r}.")
+        return start, max(start, stop)
+    if isinstance(rows, tuple) and len(rows) == 2 and all(isinstance(v, (int, np.integer)) for v in rows):
+        return _check_rows(reader, slice(int(rows[0]), int(rows[1])))
+    raise InvalidInputError(
+        f"rows must be a slice or a (start, stop) pair of row positions; got {rows!r}. For any "
+        "other row set, use where= with a predicate on key columns.")
+
+
+def _connection(con):
+    return con if con is not None else duckdb.connect()
+
+
+def _derived_overrides(reader, col_idx: np.ndarray, derived: np.ndarray) -> pa.Table | None:
+    """Long table (_rf_row, _rf_q (slot), value) of overridden cells of derived requested columns."""
+    rows, slots, values, nulls = [], [], [], []
+    derived_slots = np.flatnonzero(derived)
+    if derived_slots.size == 0:
+        return None
+    if reader.anchor_positions.size:
+        a = reader.anchor_positions.size
+        for s in derived_slots:
+            j = col_idx[s]
+            rows.append(reader.anchor_positions.astype(np.int64))
+            slots.append(np.full(a, s, np.int64))
+            values.append(reader.anchor_values[:, j])
+            nulls.append(reader.anchor_nulls[:, j])
+    if reader.cell_rows.size:
+        slot_of = np.full(len(reader.numeric_columns), -1, np.int64)
+        slot_of[col_idx[derived_slots]] = derived_slots
+        hit = slot_of[reader.cell_cols] >= 0
+        if hit.any():
+            rows.append(reader.cell_rows[hit].astype(np.int64))
+            slots.append(slot_of[reader.cell_cols[hit]])
+            values.append(reader.cell_values[hit])
+            nulls.append(reader.cell_nulls[hit])
+    if not rows:
+        return None
+    return pa.table({
+        layout.ROW_ID: pa.array(np.concatenate(rows)),
+        "_rf_slot": pa.array(np.concatenate(slots)),
+        "_rf_value": pa.array(np.concatenate(values), pa.float64(), mask=np.concatenate(nulls)),
+    })
+
+
+_REGISTERED = 0
+
+
+def _scan_partials(reader, con, names, col_idx, by, where, row_range):
+    """Grouped sums over the row files: (group key table, _Partial). One scan for the basis
+    sums, one join for the overridden cells of derived columns."""
+    global _REGISTERED
+    c = len(reader.basis_names)
+    q = len(names)
+    source = rows_source_sql(reader)
+    conds = []
+    if where:
+        conds.append(f"({where})")
+    if row_range is not None:
+        conds.append(f"{layout.ROW_ID} >= {row_range[0]} AND {layout.ROW_ID} < {row_range[1]}")
+    cond = (" WHERE " + " AND ".join(conds)) if conds else ""
+    group = ", ".join(quote_ident(b) for b in by)
+    steps = reader.residual_step[col_idx]
+    is_basis = reader.is_basis[col_idx]
+    coded = np.isfinite(steps) & ~is_basis
+    f = [basis_sql(reader, t) for t in range(c)]
+    items = ["count(*) AS __n", f"sum({layout.ROW_ERR_MAX}) AS __rowmax"]
+    items += [f"sum({e}) AS __f{t}" for t, e in enumerate(f)]
+    items += [f"sum(abs({e})) AS __a{t}" for t, e in enumerate(f)]
+    basis_slot = {reader.basis_names[t]: t for t in range(c)}
+    for s in range(q):
+        if coded[s]:
+            code = quote_ident(layout.CODE_PATTERN.format(int(col_idx[s])))
+            items += [f"sum({code})::DOUBLE AS __q{s}", f"sum(abs({code}))::DOUBLE AS __qa{s}"]
+        if is_basis[s]:
+            col = f"CAST({quote_ident(names[s])} AS DOUBLE)"
+            items += [f"sum({col}) AS __bs{s}", f"count({col}) AS __bc{s}", f"sum(abs({col})) AS __ba{s}"]
+    select = (f"{group}, " if by else "") + ", ".join(items)
+    sql = f"SELECT {select} FROM {source}{cond}" + (f" GROUP BY {group} ORDER BY {group}" if by else "")
+    main = con.sql(sql).to_arrow_table()
+    g = main.num_rows
+    if not by and g == 1 and main.column("__n")[0].as_py() == 0:
+        pass
+    num = lambda name: main.column(name).to_numpy(zero_copy_only=False).astype(np.float64)  # noqa: E731
+    part = _Partial.zeros(g, c, q)
+    if g == 0:
+        return main.select(by), part
+    part.n = num("__n")
+    part.rowmax = np.nan_to_num(num("__rowmax"))
+    if c:
+        part.f_sum = np.nan_to_num(np.column_stack([num(f"__f{t}") for t in range(c)]))
+        part.f_abs = np.nan_to_num(np.column_stack([num(f"__a{t}") for t in range(c)]))
+    for s in range(q):
+        if coded[s]:
+            part.q_sum[:, s] = np.nan_to_num(num(f"__q{s}"))
+            part.q_abs[:, s] = np.nan_to_num(num(f"__qa{s}"))
+        if is_basis[s]:
+            t = basis_slot[names[s]]
+            values = main.column(f"__bs{s}")
+            total = values.fill_null(0.0).to_numpy(zero_copy_only=False).astype(np.float64)
+            part.corr[:, s] = total - part.f_sum[:, t]
+            part.ov_abs[:, s] = np.nan_to_num(num(f"__ba{s}")) + part.f_abs[:, t]
+            part.ov_cells[:, s] = part.n
+            part.ov_nulls[:, s] = part.n - num(f"__bc{s}")
+    overrides = _derived_overrides(reader, col_idx, ~is_basis)
+    if overrides is not None and overrides.num_rows:
+        _REGISTERED += 1
+        view = f"__rankfold_overrides_{_REGISTERED}"
+        con.register(view, overrides)
+        try:
+            code_case = " ".join(
+                f"WHEN {s} THEN r.{quote_ident(layout.CODE_PATTERN.format(int(col_idx[s])))}"
+                for s in range(q) if coded[s])
+            code_expr = f"CAST(CASE o._rf_slot {code_case} ELSE 0 END AS DOUBLE)" if code_case else "0.0"
+            inner = [layout.ROW_ID] + [quote_ident(b) for b in by]
+            inner += [f"{e} AS __f{t}" for t, e in enumerate(f)]
+            inner += [quote_ident(layout.CODE_PATTERN.format(int(col_idx[s]))) for s in range(q) if coded[s]]
+            keys = ", ".join(f"r.{quote_ident(b)}" for b in by)
+            items = ["o._rf_slot AS __slot", "count(*) AS __n", "count(o._rf_value) AS __nn",
+                     "sum(o._rf_value) AS __v", "sum(abs(o._rf_value)) AS __va",
+                     f"sum({code_expr}) AS __q", f"sum(abs({code_expr})) AS __qa"]
+            items += [f"sum(r.__f{t}) AS __f{t}" for t in range(c)]
+            items += [f"sum(abs(r.__f{t})) AS __a{t}" for t in range(c)]
+            sql = (f"SELECT {(keys + ', ') if by else ''}{', '.join(items)} FROM {view} o JOIN "
+                   f"(SELECT {', '.join(inner)} FROM {source}{cond}) r ON o.{layout.ROW_ID} = r.{layout.ROW_ID} "
+                   f"GROUP BY ALL")
+            ov = con.sql(sql).to_arrow_table()
+        finally:
+            con.unregister(view)
+        if ov.num_rows:
+            gi = _group_index(main, ov, by)
+            si = ov.column("__slot").to_numpy().astype(np.int64)
+            onum = lambda name: ov.column(name).to_numpy(zero_copy_only=False).astype(np.float64)  # noqa: E731
+            n_ov = onum("__n")
+            fs = np.column_stack([onum(f"__f{t}") for t in range(c)]) if c else np.zeros((ov.num_rows, 0))
+            fa = np.column_stack([onum(f"__a{t}") for t in range(c)]) if c else np.zeros((ov.num_rows, 0))
+            w = reader.weights[:, col_idx[si]]  # (c, k)
+            st = np.where(np.isfinite(steps[si]), steps[si], 0.0)
+            xhat_sum = n_ov * reader.offset[col_idx[si]] + np.einsum("kc,ck->k", fs, w) + st * onum("__q")
+            value_sum = ov.column("__v").fill_null(0.0).to_numpy(zero_copy_only=False).astype(np.float64)
+            mag = (n_ov * np.abs(reader.offset[col_idx[si]]) + np.einsum("kc,ck->k", fa, np.abs(w))
+                   + st * onum("__qa") + np.nan_to_num(onum("__va"), nan=0.0))
+            np.add.at(part.corr, (gi, si), value_sum - xhat_sum)
+            np.add.at(part.ov_abs, (gi, si), np.where(np.isfinite(mag), mag, 0.0))
+            np.add.at(part.ov_cells, (gi, si), n_ov)
+            np.add.at(part.ov_nulls, (gi, si), n_ov - onum("__nn"))
+    return main.select(by), part
+
+
+def _group_index(main: pa.Table, ov: pa.Table, by: list[str]) -> np.ndarray:
+    if not by:
+        return np.zeros(ov.num_rows, np.int64)
+    lookup = {k: i for i, k in enumerate(zip(*[main.column(b).to_pylist() for b in by]))}
+    return np.array([lookup[k] for k in zip(*[ov.column(b).to_pylist() for b in by])], np.int64)
+
+
+def _block_partials(reader, blocks: _Blocks, col_idx, sel) -> _Partial:
+    c = len(reader.basis_names)
+    q = col_idx.size
+    part = _Partial.zeros(1, c, q)
+    if not sel.any():
+        return part
+    part.n[0] = blocks.rows[sel].sum()
+    part.rowmax[0] = np.asarray(blocks.table.column("rowmax_sum").to_numpy())[sel].sum()
+    if c:
+        part.f_sum[0] = blocks.stack("f_sum", sel).sum(axis=0)
+        part.f_abs[0] = blocks.stack("f_abs", sel).sum(axis=0)
+    for name, target in (("q_sum", "q_sum"), ("q_abs", "q_abs"), ("ov_corr", "corr"),
+                         ("ov_abs", "ov_abs"), ("ov_cells", "ov_cells"), ("ov_nulls", "ov_nulls")):
+        getattr(part, target)[0] = blocks.stack(name, sel)[:, col_idx].sum(axis=0)
+    return part
+
+
+def _partials(reader, con, names, col_idx, by, where, row_range):
+    """(group keys, _Partial): from blocks.parquet when there is no grouping and no predicate
+    (row-range ends scanned), else from a scan of the row files."""
+    blocks = _blocks(reader) if not by and where is None else None
+    if blocks is None:
+        return _scan_partials(reader, con, names, col_idx, by, where, row_range)
+    lo, hi = row_range if row_range is not None else (0, reader.rows_count)
+    ends = blocks.first + blocks.rows
+    inside = (blocks.first >= lo) & (ends <= hi)
+    part = _block_partials(reader, blocks, col_idx, inside)
+    for cut in np.flatnonzero(~inside & (blocks.first < hi) & (ends > lo)):
+        edge = (max(lo, int(blocks.first[cut])), min(hi, int(ends[cut])))
+        _, extra = _scan_partials(reader, con, names, col_idx, [], None, edge)
+        part += extra
+    return pa.table({}), part
+
+
+def aggregate(reader, columns: Any, func: str = "avg", by: Any = None, where: str | None = None,
+              *, rows: Any = None, estimates: bool = False, con=None) -> pa.Table:
+    """sum / avg / count of numeric ``columns`` per group of ``by`` (key columns) over the rows
+    that satisfy ``where`` (a SQL predicate on key columns) and lie in ``rows`` (a slice of
+    positions), from the factors. Returns one row per group: the ``by`` columns, then per column
+    its value and ``<column>_bound`` (hard bound on |true - value|; 0 for counts), and with
+    ``estimates=True`` also ``<column>_estimate`` (a typical error, not a bound)."""
+    func = _check_func(func)
+    if columns is None:
+        raise InvalidInputError("aggregate() needs the numeric columns to aggregate, e.g. ['x1', 'x2'].")
+    names = reader.resolve_columns(columns)
+    if not names:
+        raise InvalidInputError("aggregate() needs at least one numeric column.")
+    by_names = _check_by(reader, by)
+    own = con is None
+    con = _connection(con)
+    try:
+        where = check_where(reader, con, where)
+        row_range = _check_rows(reader, rows)
+        col_idx = np.array([reader.column_index[n] for n in names], np.int64)
+        keys, part = _partials(reader, con, names, col_idx, by_names, where, row_range)
+    finally:
+        if own:
+            con.close()
+    return _finish(reader, names, col_idx, func, keys, part, estimates, by_names)
+
+
+def _finish(reader, names, col_idx, func, keys: pa.Table, part: _Partial, estimates, by) -> pa.Table:
+    c = len(reader.basis_names)
+    w = reader.weights[:, col_idx]
+    offset = reader.offset[col_idx]
+    steps = np.where(np.isfinite(reader.residual_step[col_idx]), reader.residual_step[col_idx], 0.0)
+    n = part.n[:, None]
+    with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
+        total = n * offset[None, :] + part.f_sum @ w + steps[None, :] * part.q_sum + part.corr
+        magnitude = (n * np.abs(offset)[None, :] + part.f_abs @ np.abs(w)
+                     + steps[None, :] * part.q_abs + part.ov_abs)
+        count = n - part.ov_nulls
+        approx = np.maximum(n - part.ov_cells, 0.0)
+        cols = reader.columns_table
+        err_l2 = cols.column("err_l2").to_numpy()[col_idx]
+        err_cells = cols.column("err_cells").to_numpy()[col_idx].astype(np.float64)
+        colmax = reader.err_max_col[col_idx]
+        scale = reader.ledger_scale[col_idx]
+        rows_term = _up(scale[None, :] * _up(part.rowmax[:, None] * (1.0 + _gamma(n.max() + 2 if n.size else 2))))
+        ledger = np.minimum(np.minimum(rows_term, _up(approx * colmax[None, :])),
+                            _up(np.sqrt(approx) * err_l2[None, :] * (1 + 4 * U)))
+        ledger = np.where(approx > 0, ledger, 0.0)
+        fp = _up(4.0 * _gamma(n + 2 * c + 16) * magnitude)
+        bound = _up(ledger + fp)
+        rms = np.where(err_cells > 0, err_l2 / np.sqrt(np.maximum(err_cells, 1.0)), 0.0)
+        estimate = np.minimum(np.sqrt(approx) * rms[None, :] + fp, bound)
+        if func == "sum":
+            value = np.where(count > 0, total, np.nan)
+            null = count <= 0
+        elif func == "avg":
+            value = total / np.where(count > 0, count, 1.0)
+            bound = _up(bound / np.where(count > 0, count, 1.0) * (1 + 4 * U) + 2 * U * np.abs(value))
+            estimate = estimate / np.where(count > 0, count, 1.0)
+            null = count <= 0
+        else:
+            value, bound, estimate = count, np.zeros_like(count), np.zeros_like(count)
+            null = np.zeros_like(count, bool)
+    bound = np.where(null, 0.0, bound)
+    estimate = np.where(null, 0.0, estimate)
+    arrays, out_names = [keys.column(b) for b in by], list(by)
+    for s, name in enumerate(names):
+        if func == "count":
+            arrays.append(pa.array(value[:, s].astype(np.int64), pa.int64()))
+        else:
+            arrays.append(pa.array(value[:, s], pa.float64(), mask=null[:, s]))
+        arrays.append(pa.array(bound[:, s], pa.float64()))
+        out_names += [name, f"{name}_bound"]
+        if estimates:
+            arrays.append(pa.array(estimate[:, s], pa.float64()))
+            out_names.append(f"{name}_estimate")
+    table = pa.table(arrays, names=out_names)
+    return table.replace_schema_metadata({
+        "rankfold.func": func,
+        "rankfold.bound": "hard bound on |true - value| from the error ledger, as stored",
+        "rankfold.estimate": "estimate, not a bound: sqrt(cells) * rms error of the column",
+    })
+
+
+# -- covariance and correlation --------------------------------------------------------------
+def _cov_columns(reader, columns: Any) -> tuple[list[str], np.ndarray]:
+    names = reader.resolve_columns(columns)
+    if not names:
+        raise InvalidInputError("covariance() needs at least one numeric column.")
+    col_idx = np.array([reader.column_index[n] for n in names], np.int64)
+    cols = reader.columns_table
+    counts = {k: cols.column(k).to_numpy()[col_idx] for k in ("nulls", "nans", "infinities")
+              if k in cols.column_names}
+    for s, name in enumerate(names):
+        bad = {k: int(v[s]) for k, v in counts.items() if v[s] > 0}
+        if bad:
+            raise InvalidInputError(
+                f"Covariance from the factors needs columns without NULL, NaN or infinite "
+                f"values; the column {name!r} of {reader.path} has {bad}. Leave it out (columns=[...]), "
+                "or compute it over rebuilt rows (rankfold_scan) with covar_samp, which skips NULLs.")
+    return names, col_idx
+
+
+def covariance(reader, columns: Any = None) -> tuple[list[str], np.ndarray, np.ndarray]:
+    names, cov, bound, _, _ = _covariance(reader, columns)
+    return names, cov, bound
+
+
+def _covariance(reader, columns: Any = None):
+    """(names, C, B): the sample covariance (divisor rows - 1) of the chosen numeric columns as
+    rebuilt from the Gram matrix of the basis values, and B, a hard bound on |true C - C|
+    elementwise. With x = xhat + e (e: everything the basis part misses, i.e. the ledger's
+    residual, the quantized residual and the overridden cells' differences), centred vectors
+    satisfy |cov(x_j, x_l) - cov(xhat_j, xhat_l)| <= (s_j d_l + d_j s_l + d_j d_l) / (m - 1)
+    (Cauchy-Schwarz), s_j = ||P xhat_j||, d_j >= ||P e_j|| (P: centring, a projection)."""
+    names, col_idx = _cov_columns(reader, columns)
+    blocks = _blocks(reader)
+    if blocks is None:
+        raise InvalidInputError(
+            f"The archive {reader.path} was written before per row-group sums (blocks.parquet) "
+            "existed; compress it again to get covariances from the factors.")
+    m = float(reader.rows_count)
+    if m < 2:
+        raise InvalidInputError(f"A sample covariance needs at least 2 rows; {reader.path} has {int(m)}.")
+    c = len(reader.basis_names)
+    every = np.ones(blocks.first.size, bool)
+    w = reader.weights[:, col_idx]
+    if c:
+        gram = blocks.stack("gram", every).sum(axis=0).reshape(c, c)
+        gram_abs = blocks.stack("gram_abs", every).sum(axis=0).reshape(c, c)
+        d = blocks.stack("d_sum", every).sum(axis=0)
+        cov_f = (gram - np.outer(d, d) / m) / (m - 1)
+        cov = w.T @ cov_f @ w
+        mag = np.abs(w).T @ ((gram_abs + np.outer(np.abs(d), np.abs(d)) / m) / (m - 1)) @ np.abs(w)
+    else:
+        cov = np.zeros((col_idx.size, col_idx.size))
+        mag = np.zeros_like(cov)
+    fp = _up(4.0 * _gamma(m + 2 * c + 16) * mag)
+    cov = (cov + cov.T) / 2.0
+    cols = reader.columns_table
+    err_l2 = cols.column("err_l2").to_numpy()[col_idx]
+    steps = np.where(np.isfinite(reader.residual_step[col_idx]), reader.residual_step[col_idx], 0.0)
+    q_sq = blocks.stack("q_sq", every)[:, col_idx].sum(axis=0)
+    ov_sq = blocks.stack("ov_sq", every)[:, col_idx].sum(axis=0)
+    delta = _up(np.sqrt(_up(err_l2**2 + ov_sq)) + steps * np.sqrt(_up(q_sq)))
+    spread = _up(np.sqrt(np.maximum(np.diag(cov) + np.diag(fp), 0.0) * (m - 1)))
+    bound = _up((np.outer(spread, delta) + np.outer(delta, spread) + np.outer(delta, delta)) / (m - 1) * (1 + 8 * U) + fp)
+    return names, cov, bound, fp, delta
+
+
+def correlation(reader, columns: Any = None) -> tuple[list[str], np.ndarray, np.ndarray]:
+    """(names, R, B): Pearson correlations from the factors and a hard bound on |true R - R|.
+    For centred vectors u, uh with ||u - uh|| <= d, ||u/|u| - uh/|uh||| <= 2 d / |uh|, so
+    |cos(u, v) - cos(uh, vh)| <= 2 d_u / |uh| + 2 d_v / |vh| (capped at 2, the range)."""
+    names, cov, _, fp, delta = _covariance(reader, columns)
+    m = float(reader.rows_count)
+    var = np.diag(cov)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        sd = np.sqrt(np.maximum(var, 0.0))
+        corr = np.clip(cov / np.outer(sd, sd), -1.0, 1.0)
+        norm = sd * math.sqrt(m - 1)
+        # the computed norms carry floating-point error: take them down by its bound
+        low = np.sqrt(np.maximum(var - np.diag(fp), 0.0) * (m - 1))
+        rel = np.where(low > 0, 2.0 * delta / low, np.inf)
+        low_sd = low / math.sqrt(m - 1)
+        fp_rel = (2.0 * fp / np.outer(low_sd, low_sd)
+                  + np.abs(corr) * (np.diag(fp) / low_sd**2)[:, None] + np.abs(corr) * (np.diag(fp) / low_sd**2)[None, :])
+        bound = _up(rel[:, None] + rel[None, :] + fp_rel + 16 * U * (1 + np.abs(corr)))
+        bound = np.where(np.isfinite(bound), np.minimum(bound, 2.0), 2.0)
+        bad = ~(norm > 0)
+        corr[bad, :] = np.nan
+        corr[:, bad] = np.nan
+    np.fill_diagonal(bound, np.where(bad, 2.0, 0.0))
+    np.fill_diagonal(corr, np.where(bad, np.nan, 1.0))
+    return names, corr, bound
