@@ -10,6 +10,7 @@ import numpy as np
 import pyarrow as pa
 
 from rankfold.udfs.errors import InvalidInputError
+from rankfold.udfs.store import aggregate as _aggregate
 from rankfold.udfs.store import layout
 from rankfold.udfs.store.reader import ArchiveReader, Rebuilt
 from rankfold.udfs.store.rebuild_log import RebuildLog
@@ -136,6 +137,43 @@ class Archive:
                 continue
             names.append(name)
         return pa.table(arrays, names=names)
+
+    # -- aggregates from the factors ---------------------------------------------------------------
+    def aggregate(self, columns: Any, func: str = "avg", by: Any = None, where: str | None = None,
+                  *, rows: Any = None, estimates: bool = False) -> pa.Table:
+        """sum, avg or count of numeric ``columns`` from the factors, never rebuilding rows.
+
+        ``by``: key (exact) column name(s) to group by; ``where``: a SQL predicate on key
+        columns (DuckDB syntax, e.g. ``"site IN ('A', 'B')"``); ``rows``: a contiguous range of
+        row positions (slice), answered from the stored per row-group sums without a scan.
+        Returns one row per group (ordered by the ``by`` columns): the ``by`` columns, then for
+        each column its value and ``<column>_bound``, a hard bound on |true - value| (0 for
+        counts); ``estimates=True`` adds ``<column>_estimate``, a typical error (an estimate,
+        not a bound). A group whose column has only NULLs gives NULL (bound 0), as SQL does.
+        """
+        return _aggregate.aggregate(self._reader, columns, func, by, where, rows=rows, estimates=estimates)
+
+    def covariance(self, columns: Any = None) -> pa.Table:
+        """Sample covariance (divisor rows - 1) of numeric ``columns`` (default: all) from the
+        c x c Gram matrix of the basis columns, as a long table (column_a, column_b, value,
+        bound); ``bound`` is a hard bound on |true - value|. Columns with NULL, NaN or infinite
+        values are refused (InvalidInputError)."""
+        return _pairs(*_aggregate.covariance(self._reader, columns))
+
+    def correlation(self, columns: Any = None) -> pa.Table:
+        """Pearson correlation of numeric ``columns`` (default: all) from the factors, as a long
+        table (column_a, column_b, value, bound); ``bound`` is a hard bound on |true - value|
+        (at most 2, the width of [-1, 1])."""
+        return _pairs(*_aggregate.correlation(self._reader, columns))
+
+
+def _pairs(names: list[str], values: np.ndarray, bounds: np.ndarray) -> pa.Table:
+    q = len(names)
+    a, b = np.repeat(np.arange(q), q), np.tile(np.arange(q), q)
+    return pa.table({"column_a": pa.array([names[i] for i in a], pa.string()),
+                     "column_b": pa.array([names[i] for i in b], pa.string()),
+                     "value": pa.array(values.ravel(), pa.float64()),
+                     "bound": pa.array(bounds.ravel(), pa.float64())})
 
 
 def _describe_rows(rows: Any) -> Any:
