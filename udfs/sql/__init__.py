@@ -11,6 +11,20 @@
     rankfold_cell_with_bound(path, row, col) -> STRUCT(value DOUBLE, bound DOUBLE)
     rankfold_row(path, row, cols := NULL)    -> STRUCT("column" VARCHAR, value DOUBLE, bound DOUBLE)[]
 
+Table functions (FROM ...; see udfs/sql/tables.py):
+
+    rankfold_scan(path, columns := NULL, bounds := 'row', predicate := NULL)
+        key columns exact, the requested numeric columns rebuilt (NULL where the source was NULL),
+        then _rf_bound (bound on every rebuilt cell of the row; bounds := 'cell' gives one
+        <column>_bound per column, 'none' none) and _rf_row (0-based position)
+    rankfold_aggregate(path, columns, func := 'avg', group_by := NULL, predicate := NULL,
+                       row_from := NULL, row_to := NULL, estimates := false)
+        sum/avg/count from the factors: group_by columns, then <column>, <column>_bound
+        (and <column>_estimate, labelled an estimate)
+    rankfold_covariance(path, columns := NULL) / rankfold_correlation(path, columns := NULL)
+        (column_a, column_b, value, bound) from the Gram matrix of the basis columns
+    rankfold_column_errors(path) / rankfold_row_errors(path)   the error ledger as tables
+
 ``source`` is a table name, a SELECT statement on the same database (read through a separate
 cursor, so it sees committed data only) or a Parquet/CSV path. ``options`` is JSON text or a
 STRUCT literal with any other option of ``rankfold.compress`` (``{'n_columns': 12}``). ``row``

@@ -31,6 +31,7 @@ from ..errors import ArchiveExistsError, InvalidInputError, RankfoldError
 from ..store import layout
 from ..store.reader import ArchiveReader
 from ..store.rebuild_log import RebuildLog
+from . import tables as _tables
 from .readers import ReaderCache
 
 __all__ = ["register", "FUNCTIONS"]
@@ -71,6 +72,18 @@ FUNCTIONS = {
     "cell_with_bound": ("cell_with_bound(path, row, col)", "STRUCT(value DOUBLE, bound DOUBLE)"),
     "row": ("row(path, row, cols := NULL)",
             "rebuilt row as STRUCT(column, value, bound)[] in archive column order"),
+    "scan": ("scan(path, columns := NULL, bounds := 'row', predicate := NULL)",
+             "table: key columns exact, numeric columns rebuilt, _rf_bound (or <column>_bound), _rf_row"),
+    "aggregate": ("aggregate(path, columns, func := 'avg', group_by := NULL, predicate := NULL, "
+                  "row_from := NULL, row_to := NULL, estimates := false)",
+                  "table: sum/avg/count per group from the factors, with <column>_bound"),
+    "covariance": ("covariance(path, columns := NULL)",
+                   "table (column_a, column_b, value, bound): sample covariance from the factors"),
+    "correlation": ("correlation(path, columns := NULL)",
+                    "table (column_a, column_b, value, bound): Pearson correlation from the factors"),
+    "column_errors": ("column_errors(path)", "table: the column error ledger (columns.parquet)"),
+    "row_errors": ("row_errors(path)",
+                   "table: per-row error figures, in units of each column's ledger_scale"),
 }
 
 
@@ -477,6 +490,88 @@ def _compress_udf(prefix: str, con) -> Callable:
     return udf
 
 
+# -- table functions: macros over query(<generated SQL>) ----------------------------------------
+_TABLE_ARGS = {
+    "scan": [_Arg("path", "text"), _Arg("columns", "text_list", "NULL"), _Arg("bounds", "text", "'row'"),
+             _Arg("predicate", "text", "NULL")],
+    "aggregate": [_Arg("path", "text"), _Arg("columns", "text_list"), _Arg("func", "text", "'avg'"),
+                  _Arg("group_by", "text_list", "NULL"), _Arg("predicate", "text", "NULL"),
+                  _Arg("row_from", "int", "NULL"), _Arg("row_to", "int", "NULL"),
+                  _Arg("estimates", "bool", "false")],
+    "covariance": [_Arg("path", "text"), _Arg("columns", "text_list", "NULL")],
+    "correlation": [_Arg("path", "text"), _Arg("columns", "text_list", "NULL")],
+    "column_errors": [_Arg("path", "text")],
+    "row_errors": [_Arg("path", "text")],
+}
+_RESULTS = _tables.ResultCache()
+
+
+def _table_udf(prefix: str, verb: str, con) -> Callable:
+    function = f"{prefix}_{verb}"
+    args = _TABLE_ARGS[verb]
+
+    def need(name: str, value: Any) -> None:
+        if value is None:
+            raise InvalidInputError(
+                f"{function}(): {name} is NULL; a table function needs a value here "
+                f"({FUNCTIONS[verb][0]}).")
+
+    def body(*values):
+        q = len(args)
+        _check_types(function, args, list(values[q:]))
+        params = dict(zip([a.name for a in args], values[:q]))
+        need("path", params["path"])
+        reader = _reader(params["path"])
+        key = (verb, str(reader.path), reader.manifest["archive_id"],
+               tuple((k, tuple(v) if isinstance(v, list) else v) for k, v in params.items()))
+        return _RESULTS.get(key, lambda: make(reader, params))
+
+    def make(reader: ArchiveReader, p: dict[str, Any]) -> str:
+        if verb == "scan":
+            need("bounds", p["bounds"])
+            if p["predicate"] is None:
+                return _tables.scan_sql(reader, p["columns"], p["bounds"])
+            cursor = con.cursor()
+            try:
+                return _tables.scan_sql(reader, p["columns"], p["bounds"], p["predicate"], cursor)
+            finally:
+                cursor.close()
+        if verb == "column_errors":
+            return _tables.column_errors_sql(reader)
+        if verb == "row_errors":
+            return _tables.row_errors_sql(reader)
+        cursor = con.cursor()  # a UDF cannot use the connection that runs it
+        try:
+            if verb == "aggregate":
+                need("columns", p["columns"])
+                need("func", p["func"])
+                rows = None
+                if p["row_from"] is not None or p["row_to"] is not None:
+                    rows = slice(p["row_from"], p["row_to"])
+                table = _tables.agg.aggregate(reader, p["columns"], p["func"], p["group_by"], p["predicate"],
+                                              rows=rows, estimates=bool(p["estimates"]), con=cursor)
+            else:
+                kind = _tables.agg.covariance if verb == "covariance" else _tables.agg.correlation
+                table = _tables.pairs_table(*kind(reader, p["columns"]))
+            return _tables.table_sql(table)
+        finally:
+            cursor.close()
+
+    def udf(*values):
+        return _relabel(function, body, *values)
+
+    return udf
+
+
+def _table_macro(con, prefix: str, verb: str) -> None:
+    args = _TABLE_ARGS[verb]
+    params = ", ".join(a.macro_param() for a in args)
+    values = ", ".join(a.udf_expr() for a in args)
+    types = ", ".join(f"typeof({a.name})" for a in args)
+    con.execute(f"CREATE OR REPLACE TEMP MACRO {prefix}_{verb}({params}) AS TABLE "
+                f"FROM query({prefix}__{verb}_sql({values}, {types}))")
+
+
 # -- registration ------------------------------------------------------------------------------
 def _macro(con, prefix: str, verb: str, args: list[_Arg]) -> None:
     params = ", ".join(a.macro_param() for a in args)
@@ -536,4 +631,8 @@ def register(con: duckdb.DuckDBPyConnection, *, prefix: str = "rankfold",
          [a.udf_type() for a in _COMPRESS_ARGS] + types(_COMPRESS_ARGS), _INFO_TYPE,
          side_effects=True)
     _macro(con, prefix, "compress", _COMPRESS_ARGS)
+    for verb, args in _TABLE_ARGS.items():
+        _udf(con, f"{prefix}__{verb}_sql", _table_udf(prefix, verb, con),
+             [a.udf_type() for a in args] + types(args), "VARCHAR")
+        _table_macro(con, prefix, verb)
     return [f"{prefix}_{verb}" for verb in FUNCTIONS]
