@@ -98,9 +98,13 @@ def trim_mantissa(values: np.ndarray, bits: np.ndarray | int) -> np.ndarray:
 
 def round_up(values: np.ndarray) -> np.ndarray:
     """Move measured error figures up past the rounding of their own computation (a relative
-    4u) and one more ulp, so that a stored figure is never below the exact one."""
+    4u) and one more ulp, so that a stored figure is never below the exact one. A measured 0
+    stays 0: a floating-point difference is 0 only when both operands are equal (Sterbenz),
+    and sums and maxima of zeros are exactly 0."""
+    values = np.asarray(values, dtype=np.float64)
     with np.errstate(over="ignore"):
-        return np.nextafter(np.asarray(values, dtype=np.float64) * (1.0 + 4.0 * UNIT_ROUNDOFF), np.inf)
+        up = np.nextafter(values * (1.0 + 4.0 * UNIT_ROUNDOFF), np.inf)
+    return np.where(values == 0.0, 0.0, up)
 
 
 def round_up_compact(values: np.ndarray, bits: int = 8) -> np.ndarray:
