@@ -269,7 +269,15 @@ def _check_correlation(result, con, path):
     assert sorted(set(result["column_a"])) == names and len(result["value"]) == 16
 
 
+def _check_covariance(result, con, path):
+    for a, b, value, bound in zip(result["column_a"], result["column_b"], result["value"], result["bound"]):
+        want = con.execute(f"SELECT covar_samp({a}, {b}) FROM sites").fetchone()[0]
+        assert abs(value - want) <= bound
+    assert len(result["value"]) == 9
+
+
 CHECKERS = {
+    "covariance.sql": _check_covariance,
     "scan.sql": _check_scan,
     "grouped_aggregate.sql": _check_grouped,
     "point_lookup.sql": _check_point,
