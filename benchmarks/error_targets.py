@@ -31,6 +31,7 @@ from __future__ import annotations
 import argparse
 import gc
 import shutil
+import subprocess
 import sys
 import time
 from pathlib import Path
@@ -190,26 +191,41 @@ def _best(row: dict) -> tuple[str | None, int | None]:
 
 
 def _target(row: dict, size: int | None) -> str:
-    """The issue's target for this row, and whether ``size`` meets it."""
+    """The issue's target for this row, each part with its measured ratio and verdict."""
     if row["t"] != TARGET_TOLERANCE or size is None:
         return ""
+    verdict = lambda ok: "met" if ok else "MISSED"  # noqa: E731
     if row["family"] == "lowrank_spikes":
-        met = row["b"] / size >= TARGET_LOWRANK_B and row["c"] / size >= TARGET_LOWRANK_C
-        return f"(b)/rf >= {TARGET_LOWRANK_B:g} and (c)/rf >= {TARGET_LOWRANK_C:g}: {'met' if met else 'MISSED'}"
+        b, c = row["b"] / size, row["c"] / size
+        return (f"(b)/rf {b:.2f} >= {TARGET_LOWRANK_B:g} {verdict(b >= TARGET_LOWRANK_B)}, "
+                f"(c)/rf {c:.2f} >= {TARGET_LOWRANK_C:g} {verdict(c >= TARGET_LOWRANK_C)}")
     if row["family"] == "iid_noise":
-        met = size <= TARGET_IID_MAX * row["b"]
-        return f"rf <= {TARGET_IID_MAX:g} x (b): {'met' if met else 'MISSED'}"
+        r = size / row["b"]
+        return f"rf/(b) {r:.3f} <= {TARGET_IID_MAX:g} {verdict(r <= TARGET_IID_MAX)}"
     return ""
+
+
+def _revision() -> str:
+    """The git commit measured, and whether the working tree had uncommitted changes."""
+    here = Path(__file__).resolve().parent
+    try:
+        head = subprocess.run(["git", "rev-parse", "--short", "HEAD"], cwd=here, capture_output=True,
+                              text=True, check=True).stdout.strip()
+        dirty = subprocess.run(["git", "status", "--porcelain", "--untracked-files=no"], cwd=here,
+                               capture_output=True, text=True, check=True).stdout.strip()
+    except (OSError, subprocess.CalledProcessError):
+        return "unknown revision"
+    return f"commit {head}" + (" + uncommitted changes" if dirty else "")
 
 
 def report(rows: list[dict]) -> None:
     labels = [label for label, _ in VARIANTS]
     print("\nSizes in MB (1e6 bytes). rf = rankfold default; best = smallest rankfold variant whose check "
           "passed. check: every rebuilt cell and every bound within its column's tolerance.")
-    print("| family | tol / std | (a) lossless | (b) quantized | (c) digits | "
+    print("| family | tol / std | (a) lossless | (b) quantized | (c) digits | (c)/(b) | "
           + " | ".join(f"rf {label}" for label in labels)
-          + " | (b)/rf | (c)/rf | best | (b)/best | (c)/best | check | target at 1e-2 (default; best) |")
-    print("|---|---|---|---|---|" + "---|" * len(labels) + "---|---|---|---|---|---|---|")
+          + " | (b)/rf | (c)/rf | best | (b)/best | (c)/best | check | target at 1e-2: default; best |")
+    print("|---|---|---|---|---|---|" + "---|" * len(labels) + "---|---|---|---|---|---|---|")
     for row in rows:
         v = row["variants"]
         default = v["default"].get("bytes") if v["default"].get("ok") else None
@@ -228,6 +244,7 @@ def report(rows: list[dict]) -> None:
                            for label in labels)
         target = "; ".join(x for x in (_target(row, default), _target(row, best)) if x)
         print(f"| {row['family']} | {row['t']:g} | {_mb(row['a'])} | {_mb(row['b'])} | {_mb(row['c'])} | "
+              f"{_ratio(row['c'], row['b'])} | "
               f"{sizes} | {_ratio(row['b'], default)} | {_ratio(row['c'], default)} | {best_label or 'n/a'} | "
               f"{_ratio(row['b'], best)} | {_ratio(row['c'], best)} | {check} | {target} |")
 
@@ -242,7 +259,7 @@ def report(rows: list[dict]) -> None:
                 print(f"| {row['family']} | {row['t']:g} | {label} | | | | | {r['error']} | |")
             else:
                 print(f"| {row['family']} | {row['t']:g} | {label} | {r['bytes']:,} | {r['kind']} | {r['rank']} | "
-                      f"{r['seconds']:.1f} | {r['err_ratio']:.3f} | {r['bound_ratio']:.3f} |")
+                      f"{r['seconds']:.1f} | {r['err_ratio']:.6f} | {r['bound_ratio']:.6f} |")
 
     print("\nBaselines: Parquet layout that won (smallest of the ones tried) and digits chosen.")
     print("| family | tol / std | (b) layout | (c) layout | (c) digits per column |")
@@ -257,10 +274,8 @@ def report(rows: list[dict]) -> None:
         v = row["variants"]
         default = v["default"].get("bytes") if v["default"].get("ok") else None
         best_label, best = _best(row)
-        print(f"* {row['family']}: default {_target(row, default) or 'no passing archive'}"
-              f" ((b)/rf {_ratio(row['b'], default)}, (c)/rf {_ratio(row['c'], default)});"
-              f" best ({best_label}) {_target(row, best) or 'no passing archive'}"
-              f" ((b)/best {_ratio(row['b'], best)}, (c)/best {_ratio(row['c'], best)})")
+        print(f"* {row['family']}: default: {_target(row, default) or 'no passing archive'}; "
+              f"best ({best_label}): {_target(row, best) or 'no passing archive'}")
 
 
 def main() -> None:
@@ -288,7 +303,7 @@ def main() -> None:
         del table
         gc.collect()
     print(f"# Error targets: {args.rows:,} rows; generated families {args.cols} columns; "
-          f"rankfold {rankfold.__version__}; total {time.perf_counter() - started:.0f} s")
+          f"rankfold {rankfold.__version__} ({_revision()}); total {time.perf_counter() - started:.0f} s")
     report(rows)
 
 
