@@ -447,9 +447,18 @@ def _coding(plan, mixing, build) -> Coding | None:
         finest = np.min(2.0 * plan.tolerance[finite] / np.maximum(weight_norm[finite], 1e-300))
         basis_step = np.full(c, 0.25 * finest / np.sqrt(c))
     elif build.method == "cur" and c and np.isfinite(plan.basis_step).any():
-        # steps follow the basis as built (sorted source positions), not the plan's order
+        # steps follow the basis as built (sorted source positions), not the plan's order.
+        # Rounding the basis by up to step/2 also moves every derived value through the
+        # weights; the steps are scaled down until that spread (uniform rounding, RMS
+        # sqrt(sum_k w_kj^2 step_k^2 / 12)) stays below 30% of the column's own residual step.
         tolerance = plan.tolerance[mixing.basis_columns]
         basis_step = np.where(np.isfinite(tolerance), 2.0 * tolerance, np.nan)
+        spread = np.sqrt(np.nansum((mixing.weights * basis_step[:, None]) ** 2, axis=0))
+        derived = np.isfinite(plan.tolerance) & (spread > 0)
+        derived[mixing.basis_columns] = False
+        if derived.any():
+            shrink = np.min(0.3 * 2.0 * plan.tolerance[derived] / spread[derived])
+            basis_step = basis_step * min(1.0, float(shrink))
     # residual steps follow the basis as built too: a column the plan kept as basis that is
     # derived now (a refit may choose other columns) gets the residual coding of its tolerance
     steps = plan.residual_step.copy()
