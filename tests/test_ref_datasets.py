@@ -68,7 +68,9 @@ def test_every_cell_within_its_bound(compressed):
     expected = np.zeros(a.shape, bool)
     expected[:, basis] = True
     expected[anchors, :] = True
-    assert np.array_equal(exact, expected)
+    # every basis/anchor cell has bound 0; other cells may too where their error is provably 0
+    # (e.g. the constant all-zero pixel columns of digits: zero error and zero slack)
+    assert np.all(exact[expected])
     assert np.array_equal(rebuilt[exact], a[exact])
 
 
@@ -84,7 +86,11 @@ def test_error_summary_matches_numpy(compressed):
     assert summary["ratio_to_optimum"] == pytest.approx(
         np.linalg.norm(z - zhat) / optimum(z, rank), rel=1e-9)
     residual = a - rebuilt
-    exact = archive.cell_bounds() == 0
+    # cells stored exactly: the basis columns and the anchor rows (the ledger's definition;
+    # other cells may have a zero bound too when their error is provably zero)
+    exact = np.zeros(a.shape, bool)
+    exact[:, [archive.numeric_columns.index(c) for c in archive.basis_columns]] = True
+    exact[archive.anchor_rows, :] = True
     assert summary["max_abs_error"] == pytest.approx(np.abs(residual).max(), rel=1e-12)
     assert summary["cells_approximated"] == int((~exact).sum())
     assert summary["cells_exact"] == int(exact.sum())
