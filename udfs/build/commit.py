@@ -20,7 +20,8 @@ from ..errors import ArchiveExistsError, InvalidInputError
 from ..store import layout
 from ..store.manifest import file_entry, write_manifest
 
-__all__ = ["prepare_target", "ArchiveWriter"]
+__all__ = ["prepare_target", "ArchiveWriter", "RowPartWriter", "PART_ROWS", "concat_parquet",
+           "CELLS_SCHEMA"]
 
 ZSTD_LEVEL = 3
 
@@ -61,30 +62,34 @@ def _byte_stream_split_wins(column: pa.Array) -> bool:
     return sizes[0] < sizes[1]
 
 
-class ArchiveWriter:
-    """Writes one archive into a temporary directory; ``commit`` moves it into place."""
+# Rows per row file: 8 row groups of layout.ROW_GROUP_ROWS. A row-range read opens only the
+# files that hold the range, and a distributed verify pass writes at least one file per
+# partition; files much larger than this only make such reads coarser.
+PART_ROWS = 1 << 20
 
-    def __init__(self, target: Path, overwrite: bool, part_rows: int = 1 << 22):
-        self.target = target
-        self.overwrite = overwrite
+
+class RowPartWriter:
+    """Writes row files (``rows`` tables) into ``directory``, a new file every ``part_rows``
+    rows; ``name_of(k)`` names the k-th file. ``parts`` lists name, first_row and rows."""
+
+    def __init__(self, directory: Path, part_rows: int = PART_ROWS, name_of=None):
+        self.directory = Path(directory)
         self.part_rows = part_rows
-        self.temp = target.parent / f".{target.name}.rankfold-tmp-{uuid.uuid4().hex[:12]}"
-        self.temp.mkdir()
+        self.name_of = name_of or layout.ROWS_PATTERN.format
         self.parts: list[dict[str, Any]] = []
         self._writer: pq.ParquetWriter | None = None
         self._part_rows_written = 0
         self._encodings: tuple[list[str], dict[str, str]] | None = None
 
-    # -- row parts -------------------------------------------------------------------------
     def write_rows(self, table: pa.Table, first_row: int) -> None:
         if self._encodings is None:
             self._encodings = self._choose_encodings(table)
         if self._writer is None or self._part_rows_written >= self.part_rows:
-            self._close_part()
-            name = layout.ROWS_PATTERN.format(len(self.parts))
+            self.close()
+            name = self.name_of(len(self.parts))
             dictionary, encodings = self._encodings
             self._writer = pq.ParquetWriter(
-                self.temp / name, table.schema, compression="zstd",
+                self.directory / name, table.schema, compression="zstd",
                 compression_level=ZSTD_LEVEL, use_dictionary=dictionary,
                 column_encoding=encodings or None)
             self.parts.append({"name": name, "first_row": first_row, "rows": 0})
@@ -105,10 +110,73 @@ class ArchiveWriter:
                 dictionary.append(field.name)
         return dictionary, encodings
 
-    def _close_part(self) -> None:
+    def close(self) -> None:
         if self._writer is not None:
             self._writer.close()
             self._writer = None
+
+
+CELLS_SCHEMA = pa.schema([(layout.ROW_ID, pa.int64()), (layout.COLUMN_ID, pa.int32()),
+                          ("value", pa.float64()), ("reason", pa.dictionary(pa.int32(), pa.string()))])
+
+
+def concat_parquet(directory: Path, sources: list[str], target: str, schema: pa.Schema,
+                   *, remove: bool = True, extra: list[pa.Table] = ()) -> None:
+    """Stream the Parquet files ``sources`` (in order), then the tables ``extra``, into one
+    file ``target`` (memory: one row group at a time); the sources are removed after."""
+    with pq.ParquetWriter(directory / target, schema, compression="zstd",
+                          compression_level=ZSTD_LEVEL) as out:
+        for name in sources:
+            handle = pq.ParquetFile(directory / name)
+            for g in range(handle.metadata.num_row_groups):
+                out.write_table(handle.read_row_group(g).cast(schema))
+        for table in extra:
+            out.write_table(table.cast(schema))
+        if not sources and not extra:
+            out.write_table(schema.empty_table())
+    if remove:
+        for name in sources:
+            (directory / name).unlink()
+
+
+class ArchiveWriter:
+    """Writes one archive into a temporary directory; ``commit`` moves it into place."""
+
+    def __init__(self, target: Path, overwrite: bool, part_rows: int = PART_ROWS):
+        self.target = target
+        self.overwrite = overwrite
+        self.part_rows = part_rows
+        self.temp = target.parent / f".{target.name}.rankfold-tmp-{uuid.uuid4().hex[:12]}"
+        self.temp.mkdir()
+        self._rows = RowPartWriter(self.temp, part_rows)
+        self._adopted: list[dict[str, Any]] | None = None
+
+    @property
+    def parts(self) -> list[dict[str, Any]]:
+        return self._adopted if self._adopted is not None else self._rows.parts
+
+    # -- row parts -------------------------------------------------------------------------
+    def write_rows(self, table: pa.Table, first_row: int) -> None:
+        self._rows.write_rows(table, first_row)
+
+    def partition_writer(self, partition: int) -> RowPartWriter:
+        """A row writer for one partition of a distributed verify pass (its own file names;
+        ``adopt_parts`` renames them in row order at the end)."""
+        return RowPartWriter(self.temp, self.part_rows,
+                             lambda k: f".part-{partition:05d}-{k:04d}.parquet")
+
+    def adopt_parts(self, parts: list[dict[str, Any]]) -> None:
+        """Take the row files written by partitions: sorted by first row, renamed
+        ``rows-NNNNN.parquet``, listed for the manifest."""
+        adopted = []
+        for k, part in enumerate(sorted(parts, key=lambda p: p["first_row"])):
+            name = layout.ROWS_PATTERN.format(k)
+            os.replace(self.temp / part["name"], self.temp / name)
+            adopted.append({"name": name, "first_row": part["first_row"], "rows": part["rows"]})
+        self._adopted = adopted
+
+    def _close_part(self) -> None:
+        self._rows.close()
 
     # -- small tables ------------------------------------------------------------------------
     def write_table(self, name: str, table: pa.Table, *, factor_columns: list[str] = ()) -> None:

@@ -1,10 +1,13 @@
 """Compress a source into an archive: profile, select (sketch, columns, rows), link, verify,
-commit. Each pass streams the source in row blocks through DuckDB; memory is
+commit. Each pass is a map over row partitions plus an associative merge (``executors``):
+in process, the source is one partition streamed in row blocks through DuckDB; on Dask, the
+partitions are Parquet row-group ranges read by the workers. Memory is
 O((c + r) n + n^2 + block n), independent of the number of rows.
 """
 
 from __future__ import annotations
 
+import copy
 import datetime as _dt
 import math
 import uuid
@@ -25,12 +28,12 @@ from ..store import layout
 from ..store.aggregate import BlockSums
 from ..store.arithmetic import round_up, trim_mantissa
 from . import link as _link
-from .commit import ArchiveWriter, prepare_target
+from ..factor.sketch import GramSketch
+from .commit import CELLS_SCHEMA, ArchiveWriter, RowPartWriter, concat_parquet, prepare_target
+from .executors import make_executor
 from .options import DEFAULT_RANK_CAP_DIVISOR, CompressOptions
 from .profile import ColumnProfile, Fingerprint, Transform, profile_block
-from .progress import Progress
-from .select import AnchorRows, anchor_pass, sketch_pass
-from .sources import Source, block_from_batch, open_source
+from .select import AnchorRows, anchor_partial, merge_anchor_partials, sketch_of
 from .refit import KAPPA, OutlierScreen
 from .verify import Coding, VerifyResult, verify_pass
 from . import targets
@@ -46,17 +49,82 @@ def _is_numeric(data_type: pa.DataType) -> bool:
     return (pa.types.is_integer(data_type) or pa.types.is_floating(data_type))
 
 
-def _stream(source: Source, names: list[str], opts: CompressOptions, stage: str,
-            extra: list[str] = (), total: int | None = None) -> Iterator:
-    """Blocks (first row, batch, float64 block, NULL mask) of one pass, reporting progress."""
-    report = Progress(opts.progress, stage, total)
-    first = 0
-    for batch in source.batches(list(dict.fromkeys(list(extra) + names)), opts.batch_rows):
-        block, mask = block_from_batch(batch, names)
-        yield first, batch, block, mask
-        first += batch.num_rows
-        report.advance(batch.num_rows)
-    report.finish()
+# -- the passes as tasks over one partition's blocks (first row, batch, block, NULL mask) ---------
+def _profile_task(blocks, part, width: int, keep_sample: bool):
+    profile = ColumnProfile.empty(width)
+    fingerprint = Fingerprint()
+    sample: dict[str, float] = {}
+    for first, batch, block, mask in blocks:
+        profile = profile.merge(profile_block(block, mask))
+        fingerprint.update(first, block)
+        if keep_sample and not sample:
+            sample = targets.column_bytes(batch.slice(0, 65_536))
+    return profile, fingerprint, sample
+
+
+def _sketch_task(blocks, part, screen, width: int):
+    """Gram matrix of the transformed (and screened, for a refit) partition."""
+    screen = copy.copy(screen)
+    if isinstance(screen, OutlierScreen):
+        screen.replaced = screen.rows_left_out = 0
+    gram = GramSketch(width)
+    for _, _, block, _ in blocks:
+        gram.update(screen.apply(block))
+    counts = (screen.replaced, screen.rows_left_out) if isinstance(screen, OutlierScreen) else (0, 0)
+    return gram, counts
+
+
+def _anchor_task(blocks, part, screen, sketch, method, rank, count, seed, replace, draw):
+    return anchor_partial(((f, b, m) for f, _, b, m in blocks), copy.copy(screen), sketch, method,
+                          rank, count, seed, replace=replace, draw=draw)
+
+
+def _verify_task(blocks, part, temp, part_rows, names, passthrough, mixing, anchors, transform,
+                 score_right, scale, coding, distributed, writer=None):
+    """Verify one partition: row files (its own names when distributed), exact cells in a
+    file of its own, the ledger and the per row-group sums."""
+    if writer is None:
+        writer = RowPartWriter(Path(temp), part_rows,
+                               lambda k: f".part-{part.index:05d}-{k:04d}.parquet")
+    sums = BlockSums(len(names), mixing.weights.shape[0], mixing.fill)
+    result = verify_pass(blocks, names, passthrough, mixing, anchors, transform, score_right,
+                         writer, scale, coding, block_sums=sums,
+                         cells_file=Path(temp) / f".cells-{part.index:05d}.parquet")
+    if distributed:
+        writer.close()
+    return result, (list(writer.parts) if distributed else None), sums.records
+
+
+class _Passes:
+    """Runs the passes of one compress call on an executor and merges their partials."""
+
+    def __init__(self, executor, opts: CompressOptions):
+        self.ex, self.opts = executor, opts
+
+    def profile(self, numeric: list[str], keep_sample: bool):
+        extra = [n for n in self.ex.schema.names if n not in numeric] if keep_sample else []
+        parts = self.ex.run("profile", _profile_task, numeric, extra, None,
+                            (len(numeric), keep_sample))
+        profile, fingerprint, sample = ColumnProfile.empty(len(numeric)), Fingerprint(), {}
+        for p, f, s in parts:
+            profile, fingerprint = profile.merge(p), fingerprint.merge(f)
+            sample = sample or s
+        return profile, fingerprint, sample
+
+    def sketch(self, stage: str, numeric: list[str], rows: int, screen):
+        parts = self.ex.run(stage, _sketch_task, numeric, (), rows, (screen, len(numeric)))
+        gram = GramSketch(len(numeric))
+        for g, (replaced, left_out) in parts:
+            gram = gram.merge(g)
+            if isinstance(screen, OutlierScreen):
+                screen.replaced += replaced
+                screen.rows_left_out += left_out
+        return sketch_of(gram)
+
+    def anchors(self, stage, numeric, rows, screen, sketch, method, rank, count, replace, draw):
+        parts = self.ex.run(stage, _anchor_task, numeric, (), rows,
+                            (screen, sketch, method, rank, count, self.opts.seed, replace, draw))
+        return merge_anchor_partials(parts, len(numeric), method, count, replace=replace)
 
 
 def compress(source: Any, path: str | Path, *, rank: int | None = None, seed: int = 0,
@@ -67,11 +135,12 @@ def compress(source: Any, path: str | Path, *, rank: int | None = None, seed: in
     """
     opts = CompressOptions.from_call(rank, seed, options)
     target = prepare_target(path, opts.overwrite)
-    src = open_source(source, opts.connection)
+    executor = make_executor(opts.executor, source, opts.connection, opts.batch_rows, opts.progress,
+                             opts.storage_options)
     try:
-        return _compress(src, target, opts)
+        return _compress(executor, target, opts)
     finally:
-        src.close()
+        executor.close()
 
 
 def _plan_columns(schema: pa.Schema, opts: CompressOptions) -> tuple[list[str], list[str]]:
@@ -93,21 +162,6 @@ def _plan_columns(schema: pa.Schema, opts: CompressOptions) -> tuple[list[str], 
     numeric = [f.name for f in schema if _is_numeric(f.type) and f.name not in exact]
     passthrough = [n for n in names if n not in numeric]
     return numeric, passthrough
-
-
-def _profile(src: Source, numeric: list[str], opts: CompressOptions, *, keep_sample: bool):
-    """Pass 1; with ``keep_sample`` also the measured bytes per value of every column on the
-    first batch (for the size model of the targets)."""
-    profile = ColumnProfile.empty(len(numeric))
-    fingerprint = Fingerprint()
-    sample: dict[str, float] = {}
-    extra = [n for n in src.schema.names if n not in numeric] if keep_sample else []
-    for first, batch, block, mask in _stream(src, numeric, opts, "profile", extra):
-        profile = profile.merge(profile_block(block, mask))
-        fingerprint.update(first, block)
-        if keep_sample and not sample:
-            sample = targets.column_bytes(batch.slice(0, 65_536))
-    return profile, fingerprint, sample
 
 
 def _sizes(opts: CompressOptions, rows: int, width: int, spectrum) -> tuple[int, int, int, str]:
@@ -159,14 +213,15 @@ class _Build:
     reason: str
 
 
-def _compress(src: Source, target: Path, opts: CompressOptions) -> Path:
+def _compress(src, target: Path, opts: CompressOptions) -> Path:
     numeric, passthrough = _plan_columns(src.schema, opts)
     if not numeric:
         raise NoNumericColumnsError(
             f"The source {src.description} has no numeric column to compress (columns: "
             f"{src.schema.names}). rankfold compresses integer and floating-point columns."
         )
-    profile, fingerprint, sample = _profile(src, numeric, opts, keep_sample=opts.has_targets)
+    passes = _Passes(src, opts)
+    profile, fingerprint, sample = passes.profile(numeric, keep_sample=opts.has_targets)
     rows = int(fingerprint.rows)
     if rows == 0:
         raise EmptySourceError(f"The source {src.description} has no rows; there is nothing to compress.")
@@ -187,13 +242,12 @@ def _compress(src: Source, target: Path, opts: CompressOptions) -> Path:
             )
     width = len(numeric)
     transform = Transform.fit(opts.transform, profile)
-    blocks = lambda stage: ((f, b, m) for f, _, b, m in _stream(src, numeric, opts, stage, total=rows))
-    sketch = sketch_pass(lambda: blocks("sketch"), transform, width)
+    sketch = passes.sketch("sketch", numeric, rows, transform)
     goal = _Goal.from_options(opts, numeric)
     build = _first_build(opts, goal, rows, width, sketch, profile, transform, sample, numeric, passthrough)
     for attempt in range(_MAX_ATTEMPTS):
         written = _write(src, target, opts, numeric, passthrough, rows, profile, fingerprint,
-                         transform, sketch, build, blocks)
+                         transform, sketch, build, passes)
         verdict = goal.verdict(written, transform, sketch)
         if verdict is None or attempt == _MAX_ATTEMPTS - 1 or build.n_columns >= width:
             if verdict is not None and goal.target_bytes is None:
@@ -358,7 +412,7 @@ class _Written:
 
 
 def _write(src, target, opts, numeric, passthrough, rows, profile, fingerprint, transform,
-           sketch, build: _Build, blocks) -> _Written:
+           sketch, build: _Build, passes: _Passes) -> _Written:
     width = len(numeric)
     rng = np.random.default_rng(opts.seed)
     plan = build.coding_plan
@@ -369,7 +423,7 @@ def _write(src, target, opts, numeric, passthrough, rows, profile, fingerprint, 
         mixing = _link.mixing_for_scores(sketch.spectrum.right, rank, transform)
         if opts.refits and rank:
             screen = OutlierScreen(transform, mixing, sketch.r, None, rows, score_right)
-            cleaned = sketch_pass(lambda: blocks("refit"), screen, width)
+            cleaned = passes.sketch("refit", numeric, rows, screen)
             refit = {"kappa": KAPPA, "cells_screened": screen.replaced,
                      "rows_left_out": screen.rows_left_out}
             score_right = cleaned.spectrum.right[:, :rank]
@@ -382,14 +436,14 @@ def _write(src, target, opts, numeric, passthrough, rows, profile, fingerprint, 
         score_right, basis_names = None, []
     else:
         mixing, anchors, m_transformed = _fit_cur(opts, build, sketch, transform, transform,
-                                                  lambda: blocks("select"), rng)
+                                                  passes, "select", numeric, rows, rng, 0)
         if opts.refits:
             screen = OutlierScreen(transform, mixing, sketch.r, m_transformed, rows)
-            cleaned = sketch_pass(lambda: blocks("refit"), screen, width)
+            cleaned = passes.sketch("refit", numeric, rows, screen)
             refit = {"kappa": KAPPA, "cells_screened": screen.replaced,
                      "rows_left_out": screen.rows_left_out}
             mixing, anchors, _ = _fit_cur(opts, build, cleaned, screen, transform,
-                                          lambda: blocks("refit-select"), rng)
+                                          passes, "refit-select", numeric, rows, rng, 1)
         score_right = None
         basis_names = [numeric[k] for k in mixing.basis_columns]
     coding = _coding(plan, mixing, build)
@@ -398,9 +452,18 @@ def _write(src, target, opts, numeric, passthrough, rows, profile, fingerprint, 
     writer = ArchiveWriter(target, opts.overwrite)
     sums = BlockSums(width, mixing.weights.shape[0], mixing.fill)
     try:
-        result = verify_pass(_stream(src, numeric, opts, "verify", passthrough, rows), numeric,
-                             passthrough, mixing, anchors, transform, score_right, writer,
-                             ledger_scale(profile), coding, block_sums=sums)
+        distributed = passes.ex.distributed
+        parts = passes.ex.run(
+            "verify", _verify_task, numeric, passthrough, rows,
+            (writer.temp, writer.part_rows, numeric, passthrough, mixing, anchors, transform,
+             score_right, ledger_scale(profile), coding, distributed)
+            + (() if distributed else (writer,)))
+        result = VerifyResult.merge([r for r, _, _ in parts], width)
+        if distributed:
+            writer.adopt_parts([part for _, files, _ in parts for part in files])
+        for _, _, records in parts:
+            sums.records.extend(records)
+        cell_files = [f".cells-{k:05d}.parquet" for k, (r, _, _) in enumerate(parts) if r.cells.written]
         if not result.fingerprint.matches(fingerprint):
             raise SourceChangedError(
                 f"The source {src.description} gave different rows in the profile and verify "
@@ -408,7 +471,7 @@ def _write(src, target, opts, numeric, passthrough, rows, profile, fingerprint, 
                 "other values or order). Compress a stable snapshot, or add an ORDER BY."
             )
         files = _write_small_tables(writer, src.schema, numeric, profile, transform, mixing,
-                                    anchors, result, basis_names, coding)
+                                    anchors, result, basis_names, coding, cell_files)
         files.append(sums.write(writer))
         manifest = _manifest(src, opts, numeric, passthrough, rows, build, sketch.spectrum,
                              profile, transform, mixing, anchors, result, basis_names,
@@ -420,15 +483,16 @@ def _write(src, target, opts, numeric, passthrough, rows, profile, fingerprint, 
         raise
 
 
-def _fit_cur(opts, build, sketch, screen, transform, select_blocks, rng):
+def _fit_cur(opts, build, sketch, screen, transform, passes, stage, numeric, rows, rng, draw):
     """Basis columns, anchor rows and raw-unit mixing of one CUR fit. ``screen`` is the
-    transform used to read rows (the plain transform, or an OutlierScreen for a refit)."""
+    transform used to read rows (the plain transform, or an OutlierScreen for a refit);
+    ``draw`` keys the row choice's random numbers (with the seed and each row's position)."""
     replace = opts.sample_with_replacement
     rank = max(1, build.rank)
     choice = _cur.choose_columns(opts.columns, sketch.r, sketch.spectrum, rank, build.n_columns,
                                  rng, replace=replace)
-    anchors = anchor_pass(select_blocks, screen, sketch, opts.rows, rank, build.n_rows, rng,
-                          replace=replace)
+    anchors = passes.anchors(stage, numeric, rows, screen, sketch, opts.rows, rank, build.n_rows,
+                             replace, draw)
     columns, m_transformed = _cur.build_mixing(opts.link, choice, sketch.r, screen.apply(anchors.values))
     return _link.mixing_for_columns(columns, m_transformed, transform), anchors, m_transformed
 
@@ -533,7 +597,7 @@ def _column_table(schema, numeric, profile, transform, mixing, result, coding) -
 
 
 def _write_small_tables(writer, schema, numeric, profile, transform, mixing, anchors, result,
-                        basis_names, coding) -> list[str]:
+                        basis_names, coding, cell_files=()) -> list[str]:
     writer.write_table(layout.COLUMNS,
                        _column_table(schema, numeric, profile, transform, mixing, result, coding),
                        factor_columns=["shift", "scale", "offset"])
@@ -541,7 +605,9 @@ def _write_small_tables(writer, schema, numeric, profile, transform, mixing, anc
     for j, name in enumerate(numeric):
         anchor_cols[name] = pa.array(anchors.values[:, j], pa.float64(), mask=anchors.nulls[:, j])
     writer.write_table(layout.ANCHORS, pa.table(anchor_cols))
-    writer.write_table(layout.CELLS, result.cells.table())
+    # the partitions' exact cells, streamed into one file in row order
+    concat_parquet(writer.temp, list(cell_files), layout.CELLS, CELLS_SCHEMA,
+                   extra=[result.cells.table()] if result.cells.rows else [])
     return [layout.COLUMNS, layout.ANCHORS, layout.CELLS]
 
 

@@ -51,6 +51,8 @@ class CompressOptions:
     residual: str = "auto"
     basis_precision: str = "exact"
     refit_outliers: bool | None = None
+    executor: Any = field(default="local", repr=False)
+    storage_options: dict | None = field(default=None, repr=False)
 
     @classmethod
     def from_call(cls, rank: Any, seed: Any, options: dict[str, Any]) -> "CompressOptions":
@@ -117,6 +119,11 @@ class CompressOptions:
             raise InvalidInputError(
                 f"The 'progress' option of compress must be a callable taking one dict. Got {self.progress!r} instead."
             )
+        if self.storage_options is not None and not isinstance(self.storage_options, dict):
+            raise InvalidInputError(
+                f"The 'storage_options' option of compress must be a dict (fsspec options, e.g. "
+                f"credentials). Got {self.storage_options!r} instead."
+            )
         if self.key is not None and not isinstance(self.key, str):
             raise InvalidInputError(
                 f"The 'key' option of compress must be one column name. Got {self.key!r} instead."
@@ -144,7 +151,8 @@ class CompressOptions:
     def recorded(self) -> dict[str, Any]:
         """The options as written into the manifest (no connection object)."""
         return {f.name: _plain(getattr(self, f.name)) for f in fields(self)
-                if f.name not in ("connection", "overwrite", "progress")} | {
+                if f.name not in ("connection", "overwrite", "progress", "executor",
+                                  "storage_options")} | {
                     "exact_columns": list(self.exact_columns)}
 
 

@@ -45,6 +45,17 @@ class Fingerprint:
             self.value, self.scale = self.value + value, self.scale + scale
         self.rows += block.shape[0]
 
+    def merge(self, other: "Fingerprint") -> "Fingerprint":
+        """The fingerprint of two disjoint row sets (terms are per global row: a sum)."""
+        out = Fingerprint()
+        out.rows = self.rows + other.rows
+        if self.value is None or other.value is None:
+            source = self if other.value is None else other
+            out.value, out.scale = source.value, source.scale
+        else:
+            out.value, out.scale = self.value + other.value, self.scale + other.scale
+        return out
+
     def select(self, columns: list[int]) -> "Fingerprint":
         """The fingerprint of the given columns only (positions into the profiled columns)."""
         out = Fingerprint()

@@ -8,6 +8,11 @@ Row choices:
   on raw rows is avoided because it takes spike rows first (measured 8-15x the optimum).
 * ``leverage`` / ``length_squared``: weighted sampling in one pass with reservoirs
   (with replacement for the published estimators, distinct rows otherwise).
+
+Every random number belongs to a global row position (``row_uniforms``: a counter-based
+generator keyed by seed and position), and candidates are ranked by (key, position), so
+partitions can be scanned apart and merged (``anchor_partial`` / ``merge_anchor_partials``)
+with the same result whatever the partitioning or executor.
 """
 
 from __future__ import annotations
@@ -19,11 +24,11 @@ import numpy as np
 
 from ..factor import cur as _cur
 from ..factor import selection
-from ..factor.sampling import ReservoirWithoutReplacement, ReservoirWithReplacement
 from ..factor.sketch import GramSketch, Spectrum
 from .profile import Transform
 
-__all__ = ["Sketch", "sketch_pass", "AnchorRows", "anchor_pass"]
+__all__ = ["Sketch", "sketch_pass", "sketch_of", "AnchorRows", "anchor_pass", "AnchorPartial",
+           "anchor_partial", "merge_anchor_partials", "row_uniforms"]
 
 # A block stream yields (first row position, raw block (b, n), NULL mask or None).
 BlockStream = Callable[[], Iterator[tuple[int, np.ndarray, "np.ndarray | None"]]]
@@ -42,6 +47,11 @@ def sketch_pass(blocks: BlockStream, transform: Transform, width: int) -> Sketch
     gram = GramSketch(width)
     for _, block, _ in blocks():
         gram.update(transform.apply(block))
+    return sketch_of(gram)
+
+
+def sketch_of(gram: GramSketch) -> Sketch:
+    """The sketch of an accumulated (possibly merged) Gram matrix."""
     values, right = gram.eigen()
     return Sketch(values[:, None] * right.T, Spectrum(values, right))
 
@@ -85,42 +95,152 @@ def anchor_pass(
     method: str,
     rank: int,
     count: int,
-    rng: np.random.Generator,
+    seed: int,
     *,
     replace: bool,
+    draw: int = 0,
 ) -> AnchorRows:
-    """Choose ``count`` anchor rows in one streaming pass (see the module docstring)."""
-    width = sketch.r.shape[0]
+    """Choose ``count`` anchor rows in one streaming pass (see the module docstring): the map
+    over one stream and the merge, as one call. ``seed`` and ``draw`` key the random numbers."""
+    partial = anchor_partial(blocks(), transform, sketch, method, rank, count, seed,
+                             replace=replace, draw=draw)
+    return merge_anchor_partials([partial], sketch.r.shape[0], method, count, replace=replace)
+
+
+# -- map and merge: partition-independent row choice --------------------------------------------
+_GOLDEN = np.uint64(0x9E3779B97F4A7C15)
+
+
+def _splitmix64(x: np.ndarray) -> np.ndarray:
+    """The SplitMix64 finalizer (Steele, Lea, Flood, "Fast splittable pseudorandom number
+    generators", OOPSLA 2014), applied elementwise to uint64 counters."""
+    with np.errstate(over="ignore"):
+        z = x + _GOLDEN
+        z = (z ^ (z >> np.uint64(30))) * np.uint64(0xBF58476D1CE4E5B9)
+        z = (z ^ (z >> np.uint64(27))) * np.uint64(0x94D049BB133111EB)
+        return z ^ (z >> np.uint64(31))
+
+
+def row_uniforms(seed: int, stream: int, positions: np.ndarray) -> np.ndarray:
+    """Uniforms in (0, 1), one per (seed, stream, global row position): a counter-based
+    generator, so a row's number does not depend on how the rows are split into blocks or
+    partitions. ``stream`` separates independent uses (draws, reservoir slots)."""
+    with np.errstate(over="ignore"):
+        key = _splitmix64(np.uint64(seed) * np.uint64(0x100000001B3) + np.uint64(stream) * _GOLDEN)
+        bits = _splitmix64(np.asarray(positions, dtype=np.uint64) ^ key)
+    return ((bits >> np.uint64(11)).astype(np.float64) + 0.5) * 2.0**-53
+
+
+@dataclass
+class AnchorPartial:
+    """The anchor pass over one partition: candidates with their global positions and
+    sort keys (larger wins; ties go to the smaller position), plus their raw rows.
+
+    ``slots`` (with replacement only): per slot, the winning position and its key."""
+
+    positions: np.ndarray
+    keys: np.ndarray
+    left: np.ndarray | None
+    rows: dict
+    slot_items: np.ndarray | None = None
+    slot_keys: np.ndarray | None = None
+
+
+def _top(keys: np.ndarray, positions: np.ndarray, size: int) -> np.ndarray:
+    """Indices of the ``size`` largest keys, ties to the smaller position, in that order."""
+    order = np.lexsort((positions, -keys))
+    return order[:size]
+
+
+def _race_keys(seed: int, draw: int, slots: int, positions: np.ndarray, weights: np.ndarray) -> np.ndarray:
+    """Exponential-race keys log(u_si) / w_i (slots, b): per slot, the row with the largest key
+    is drawn with probability w_i / sum(w), independently across slots (i.i.d. draws with
+    replacement, Efraimidis-Spirakis keys with one race per draw)."""
+    keys = np.full((slots, positions.size), -np.inf)
+    positive = weights > 0
+    if positive.any():
+        for s in range(slots):
+            u = row_uniforms(seed, (draw << 20) + s + 1, positions[positive])
+            keys[s, positive] = np.log(u) / weights[positive]
+    return keys
+
+
+def anchor_partial(blocks, transform: Transform, sketch: Sketch, method: str, rank: int,
+                   count: int, seed: int, *, replace: bool, draw: int = 0) -> AnchorPartial:
+    """Map step of the anchor pass over one partition's blocks (first, raw block, mask)."""
     keeper = _RowKeeper()
     if method == "qdeim":
         pool_size = max(8 * count, 256)
         pool_pos = np.zeros(0, dtype=np.int64)
         pool_left = np.zeros((0, rank))
         pool_score = np.zeros(0)
-        for first, block, mask in blocks():
+        for first, block, mask in blocks:
             left = _cur.left_singular_rows(transform.apply(block), sketch.spectrum, rank)
             pool_pos = np.concatenate([pool_pos, first + np.arange(block.shape[0])])
             pool_left = np.vstack([pool_left, left])
             pool_score = np.concatenate([pool_score, np.einsum("ij,ij->i", left, left)])
             if pool_pos.size > pool_size:
-                keep = np.argsort(-pool_score, kind="stable")[:pool_size]
+                keep = _top(pool_score, pool_pos, pool_size)
                 pool_pos, pool_left, pool_score = pool_pos[keep], pool_left[keep], pool_score[keep]
             keeper.keep(pool_pos, first, block, mask)
-        first_k = selection.qdeim(pool_left)
-        chosen = selection.top_up(first_k, pool_score, count)
-        return keeper.anchors(pool_pos[chosen], width)
-
+        return AnchorPartial(pool_pos, pool_score, pool_left, keeper.rows)
     weights_of = (lambda z: _cur.row_weights(method, z, sketch.spectrum, rank))
     if replace:
-        reservoir = ReservoirWithReplacement(count, rng)
-        for first, block, mask in blocks():
-            reservoir.offer(first, weights_of(transform.apply(block)))
-            keeper.keep(reservoir.items[reservoir.items >= 0], first, block, mask)
-        items = reservoir.items[reservoir.items >= 0]
-    else:
-        reservoir = ReservoirWithoutReplacement(count, rng)
-        for first, block, mask in blocks():
-            reservoir.offer(first, weights_of(transform.apply(block)))
-            keeper.keep(reservoir.items, first, block, mask)
-        items = reservoir.result()
-    return keeper.anchors(items, width)
+        slot_items = np.full(count, -1, dtype=np.int64)
+        slot_keys = np.full(count, -np.inf)
+        for first, block, mask in blocks:
+            positions = first + np.arange(block.shape[0], dtype=np.int64)
+            keys = _race_keys(seed, draw, count, positions, weights_of(transform.apply(block)))
+            if keys.shape[1]:
+                best = np.argmax(keys, axis=1)  # first maximum: the smaller position on ties
+                better = keys[np.arange(count), best] > slot_keys
+                slot_items[better] = positions[best[better]]
+                slot_keys[better] = keys[np.arange(count), best][better]
+            keeper.keep(slot_items[slot_items >= 0], first, block, mask)
+        return AnchorPartial(np.zeros(0, np.int64), np.zeros(0), None, keeper.rows, slot_items, slot_keys)
+    items = np.zeros(0, dtype=np.int64)
+    item_keys = np.zeros(0)
+    for first, block, mask in blocks:
+        w = weights_of(transform.apply(block))
+        positions = first + np.arange(w.size, dtype=np.int64)
+        u = row_uniforms(seed, draw << 20, positions)
+        with np.errstate(divide="ignore"):
+            keys = np.where(w > 0, np.log(u) / np.where(w > 0, w, 1.0), -np.inf)
+        # zero-weight rows: after every positive one, randomly among themselves
+        keys = np.where(np.isneginf(keys), -1e300 - u, keys)
+        items = np.concatenate([items, positions])
+        item_keys = np.concatenate([item_keys, keys])
+        if items.size > count:
+            keep = _top(item_keys, items, count)
+            items, item_keys = items[keep], item_keys[keep]
+        keeper.keep(items, first, block, mask)
+    return AnchorPartial(items, item_keys, None, keeper.rows)
+
+
+def merge_anchor_partials(partials: list[AnchorPartial], width: int, method: str, count: int,
+                          *, replace: bool) -> AnchorRows:
+    """Merge step: the same choice whatever the partitioning (keys are per global row)."""
+    rows: dict = {}
+    for p in partials:
+        rows.update(p.rows)
+    keeper = _RowKeeper()
+    keeper.rows = rows
+    if method != "qdeim" and replace:
+        items = np.full(count, -1, dtype=np.int64)
+        keys = np.full(count, -np.inf)
+        for p in partials:  # partitions in row order: ties keep the earlier (smaller) position
+            better = p.slot_keys > keys
+            items[better], keys[better] = p.slot_items[better], p.slot_keys[better]
+        return keeper.anchors(items[items >= 0], width)
+    positions = np.concatenate([p.positions for p in partials]).astype(np.int64)
+    keys = np.concatenate([p.keys for p in partials])
+    if method == "qdeim":
+        pool_size = max(8 * count, 256)
+        keep = _top(keys, positions, pool_size)
+        left = np.vstack([p.left for p in partials])[keep]
+        pool_pos, pool_score = positions[keep], keys[keep]
+        first_k = selection.qdeim(left)
+        chosen = selection.top_up(first_k, pool_score, count)
+        return keeper.anchors(pool_pos[chosen], width)
+    keep = _top(keys, positions, count)
+    return keeper.anchors(np.sort(positions[keep]), width)

@@ -19,13 +19,16 @@ from __future__ import annotations
 
 from collections.abc import Iterator
 from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
 
 import numpy as np
 import pyarrow as pa
+import pyarrow.parquet as pq
 
 from ..errors import SourceChangedError
 from ..store import arithmetic, layout
-from .commit import ArchiveWriter
+from .commit import CELLS_SCHEMA, ArchiveWriter
 from .link import Mixing
 from .profile import Fingerprint, Transform
 from .select import AnchorRows
@@ -59,16 +62,56 @@ class ColumnLedger:
         self.err_sum += e.sum(axis=0)
         self.cells += approximated.sum(axis=0)
 
+    def merge(self, other: "ColumnLedger") -> "ColumnLedger":
+        """The ledger of two disjoint row sets (associative: max, hypot, sums)."""
+        return ColumnLedger(np.maximum(self.err_max, other.err_max), np.hypot(self.err_l2, other.err_l2),
+                            self.err_sum + other.err_sum, self.cells + other.cells)
+
+
+# Exact cells buffered in memory before they are written out (with ``spill_to``)
+SPILL_CELLS = 1 << 18
+
 
 @dataclass
 class ExactCells:
-    """Cells stored exactly outside basis columns and anchor rows."""
+    """Cells stored exactly outside basis columns and anchor rows.
+
+    With ``spill_to`` (a file path), cells go to that Parquet file every ``SPILL_CELLS``
+    cells and at ``finish()``, so memory does not grow with the number of such cells."""
 
     rows: list[np.ndarray] = field(default_factory=list)
     columns: list[np.ndarray] = field(default_factory=list)
     values: list[np.ndarray] = field(default_factory=list)
     nulls: list[np.ndarray] = field(default_factory=list)
     reasons: list[np.ndarray] = field(default_factory=list)
+    spill_to: Path | None = None
+    spilled: int = 0
+    written: bool = False
+    _writer: Any = field(default=None, repr=False)
+
+    def _buffered(self) -> int:
+        return int(sum(r.size for r in self.rows))
+
+    def _spill(self) -> None:
+        if not self.rows:
+            return
+        table = self.table()
+        if self._writer is None:
+            self._writer = pq.ParquetWriter(self.spill_to, table.schema, compression="zstd")
+        self._writer.write_table(table)
+        self.spilled += table.num_rows
+        self.written = True
+        for parts in (self.rows, self.columns, self.values, self.nulls, self.reasons):
+            parts.clear()
+
+    def finish(self) -> "ExactCells":
+        """Write what is buffered (with ``spill_to``) and close the file."""
+        if self.spill_to is not None:
+            self._spill()
+            if self._writer is not None:
+                self._writer.close()
+                self._writer = None
+        return self
 
     def add(self, first: int, cells: np.ndarray, block: np.ndarray, mask: np.ndarray | None,
             corrections: np.ndarray | None = None) -> None:
@@ -88,6 +131,8 @@ class ExactCells:
         self.values.append(values)
         self.nulls.append(nulls)
         self.reasons.append(reason)
+        if self.spill_to is not None and self._buffered() >= SPILL_CELLS:
+            self._spill()
 
     def table(self) -> pa.Table:
         cat = (lambda parts, dtype: np.concatenate(parts) if parts else np.zeros(0, dtype))
@@ -97,11 +142,11 @@ class ExactCells:
             layout.COLUMN_ID: pa.array(cat(self.columns, np.int32), pa.int32()),
             "value": pa.array(cat(self.values, np.float64), pa.float64(), mask=nulls),
             "reason": pa.array(cat(self.reasons, object), pa.string()).dictionary_encode(),
-        })
+        }, schema=CELLS_SCHEMA)
 
     @property
     def count(self) -> int:
-        return int(sum(r.size for r in self.rows))
+        return self.spilled + self._buffered()
 
 
 def _same_row(a: np.ndarray, b: np.ndarray) -> bool:
@@ -138,6 +183,18 @@ class VerifyResult:
     rows: int
     corrections: int = 0
     basis_fill: np.ndarray | None = None
+
+    @staticmethod
+    def merge(results: list["VerifyResult"], width: int) -> "VerifyResult":
+        """One result from the results of disjoint partitions (cells stay in their files)."""
+        ledger, fingerprint = ColumnLedger.empty(width), Fingerprint()
+        cells = ExactCells()
+        for r in results:
+            ledger = ledger.merge(r.ledger)
+            fingerprint = fingerprint.merge(r.fingerprint)
+            cells.spilled += r.cells.count
+        return VerifyResult(ledger, cells, fingerprint, sum(r.rows for r in results),
+                            sum(r.corrections for r in results))
 
 
 _CODE_LIMIT = 2.0**31 - 1  # residual codes are stored as int32
@@ -177,13 +234,14 @@ def verify_pass(
     ledger_scale: np.ndarray,
     coding: Coding | None = None,
     block_sums=None,
+    cells_file: Path | None = None,
 ) -> VerifyResult:
     """Run the verify pass and write the row files (see the module docstring)."""
     width = len(names)
     basis = mixing.basis_columns
     coding = coding or Coding.plain(width, mixing.weights.shape[0])
     ledger = ColumnLedger.empty(width)
-    cells = ExactCells()
+    cells = ExactCells(spill_to=cells_file)
     fingerprint = Fingerprint()
     is_basis = np.zeros(width, dtype=bool)
     coded_basis = np.isfinite(coding.basis_step)
@@ -276,4 +334,4 @@ def verify_pass(
         if block_sums is not None:  # per row-group sums for aggregates (store/aggregate.py)
             block_sums.add(first, filled, codes, xhat, block, mask, approximated, row_max)
         rows += b
-    return VerifyResult(ledger, cells, fingerprint, rows, corrections_count)
+    return VerifyResult(ledger, cells.finish(), fingerprint, rows, corrections_count)

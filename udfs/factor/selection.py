@@ -17,15 +17,44 @@ import scipy.linalg
 __all__ = ["pivoted_qr_order", "qdeim", "top_up"]
 
 
+# Residual norms within this relative distance of the largest count as a tie, which goes to
+# the smallest column index. Without it, ties (every column of a standardized table has the
+# same norm) are broken by rounding, and the same table summed in another order (another
+# partitioning, another executor) could pick other columns.
+TIE = 1e-8
+
+
 def pivoted_qr_order(matrix: np.ndarray, count: int) -> np.ndarray:
     """First ``count`` pivots of the column-pivoted QR of ``matrix`` (shape (p, n)).
 
     Applied to the R factor of a tall-skinny QR of A, it selects the same columns as pivoted
     QR of A itself (A = QR with Q orthonormal leaves every column-norm update unchanged), at
     the cost of a QR of an n x n matrix instead of an m x n one.
+
+    Businger-Golub pivoting (the column with the largest residual norm next), with residual
+    norms recomputed at each step and near-ties (``TIE``) going to the smallest index, so
+    the order does not depend on rounding noise.
     """
-    _, piv = scipy.linalg.qr(np.asarray(matrix, dtype=np.float64), mode="r", pivoting=True)
-    return np.asarray(piv[:count], dtype=np.int64)
+    a = np.array(matrix, dtype=np.float64)
+    p, n = a.shape
+    count = min(int(count), n)
+    chosen: list[int] = []
+    active = np.ones(n, dtype=bool)
+    norms = np.einsum("ij,ij->j", a, a)
+    for _ in range(count):
+        candidates = np.where(active, norms, -1.0)
+        top = candidates.max()
+        j = int(np.flatnonzero(candidates >= top * (1.0 - TIE))[0]) if top > 0 else int(np.flatnonzero(active)[0])
+        chosen.append(j)
+        active[j] = False
+        length = np.sqrt(norms[j]) if len(chosen) <= p else 0.0
+        if length > 0:
+            q = a[:, j] / length
+            for _ in range(2):  # Gram-Schmidt twice: orthogonal to working precision
+                a -= np.outer(q, q @ a)
+        a[:, j] = 0.0
+        norms = np.einsum("ij,ij->j", a, a)
+    return np.asarray(chosen, dtype=np.int64)
 
 
 def qdeim(basis: np.ndarray) -> np.ndarray:

@@ -1,0 +1,313 @@
+"""Executors: every compress pass is a map over row partitions plus an associative merge.
+
+A pass is a *task* ``task(blocks, partition, *args) -> partial`` run on each partition's
+blocks ``(first row, batch, float64 block, NULL mask)``, whose partials the caller merges in
+partition (row) order. Two executors run the same tasks:
+
+* ``LocalExecutor`` (``executor='local'``): one partition, the whole source streamed in
+  process through DuckDB (``sources.Source``); memory is one block plus the task's state.
+* ``DaskExecutor`` (``executor='dask'`` or a ``dask.distributed.Client``): one partition per
+  Parquet row-group range (local files or any fsspec URL, e.g. ``s3://bucket/data/``), or
+  row slices of an in-memory table; tasks run on the cluster's workers, partials come back
+  to the caller. Global row positions come from the Parquet footers, so every partition
+  knows its first row without reading another one.
+
+What crosses partitions is small: column statistics (n), the n x n Gram matrix, the anchor
+candidates (r or a pool of 8r rows x n), the column ledger (n), per row-group sums for
+aggregates, and the names of the files each partition wrote.
+"""
+
+from __future__ import annotations
+
+import os
+import uuid
+from collections.abc import Callable, Iterator
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+from ..errors import InvalidInputError
+from .progress import Progress
+from .sources import Source, block_from_batch, open_source
+
+__all__ = ["Partition", "LocalExecutor", "DaskExecutor", "make_executor", "PARTITION_ROWS"]
+
+# Rows per partition of the distributed executor (row groups are never split).
+PARTITION_ROWS = 1 << 20
+
+Task = Callable[..., Any]
+
+
+@dataclass
+class Partition:
+    """Rows ``first_row`` .. ``first_row + rows - 1`` of the source.
+
+    Exactly one of: ``source`` (a DuckDB source, in process only), ``url`` + ``row_groups``
+    (Parquet through fsspec), ``table`` (an Arrow table slice)."""
+
+    index: int
+    first_row: int
+    rows: int | None
+    schema: pa.Schema
+    source: Source | None = field(default=None, repr=False)
+    url: str | None = None
+    row_groups: list[int] | None = None
+    storage_options: dict | None = None
+    table: pa.Table | None = field(default=None, repr=False)
+
+    def batches(self, columns: list[str], batch_rows: int) -> Iterator[pa.RecordBatch]:
+        if self.source is not None:
+            yield from self.source.batches(columns, batch_rows)
+            return
+        wanted = pa.schema([self.schema.field(c) for c in columns]) if columns else self.schema
+        if self.table is not None:
+            for batch in self.table.select(wanted.names).to_batches(max_chunksize=batch_rows):
+                if batch.num_rows:
+                    yield batch if batch.schema.equals(wanted) else batch.cast(wanted)
+            return
+        import fsspec
+
+        with fsspec.open(self.url, "rb", **(self.storage_options or {})) as handle:
+            reader = pq.ParquetFile(handle)
+            for batch in reader.iter_batches(batch_size=batch_rows, row_groups=self.row_groups,
+                                             columns=wanted.names):
+                if batch.num_rows:
+                    yield batch if batch.schema.equals(wanted) else batch.cast(wanted)
+
+
+def partition_blocks(partition: Partition, names: list[str], extra: list[str], batch_rows: int,
+                     report: Progress | None = None) -> Iterator[tuple]:
+    """Blocks (global first row, batch, float64 block, NULL mask) of one partition."""
+    first = partition.first_row
+    for batch in partition.batches(list(dict.fromkeys(list(extra) + names)), batch_rows):
+        block, mask = block_from_batch(batch, names)
+        yield first, batch, block, mask
+        first += batch.num_rows
+        if report is not None:
+            report.advance(batch.num_rows)
+
+
+def _run(partition: Partition, task: Task, names: list[str], extra: list[str], batch_rows: int,
+         args: tuple) -> Any:
+    """What a worker runs: one task over one partition."""
+    return task(partition_blocks(partition, names, extra, batch_rows), partition, *args)
+
+
+class LocalExecutor:
+    """In process: the source is one partition streamed through DuckDB."""
+
+    name = "local"
+    distributed = False
+
+    def __init__(self, source: Source, batch_rows: int, progress: Callable | None):
+        self.source = source
+        self.schema = source.schema
+        self.description = source.description
+        self.batch_rows = batch_rows
+        self.progress = progress
+        self.partitions = [Partition(0, 0, None, source.schema, source=source)]
+
+    def run(self, stage: str, task: Task, names: list[str], extra: list[str] = (),
+            total: int | None = None, args: tuple = ()) -> list[Any]:
+        report = Progress(self.progress, stage, total)
+        out = task(partition_blocks(self.partitions[0], names, list(extra), self.batch_rows, report),
+                   self.partitions[0], *args)
+        report.finish()
+        return [out]
+
+    def close(self) -> None:
+        self.source.close()
+
+
+class DaskExecutor:
+    """On a ``dask.distributed`` cluster: tasks per partition, partials merged by the caller.
+
+    Progress is reported as partitions finish (rows of the finished partitions)."""
+
+    name = "dask"
+    distributed = True
+
+    def __init__(self, client, partitions: list[Partition], description: str, batch_rows: int,
+                 progress: Callable | None, owns_client: bool = False):
+        self.client = client
+        self.partitions = partitions
+        self.schema = partitions[0].schema
+        self.description = description
+        self.batch_rows = batch_rows
+        self.progress = progress
+        self.owns_client = owns_client
+
+    def run(self, stage: str, task: Task, names: list[str], extra: list[str] = (),
+            total: int | None = None, args: tuple = ()) -> list[Any]:
+        from distributed import as_completed
+
+        report = Progress(self.progress, stage, total)
+        token = uuid.uuid4().hex[:12]
+        futures = [self.client.submit(_run, part, task, list(names), list(extra), self.batch_rows,
+                                      args, key=f"rankfold-{stage}-{token}-{part.index}", pure=False)
+                   for part in self.partitions]
+        index = {f.key: i for i, f in enumerate(futures)}
+        results: list[Any] = [None] * len(futures)
+        try:
+            for future in as_completed(futures):
+                i = index[future.key]
+                results[i] = future.result()
+                report.advance(self.partitions[i].rows or 0)
+        except BaseException:
+            for future in futures:
+                future.cancel()
+            raise
+        report.finish()
+        return results
+
+    def close(self) -> None:
+        if self.owns_client:
+            cluster = getattr(self.client, "cluster", None)
+            self.client.close()
+            if cluster is not None:
+                cluster.close()
+
+
+# -- building an executor ------------------------------------------------------------------------
+_SCHEDULER_PREFIXES = ("tcp://", "tls://", "inproc://", "ucx://", "ws://", "wss://")
+
+
+def _dask_client(executor: Any):
+    try:
+        import distributed
+    except ImportError:
+        raise InvalidInputError(
+            "executor='dask' needs dask.distributed, which is not installed. Install it with "
+            "pip install 'rankfold[dask]', or use executor='local'."
+        ) from None
+    if isinstance(executor, distributed.Client):
+        return executor, False
+    if isinstance(executor, str) and executor.startswith(_SCHEDULER_PREFIXES):
+        return distributed.Client(executor), True
+    try:
+        return distributed.default_client(), False
+    except ValueError:  # no client yet: a local cluster for this call, one worker per core
+        cluster = distributed.LocalCluster(n_workers=os.cpu_count() or 1, threads_per_worker=1,
+                                           dashboard_address=None)
+        return distributed.Client(cluster), True
+
+
+def _is_url(text: str) -> bool:
+    return "://" in text and not text.startswith("file://")
+
+
+def _parquet_files(text: str, storage_options: dict | None) -> tuple[list[str], Source | None]:
+    """The files of a Parquet source in DuckDB's order (sorted full paths), and for local
+    files the DuckDB source (for its schema: the same types as the in-process executor)."""
+    if _is_url(text):
+        import fsspec.core
+
+        fs, root = fsspec.core.url_to_fs(text, **(storage_options or {}))
+        if fs.isdir(root):
+            found = [p for p in fs.find(root) if p.lower().endswith((".parquet", ".pq", ".parq"))]
+        elif any(ch in root for ch in "*?["):
+            found = fs.glob(root)
+        else:
+            found = [root]
+        protocol = text.split("://", 1)[0]
+        return [f"{protocol}://{p}" for p in sorted(found)], None
+    source = open_source(text)
+    target = f"{text}/**/*.parquet" if Path(text).is_dir() else text
+    files = [row[0] for row in source.connection.sql(
+        "SELECT file FROM glob(?) ORDER BY file", params=[target]).fetchall()]
+    return files, source
+
+
+def _parquet_partitions(files: list[str], schema: pa.Schema, storage_options: dict | None) -> list[Partition]:
+    import fsspec
+
+    partitions: list[Partition] = []
+    first = 0
+    for url in files:
+        with fsspec.open(url, "rb", **(storage_options or {})) as handle:
+            meta = pq.ParquetFile(handle).metadata
+        groups: list[int] = []
+        rows = 0
+        for g in range(meta.num_row_groups):
+            groups.append(g)
+            rows += meta.row_group(g).num_rows
+            if rows >= PARTITION_ROWS or g == meta.num_row_groups - 1:
+                if rows:
+                    partitions.append(Partition(len(partitions), first, rows, schema, url=url,
+                                                row_groups=groups, storage_options=storage_options))
+                first += rows
+                groups, rows = [], 0
+    return partitions
+
+
+def make_executor(executor: Any, source: Any, connection, batch_rows: int, progress,
+                  storage_options: dict | None = None):
+    """The executor for ``compress(..., executor=...)``."""
+    if executor is None or (isinstance(executor, str) and executor == "local"):
+        if isinstance(source, str) and _is_url(source):
+            raise InvalidInputError(
+                f"The in-process executor reads local paths through DuckDB; {source!r} is a URL. "
+                "Use executor='dask' (reads any fsspec URL), or copy the data locally."
+            )
+        src = open_source(source, connection)
+        return LocalExecutor(src, batch_rows, progress)
+    is_client = type(executor).__name__ == "Client" and type(executor).__module__.startswith("distributed")
+    if not (is_client or executor == "dask" or (isinstance(executor, str)
+                                                and executor.startswith(_SCHEDULER_PREFIXES))):
+        raise InvalidInputError(
+            f"The 'executor' option of compress must be 'local', 'dask', a dask.distributed "
+            f"Client or a scheduler address (tcp://host:port). Got {executor!r} instead."
+        )
+    partitions, description, opened = _distributed_partitions(source, connection, batch_rows, storage_options)
+    client, owns = _dask_client(executor)
+    if opened is not None:
+        opened.close()
+    return DaskExecutor(client, partitions, description, batch_rows, progress, owns_client=owns)
+
+
+def _distributed_partitions(source: Any, connection, batch_rows: int, storage_options):
+    if isinstance(source, (str, Path)):
+        text = str(source)
+        lowered = text.lower()
+        if connection is not None or lowered.strip().startswith(("select", "with", "from")) \
+                or lowered.endswith((".csv", ".tsv", ".txt", ".csv.gz", ".tsv.gz", ".csv.zst")):
+            raise InvalidInputError(
+                f"executor='dask' reads Parquet datasets (local paths or fsspec URLs) and "
+                f"in-memory tables; {text!r} is a CSV file or a DuckDB table/query. Export it to "
+                "Parquet first (COPY ... TO 'dir' (FORMAT parquet)), or use executor='local'."
+            )
+        files, local = _parquet_files(text, storage_options)
+        if not files:
+            if local is not None:
+                local.close()
+            raise InvalidInputError(f"No Parquet file matches {text}. Check the path.")
+        if local is not None:
+            schema = local.schema
+        else:
+            import fsspec
+
+            with fsspec.open(files[0], "rb", **(storage_options or {})) as handle:
+                schema = pq.read_schema(handle)
+        partitions = _parquet_partitions(files, schema, storage_options)
+        if not partitions:  # every file empty: one empty partition, so the passes see 0 rows
+            partitions = [Partition(0, 0, 0, schema, table=schema.empty_table())]
+        return partitions, text, local
+    # in-memory sources: slices of one Arrow table (the schema DuckDB would give them)
+    src = open_source(source, connection)
+    try:
+        table = src.connection.sql(f"SELECT * FROM {src.relation}").to_arrow_table()
+        if not table.schema.equals(src.schema):
+            table = table.cast(src.schema)
+        step = max(batch_rows, PARTITION_ROWS // 4)
+        partitions = [Partition(k, lo, min(step, table.num_rows - lo), src.schema,
+                                table=table.slice(lo, step))
+                      for k, lo in enumerate(range(0, table.num_rows, step))]
+        if not partitions:
+            partitions = [Partition(0, 0, 0, src.schema, table=table)]
+        return partitions, src.description, None
+    finally:
+        src.close()
