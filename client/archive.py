@@ -122,7 +122,9 @@ class Archive:
         """The table for ``rows``: exact (key and non-numeric) columns plus the requested
         numeric columns rebuilt, in source column order and source types (integer columns
         rounded to the nearest integer), with NULLs where the source had NULLs."""
-        result = self._rebuild("rebuild", rows, columns)
+        return self._table(self._rebuild("rebuild", rows, columns))
+
+    def _table(self, result: Rebuilt) -> pa.Table:
         wanted = set(result.columns)
         index = {n: t for t, n in enumerate(result.columns)}
         arrays, names = [], []
@@ -137,6 +139,39 @@ class Archive:
                 continue
             names.append(name)
         return pa.table(arrays, names=names)
+
+    # -- streaming and appending --------------------------------------------------------------------
+    def iter_batches(self, rows: Any = None, columns: Any = None, *, batch_rows: int = 131_072):
+        """Like :meth:`rebuild`, as a stream of tables of at most ``batch_rows`` rows (``rows``:
+        None, a slice or positions): only the row groups of each batch are read, so a range of a
+        large archive is exported with memory of one batch."""
+        for result in self._reader.iter_rebuild(rows, columns, batch_rows=batch_rows):
+            self._log.record("iter_batches", rows=f"{int(result.positions[0])}:{int(result.positions[-1]) + 1}"
+                             if result.positions.size else None,
+                             columns=None if columns is None else result.columns,
+                             cells_rebuilt=int((~result.exact).sum()), cells_exact=int(result.exact.sum()),
+                             largest_bound=float(result.bounds.max()) if result.bounds.size else 0.0)
+            yield self._table(result)
+
+    def append(self, source: Any, *, connection: Any = None, batch_rows: int = 131_072,
+               progress: Any = None) -> "Archive":
+        """Append the rows of ``source`` (same columns and types as the archive) without
+        refactoring: they are rebuilt from their own basis values with the existing mixing
+        matrix and verified like the original rows, so every bound holds for them too. Writes
+        a new archive version atomically (this object keeps reading the old one) and returns
+        it opened; see :attr:`refactor_due` for when the error has drifted past the target."""
+        from rankfold.udfs.build.append import append as _append
+
+        path = _append(self.path, source, expected_id=self.manifest["archive_id"],
+                       expected_version=int(self.manifest.get("version", 0)),
+                       connection=connection, batch_rows=batch_rows, progress=progress)
+        return Archive(path)
+
+    @property
+    def refactor_due(self) -> bool:
+        """True when appended rows have drifted past the archive's error target (details in
+        ``manifest["drift"]``): compress the whole table again."""
+        return bool((self.manifest.get("drift") or {}).get("refactor_due", False))
 
     # -- aggregates from the factors ---------------------------------------------------------------
     def aggregate(self, columns: Any, func: str = "avg", by: Any = None, where: str | None = None,

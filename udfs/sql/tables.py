@@ -83,7 +83,7 @@ def scan_sql(reader: ArchiveReader, columns: Any = None, bounds: str = "row",
     joins = ""
     use_anchors = bool(reader.anchor_positions.size) and bool(derived)
     if use_anchors:
-        anchor = sql_literal(str((reader.path / layout.ANCHORS).resolve()))
+        anchor = sql_literal(str((reader.path / layout.table_file(reader.manifest, layout.ANCHORS)).resolve()))
         picked = ", ".join(f"{quote_ident(names[s])} AS __av{s}" for s in derived)
         inner.append("a.__anchor")
         inner += [f"a.__av{s}" for s in derived]
@@ -91,7 +91,7 @@ def scan_sql(reader: ArchiveReader, columns: Any = None, bounds: str = "row",
                   f"read_parquet({anchor})) a ON r.{layout.ROW_ID} = a.{layout.ROW_ID}")
     with_cells = [s for s in derived if np.isin(col_idx[s], reader.cell_cols).any()] if reader.cell_rows.size else []
     if with_cells:
-        cells = sql_literal(str((reader.path / layout.CELLS).resolve()))
+        cells = sql_literal(str((reader.path / layout.table_file(reader.manifest, layout.CELLS)).resolve()))
         wanted = ", ".join(str(int(col_idx[s])) for s in with_cells)
         parts = []
         for s in with_cells:
@@ -209,7 +209,7 @@ def column_errors_sql(reader: ArchiveReader) -> str:
               "err_max", "err_l2", "err_sum", "err_cells", "rel_rms", "tolerance", "residual_step"]
     have = set(reader.columns_table.column_names)
     cols = ", ".join(n for n in wanted if n in have)
-    return f"SELECT {cols} FROM read_parquet({sql_literal(str((reader.path / layout.COLUMNS).resolve()))})"
+    return f"SELECT {cols} FROM read_parquet({sql_literal(str((reader.path / layout.table_file(reader.manifest, layout.COLUMNS)).resolve()))})"
 
 
 def row_errors_sql(reader: ArchiveReader) -> str:

@@ -37,3 +37,10 @@ CODE_PATTERN = "_rf_q_{}"        # quantized residual codes of numeric column {p
 # Rows per Parquet row group in row files: close to DuckDB's own default (122,880), so
 # row-range reads and DuckDB's parallel scans both find several groups per file.
 ROW_GROUP_ROWS = 131_072
+
+
+def table_file(manifest: dict, name: str) -> str:
+    """The file that holds the small table ``name`` (``COLUMNS``, ``ANCHORS``, ``CELLS``,
+    ``blocks.parquet``) in this archive version: an append writes new versions of them under
+    new names and lists them in the manifest's ``tables``; older archives use the plain names."""
+    return (manifest.get("tables") or {}).get(name, name)

@@ -37,13 +37,21 @@ def file_entry(directory: Path, name: str) -> dict[str, Any]:
 
 
 def write_manifest(directory: Path, manifest: dict[str, Any]) -> None:
-    """Write ``manifest.json`` durably (write, flush, fsync)."""
+    """Write ``manifest.json`` durably (write, flush, fsync) and atomically: into a temporary
+    file that then replaces the manifest in one rename, so a reader sees the old or the new
+    version, never a mix (an append commits a new archive version this way)."""
     path = directory / layout.MANIFEST
-    with open(path, "w", encoding="utf-8") as handle:
-        json.dump(manifest, handle, indent=1, sort_keys=False, allow_nan=False)
-        handle.write("\n")
-        handle.flush()
-        os.fsync(handle.fileno())
+    temp = directory / f".{layout.MANIFEST}.{os.getpid()}.tmp"
+    try:
+        with open(temp, "w", encoding="utf-8") as handle:
+            json.dump(manifest, handle, indent=1, sort_keys=False, allow_nan=False)
+            handle.write("\n")
+            handle.flush()
+            os.fsync(handle.fileno())
+        os.replace(temp, path)
+    except BaseException:
+        temp.unlink(missing_ok=True)
+        raise
 
 
 def read_manifest(directory: Path) -> dict[str, Any]:

@@ -60,7 +60,7 @@ class ArchiveReader:
         self.numeric_columns: list[str] = list(m["numeric_columns"])
         self.column_index = {n: j for j, n in enumerate(self.numeric_columns)}
         self.rows_count = int(m["shape"][0])
-        cols = pq.read_table(self.path / layout.COLUMNS)
+        cols = pq.read_table(self.path / layout.table_file(m, layout.COLUMNS))
         self.columns_table = cols
         self.offset = cols.column("offset").to_numpy()
         self.weights = np.array(cols.column("weights").to_pylist(), dtype=np.float64).T.reshape(
@@ -81,7 +81,7 @@ class ArchiveReader:
                               if "residual_step" in cols.column_names else np.full(width, np.nan))
         types = {f["name"]: f["type"] for f in m["schema"]}
         self.is_integer = np.array([types[n].startswith(("int", "uint")) for n in self.numeric_columns])
-        anchors = pq.read_table(self.path / layout.ANCHORS)
+        anchors = pq.read_table(self.path / layout.table_file(m, layout.ANCHORS))
         self.anchor_positions = anchors.column(layout.ROW_ID).to_numpy()
         self.anchor_lookup = {int(p): i for i, p in enumerate(self.anchor_positions)}
         self.anchor_values = np.column_stack(
@@ -90,7 +90,7 @@ class ArchiveReader:
         self.anchor_nulls = np.column_stack(
             [anchors.column(n).is_null().to_numpy(zero_copy_only=False) for n in self.numeric_columns]
         ) if self.anchor_positions.size else np.zeros((0, len(self.numeric_columns)), bool)
-        cells = pq.read_table(self.path / layout.CELLS)
+        cells = pq.read_table(self.path / layout.table_file(m, layout.CELLS))
         self.cell_rows = cells.column(layout.ROW_ID).to_numpy()
         self.cell_cols = cells.column(layout.COLUMN_ID).to_numpy()
         self.cell_nulls = cells.column("value").is_null().to_numpy(zero_copy_only=False)
@@ -128,8 +128,8 @@ class ArchiveReader:
         m = self.rows_count
         if rows is None:
             return np.arange(m, dtype=np.int64)
-        if isinstance(rows, slice):
-            return np.arange(m, dtype=np.int64)[rows]
+        if isinstance(rows, slice):  # no arange(m): a range of a large archive stays small
+            return np.arange(*rows.indices(m), dtype=np.int64)
         array = np.atleast_1d(np.asarray(rows))
         if array.ndim > 1:
             raise RowOutOfRangeError(
@@ -260,13 +260,16 @@ class ArchiveReader:
                 nulls[:, t] = column.is_null().to_numpy(zero_copy_only=False)
                 exact[:, t] = True
         # anchor rows
-        if self.anchor_lookup:
-            for i, p in enumerate(pos):
-                a = self.anchor_lookup.get(int(p))
-                if a is not None:
-                    values[i] = self.anchor_values[a, col_idx]
-                    nulls[i] = self.anchor_nulls[a, col_idx]
-                    exact[i] = True
+        if self.anchor_lookup and b:
+            order = np.argsort(self.anchor_positions, kind="stable")
+            slot = np.searchsorted(self.anchor_positions[order], pos)
+            slot = np.minimum(slot, order.size - 1)
+            hit = self.anchor_positions[order][slot] == pos
+            if hit.any():
+                a = order[slot[hit]]
+                values[hit] = self.anchor_values[np.ix_(a, col_idx)]
+                nulls[hit] = self.anchor_nulls[np.ix_(a, col_idx)]
+                exact[hit] = True
         # exact cells
         if self.cell_rows.size and b:
             self._apply_cells(pos, col_idx, values, nulls, exact)
@@ -277,6 +280,22 @@ class ArchiveReader:
             exact |= whole
         bounds[exact] = 0.0
         return Rebuilt(pos, names, values, bounds, exact, nulls, table)
+
+    def iter_rebuild(self, rows: Any = None, columns: Any = None, *,
+                     batch_rows: int = layout.ROW_GROUP_ROWS):
+        """Rebuild ``rows`` (None, a slice or positions) in chunks of ``batch_rows`` rows:
+        yields :class:`Rebuilt` blocks in order, reading only the row groups of each chunk,
+        so memory stays one chunk whatever the archive's size."""
+        if rows is None or isinstance(rows, slice):
+            start, stop, step = (rows or slice(None)).indices(self.rows_count)
+            span = batch_rows * abs(step)
+            for lo in range(start, stop, span) if step > 0 else range(start, stop, -span):
+                hi = min(lo + span, stop) if step > 0 else max(lo - span, stop)
+                yield self.rebuild(columns=columns, positions=np.arange(lo, hi, step, dtype=np.int64))
+            return
+        positions = self.resolve_rows(rows)
+        for lo in range(0, positions.size, batch_rows):
+            yield self.rebuild(columns=columns, positions=positions[lo:lo + batch_rows])
 
     def _apply_cells(self, pos, col_idx, values, nulls, exact) -> None:
         in_rows = np.isin(self.cell_rows, pos)

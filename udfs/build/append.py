@@ -1,0 +1,320 @@
+"""Append rows to an archive without refactoring it.
+
+The new rows are rebuilt from their own basis values (CUR) or scores (SVD, from the stored
+right factor) with the archive's mixing matrix, and go through the verify pass unchanged:
+residual measured on the factors as stored, residual codes and corrections under the
+archive's tolerance, exact cells, row ledger. The verify-pass guarantee (``verify.py``)
+therefore holds for appended rows exactly as for the original ones. The column ledger is
+merged (max, hypot, sums), as are the column statistics; the transform and the ledger scale
+stay those of the archive, which the rebuild formula depends on.
+
+A new archive version is written beside the old one and committed by one atomic rename of
+``manifest.json``: new row files get new names, and the small tables that change (columns,
+cells, blocks) are written under new names listed in the manifest's ``tables``. No existing
+file is modified, so a reader holding the old version keeps reading it.
+
+Drift: the relative error of all appended rows (Frobenius, after the transform) against a
+limit: the archive's ``rel_error`` target when it had one, else ``DRIFT_FACTOR`` times the
+error measured at compress time; and the share of cells stored as corrections against
+``DRIFT_FACTOR`` times the share at compress time (at least 1%). Past either, the manifest's
+``drift.refactor_due`` is true: compress the whole table again.
+"""
+
+from __future__ import annotations
+
+import os
+import uuid
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+from ..errors import CorruptArchiveError, EmptySourceError, InvalidInputError
+from ..store import layout
+from ..store.aggregate import BLOCKS, BlockSums
+from ..store.arithmetic import round_up
+from ..store.manifest import file_entry, read_manifest, write_manifest
+from ..store.reader import ArchiveReader
+from .commit import CELLS_SCHEMA, PART_ROWS, ZSTD_LEVEL, RowPartWriter, concat_parquet
+from .link import Mixing
+from .profile import ColumnProfile, Transform, profile_block
+from .progress import Progress
+from .select import AnchorRows
+from .sources import block_from_batch, open_source
+from .verify import Coding, ColumnLedger, verify_pass
+
+__all__ = ["append", "DRIFT_FACTOR"]
+
+DRIFT_FACTOR = 1.5
+_EXACT_INTEGER_LIMIT = 2.0**53
+_LOCK = ".rankfold-append.lock"
+
+
+def _check_schema(source_schema: pa.Schema, manifest: dict, description: str, path: Path) -> None:
+    wanted = [(f["name"], f["type"]) for f in manifest["schema"]]
+    have = [(f.name, str(f.type)) for f in source_schema]
+    names = [n for n, _ in wanted]
+    if [n for n, _ in have] != names:
+        missing = [n for n in names if n not in source_schema.names]
+        extra = [n for n, _ in have if n not in names]
+        detail = (f"missing {missing}" if missing else "") + ("; " if missing and extra else "") + (
+            f"not in the archive {extra}" if extra else "")
+        raise InvalidInputError(
+            f"The appended source {description} has the columns {[n for n, _ in have]}, but the "
+            f"archive {path} holds {names} ({detail or 'same names, other order'}). Select the "
+            "archive's columns in its order before appending."
+        )
+    for (name, archived), (_, given) in zip(wanted, have):
+        if archived != given:
+            raise InvalidInputError(
+                f"Column {name!r} of the appended source {description} is {given}, but the archive "
+                f"{path} stores it as {archived}. Cast it to {archived} before appending."
+            )
+
+
+def _coding(reader: ArchiveReader) -> Coding:
+    float32 = False
+    if reader.parts and reader.basis_stored:
+        schema = pq.read_schema(reader.path / reader.parts[0][2])
+        first = reader.basis_stored[0]
+        float32 = first in schema.names and schema.field(first).type == pa.float32()
+    return Coding(reader.tolerance.copy(), reader.residual_step.copy(), reader.basis_step.copy(),
+                  float32_scores=float32)
+
+
+def _write_small(directory: Path, name: str, table: pa.Table, factor_columns=()) -> None:
+    encodings = {c: "BYTE_STREAM_SPLIT" for c in factor_columns}
+    dictionary = [f.name for f in table.schema if f.name not in encodings]
+    pq.write_table(table, directory / name, compression="zstd", compression_level=ZSTD_LEVEL,
+                   use_dictionary=dictionary, column_encoding=encodings or None)
+
+
+def _stream(src, names, passthrough, batch_rows, first_row, transform, state, report):
+    """Blocks of the appended rows, numbered after the archive's rows; gathers their column
+    statistics and transformed squared norm on the way."""
+    first = first_row
+    integer = [j for j, n in enumerate(names) if pa.types.is_integer(src.schema.field(n).type)]
+    for batch in src.batches(list(dict.fromkeys(list(passthrough) + names)), batch_rows):
+        block, mask = block_from_batch(batch, names)
+        if integer:
+            big = np.abs(np.where(np.isfinite(block[:, integer]), block[:, integer], 0.0)) >= _EXACT_INTEGER_LIMIT
+            if big.any():
+                j = integer[int(np.flatnonzero(big.any(axis=0))[0])]
+                raise InvalidInputError(
+                    f"Column {names[j]!r} of the appended rows holds integers beyond 2^53, which "
+                    "float64 cannot rebuild exactly, and the archive factors it. Compress the "
+                    "whole table again (such columns are then kept exactly)."
+                )
+        state["profile"] = state["profile"].merge(profile_block(block, mask))
+        z = transform.apply(block)
+        state["z_norm2"] += float(np.einsum("ij,ij->", z, z))
+        yield first, batch, block, mask
+        first += batch.num_rows
+        report.advance(batch.num_rows)
+
+
+def append(path: str | Path, source: Any, *, expected_id: str | None = None,
+           expected_version: int | None = None, connection=None, batch_rows: int = 131_072,
+           progress=None) -> Path:
+    """Append the rows of ``source`` to the archive at ``path``; returns the path."""
+    directory = Path(path)
+    lock = directory / _LOCK
+    try:
+        handle = os.open(lock, os.O_CREAT | os.O_EXCL | os.O_WRONLY)
+    except FileExistsError:
+        raise InvalidInputError(
+            f"Another append to {directory} is running (lock file {lock}). Wait for it to "
+            "finish; if no append is running, a crashed one left the lock: delete that file."
+        ) from None
+    except FileNotFoundError:
+        raise InvalidInputError(f"No archive at {directory}. Check the path.") from None
+    os.close(handle)
+    try:
+        return _append(directory, source, expected_id, expected_version, connection, batch_rows, progress)
+    finally:
+        lock.unlink(missing_ok=True)
+
+
+def _append(directory, source, expected_id, expected_version, connection, batch_rows, progress) -> Path:
+    reader = ArchiveReader(directory)
+    manifest = reader.manifest
+    version = int(manifest.get("version", 0))
+    if (expected_id is not None and manifest["archive_id"] != expected_id) or (
+            expected_version is not None and version != expected_version):
+        raise InvalidInputError(
+            f"The archive at {directory} changed since it was opened (now version {version}); "
+            "open it again with rankfold.open and append to that."
+        )
+    src = open_source(source, connection)
+    created: list[Path] = []
+    try:
+        _check_schema(src.schema, manifest, src.description, directory)
+        return _write_version(reader, src, batch_rows, progress, created)
+    except BaseException:
+        for file in created:
+            file.unlink(missing_ok=True)
+        raise
+    finally:
+        src.close()
+
+
+def _write_version(reader: ArchiveReader, src, batch_rows, progress, created: list[Path]) -> Path:
+    directory, manifest = reader.path, reader.manifest
+    version = int(manifest.get("version", 0)) + 1
+    names, passthrough = reader.numeric_columns, list(manifest["exact_columns"])
+    width = len(names)
+    cols = reader.columns_table
+    transform = Transform(manifest["transform"], cols.column("shift").to_numpy(),
+                          cols.column("scale").to_numpy())
+    scale = cols.column("ledger_scale").to_numpy()
+    is_scores = not reader.basis_names or reader.basis_names[0].startswith(layout.RESERVED_PREFIX)
+    if is_scores:
+        basis, score_right = None, (reader.weights / transform.scale[None, :]).T
+    else:
+        basis = np.array([reader.column_index[n] for n in reader.basis_names], dtype=np.int64)
+        score_right = None
+    mixing = Mixing(reader.weights, reader.offset, reader.fill, basis)
+    anchors = AnchorRows(np.zeros(0, np.int64), np.zeros((0, width)), np.zeros((0, width), bool))
+    coding = _coding(reader)
+    first_row = reader.rows_count
+    token = uuid.uuid4().hex[:12]
+    old_parts = list(manifest["row_parts"])
+    writer = RowPartWriter(directory, PART_ROWS,
+                           lambda k: layout.ROWS_PATTERN.format(len(old_parts) + k))
+    sums = BlockSums(width, mixing.weights.shape[0], mixing.fill)
+    cells_temp = directory / f".append-{token}-cells.parquet"
+    created.append(cells_temp)
+    state = {"profile": ColumnProfile.empty(width), "z_norm2": 0.0}
+    report = Progress(progress, "append", None)
+    stream = _stream(src, names, passthrough, batch_rows, first_row, transform, state, report)
+    try:
+        result = verify_pass(stream, names, passthrough, mixing, anchors, transform, score_right,
+                             writer, scale, coding, block_sums=sums, cells_file=cells_temp)
+    finally:
+        writer.close()
+        created.extend(directory / p["name"] for p in writer.parts)
+    report.finish()
+    if result.rows == 0:
+        raise EmptySourceError(f"The appended source {src.description} has no rows; nothing to append.")
+    tables = dict(manifest.get("tables") or {})
+    new_files: list[str] = [p["name"] for p in writer.parts]
+    # cells: the old table, then the new rows' cells
+    cells_name = f"cells.v{version}.parquet"
+    created.append(directory / cells_name)
+    old_cells = layout.table_file(manifest, layout.CELLS)
+    concat_parquet(directory, [old_cells] + ([cells_temp.name] if result.cells.written else []),
+                   cells_name, CELLS_SCHEMA, remove=False)
+    cells_temp.unlink(missing_ok=True)
+    tables[layout.CELLS] = cells_name
+    new_files.append(cells_name)
+    # blocks (per row-group sums for aggregates), when the archive has them
+    listed = {f["name"] for f in manifest["files"]}
+    old_blocks = layout.table_file(manifest, BLOCKS)
+    if old_blocks in listed:
+        blocks_name = f"blocks.v{version}.parquet"
+        created.append(directory / blocks_name)
+        blocks = pa.concat_tables([pq.read_table(directory / old_blocks), sums.table()])
+        _write_small(directory, blocks_name, blocks)
+        tables[BLOCKS] = blocks_name
+        new_files.append(blocks_name)
+    # columns: merged ledger and statistics
+    old = ColumnLedger(cols.column("err_max").to_numpy().copy(), cols.column("err_l2").to_numpy().copy(),
+                       cols.column("err_sum").to_numpy().copy(), cols.column("err_cells").to_numpy().copy())
+    ledger = old.merge(result.ledger)
+    before = ColumnProfile(
+        cols.column("valid").to_numpy(), cols.column("nulls").to_numpy(), cols.column("nans").to_numpy(),
+        cols.column("infinities").to_numpy(), cols.column("mean").to_numpy(),
+        cols.column("std").to_numpy() ** 2 * cols.column("valid").to_numpy(),
+        cols.column("min").to_numpy(), cols.column("max").to_numpy())
+    profile = before.merge(state["profile"])
+    std = profile.std
+    rms = np.divide(ledger.err_l2, np.sqrt(np.maximum(ledger.cells, 1)))
+    rel_rms = np.divide(rms, std, out=np.full(width, np.nan), where=std > 0)
+    updates = {"valid": profile.valid, "nulls": profile.nulls, "nans": profile.nans,
+               "infinities": profile.infinities, "mean": profile.mean, "std": std,
+               "min": profile.minimum, "max": profile.maximum, "err_max": round_up(ledger.err_max),
+               "err_l2": round_up(ledger.err_l2), "err_sum": ledger.err_sum,
+               "err_cells": ledger.cells, "rel_rms": rel_rms}
+    columns = cols
+    for name, values in updates.items():
+        i = columns.schema.get_field_index(name)
+        columns = columns.set_column(i, name, pa.array(values, columns.schema.field(name).type))
+    columns_name = f"columns.v{version}.parquet"
+    created.append(directory / columns_name)
+    _write_small(directory, columns_name, columns, factor_columns=["shift", "scale", "offset"])
+    tables[layout.COLUMNS] = columns_name
+    new_files.append(columns_name)
+    # the manifest of the new version
+    replaced = {layout.table_file(manifest, layout.CELLS), layout.table_file(manifest, layout.COLUMNS),
+                layout.table_file(manifest, BLOCKS)}
+    new = dict(manifest)
+    new["version"] = version
+    new["shape"] = [reader.rows_count + result.rows, width]
+    new["row_parts"] = old_parts + list(writer.parts)
+    new["tables"] = tables
+    new["errors"] = _errors(manifest, ledger, transform, result, width, reader.rows_count + result.rows,
+                            state["z_norm2"])
+    new["drift"] = _drift(manifest, result, transform, state["z_norm2"], width)
+    new["files"] = [f for f in manifest["files"] if f["name"] not in replaced] + [
+        file_entry(directory, name) for name in new_files]
+    write_manifest(directory, new)  # the commit point: one atomic rename
+    return directory
+
+
+def _errors(manifest, ledger, transform, result, width, rows, z_norm2_new) -> dict:
+    errors = dict(manifest["errors"])
+    previous = manifest.get("drift") or {}
+    z_norm2 = float(np.sum(np.square(manifest["spectrum"]))) + previous.get("z_norm2", 0.0) + z_norm2_new
+    z_err = float(np.sqrt(np.sum((ledger.err_l2 / transform.scale) ** 2)))
+    errors["relative_frobenius"] = z_err / np.sqrt(z_norm2) if z_norm2 > 0 else 0.0
+    errors["max_abs_error"] = float(ledger.err_max.max()) if width else 0.0
+    errors["cells_approximated"] = int(ledger.cells.sum())
+    errors["cells_exact"] = int(rows * width - ledger.cells.sum())
+    errors["cells_stored_exactly_outside_factors"] = int(
+        errors.get("cells_stored_exactly_outside_factors", 0) + result.cells.count)
+    optimum = errors.get("optimal_relative_frobenius")
+    errors["ratio_to_optimum"] = (errors["relative_frobenius"] / optimum) if optimum else None
+    errors["note_append"] = ("after appends: relative_frobenius and the cell counts cover every row; "
+                             "the optimum and spectrum are those of the compressed rows")
+    return errors
+
+
+def _drift(manifest, result, transform, z_norm2_new, width) -> dict:
+    previous = manifest.get("drift") or {}
+    at_compress = previous.get("relative_frobenius_at_compress",
+                               manifest["errors"].get("relative_frobenius") or 0.0)
+    shape_rows = manifest["shape"][0] - previous.get("rows_appended", 0)
+    compress_corrections = previous.get(
+        "corrections_share_at_compress",
+        ((manifest.get("achieved") or {}).get("corrections") or 0) / max(shape_rows * width, 1))
+    z_err2 = previous.get("z_err2", 0.0) + float(np.sum((result.ledger.err_l2 / transform.scale) ** 2))
+    z_norm2 = previous.get("z_norm2", 0.0) + z_norm2_new
+    rows = previous.get("rows_appended", 0) + result.rows
+    corrections = previous.get("corrections_appended", 0) + result.corrections
+    relative = float(np.sqrt(z_err2 / z_norm2)) if z_norm2 > 0 else 0.0
+    target = (manifest.get("targets") or {}).get("rel_error")
+    limit = float(target) if isinstance(target, (int, float)) else DRIFT_FACTOR * at_compress
+    share = corrections / max(rows * width, 1)
+    share_limit = max(DRIFT_FACTOR * compress_corrections, 0.01)
+    reasons = []
+    if relative > limit:
+        reasons.append(f"the appended rows' relative error {relative:.4g} exceeds {limit:.4g}")
+    if share > share_limit:
+        reasons.append(f"{share:.2%} of the appended cells are corrections (limit {share_limit:.2%})")
+    return {
+        "appends": previous.get("appends", 0) + 1,
+        "rows_appended": rows,
+        "relative_frobenius_appended": relative,
+        "relative_frobenius_at_compress": at_compress,
+        "relative_frobenius_limit": limit,
+        "corrections_appended": corrections,
+        "corrections_share_appended": share,
+        "corrections_share_at_compress": compress_corrections,
+        "corrections_share_limit": share_limit,
+        "z_err2": z_err2, "z_norm2": z_norm2,
+        "refactor_due": bool(reasons),
+        "reason": "; ".join(reasons) if reasons else None,
+        "note": "relative errors are in transformed units; refactor_due: compress the whole table again",
+    }
