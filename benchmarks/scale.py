@@ -1,0 +1,123 @@
+"""Scale benchmark (issue 5): peak memory and time of compress against the row count, the
+ratio to one DuckDB scan, and in-process vs Dask LocalCluster. A script, not a test.
+
+    python benchmarks/scale.py --rows 1000000 4000000 16000000 --width 100 --out /work/scale_tmp
+
+(a) each compress runs in a subprocess; its peak RSS comes from getrusage(RUSAGE_CHILDREN)
+    (max RSS of the waited-for children), its time from the child itself;
+(b) the same child times one full DuckDB scan of the source (every column streamed as Arrow);
+(c) for the smallest size, the same compress on a LocalCluster with 2 worker processes,
+    checked for the same basis columns, anchor rows and values.
+Data: invented (rank 8 plus 1% noise, fixed seeds), written as Parquet files in chunks of
+250,000 rows so generating it stays small. Generated data is deleted at the end.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import resource
+import shutil
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+CHUNK = 250_000
+
+CHILD = r"""
+import json, sys, time
+import duckdb, numpy as np
+import rankfold
+source, target, executor = sys.argv[1], sys.argv[2], sys.argv[3]
+out = {}
+if executor == "scan":
+    con = duckdb.connect()
+    t = time.perf_counter()
+    rows = 0
+    for batch in con.sql(f"SELECT * FROM read_parquet('{source}/*.parquet')").to_arrow_reader(131072):
+        rows += batch.num_rows
+    out["seconds"] = time.perf_counter() - t
+elif executor == "dask":
+    from distributed import Client, LocalCluster
+    with LocalCluster(n_workers=2, threads_per_worker=1, dashboard_address=None) as cluster, Client(cluster) as client:
+        t = time.perf_counter()
+        rankfold.compress(source, target, rank=8, executor=client)
+        out["seconds"] = time.perf_counter() - t
+else:
+    t = time.perf_counter()
+    rankfold.compress(source, target, rank=8)
+    out["seconds"] = time.perf_counter() - t
+print(json.dumps(out))
+"""
+
+
+def generate(folder: Path, rows: int, width: int) -> None:
+    folder.mkdir(parents=True)
+    mix = np.random.default_rng(1).standard_normal((8, width))
+    for k, lo in enumerate(range(0, rows, CHUNK)):
+        rng = np.random.default_rng(1000 + k)
+        x = rng.standard_normal((min(CHUNK, rows - lo), 8)) @ mix
+        x += 0.01 * rng.standard_normal(x.shape)
+        pq.write_table(pa.table({f"c{j:03d}": x[:, j] for j in range(width)}),
+                       folder / f"part-{k:05d}.parquet", row_group_size=125_000)
+
+
+def child(source: Path, target: Path, executor: str) -> tuple[float, float]:
+    """(seconds, peak RSS in MB) of one run in a fresh subprocess."""
+    before = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
+    done = subprocess.run([sys.executable, "-c", CHILD, str(source), str(target), executor],
+                          capture_output=True, text=True, check=True)
+    peak = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
+    # ru_maxrss of RUSAGE_CHILDREN is the largest child so far: runs go smallest first
+    return json.loads(done.stdout.strip().splitlines()[-1])["seconds"], max(peak, before) / 1024
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
+    parser.add_argument("--rows", type=int, nargs="+", default=[1_000_000, 4_000_000, 16_000_000])
+    parser.add_argument("--width", type=int, default=100)
+    parser.add_argument("--out", type=Path, default=Path("scale_tmp"))
+    parser.add_argument("--keep", action="store_true", help="keep the generated data")
+    args = parser.parse_args()
+    args.out.mkdir(parents=True, exist_ok=True)
+    print(f"{'rows':>10} {'width':>5} {'scan s':>8} {'compress s':>10} {'ratio':>6} {'peak RSS MB':>11}")
+    peaks = []
+    try:
+        for rows in sorted(args.rows):
+            data = args.out / f"data-{rows}"
+            generate(data, rows, args.width)
+            scan, _ = child(data, args.out / "unused", "scan")
+            seconds, peak = child(data, args.out / f"a-{rows}.rfa", "local")
+            peaks.append(peak)
+            print(f"{rows:>10} {args.width:>5} {scan:>8.1f} {seconds:>10.1f} {seconds / scan:>6.2f} {peak:>11.0f}",
+                  flush=True)
+            if rows == min(args.rows):
+                import rankfold
+
+                dask_seconds, _ = child(data, args.out / f"d-{rows}.rfa", "dask")
+                a, b = rankfold.open(args.out / f"a-{rows}.rfa"), rankfold.open(args.out / f"d-{rows}.rfa")
+                same = a.basis_columns == b.basis_columns and a.anchor_rows == b.anchor_rows
+                diff = float(np.nanmax(np.abs(a.to_numpy(rows=slice(0, 200_000)) - b.to_numpy(rows=slice(0, 200_000)))))
+                print(f"  dask LocalCluster (2 workers): {dask_seconds:.1f} s, ratio to in-process "
+                      f"{dask_seconds / seconds:.2f}; same basis and anchors: {same}; max value difference "
+                      f"(first 200,000 rows) {diff:.2e}", flush=True)
+            shutil.rmtree(args.out / f"a-{rows}.rfa", ignore_errors=True)
+            shutil.rmtree(args.out / f"d-{rows}.rfa", ignore_errors=True)
+            if not args.keep:
+                shutil.rmtree(data)
+        growth = peaks[-1] / peaks[0]
+        print(f"peak RSS growth from {min(args.rows)} to {max(args.rows)} rows: {growth:.2f}x "
+              f"({'meets' if growth < 1.5 else 'misses'} the < 1.5x target)")
+    finally:
+        if not args.keep:
+            for path in args.out.glob("data-*"):
+                shutil.rmtree(path, ignore_errors=True)
+
+
+if __name__ == "__main__":
+    main()

@@ -1,0 +1,122 @@
+"""The same passes in process and on dask.distributed: same seed, same archive.
+
+A LocalCluster with two in-process workers (no network); the source is an invented Parquet
+dataset of several files, so the distributed passes really run over several partitions.
+"""
+
+from __future__ import annotations
+
+import duckdb
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+import pytest
+from distributed import Client, LocalCluster
+
+import rankfold
+from rankfold.udfs.build import select
+
+ROWS, WIDTH = 6000, 16
+
+
+def _data() -> np.ndarray:
+    rng = np.random.default_rng(21)  # invented: rank 3 plus noise
+    x = rng.standard_normal((ROWS, 3)) @ rng.standard_normal((3, WIDTH)) + 0.02 * rng.standard_normal((ROWS, WIDTH))
+    x[17, 5] = np.nan
+    return x
+
+
+@pytest.fixture(scope="module")
+def dataset(tmp_path_factory):
+    folder = tmp_path_factory.mktemp("dataset")
+    x = _data()
+    for k, lo in enumerate(range(0, ROWS, 1700)):  # uneven files, several row groups each
+        part = x[lo:lo + 1700]
+        pq.write_table(pa.table({f"v{j}": part[:, j] for j in range(WIDTH)}),
+                       folder / f"part-{k:03d}.parquet", row_group_size=500)
+    return folder, x
+
+
+@pytest.fixture(scope="module")
+def client():
+    with LocalCluster(n_workers=2, threads_per_worker=1, processes=False,
+                      dashboard_address=None) as cluster, Client(cluster) as c:
+        yield c
+
+
+@pytest.mark.parametrize("options", [
+    {"rank": 3},
+    {"rank": 3, "max_abs_error": 0.05},
+    {"rank": 3, "rows": "leverage", "columns": "leverage"},
+    {"rank": 3, "link": "textbook", "columns": "length_squared", "rows": "length_squared"},
+    {"rank": 3, "method": "svd"},
+])
+def test_same_seed_same_archive_on_both_executors(dataset, client, tmp_path, options):
+    folder, x = dataset
+    local = rankfold.compress(str(folder), tmp_path / "local.rfa", seed=5, **options)
+    events = []
+    dask = rankfold.compress(str(folder), tmp_path / "dask.rfa", seed=5, executor=client,
+                             progress=events.append, **options)
+    assert dask.basis_columns == local.basis_columns
+    assert dask.anchor_rows == local.anchor_rows
+    a, b = local.to_numpy(), dask.to_numpy()
+    assert np.array_equal(np.isnan(a), np.isnan(b))
+    assert np.nanmax(np.abs(a - b)) <= 1e-9 * np.nanmax(np.abs(x))
+    # every bound holds against the numpy truth on the distributed archive
+    bounds = dask.cell_bounds()
+    finite = np.isfinite(x)
+    assert np.all(np.abs(b - x)[finite] <= bounds[finite]) and np.isnan(b[~finite]).all()
+    assert len(dask.manifest["row_parts"]) >= 4  # one file (at least) per partition
+    assert [p["first_row"] for p in dask.manifest["row_parts"]] == sorted(
+        p["first_row"] for p in dask.manifest["row_parts"])
+    # progress through the same callback: every pass, ending at every row
+    finished = [e for e in events if e["done"]]
+    assert {e["stage"] for e in finished} >= {"profile", "sketch", "verify"}
+    assert all(e["rows_done"] == ROWS for e in finished)
+
+
+def test_dask_reads_in_memory_tables_in_slices(client, tmp_path, monkeypatch):
+    from rankfold.udfs.build import executors
+
+    monkeypatch.setattr(executors, "PARTITION_ROWS", 4 * 1000)  # slices of 1000 rows
+    x = _data()
+    local = rankfold.compress(x, tmp_path / "l.rfa", rank=3, batch_rows=1000)
+    dask = rankfold.compress(x, tmp_path / "d.rfa", rank=3, batch_rows=1000, executor=client)
+    assert dask.basis_columns == local.basis_columns and dask.anchor_rows == local.anchor_rows
+    assert len(dask.manifest["row_parts"]) == ROWS // 1000
+
+
+def test_dask_refuses_a_duckdb_table(client, tmp_path):
+    con = duckdb.connect()
+    con.execute("CREATE TABLE t AS SELECT range::DOUBLE AS a, range * 2.0 AS b FROM range(10)")
+    with pytest.raises(rankfold.InvalidInputError, match=r"executor='dask' reads Parquet .*Export it to Parquet"):
+        rankfold.compress("t", tmp_path / "t.rfa", connection=con, executor=client)
+
+
+def test_unknown_executor(tmp_path):
+    with pytest.raises(rankfold.InvalidInputError, match=r"'executor' option of compress must be 'local', 'dask'"):
+        rankfold.compress(np.ones((5, 3)), tmp_path / "x.rfa", executor="spark")
+
+
+@pytest.mark.parametrize("method, replace", [("leverage", False), ("length_squared", True), ("qdeim", False)])
+def test_row_choice_does_not_depend_on_partitioning(method, replace):
+    # the merge of per-partition choices equals the choice over one stream
+    rng = np.random.default_rng(3)
+    z = rng.standard_normal((3000, 8)) @ np.diag([5, 4, 3, 1, 1, 0.5, 0.5, 0.1])
+    from rankfold.udfs.build.profile import Transform
+    from rankfold.udfs.factor.sketch import GramSketch
+
+    transform = Transform("none", np.zeros(8), np.ones(8))
+    gram = GramSketch(8)
+    gram.update(z)
+    sketch = select.sketch_of(gram)
+
+    def partial(lo, hi, step):
+        blocks = ((f, z[f:min(f + step, hi)], None) for f in range(lo, hi, step))
+        return select.anchor_partial(blocks, transform, sketch, method, 3, 12, 9, replace=replace)
+
+    whole = select.merge_anchor_partials([partial(0, 3000, 3000)], 8, method, 12, replace=replace)
+    split = select.merge_anchor_partials([partial(0, 1234, 500), partial(1234, 2000, 77),
+                                          partial(2000, 3000, 1000)], 8, method, 12, replace=replace)
+    assert np.array_equal(whole.positions, split.positions)
+    assert np.array_equal(whole.values, z[whole.positions])
