@@ -15,6 +15,7 @@ file that does not match its checksum, or a value outside its bound; 130 interru
 from __future__ import annotations
 
 import argparse
+import contextlib
 import json
 import os
 import sys
@@ -240,41 +241,38 @@ def _verify_text(report: dict[str, Any]) -> str:
     return "\n".join(lines)
 
 
-def cmd_verify(args: argparse.Namespace) -> int:
+@contextlib.contextmanager
+def _source_and_progress(args: argparse.Namespace, what: str):
+    """(DuckDB connection or None, progress bar) for commands that read a --source, closed after."""
     from .sql_view import open_database
-    from .verification import verify
 
     if args.database and not args.source:
-        raise rankfold.InvalidInputError("--database needs --source (the table name or SELECT to "
-                                         "compare with).")
+        raise rankfold.InvalidInputError(f"--database needs --source (the table name or SELECT {what}).")
     connection = open_database(args.database) if args.database else None
     bar = _progress(args)
     try:
-        report = verify(args.archive, args.source, connection=connection, progress=bar)
+        yield connection, bar
     finally:
         bar.close()
         if connection is not None:
             connection.close()
+
+
+def cmd_verify(args: argparse.Namespace) -> int:
+    from .verification import verify
+
+    with _source_and_progress(args, "to compare with") as (connection, bar):
+        report = verify(args.archive, args.source, connection=connection, progress=bar)
     _emit(report, args.json, _verify_text(report))
     return EXIT_OK if report["ok"] else EXIT_FAILED
 
 
 def cmd_report(args: argparse.Namespace) -> int:
-    from .sql_view import open_database
     from .report import write_report
 
-    if args.database and not args.source:
-        raise rankfold.InvalidInputError("--database needs --source (the table name or SELECT the "
-                                         "archive was compressed from).")
-    connection = open_database(args.database) if args.database else None
-    bar = _progress(args)
-    try:
+    with _source_and_progress(args, "the archive was compressed from") as (connection, bar):
         result = write_report(args.archive, args.output, source=args.source, connection=connection,
                               sample_rows=args.sample_rows, overwrite=args.overwrite, progress=bar)
-    finally:
-        bar.close()
-        if connection is not None:
-            connection.close()
     s = result["spectrum"]
     text = (f"wrote {result['output']} ({result['bytes']:,} bytes, {result['plots']} plots): rank "
             f"{s['rank']}, relative error {_fmt(s['relative_frobenius'])} (best possible "
