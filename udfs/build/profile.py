@@ -36,7 +36,7 @@ class Fingerprint:
         self.rows = 0
 
     def update(self, first: int, block: np.ndarray) -> None:
-        finite = np.where(np.isfinite(block), block, 0.0)
+        finite = block if np.isfinite(block).all() else np.where(np.isfinite(block), block, 0.0)
         g = _row_weights(first, block.shape[0])
         value, scale = g @ finite, np.abs(g) @ np.abs(finite)
         if self.value is None:
@@ -113,6 +113,13 @@ class ColumnProfile:
 
 def profile_block(block: np.ndarray, null_mask: np.ndarray | None) -> ColumnProfile:
     """Statistics of one block (b, n); NULL cells (mask) are NaN in ``block``."""
+    if null_mask is None and np.isfinite(block).all():  # the common case, without masks
+        width, rows = block.shape[1], block.shape[0]
+        mean = block.mean(axis=0)
+        m2 = ((block - mean) ** 2).sum(axis=0)
+        zeros = np.zeros(width, np.int64)
+        return ColumnProfile(np.full(width, rows, np.int64), zeros, zeros.copy(), zeros.copy(),
+                             mean, m2, block.min(axis=0), block.max(axis=0))
     finite = np.isfinite(block)
     valid = finite.sum(axis=0)
     nulls = null_mask.sum(axis=0) if null_mask is not None else np.zeros(block.shape[1], np.int64)
@@ -156,5 +163,9 @@ class Transform:
     def apply(self, block: np.ndarray) -> np.ndarray:
         """Transformed block with missing and non-finite cells set to 0 (the column mean)."""
         with np.errstate(invalid="ignore", over="ignore"):
-            z = (block - self.shift) / self.scale
-        return np.where(np.isfinite(z), z, 0.0)
+            z = block - self.shift
+            z /= self.scale
+        bad = ~np.isfinite(z)
+        if bad.any():
+            z[bad] = 0.0
+        return z

@@ -53,10 +53,8 @@ class ColumnLedger:
 
     def add(self, residual: np.ndarray, approximated: np.ndarray) -> None:
         e = np.where(approximated, residual, 0.0)
-        a = np.abs(e)
-        block_max = a.max(axis=0) if a.size else np.zeros(a.shape[1])
-        scale = np.where(block_max > 0, block_max, 1.0)
-        block_l2 = scale * np.sqrt(((a / scale) ** 2).sum(axis=0))
+        block_max = np.abs(e).max(axis=0) if e.size else np.zeros(e.shape[1])
+        block_l2 = _norms(e, block_max, axis=0)
         self.err_max = np.maximum(self.err_max, block_max)
         self.err_l2 = np.hypot(self.err_l2, block_l2)
         self.err_sum += e.sum(axis=0)
@@ -147,6 +145,19 @@ class ExactCells:
     @property
     def count(self) -> int:
         return self.spilled + self._buffered()
+
+
+def _norms(values: np.ndarray, largest: np.ndarray, axis: int) -> np.ndarray:
+    """Euclidean norms along ``axis``; ``largest`` holds the largest |value| of each. Plain
+    sums of squares when every largest value lies in [1e-100, 1e100] (or is 0): then nothing
+    overflows and what underflows is below 1e-100 of the result, far inside the 4u that the
+    ledger rounds up by. Otherwise scaled by the largest value."""
+    safe = (largest == 0) | ((largest >= 1e-100) & (largest <= 1e100))
+    if np.all(safe):
+        return np.sqrt(np.einsum("ij,ij->j" if axis == 0 else "ij,ij->i", values, values))
+    scale = np.where(largest > 0, largest, 1.0)
+    scaled = values / (scale[None, :] if axis == 0 else scale[:, None])
+    return scale * np.sqrt((scaled**2).sum(axis=axis))
 
 
 def _same_row(a: np.ndarray, b: np.ndarray) -> bool:
@@ -250,6 +261,7 @@ def verify_pass(
     steps = coding.residual_step
     with_residual = np.flatnonzero(np.isfinite(steps) & ~is_basis)
     tolerance = coding.tolerance
+    has_tolerance = bool(np.isfinite(tolerance).any())
     anchor_lookup = {int(p): i for i, p in enumerate(anchors.positions)}
     # When every column has a tolerance, the row ledger can only tighten bounds below it, so
     # it is kept coarser (4 mantissa bits: at most 12.5% loose, about half a byte per figure).
@@ -300,7 +312,8 @@ def verify_pass(
         # a cell is approximated only if its error, measured here and moved up past its own
         # rounding, plus the slack of any later rebuild, stays within the column's tolerance
         with np.errstate(invalid="ignore", over="ignore"):
-            over_tolerance = ~(arithmetic.round_up(np.abs(residual)) + slack <= tolerance[None, :])
+            over_tolerance = (~(arithmetic.round_up(np.abs(residual)) + slack <= tolerance[None, :])
+                              if has_tolerance else np.zeros((b, width), dtype=bool))
         over_tolerance &= ~(kept_exact | source_exceptional | unstable)
         stored_cells = (source_exceptional | unstable | over_tolerance) & ~kept_exact
         cells.add(first, stored_cells, block, mask, over_tolerance)
@@ -309,10 +322,9 @@ def verify_pass(
         ledger.add(residual, approximated)
         # row figures are in units of each column's ledger scale (its standard deviation),
         # so one row figure bounds every column of the row, whatever the columns' units
-        abs_e = np.where(approximated, np.abs(residual), 0.0) / ledger_scale[None, :]
+        abs_e = np.abs(np.where(approximated, residual, 0.0)) / ledger_scale[None, :]
         row_max = abs_e.max(axis=1) if width else np.zeros(b)
-        scale = np.where(row_max > 0, row_max, 1.0)
-        row_l2 = scale * np.sqrt(((abs_e / scale[:, None]) ** 2).sum(axis=1))
+        row_l2 = _norms(abs_e, row_max, axis=1)
         fingerprint.update(first, block)
         columns = {layout.ROW_ID: pa.array(np.arange(first, first + b, dtype=np.int64))}
         for name in passthrough:

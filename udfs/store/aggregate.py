@@ -88,14 +88,17 @@ class BlockSums:
     def _add(self, first, filled, codes, xhat, block, mask, approximated, row_max) -> None:
         b, n = block.shape
         d = filled - self.shift[None, :]
-        nulls = mask if mask is not None else np.zeros((b, n), bool)
-        over = ~approximated
+        # overridden cells (stored exactly) are few beyond the exact basis columns: their sums
+        # are taken over their indices only, binned by column (O(cells), not O(b n))
+        rows_i, cols_j = np.nonzero(~approximated)
+        x, x_hat = block[rows_i, cols_j], xhat[rows_i, cols_j]
+        null = mask[rows_i, cols_j] if mask is not None else np.zeros(rows_i.size, bool)
         with np.errstate(invalid="ignore", over="ignore"):
-            delta = block - xhat
-            corr = np.where(over & ~nulls, delta, 0.0).sum(axis=0) - np.where(over & nulls, xhat, 0.0).sum(axis=0)
-            mag = np.where(over, np.abs(np.where(nulls, 0.0, block)) + np.abs(xhat), 0.0)
-            ov_abs = np.where(np.isfinite(mag), mag, 0.0).sum(axis=0)
-            ov_sq = np.where(over & ~nulls, delta * delta, 0.0).sum(axis=0)
+            delta = x - x_hat
+            corr = np.where(null, -x_hat, delta)
+            mag = np.where(null, 0.0, np.abs(x)) + np.abs(x_hat)
+            square = np.where(null, 0.0, delta * delta)
+        per_column = (lambda weights: np.bincount(cols_j, weights=weights, minlength=n))
         if codes is None:
             q_sum = q_abs = q_sq = np.zeros(n)
         else:
@@ -106,8 +109,9 @@ class BlockSums:
             "f_sum": filled.sum(axis=0), "f_abs": np.abs(filled).sum(axis=0), "d_sum": d.sum(axis=0),
             "gram": (d.T @ d).ravel(), "gram_abs": (np.abs(d).T @ np.abs(d)).ravel(),
             "q_sum": q_sum, "q_abs": q_abs, "q_sq": q_sq,
-            "ov_cells": over.sum(axis=0), "ov_nulls": (over & nulls).sum(axis=0),
-            "ov_corr": corr, "ov_abs": ov_abs, "ov_sq": ov_sq,
+            "ov_cells": np.bincount(cols_j, minlength=n), "ov_nulls": per_column(null.astype(np.float64)).astype(np.int64),
+            "ov_corr": per_column(corr), "ov_abs": per_column(np.where(np.isfinite(mag), mag, 0.0)),
+            "ov_sq": per_column(square),
         })
 
     def table(self) -> pa.Table:
