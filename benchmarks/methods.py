@@ -73,8 +73,8 @@ def bench(name: str, table: pa.Table, out: Path, rank: int, extra: dict) -> None
     scan = scan_seconds(source)
     print(f"\n## {name}: {table.num_rows} rows x {table.num_columns} columns, rank {rank}; "
           f"lossless Parquet zstd {lossless:,} B; one DuckDB scan {scan * 1000:.0f} ms")
-    print(f"| method | rel. error | optimum | error / optimum | archive bytes | size / lossless | "
-          f"compress s | time / scan |")
+    print("| method | rel. error | optimum | error / optimum | archive bytes | size / lossless | "
+          "compress s | time / scan |")
     print("|---|---|---|---|---|---|---|---|")
     optimum = None
     for label, opts in METHODS:

@@ -20,7 +20,6 @@ import resource
 import shutil
 import subprocess
 import sys
-import time
 from pathlib import Path
 
 import numpy as np

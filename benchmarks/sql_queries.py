@@ -137,7 +137,7 @@ def main() -> None:
     assert check[0] == n_o and check[2] == 0, check
     rows.append((f"(d) export 10% ({n_o} rows) to Parquet zstd", t_o, t_a, f"max row bound {check[1]:.3g}"))
 
-    print(f"\n| query | original Parquet (s) | archive (s) | original / archive | bound |")
+    print("\n| query | original Parquet (s) | archive (s) | original / archive | bound |")
     print("|---|---|---|---|---|")
     for name, t_orig, t_arch, bound in rows:
         print(f"| {name} | {t_orig:.3f} | {t_arch:.3f} | {t_orig / t_arch:.2f}x | {bound} |")

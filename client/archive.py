@@ -193,22 +193,13 @@ class Archive:
         c x c Gram matrix of the basis columns, as a long table (column_a, column_b, value,
         bound); ``bound`` is a hard bound on |true - value|. Columns with NULL, NaN or infinite
         values are refused (InvalidInputError)."""
-        return _pairs(*_aggregate.covariance(self._reader, columns))
+        return _aggregate.pairs_table(*_aggregate.covariance(self._reader, columns))
 
     def correlation(self, columns: Any = None) -> pa.Table:
         """Pearson correlation of numeric ``columns`` (default: all) from the factors, as a long
         table (column_a, column_b, value, bound); ``bound`` is a hard bound on |true - value|
         (at most 2, the width of [-1, 1])."""
-        return _pairs(*_aggregate.correlation(self._reader, columns))
-
-
-def _pairs(names: list[str], values: np.ndarray, bounds: np.ndarray) -> pa.Table:
-    q = len(names)
-    a, b = np.repeat(np.arange(q), q), np.tile(np.arange(q), q)
-    return pa.table({"column_a": pa.array([names[i] for i in a], pa.string()),
-                     "column_b": pa.array([names[i] for i in b], pa.string()),
-                     "value": pa.array(values.ravel(), pa.float64()),
-                     "bound": pa.array(bounds.ravel(), pa.float64())})
+        return _aggregate.pairs_table(*_aggregate.correlation(self._reader, columns))
 
 
 def _describe_rows(rows: Any) -> Any:

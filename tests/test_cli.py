@@ -442,7 +442,7 @@ def test_report_writes_html_and_refuses_to_replace(archive, tmp_path, capsys, mo
     out = tmp_path / "panel-report.html"  # the default name: <archive name>-report.html
     code, text, _ = run(capsys, "report", archive, "--sample-rows", 12)
     assert code == 0 and out.is_file()
-    assert text.startswith(f"wrote panel-report.html (") and " 5 plots): rank 3, relative error " in text
+    assert text.startswith("wrote panel-report.html (") and " 5 plots): rank 3, relative error " in text
     code, _, err = run(capsys, "report", archive, "--output", out)
     assert code == 1 and one_line_error(err) == (
         f"The report file {out} already exists; choose another name or pass --overwrite "

@@ -9,7 +9,6 @@ import sys
 from pathlib import Path
 
 import numpy as np
-import pytest
 
 import rankfold
 from rankfold.cli import CAUTION, main

@@ -31,11 +31,11 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from ..errors import CorruptArchiveError, EmptySourceError, InvalidInputError
+from ..errors import EmptySourceError, InvalidInputError
 from ..store import layout
 from ..store.aggregate import BLOCKS, BlockSums
 from ..store.arithmetic import round_up
-from ..store.manifest import file_entry, read_manifest, write_manifest
+from ..store.manifest import file_entry, write_manifest
 from ..store.reader import ArchiveReader
 from .commit import CELLS_SCHEMA, PART_ROWS, ZSTD_LEVEL, RowPartWriter, concat_parquet
 from .link import Mixing

@@ -11,7 +11,6 @@ import copy
 import datetime as _dt
 import math
 import uuid
-from collections.abc import Iterator
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any

@@ -12,7 +12,6 @@ Sorensen, Embree, "A DEIM induced CUR factorization", SIAM J. Sci. Comput. 38(3)
 from __future__ import annotations
 
 import numpy as np
-import scipy.linalg
 
 __all__ = ["pivoted_qr_order", "qdeim", "top_up"]
 

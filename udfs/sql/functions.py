@@ -552,7 +552,7 @@ def _table_udf(prefix: str, verb: str, con) -> Callable:
                                               rows=rows, estimates=bool(p["estimates"]), con=cursor)
             else:
                 kind = _tables.agg.covariance if verb == "covariance" else _tables.agg.correlation
-                table = _tables.pairs_table(*kind(reader, p["columns"]))
+                table = _tables.agg.pairs_table(*kind(reader, p["columns"]))
             return _tables.table_sql(table)
         finally:
             cursor.close()

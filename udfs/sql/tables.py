@@ -267,16 +267,3 @@ class ResultCache:
             while len(self._items) > self._size:
                 self._items.popitem(last=False)
         return value
-
-
-def pairs_table(names, values, bounds) -> pa.Table:
-    q = len(names)
-    a, b = np.repeat(np.arange(q), q), np.tile(np.arange(q), q)
-    return pa.table({"column_a": pa.array([names[i] for i in a], pa.string()),
-                     "column_b": pa.array([names[i] for i in b], pa.string()),
-                     "value": pa.array(values.ravel(), pa.float64()),
-                     "bound": pa.array(bounds.ravel(), pa.float64())})
-
-
-def aggregate_table(reader, cursor, columns, func, by, where, rows) -> pa.Table:
-    return agg.aggregate(reader, columns, func, by, where, rows=rows, con=cursor)

@@ -653,3 +653,14 @@ def correlation(reader, columns: Any = None) -> tuple[list[str], np.ndarray, np.
     np.fill_diagonal(bound, np.where(bad, 2.0, 0.0))
     np.fill_diagonal(corr, np.where(bad, np.nan, 1.0))
     return names, corr, bound
+
+
+def pairs_table(names: list[str], values: np.ndarray, bounds: np.ndarray) -> pa.Table:
+    """A q x q matrix of values and bounds (covariance, correlation) as a long table:
+    column_a, column_b, value, bound (q^2 rows, row-major)."""
+    q = len(names)
+    a, b = np.repeat(np.arange(q), q), np.tile(np.arange(q), q)
+    return pa.table({"column_a": pa.array([names[i] for i in a], pa.string()),
+                     "column_b": pa.array([names[i] for i in b], pa.string()),
+                     "value": pa.array(values.ravel(), pa.float64()),
+                     "bound": pa.array(bounds.ravel(), pa.float64())})
