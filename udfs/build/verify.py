@@ -339,7 +339,7 @@ def verify_pass(
             for k, array in enumerate(basis_arrays):
                 columns[layout.SCORE_PATTERN.format(k)] = array
         for j in with_residual:
-            columns[layout.CODE_PATTERN.format(j)] = pa.array(codes[:, j].astype(np.int32))
+            columns[layout.CODE_PATTERN.format(j)] = pa.array(arithmetic.encode_codes(codes[:, j]))
         columns[layout.ROW_ERR_MAX] = pa.array(arithmetic.round_up_compact(row_max, ledger_bits))
         columns[layout.ROW_ERR_L2] = pa.array(arithmetic.round_up_compact(row_l2, ledger_bits))
         writer.write_rows(pa.table(columns), first)

@@ -79,7 +79,7 @@ def scan_sql(reader: ArchiveReader, columns: Any = None, bounds: str = "row",
         if is_basis[s]:
             inner.append(f"r.{quote_ident(names[s])} AS __b{s}")
         elif np.isfinite(reader.residual_step[col_idx[s]]):
-            inner.append(f"r.{quote_ident(layout.CODE_PATTERN.format(int(col_idx[s])))} AS __q{s}")
+            inner.append(f"{layout.code_sql('r.' + quote_ident(layout.CODE_PATTERN.format(int(col_idx[s]))))} AS __q{s}")
     joins = ""
     use_anchors = bool(reader.anchor_positions.size) and bool(derived)
     if use_anchors:

@@ -360,7 +360,7 @@ def _scan_partials(reader, con, names, col_idx, by, where, row_range):
     basis_slot = {reader.basis_names[t]: t for t in range(c)}
     for s in range(q):
         if coded[s]:
-            code = quote_ident(layout.CODE_PATTERN.format(int(col_idx[s])))
+            code = layout.code_sql(quote_ident(layout.CODE_PATTERN.format(int(col_idx[s]))))
             items += [f"sum({code})::DOUBLE AS __q{s}", f"sum(abs({code}))::DOUBLE AS __qa{s}"]
         if is_basis[s]:
             col = f"CAST({quote_ident(names[s])} AS DOUBLE)"
@@ -399,7 +399,7 @@ def _scan_partials(reader, con, names, col_idx, by, where, row_range):
         con.register(view, overrides)
         try:
             code_case = " ".join(
-                f"WHEN {s} THEN r.{quote_ident(layout.CODE_PATTERN.format(int(col_idx[s])))}"
+                f"WHEN {s} THEN {layout.code_sql('r.' + quote_ident(layout.CODE_PATTERN.format(int(col_idx[s]))))}"
                 for s in range(q) if coded[s])
             code_expr = f"CAST(CASE o._rf_slot {code_case} ELSE 0 END AS DOUBLE)" if code_case else "0.0"
             inner = [layout.ROW_ID] + [quote_ident(b) for b in by]

@@ -25,7 +25,7 @@ from __future__ import annotations
 import numpy as np
 
 __all__ = ["UNIT_ROUNDOFF", "fill_missing", "approximate", "add_residual", "slack", "round_up",
-           "round_up_compact", "quantize", "trim_mantissa"]
+           "round_up_compact", "quantize", "trim_mantissa", "encode_codes", "decode_codes"]
 
 UNIT_ROUNDOFF = 2.0**-53
 
@@ -124,3 +124,16 @@ def round_up_compact(values: np.ndarray, bits: int = 8) -> np.ndarray:
     if low.any():  # float32 underflow or rounding: step up to the next float32
         narrow[low] = np.nextafter(narrow[low], np.float32(np.inf))
     return narrow
+
+
+def encode_codes(codes: np.ndarray) -> np.ndarray:
+    """Signed integer codes (|q| < 2^31, any dtype) as zigzag uint32: 2q, or -2q - 1 below 0
+    (see ``layout.code_sql`` for why)."""
+    q = np.asarray(codes).astype(np.int64)
+    return np.where(q >= 0, 2 * q, -2 * q - 1).astype(np.uint32)
+
+
+def decode_codes(stored: np.ndarray) -> np.ndarray:
+    """Zigzag uint32 codes back to signed integers, as float64."""
+    u = np.asarray(stored).astype(np.int64)
+    return np.where(u % 2 == 0, u // 2, -((u + 1) // 2)).astype(np.float64)

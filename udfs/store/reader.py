@@ -100,6 +100,15 @@ class ArchiveReader:
             meta = pq.ParquetFile(self.path / part["name"]).metadata
             starts = np.cumsum([0] + [meta.row_group(g).num_rows for g in range(meta.num_row_groups)])
             self.parts.append((part["first_row"], part["rows"], part["name"], starts))
+        if self.parts:
+            schema = pq.read_schema(self.path / self.parts[0][2])
+            signed = [f.name for f in schema if f.name.startswith(layout.CODE_PATTERN.format(""))
+                      and not pa.types.is_unsigned_integer(f.type)]
+            if signed:
+                raise CorruptArchiveError(
+                    f"{self.path} stores residual codes as signed integers ({signed[0]}), as "
+                    "development builds before format 1.0 was settled did; compress the source again."
+                )
         self.key = m.get("key")
 
     # -- addressing -----------------------------------------------------------------------------
@@ -223,8 +232,8 @@ class ArchiveReader:
         codes = np.zeros((rows.num_rows, col_idx.size))
         for t, j in enumerate(col_idx):
             if np.isfinite(steps[t]):
-                codes[:, t] = rows.column(layout.CODE_PATTERN.format(int(j))).to_numpy(
-                    zero_copy_only=False).astype(np.float64)
+                codes[:, t] = arithmetic.decode_codes(
+                    rows.column(layout.CODE_PATTERN.format(int(j))).to_numpy(zero_copy_only=False))
         return codes
 
     def rebuild(self, rows: Any = None, columns: Any = None, *, positions: np.ndarray | None = None) -> Rebuilt:
