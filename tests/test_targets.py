@@ -220,3 +220,41 @@ def test_refit_without_outliers_lowers_the_error_of_the_other_cells(tmp_path):
             assert archive.manifest["refit"]["cells_screened"] >= 100
     assert figures[True][0] < 0.6 * figures[False][0]
     assert figures[True][1] < figures[False][1]
+
+
+def test_zigzag_codes_round_trip_and_decode_in_sql():
+    """Residual codes are stored zigzag (common practice): q -> 2q or -2q - 1, checked against
+    plain integer arithmetic in numpy and in DuckDB."""
+    import duckdb
+
+    from rankfold.udfs.store import layout
+    from rankfold.udfs.store.arithmetic import decode_codes, encode_codes
+
+    q = np.array([0, 1, -1, 2, -2, 127, -128, 2**31 - 1, -(2**31 - 1)])
+    stored = encode_codes(q)
+    assert stored.dtype == np.uint32
+    np.testing.assert_array_equal(stored[:5], [0, 2, 1, 4, 3])
+    np.testing.assert_array_equal(decode_codes(stored), q)
+    con = duckdb.connect()
+    con.register("codes", pa.table({"u": pa.array(stored, pa.uint32())}))
+    decoded = con.execute(f"SELECT {layout.code_sql('u')} FROM codes").fetchall()
+    assert [v for (v,) in decoded] == q.tolist()
+
+
+def test_signed_codes_from_development_builds_are_refused(tmp_path):
+    from rankfold.udfs.store.manifest import file_entry, write_manifest
+
+    x = _low_rank(m=500, n=12)
+    archive = rankfold.compress(x, tmp_path / "z.rfa", max_abs_error=0.001 * x.std(axis=0).min())
+    part = tmp_path / "z.rfa" / archive.manifest["row_parts"][0]["name"]
+    table = pq.read_table(part)
+    codes = [n for n in table.column_names if n.startswith("_rf_q_")]
+    assert codes  # the archive does code residuals
+    index = table.column_names.index(codes[0])
+    table = table.set_column(index, codes[0], table.column(codes[0]).cast(pa.int64()))
+    pq.write_table(table, part)
+    manifest = dict(archive.manifest)
+    manifest["files"] = [file_entry(part.parent, f["name"]) for f in manifest["files"]]
+    write_manifest(part.parent, manifest)
+    with pytest.raises(rankfold.CorruptArchiveError, match="signed integers .* compress the source again"):
+        rankfold.open(tmp_path / "z.rfa")
