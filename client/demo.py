@@ -85,12 +85,6 @@ def fernwald_readings(rows: int = 20_000, substations: int = 12, seed: int = DEM
     return pa.table(arrays)
 
 
-def _dir_bytes(path) -> int:
-    from pathlib import Path
-
-    return sum(p.stat().st_size for p in Path(path).rglob("*") if p.is_file())
-
-
 def run_demo(out: str = "rankfold-demo", *, rows: int = 20_000, quiet: bool = False) -> dict:
     """Generate the Fernwald scenario, compress it from in-process DuckDB, rebuild, and report.
 
@@ -144,7 +138,7 @@ def run_demo(out: str = "rankfold-demo", *, rows: int = 20_000, quiet: bool = Fa
         "anchor_rows": len(archive.anchor_rows),
         "raw_numeric_bytes": int(truth.size * 8),
         "lossless_parquet_bytes": lossless.stat().st_size,
-        "archive_bytes": _dir_bytes(archive.path),
+        "archive_bytes": archive.nbytes,
         "compress_seconds": compress_seconds,
         "duckdb_scan_seconds": scan_seconds,
         "errors": e,

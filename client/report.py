@@ -103,7 +103,7 @@ def summary(archive: Any) -> dict[str, Any]:
         "basis_columns": arch.basis_columns,
         "anchor_rows": arch.anchor_rows,
         "cells_stored_exactly_outside_factors": m["errors"].get("cells_stored_exactly_outside_factors"),
-        "archive_bytes": sum(f["bytes"] for f in files),
+        "archive_bytes": arch.nbytes,
         "raw_float64_bytes": rows * width * 8,
         "files": files,
         "errors": arch.errors,
