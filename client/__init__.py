@@ -38,15 +38,21 @@ def compress(source: Any, path: str | Path, *, rank: int | None = None, seed: in
         name or SELECT statement together with ``connection=``.
     path : the archive directory to create. It must not exist (or pass ``overwrite=True`` to
         replace an existing archive; other files are never replaced).
-    rank : target rank k (default: the smallest k whose optimal relative error after the
-        transform is at most 1%, capped at a quarter of the numeric columns).
+    rank : target rank k (default: the Gavish-Donoho hard threshold on the singular values of
+        the transformed table, capped at a tenth of the numeric columns; targets choose it).
     seed : seed of the one numpy Generator used for every random choice; written to the manifest.
-    **options : method ('cur' | 'svd'), columns ('pivoted_qr' | 'leverage' | 'length_squared'),
-        rows ('qdeim' | 'leverage' | 'length_squared'), link ('optimal' | 'skeleton' |
-        'textbook' | 'cx'), transform ('standardize' | 'center' | 'none'), n_columns (default
-        2 * rank), n_rows (default 2 * n_columns), replace (sample with replacement), key (a
-        column to address rows by), exact_columns (numeric columns to keep exactly),
-        overwrite, batch_rows, connection.
+    **options : see the README's option table. Targets: rel_error (number or {column: number}),
+        max_abs_error (number or {column: number}, in column units: every rebuilt value is
+        guaranteed within it), target_bytes. Method: method ('cur' | 'svd'), columns
+        ('pivoted_qr' | 'leverage' | 'length_squared'), rows ('qdeim' | 'leverage' |
+        'length_squared'), link ('optimal' | 'cx' | 'skeleton' | 'textbook'), transform
+        ('standardize' | 'center' | 'none'), n_columns (default 2 * rank), n_rows (default
+        2 * n_columns), replace (sample with replacement). Coding under max_abs_error: residual
+        ('auto' | 'quantized' | 'corrections'), basis_precision ('exact' | 'tolerance'),
+        refit_outliers. Data: key (a column to address rows by), exact_columns (numeric
+        columns kept exactly), connection (DuckDB, for table or query sources). Running:
+        executor ('local' | 'dask' | a dask.distributed Client), storage_options, batch_rows,
+        progress (a callable), overwrite.
 
     Returns
     -------
