@@ -51,14 +51,15 @@ class ColumnLedger:
     def empty(cls, width: int) -> "ColumnLedger":
         return cls(np.zeros(width), np.zeros(width), np.zeros(width), np.zeros(width, np.int64))
 
-    def add(self, residual: np.ndarray, approximated: np.ndarray) -> None:
-        e = np.where(approximated, residual, 0.0)
+    def add(self, errors: np.ndarray, approximated: np.ndarray) -> None:
+        """Add a block: ``errors`` (b, n) holds the residual of approximated cells and 0 elsewhere."""
+        e = errors
         block_max = np.abs(e).max(axis=0) if e.size else np.zeros(e.shape[1])
         block_l2 = _norms(e, block_max, axis=0)
         self.err_max = np.maximum(self.err_max, block_max)
         self.err_l2 = np.hypot(self.err_l2, block_l2)
         self.err_sum += e.sum(axis=0)
-        self.cells += approximated.sum(axis=0)
+        self.cells += np.count_nonzero(approximated, axis=0)
 
     def merge(self, other: "ColumnLedger") -> "ColumnLedger":
         """The ledger of two disjoint row sets (associative: max, hypot, sums)."""
@@ -319,10 +320,12 @@ def verify_pass(
         cells.add(first, stored_cells, block, mask, over_tolerance)
         corrections_count += int(over_tolerance.sum())
         approximated = ~(kept_exact | stored_cells)
-        ledger.add(residual, approximated)
+        errors = np.where(approximated, residual, 0.0)  # the residual of approximated cells only
+        ledger.add(errors, approximated)
         # row figures are in units of each column's ledger scale (its standard deviation),
         # so one row figure bounds every column of the row, whatever the columns' units
-        abs_e = np.abs(np.where(approximated, residual, 0.0)) / ledger_scale[None, :]
+        abs_e = np.abs(errors)
+        abs_e /= ledger_scale[None, :]
         row_max = abs_e.max(axis=1) if width else np.zeros(b)
         row_l2 = _norms(abs_e, row_max, axis=1)
         fingerprint.update(first, block)
