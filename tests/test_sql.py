@@ -20,6 +20,7 @@ import pytest
 
 import rankfold
 import rankfold.udfs
+from duckdb_support import database_holding, registered_cursor
 from rankfold.udfs.sql import FUNCTIONS, register
 
 EXAMPLES = Path(__file__).resolve().parent.parent / "sql_examples"
@@ -64,10 +65,7 @@ def archive(tmp_path_factory) -> str:
 
 @pytest.fixture(scope="module")
 def database():
-    connection = duckdb.connect()
-    connection.from_arrow(_table()).create_view("panel_view")
-    connection.execute("CREATE TABLE panel AS SELECT * FROM panel_view")
-    rankfold.udfs.register(connection)
+    connection = database_holding(_table(), "panel")
     yield connection
     connection.close()
 
@@ -75,8 +73,7 @@ def database():
 @pytest.fixture()
 def con(database):
     """A fresh connection (cursor) to the module's database, registered like any caller."""
-    cursor = database.cursor()
-    rankfold.udfs.register(cursor)
+    cursor = registered_cursor(database)
     yield cursor
     cursor.close()
 

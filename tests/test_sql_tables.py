@@ -17,6 +17,7 @@ import pytest
 
 import rankfold
 import rankfold.udfs
+from duckdb_support import database_holding, registered_cursor
 from rankfold.udfs.store.reader import ArchiveReader
 
 EXAMPLES = Path(__file__).resolve().parent.parent / "sql_examples"
@@ -62,18 +63,14 @@ def archives(tmp_path_factory) -> dict[str, str]:
 
 @pytest.fixture(scope="module")
 def database():
-    connection = duckdb.connect()
-    connection.from_arrow(_table()).create_view("sites_view")
-    connection.execute("CREATE TABLE sites AS SELECT * FROM sites_view")
-    rankfold.udfs.register(connection)
+    connection = database_holding(_table(), "sites")
     yield connection
     connection.close()
 
 
 @pytest.fixture()
 def con(database):
-    cursor = database.cursor()
-    rankfold.udfs.register(cursor)
+    cursor = registered_cursor(database)
     yield cursor
     cursor.close()
 
