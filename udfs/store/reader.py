@@ -241,7 +241,7 @@ class ArchiveReader:
         names = self.resolve_columns(columns)
         pos = positions if positions is not None else self.resolve_rows(rows)
         col_idx = np.array([self.column_index[n] for n in names], dtype=np.int64)
-        table = self.read_rows(pos)
+        table = self.read_rows(pos, self._row_file_columns(col_idx))
         filled = self.basis_block(table)
         weights = self.weights[:, col_idx]
         offset = self.offset[col_idx]
@@ -289,6 +289,15 @@ class ArchiveReader:
             exact |= whole
         bounds[exact] = 0.0
         return Rebuilt(pos, names, values, bounds, exact, nulls, table)
+
+    def _row_file_columns(self, col_idx: np.ndarray) -> list[str]:
+        """Row-file columns a rebuild of ``col_idx`` reads: the exact (key and non-numeric)
+        columns, every stored basis column, the row ledger and only the requested columns'
+        residual codes (a narrow request on a wide archive skips the other codes)."""
+        codes = [layout.CODE_PATTERN.format(int(j)) for j in col_idx
+                 if np.isfinite(self.residual_step[j])]
+        wanted = list(self.manifest.get("exact_columns", [])) + self.basis_stored + codes
+        return list(dict.fromkeys(wanted + [layout.ROW_ERR_MAX]))
 
     def iter_rebuild(self, rows: Any = None, columns: Any = None, *,
                      batch_rows: int = layout.ROW_GROUP_ROWS):
