@@ -26,10 +26,10 @@ import rankfold
 from rankfold.demo import fernwald_readings
 
 METHODS = [
-    ("pivoted_qr + qdeim, optimal U (default)", dict(columns="pivoted_qr", rows="qdeim", link="optimal")),
+    ("pivoted_qr + qdeim, optimal U", dict(columns="pivoted_qr", rows="qdeim", link="optimal")),
     ("leverage + leverage, optimal U", dict(columns="leverage", rows="leverage", link="optimal")),
     ("length_squared + length_squared, optimal U", dict(columns="length_squared", rows="length_squared", link="optimal")),
-    ("pivoted_qr, CX (C^+ A)", dict(columns="pivoted_qr", rows="qdeim", link="cx")),
+    ("pivoted_qr, CX (C^+ A) (default)", dict(columns="pivoted_qr", link="cx")),
     ("pivoted_qr + qdeim, skeleton U", dict(columns="pivoted_qr", rows="qdeim", link="skeleton")),
     ("length_squared, textbook U", dict(columns="length_squared", rows="length_squared", link="textbook")),
     ("truncated SVD (reference)", dict(method="svd")),

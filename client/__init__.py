@@ -44,10 +44,11 @@ def compress(source: Any, path: str | Path, *, rank: int | None = None, seed: in
     **options : see the README's option table. Targets: rel_error (number or {column: number}),
         max_abs_error (number or {column: number}, in column units: every rebuilt value is
         guaranteed within it), target_bytes. Method: method ('cur' | 'svd'), columns
-        ('pivoted_qr' | 'leverage' | 'length_squared'), rows ('qdeim' | 'leverage' |
-        'length_squared'), link ('optimal' | 'cx' | 'skeleton' | 'textbook'), transform
-        ('standardize' | 'center' | 'none'), n_columns (default 2 * rank), n_rows (default
-        2 * n_columns), replace (sample with replacement). Coding under max_abs_error: residual
+        ('pivoted_qr' | 'leverage' | 'length_squared'), link ('cx' | 'optimal' | 'skeleton' |
+        'textbook'; cx, the least-squares C^+ A, keeps no anchor rows), rows ('qdeim' |
+        'leverage' | 'length_squared'; links other than cx), transform ('standardize' |
+        'center' | 'none'), n_columns (default 2 * rank), n_rows (default 2 * n_columns; links
+        other than cx), replace (sample with replacement). Coding under max_abs_error: residual
         ('auto' | 'quantized' | 'corrections'), basis_precision ('exact' | 'tolerance'),
         refit_outliers. Data: key (a column to address rows by), exact_columns (numeric
         columns kept exactly), connection (DuckDB, for table or query sources). Running:

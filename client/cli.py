@@ -324,11 +324,13 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--seed", type=int, default=0, help="seed of the random choices (default 0)")
     p.add_argument("--method", choices=["cur", "svd"], help="real columns and rows (cur, default) or synthetic factors (svd)")
     p.add_argument("--columns", choices=["pivoted_qr", "leverage", "length_squared"], help="how basis columns are chosen")
-    p.add_argument("--rows-method", choices=["qdeim", "leverage", "length_squared"], help="how anchor rows are chosen")
-    p.add_argument("--link", choices=["optimal", "skeleton", "textbook", "cx"], help="the link matrix")
+    p.add_argument("--rows-method", choices=["qdeim", "leverage", "length_squared"],
+                   help="how anchor rows are chosen (links other than cx)")
+    p.add_argument("--link", choices=["cx", "optimal", "skeleton", "textbook"],
+                   help="how other columns are built from the basis columns (default cx: least squares, no anchor rows)")
     p.add_argument("--transform", choices=["standardize", "center", "none"], help="per-column transform before factoring")
     p.add_argument("--n-columns", type=int, dest="n_columns", metavar="C", help="basis columns to keep (default 2k)")
-    p.add_argument("--n-rows", type=int, dest="n_rows", metavar="R", help="anchor rows to keep (default 2c)")
+    p.add_argument("--n-rows", type=int, dest="n_rows", metavar="R", help="anchor rows to keep (default 2c; links other than cx)")
     p.add_argument("--max-abs-error", type=float, dest="max_abs_error", metavar="E",
                    help="largest absolute error allowed in any cell (the tolerance)")
     p.add_argument("--rel-error", type=float, dest="rel_error", metavar="E",

@@ -133,7 +133,7 @@ def test_rank_larger_than_the_matrix(tmp_path):
                        match=r"'rank' option of compress must be at most min\(rows, numeric columns\) = 5 .*Got 6"):
         rankfold.compress(_table(), tmp_path / "r.rfa", rank=6)
     with pytest.raises(rankfold.RankTooLargeError, match=r"'n_rows' option .* at most the 30 source rows\. Got 31"):
-        rankfold.compress(_table(), tmp_path / "r.rfa", rank=2, n_rows=31)
+        rankfold.compress(_table(), tmp_path / "r.rfa", rank=2, n_rows=31, link="optimal")
     with pytest.raises(rankfold.RankTooLargeError, match=r"'n_columns' option .* at most the 5 numeric columns\. Got 9"):
         rankfold.compress(_table(), tmp_path / "r.rfa", rank=2, n_columns=9)
     assert not (tmp_path / "r.rfa").exists()
@@ -156,7 +156,7 @@ def test_unknown_option_suggests_the_closest(tmp_path):
     ({"batch_rows": 0}, rankfold.InvalidInputError, r"'batch_rows' option .* positive integer\. Got 0"),
     ({"method": "pca"}, rankfold.UnknownOptionError, r"'method' option of compress must be one of 'cur', 'svd'\. Got 'pca'"),
     ({"columns": "random"}, rankfold.UnknownOptionError, r"'columns' option .* Got 'random'"),
-    ({"rows": "first"}, rankfold.UnknownOptionError, r"'rows' option .* Got 'first'"),
+    ({"rows": "first", "link": "optimal"}, rankfold.UnknownOptionError, r"'rows' option .* Got 'first'"),
     ({"link": "best"}, rankfold.UnknownOptionError, r"'link' option .* Got 'best'"),
     ({"transform": "log"}, rankfold.UnknownOptionError, r"'transform' option .* 'standardize', 'center', 'none'\. Got 'log'"),
     ({"replace": "yes"}, rankfold.InvalidInputError, r"'replace' option of compress must be True, False or None\. Got 'yes'"),

@@ -47,7 +47,7 @@ def client():
 @pytest.mark.parametrize("options", [
     {"rank": 3},
     {"rank": 3, "max_abs_error": 0.05},
-    {"rank": 3, "rows": "leverage", "columns": "leverage"},
+    {"rank": 3, "rows": "leverage", "columns": "leverage", "link": "optimal"},
     {"rank": 3, "link": "textbook", "columns": "length_squared", "rows": "length_squared"},
     {"rank": 3, "method": "svd"},
 ])
@@ -71,7 +71,7 @@ def test_same_seed_same_archive_on_both_executors(dataset, client, tmp_path, opt
         p["first_row"] for p in dask.manifest["row_parts"])
     # progress through the same callback: every pass, ending at every row
     finished = [e for e in events if e["done"]]
-    assert {e["stage"] for e in finished} >= {"profile", "sketch", "verify"}
+    assert {e["stage"] for e in finished} >= {"profile", "verify"}
     assert all(e["rows_done"] == ROWS for e in finished)
 
 

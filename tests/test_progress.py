@@ -11,9 +11,10 @@ import rankfold
 def test_every_pass_reports_rows_in_order(tmp_path):
     events = []
     x = np.random.default_rng(0).standard_normal((1000, 20))  # invented data
-    rankfold.compress(x, tmp_path / "p.rfa", rank=3, batch_rows=300, progress=events.append)
+    rankfold.compress(x, tmp_path / "p.rfa", rank=3, batch_rows=300, link="optimal",
+                      progress=events.append)
     stages = [e["stage"] for e in events if e["done"]]
-    assert stages == ["profile", "sketch", "select", "verify"]
+    assert stages == ["profile", "select", "verify"]  # the profile pass also sketches
     for stage in stages:
         mine = [e for e in events if e["stage"] == stage]
         assert [e["rows_done"] for e in mine] == [300, 600, 900, 1000, 1000]
@@ -21,11 +22,12 @@ def test_every_pass_reports_rows_in_order(tmp_path):
         assert all(e["rows_total"] == (None if stage == "profile" else 1000) for e in mine)
 
 
-def test_svd_has_no_select_pass(tmp_path):
-    events = []
+def test_svd_and_the_default_cx_link_have_no_select_pass(tmp_path):
     x = np.random.default_rng(1).standard_normal((50, 6))
-    rankfold.compress(x, tmp_path / "s.rfa", rank=2, method="svd", progress=events.append)
-    assert [e["stage"] for e in events if e["done"]] == ["profile", "sketch", "verify"]
+    for name, options in (("svd", {"method": "svd"}), ("cx", {})):
+        events = []
+        rankfold.compress(x, tmp_path / f"{name}.rfa", rank=2, progress=events.append, **options)
+        assert [e["stage"] for e in events if e["done"]] == ["profile", "verify"]
 
 
 def test_progress_must_be_callable(tmp_path):

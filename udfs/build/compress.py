@@ -27,11 +27,11 @@ from ..store import layout
 from ..store.aggregate import BlockSums
 from ..store.arithmetic import round_up, trim_mantissa
 from . import link as _link
-from ..factor.sketch import GramSketch
+from ..factor.sketch import GramSketch, ShiftedGram
 from .commit import CELLS_SCHEMA, ArchiveWriter, RowPartWriter, concat_parquet, prepare_target
 from .executors import make_executor
 from .options import DEFAULT_RANK_CAP_DIVISOR, CompressOptions
-from .profile import ColumnProfile, Fingerprint, Transform, profile_block
+from .profile import ColumnProfile, Fingerprint, Transform, profile_rows
 from .select import AnchorRows, anchor_partial, merge_anchor_partials, sketch_of
 from .refit import KAPPA, OutlierScreen
 from .verify import Coding, VerifyResult, verify_pass
@@ -50,15 +50,16 @@ def _is_numeric(data_type: pa.DataType) -> bool:
 
 # -- the passes as tasks over one partition's blocks (first row, batch, block, NULL mask) ---------
 def _profile_task(blocks, part, width: int, keep_sample: bool):
+    """Column statistics, the fingerprint and the co-moments (the sketch) of one partition."""
     profile = ColumnProfile.empty(width)
     fingerprint = Fingerprint()
+    gram = ShiftedGram(width)
     sample: dict[str, float] = {}
     for first, batch, block, mask in blocks:
-        profile = profile.merge(profile_block(block, mask))
-        fingerprint.update(first, block)
+        profile, gram = profile_rows(first, block, mask, profile, fingerprint, gram)
         if keep_sample and not sample:
             sample = targets.column_bytes(batch.slice(0, 65_536))
-    return profile, fingerprint, sample
+    return profile, fingerprint, sample, gram
 
 
 def _sketch_task(blocks, part, screen, width: int):
@@ -105,10 +106,11 @@ class _Passes:
         parts = self.ex.run("profile", _profile_task, numeric, extra, None,
                             (len(numeric), keep_sample))
         profile, fingerprint, sample = ColumnProfile.empty(len(numeric)), Fingerprint(), {}
-        for p, f, s in parts:
-            profile, fingerprint = profile.merge(p), fingerprint.merge(f)
+        gram = ShiftedGram(len(numeric))
+        for p, f, s, g in parts:
+            profile, fingerprint, gram = profile.merge(p), fingerprint.merge(f), gram.merge(g)
             sample = sample or s
-        return profile, fingerprint, sample
+        return profile, fingerprint, sample, gram
 
     def sketch(self, stage: str, numeric: list[str], rows: int, screen):
         parts = self.ex.run(stage, _sketch_task, numeric, (), rows, (screen, len(numeric)))
@@ -120,9 +122,9 @@ class _Passes:
                 screen.rows_left_out += left_out
         return sketch_of(gram)
 
-    def anchors(self, stage, numeric, rows, screen, sketch, method, rank, count, replace, draw):
+    def anchors(self, stage, numeric, rows, screen, sketch, method, rank, count, seed, replace, draw):
         parts = self.ex.run(stage, _anchor_task, numeric, (), rows,
-                            (screen, sketch, method, rank, count, self.opts.seed, replace, draw))
+                            (screen, sketch, method, rank, count, seed, replace, draw))
         return merge_anchor_partials(parts, len(numeric), method, count, replace=replace)
 
 
@@ -192,6 +194,8 @@ def _sizes(opts: CompressOptions, rows: int, width: int, spectrum) -> tuple[int,
         raise RankTooLargeError(
             f"The 'n_columns' option of compress must be at least the rank ({rank}). Got {c} instead."
         )
+    if opts.link == "cx":  # C^+ A uses no rows: no anchor rows are kept
+        return rank, c, 0, why
     r = opts.n_rows if opts.n_rows is not None else min(2 * min(c, width), rows)
     if r > rows and not (iid and opts.rows != "qdeim"):
         raise RankTooLargeError(
@@ -220,7 +224,7 @@ def _compress(src, target: Path, opts: CompressOptions) -> Path:
             f"{src.schema.names}). rankfold compresses integer and floating-point columns."
         )
     passes = _Passes(src, opts)
-    profile, fingerprint, sample = passes.profile(numeric, keep_sample=opts.has_targets)
+    profile, fingerprint, sample, gram = passes.profile(numeric, keep_sample=opts.has_targets)
     rows = int(fingerprint.rows)
     if rows == 0:
         raise EmptySourceError(f"The source {src.description} has no rows; there is nothing to compress.")
@@ -232,6 +236,7 @@ def _compress(src, target: Path, opts: CompressOptions) -> Path:
         keep = [j for j, n in enumerate(numeric) if n not in too_big]
         profile = ColumnProfile(*(getattr(profile, f)[keep] for f in profile.__dataclass_fields__))
         fingerprint = fingerprint.select(keep)
+        gram = gram.select(keep)
         numeric = [numeric[j] for j in keep]
         passthrough = [n for n in src.schema.names if n not in numeric]
         if not numeric:
@@ -241,7 +246,8 @@ def _compress(src, target: Path, opts: CompressOptions) -> Path:
             )
     width = len(numeric)
     transform = Transform.fit(opts.transform, profile)
-    sketch = passes.sketch("sketch", numeric, rows, transform)
+    # the sketch comes from the profile pass's co-moments, moved to the transform's shift
+    sketch = sketch_of(gram.gram(transform.shift, transform.scale))
     goal = _Goal.from_options(opts, numeric)
     build = _first_build(opts, goal, rows, width, sketch, profile, transform, sample, numeric, passthrough)
     for attempt in range(_MAX_ATTEMPTS):
@@ -427,22 +433,22 @@ def _write(src, target, opts, numeric, passthrough, rows, profile, fingerprint, 
                      "rows_left_out": screen.rows_left_out}
             score_right = cleaned.spectrum.right[:, :rank]
             mixing = _link.mixing_for_scores(cleaned.spectrum.right, rank, transform)
-        anchors = AnchorRows(np.zeros(0, np.int64), np.zeros((0, width)), np.zeros((0, width), bool))
+        anchors = _no_anchors(width)
         basis_names = [layout.SCORE_PATTERN.format(k) for k in range(rank)]
     elif build.n_columns == 0:  # no low-rank part: offsets (the column means) and the residual
         mixing = _link.Mixing(np.zeros((0, width)), transform.shift.copy(), np.zeros(0), np.zeros(0, np.int64))
-        anchors = AnchorRows(np.zeros(0, np.int64), np.zeros((0, width)), np.zeros((0, width), bool))
+        anchors = _no_anchors(width)
         score_right, basis_names = None, []
     else:
-        mixing, anchors, m_transformed = _fit_cur(opts, build, sketch, transform, transform,
-                                                  passes, "select", numeric, rows, rng, 0)
+        mixing, anchors, m_transformed = _fit_cur(
+            opts, build, sketch, transform, transform, passes, "select", numeric, rows, rng, 0)
         if opts.refits:
             screen = OutlierScreen(transform, mixing, sketch.r, m_transformed, rows)
             cleaned = passes.sketch("refit", numeric, rows, screen)
             refit = {"kappa": KAPPA, "cells_screened": screen.replaced,
                      "rows_left_out": screen.rows_left_out}
-            mixing, anchors, _ = _fit_cur(opts, build, cleaned, screen, transform,
-                                          passes, "refit-select", numeric, rows, rng, 1)
+            mixing, anchors, _ = _fit_cur(
+                opts, build, cleaned, screen, transform, passes, "refit-select", numeric, rows, rng, 1)
         score_right = None
         basis_names = [numeric[k] for k in mixing.basis_columns]
     coding = _coding(plan, mixing, build)
@@ -457,12 +463,12 @@ def _write(src, target, opts, numeric, passthrough, rows, profile, fingerprint, 
             (writer.temp, writer.part_rows, numeric, passthrough, mixing, anchors, transform,
              score_right, ledger_scale(profile), coding, distributed)
             + (() if distributed else (writer,)))
-        result = VerifyResult.merge([r for r, _, _ in parts], width)
+        result = VerifyResult.merge([p[0] for p in parts], width)
         if distributed:
-            writer.adopt_parts([part for _, files, _ in parts for part in files])
-        for _, _, records in parts:
-            sums.records.extend(records)
-        cell_files = [f".cells-{k:05d}.parquet" for k, (r, _, _) in enumerate(parts) if r.cells.written]
+            writer.adopt_parts([part for p in parts for part in p[1]])
+        for p in parts:
+            sums.records.extend(p[2])
+        cell_files = [f".cells-{k:05d}.parquet" for k, p in enumerate(parts) if p[0].cells.written]
         if not result.fingerprint.matches(fingerprint):
             raise SourceChangedError(
                 f"The source {src.description} gave different rows in the profile and verify "
@@ -482,16 +488,25 @@ def _write(src, target, opts, numeric, passthrough, rows, profile, fingerprint, 
         raise
 
 
+def _no_anchors(width: int) -> AnchorRows:
+    return AnchorRows(np.zeros(0, np.int64), np.zeros((0, width)), np.zeros((0, width), bool))
+
+
 def _fit_cur(opts, build, sketch, screen, transform, passes, stage, numeric, rows, rng, draw):
     """Basis columns, anchor rows and raw-unit mixing of one CUR fit. ``screen`` is the
     transform used to read rows (the plain transform, or an OutlierScreen for a refit);
-    ``draw`` keys the row choice's random numbers (with the seed and each row's position)."""
+    ``draw`` keys the row choice's random numbers (with the seed and each row's position).
+
+    The ``cx`` link (C^+ Z) uses no rows: it keeps no anchor rows and spends no pass on them."""
     replace = opts.sample_with_replacement
     rank = max(1, build.rank)
     choice = _cur.choose_columns(opts.columns, sketch.r, sketch.spectrum, rank, build.n_columns,
                                  rng, replace=replace)
-    anchors = passes.anchors(stage, numeric, rows, screen, sketch, opts.rows, rank, build.n_rows,
-                             replace, draw)
+    if opts.link == "cx":
+        anchors = _no_anchors(len(numeric))
+    else:
+        anchors = passes.anchors(stage, numeric, rows, screen, sketch, opts.rows, rank, build.n_rows,
+                                 opts.seed, replace, draw)
     columns, m_transformed = _cur.build_mixing(opts.link, choice, sketch.r, screen.apply(anchors.values))
     return _link.mixing_for_columns(columns, m_transformed, transform), anchors, m_transformed
 

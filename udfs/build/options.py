@@ -33,8 +33,8 @@ class CompressOptions:
     seed: int = 0
     method: str | None = None
     columns: str = "pivoted_qr"
-    rows: str = "qdeim"
-    link: str = "optimal"
+    rows: str | None = None  # "qdeim" for the links that keep anchor rows
+    link: str = "cx"
     transform: str = "standardize"
     n_columns: int | None = None
     n_rows: int | None = None
@@ -101,8 +101,15 @@ class CompressOptions:
                 "to steps of twice the tolerance."
             )
         _choice("columns", self.columns, COLUMN_METHODS)
-        _choice("rows", self.rows, ROW_METHODS)
         _choice("link", self.link, LINKS)
+        if self.link == "cx" and (self.rows is not None or self.n_rows is not None):
+            raise InvalidInputError(
+                "The 'cx' link (the default: every column a least-squares combination of the "
+                "basis columns, C^+ A) keeps no anchor rows, so 'rows' and 'n_rows' would have "
+                "no effect. Pass link='optimal' (or 'skeleton', 'textbook') to keep anchor rows."
+            )
+        self.rows = self.rows if self.rows is not None else "qdeim"
+        _choice("rows", self.rows, ROW_METHODS)
         _choice("transform", self.transform, TRANSFORMS)
         if self.refit_outliers is not None and not isinstance(self.refit_outliers, bool):
             raise InvalidInputError(

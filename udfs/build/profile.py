@@ -12,7 +12,13 @@ from dataclasses import dataclass
 
 import numpy as np
 
-__all__ = ["ColumnProfile", "Fingerprint", "profile_block", "Transform"]
+from ..factor.sketch import ShiftedGram
+
+__all__ = ["ColumnProfile", "Fingerprint", "profile_block", "profile_rows", "Transform", "SUB_BLOCK_ROWS"]
+
+# Rows per sub-block of the per-block statistics: a few MB per temporary at n = 100, so the
+# elementwise work stays in cache (measured 3-4x faster than on 125,000-row blocks).
+SUB_BLOCK_ROWS = 8192
 
 
 def _row_weights(first: int, count: int) -> np.ndarray:
@@ -134,6 +140,26 @@ def profile_block(block: np.ndarray, null_mask: np.ndarray | None) -> ColumnProf
         hi = np.where(valid > 0, np.max(np.where(finite, block, -np.inf), axis=0), -np.inf)
     return ColumnProfile(valid.astype(np.int64), nulls.astype(np.int64), nan.astype(np.int64),
                          inf.astype(np.int64), mean, m2, lo, hi)
+
+
+def profile_rows(first: int, block: np.ndarray, mask: np.ndarray | None, profile: ColumnProfile,
+                 fingerprint: Fingerprint, gram: ShiftedGram | None) -> tuple[ColumnProfile, ShiftedGram | None]:
+    """Add a raw block (b, n) whose first row is ``first`` to the running statistics, in
+    sub-blocks of ``SUB_BLOCK_ROWS`` rows; ``fingerprint`` is updated in place. With
+    ``gram``, each sub-block's co-moments about its own mean are merged in as well (the
+    sketch of the first pass; see ``factor.sketch.ShiftedGram``). Returns the new profile
+    and Gram state."""
+    for lo in range(0, block.shape[0], SUB_BLOCK_ROWS):
+        part = block[lo:lo + SUB_BLOCK_ROWS]
+        part_mask = None if mask is None else mask[lo:lo + SUB_BLOCK_ROWS]
+        stats = profile_block(part, part_mask)
+        profile = profile.merge(stats)
+        fingerprint.update(first + lo, part)
+        if gram is not None:
+            every_cell_finite = stats.valid.min(initial=part.shape[0]) == part.shape[0]
+            finite = None if every_cell_finite else np.isfinite(part)
+            gram = gram.merge(ShiftedGram.of_block(part, stats.mean, finite))
+    return profile, gram
 
 
 @dataclass(frozen=True)

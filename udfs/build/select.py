@@ -28,7 +28,7 @@ from ..factor.sketch import GramSketch, Spectrum
 from .profile import Transform
 
 __all__ = ["Sketch", "sketch_pass", "sketch_of", "AnchorRows", "anchor_pass", "AnchorPartial",
-           "anchor_partial", "merge_anchor_partials", "row_uniforms"]
+           "AnchorScan", "anchor_partial", "merge_anchor_partials", "row_uniforms"]
 
 # A block stream yields (first row position, raw block (b, n), NULL mask or None).
 BlockStream = Callable[[], Iterator[tuple[int, np.ndarray, "np.ndarray | None"]]]
@@ -165,56 +165,91 @@ def _race_keys(seed: int, draw: int, slots: int, positions: np.ndarray, weights:
     return keys
 
 
+class AnchorScan:
+    """Map step of the anchor choice, fed one raw block at a time (``add``), so that it can
+    run on its own pass or ride along another one (the verify pass, when the link does not
+    depend on the anchor rows). ``partial()`` gives what ``merge_anchor_partials`` merges.
+
+    ``screen`` is the transform the rows are read through (a ``Transform`` or an outlier
+    screen); blocks are raw (b, n) with NaN for NULL and the NULL mask beside them.
+    """
+
+    def __init__(self, screen, sketch: Sketch, method: str, rank: int, count: int, seed: int,
+                 *, replace: bool, draw: int = 0):
+        self.screen, self.sketch, self.method = screen, sketch, method
+        self.rank, self.count, self.seed = rank, count, seed
+        self.replace, self.draw = replace, draw
+        self.keeper = _RowKeeper()
+        self.positions = np.zeros(0, dtype=np.int64)
+        self.keys = np.zeros(0)
+        self.left = np.zeros((0, rank)) if method == "qdeim" else None
+        if method != "qdeim" and replace:
+            self.slot_items = np.full(count, -1, dtype=np.int64)
+            self.slot_keys = np.full(count, -np.inf)
+
+    def _left_rows(self, block: np.ndarray) -> np.ndarray:
+        """Rows of U_k for a raw block. With a plain transform and finite cells,
+        Z V_k = X (V_k / scale) - (shift / scale) V_k: one product, no transformed copy."""
+        spectrum = self.sketch.spectrum
+        screen = self.screen
+        if isinstance(screen, Transform) and np.isfinite(block).all():
+            right = spectrum.right[:, :self.rank] / screen.scale[:, None]
+            s = spectrum.values[:self.rank]
+            inv = np.divide(1.0, s, out=np.zeros_like(s), where=s > s[0] * 1e-14 if s.size else None)
+            return (block @ right - screen.shift @ right) * inv
+        return _cur.left_singular_rows(screen.apply(block), spectrum, self.rank)
+
+    def add(self, first: int, block: np.ndarray, mask: np.ndarray | None) -> None:
+        """Take in rows first .. first + b - 1 (raw block (b, n), NULL mask or None)."""
+        positions = first + np.arange(block.shape[0], dtype=np.int64)
+        if self.method == "qdeim":
+            pool_size = max(8 * self.count, 256)
+            left = self._left_rows(block)
+            self.positions = np.concatenate([self.positions, positions])
+            self.left = np.vstack([self.left, left])
+            self.keys = np.concatenate([self.keys, np.einsum("ij,ij->i", left, left)])
+            if self.positions.size > pool_size:
+                keep = _top(self.keys, self.positions, pool_size)
+                self.positions, self.left, self.keys = self.positions[keep], self.left[keep], self.keys[keep]
+            self.keeper.keep(self.positions, first, block, mask)
+            return
+        weights = _cur.row_weights(self.method, self.screen.apply(block), self.sketch.spectrum, self.rank)
+        if self.replace:
+            keys = _race_keys(self.seed, self.draw, self.count, positions, weights)
+            if keys.shape[1]:
+                best = np.argmax(keys, axis=1)  # first maximum: the smaller position on ties
+                won = keys[np.arange(self.count), best]
+                better = won > self.slot_keys
+                self.slot_items[better] = positions[best[better]]
+                self.slot_keys[better] = won[better]
+            self.keeper.keep(self.slot_items[self.slot_items >= 0], first, block, mask)
+            return
+        u = row_uniforms(self.seed, self.draw << 20, positions)
+        with np.errstate(divide="ignore"):
+            keys = np.where(weights > 0, np.log(u) / np.where(weights > 0, weights, 1.0), -np.inf)
+        # zero-weight rows: after every positive one, randomly among themselves
+        keys = np.where(np.isneginf(keys), -1e300 - u, keys)
+        self.positions = np.concatenate([self.positions, positions])
+        self.keys = np.concatenate([self.keys, keys])
+        if self.positions.size > self.count:
+            keep = _top(self.keys, self.positions, self.count)
+            self.positions, self.keys = self.positions[keep], self.keys[keep]
+        self.keeper.keep(self.positions, first, block, mask)
+
+    def partial(self) -> AnchorPartial:
+        if self.method != "qdeim" and self.replace:
+            return AnchorPartial(np.zeros(0, np.int64), np.zeros(0), None, self.keeper.rows,
+                                 self.slot_items, self.slot_keys)
+        return AnchorPartial(self.positions, self.keys, self.left, self.keeper.rows)
+
+
 def anchor_partial(blocks, transform: Transform, sketch: Sketch, method: str, rank: int,
                    count: int, seed: int, *, replace: bool, draw: int = 0) -> AnchorPartial:
     """Map step of the anchor pass over one partition's blocks (first, raw block, mask)."""
-    keeper = _RowKeeper()
-    if method == "qdeim":
-        pool_size = max(8 * count, 256)
-        pool_pos = np.zeros(0, dtype=np.int64)
-        pool_left = np.zeros((0, rank))
-        pool_score = np.zeros(0)
-        for first, block, mask in blocks:
-            left = _cur.left_singular_rows(transform.apply(block), sketch.spectrum, rank)
-            pool_pos = np.concatenate([pool_pos, first + np.arange(block.shape[0])])
-            pool_left = np.vstack([pool_left, left])
-            pool_score = np.concatenate([pool_score, np.einsum("ij,ij->i", left, left)])
-            if pool_pos.size > pool_size:
-                keep = _top(pool_score, pool_pos, pool_size)
-                pool_pos, pool_left, pool_score = pool_pos[keep], pool_left[keep], pool_score[keep]
-            keeper.keep(pool_pos, first, block, mask)
-        return AnchorPartial(pool_pos, pool_score, pool_left, keeper.rows)
-    weights_of = (lambda z: _cur.row_weights(method, z, sketch.spectrum, rank))
-    if replace:
-        slot_items = np.full(count, -1, dtype=np.int64)
-        slot_keys = np.full(count, -np.inf)
-        for first, block, mask in blocks:
-            positions = first + np.arange(block.shape[0], dtype=np.int64)
-            keys = _race_keys(seed, draw, count, positions, weights_of(transform.apply(block)))
-            if keys.shape[1]:
-                best = np.argmax(keys, axis=1)  # first maximum: the smaller position on ties
-                better = keys[np.arange(count), best] > slot_keys
-                slot_items[better] = positions[best[better]]
-                slot_keys[better] = keys[np.arange(count), best][better]
-            keeper.keep(slot_items[slot_items >= 0], first, block, mask)
-        return AnchorPartial(np.zeros(0, np.int64), np.zeros(0), None, keeper.rows, slot_items, slot_keys)
-    items = np.zeros(0, dtype=np.int64)
-    item_keys = np.zeros(0)
+    scan = AnchorScan(transform, sketch, method, rank, count, seed, replace=replace, draw=draw)
     for first, block, mask in blocks:
-        w = weights_of(transform.apply(block))
-        positions = first + np.arange(w.size, dtype=np.int64)
-        u = row_uniforms(seed, draw << 20, positions)
-        with np.errstate(divide="ignore"):
-            keys = np.where(w > 0, np.log(u) / np.where(w > 0, w, 1.0), -np.inf)
-        # zero-weight rows: after every positive one, randomly among themselves
-        keys = np.where(np.isneginf(keys), -1e300 - u, keys)
-        items = np.concatenate([items, positions])
-        item_keys = np.concatenate([item_keys, keys])
-        if items.size > count:
-            keep = _top(item_keys, items, count)
-            items, item_keys = items[keep], item_keys[keep]
-        keeper.keep(items, first, block, mask)
-    return AnchorPartial(items, item_keys, None, keeper.rows)
+        scan.add(first, block, mask)
+    return scan.partial()
 
 
 def merge_anchor_partials(partials: list[AnchorPartial], width: int, method: str, count: int,

@@ -5,10 +5,19 @@ Method names (options of ``rankfold.compress``):
 
 ============== ====================================================================
 columns=       ``pivoted_qr`` (deterministic; default), ``leverage``, ``length_squared``
-rows=          ``qdeim`` (deterministic; default), ``leverage``, ``length_squared``
-link=          ``optimal`` (C^+ A R^+; default), ``skeleton`` (pinv(A[I, J])),
-               ``textbook`` (through P = R^+ R, with 1/sqrt(s p) rescaling), ``cx`` (C^+ A)
+link=          ``cx`` (C^+ A; default, keeps no rows), ``optimal`` (C^+ A R^+),
+               ``skeleton`` (pinv(A[I, J])), ``textbook`` (through P = R^+ R, with
+               1/sqrt(s p) rescaling)
+rows=          for the links that keep anchor rows: ``qdeim`` (deterministic; default),
+               ``leverage``, ``length_squared``
 ============== ====================================================================
+
+Why ``cx`` is the default: among all approximations C X whose columns lie in the span of
+the chosen columns C, X = C^+ A has the smallest Frobenius error (least squares), so for the
+same columns no link that ends in C U R can do better; it needs no anchor rows, hence no
+pass over the table to choose them; and it stores the same c x n weights. Measured
+(benchmarks/methods.py, 20,000 x 120, rank 10): 1.18x the rank-k optimum against 1.22x for
+the optimal U on the same columns.
 
 References
 ----------
@@ -138,14 +147,15 @@ def cur(
     n_rows: int | None = None,
     columns: str = "pivoted_qr",
     rows: str = "qdeim",
-    link: str = "optimal",
+    link: str = "cx",
     replace: bool | None = None,
     rng: np.random.Generator | None = None,
 ) -> CURResult:
     """In-memory CUR of ``a`` (shape (m, n)) with the same choices as the streaming builder.
 
-    Defaults: c = 2k columns, r = 2c rows (clipped to the table; given counts are clipped
-    too unless ``replace`` draws i.i.d. samples, which may repeat). Used as a reference in
+    Defaults: c = 2k columns and, for the links that keep rows, r = 2c rows (clipped to the
+    table; given counts are clipped too unless ``replace`` draws i.i.d. samples, which may
+    repeat); ``cx`` keeps no rows. Used as a reference in
     tests and for small tables; archives are built by ``rankfold.udfs.build``.
     """
     a = np.asarray(a, dtype=np.float64)
@@ -170,5 +180,7 @@ def cur(
     else:
         p = sampling.length_squared_probabilities(weights)
         row_idx = sampling.draw(p, r, rng, replace=replace)
+    if link == "cx":  # C^+ A keeps no rows, as in the streaming builder
+        row_idx = np.zeros(0, dtype=np.int64)
     cols, mixing = build_mixing(link, choice, sketch_r, a[row_idx])
     return CURResult(cols, np.asarray(row_idx), mixing)
