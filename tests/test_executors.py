@@ -120,3 +120,16 @@ def test_row_choice_does_not_depend_on_partitioning(method, replace):
                                           partial(2000, 3000, 1000)], 8, method, 12, replace=replace)
     assert np.array_equal(whole.positions, split.positions)
     assert np.array_equal(whole.values, z[whole.positions])
+
+
+def test_passes_run_with_one_blas_thread_and_restore_the_setting(tmp_path):
+    # threadpoolctl.threadpool_info reports every loaded BLAS library and its thread count
+    from threadpoolctl import threadpool_info
+
+    from rankfold.udfs.build.executors import one_blas_thread
+
+    before = [(i["filepath"], i["num_threads"]) for i in threadpool_info() if i["user_api"] == "blas"]
+    with one_blas_thread():
+        inside = [i["num_threads"] for i in threadpool_info() if i["user_api"] == "blas"]
+    assert inside and set(inside) == {1}
+    assert [(i["filepath"], i["num_threads"]) for i in threadpool_info() if i["user_api"] == "blas"] == before

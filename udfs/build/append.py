@@ -38,6 +38,7 @@ from ..store.arithmetic import round_up
 from ..store.manifest import file_entry, write_manifest
 from ..store.reader import ArchiveReader
 from .commit import CELLS_SCHEMA, PART_ROWS, ZSTD_LEVEL, RowPartWriter, concat_parquet
+from .executors import one_blas_thread
 from .link import Mixing
 from .profile import ColumnProfile, Transform, profile_block
 from .progress import Progress
@@ -190,8 +191,9 @@ def _write_version(reader: ArchiveReader, src, batch_rows, progress, created: li
     report = Progress(progress, "append", None)
     stream = _stream(src, names, passthrough, batch_rows, first_row, transform, state, report)
     try:
-        result = verify_pass(stream, names, passthrough, mixing, anchors, transform, score_right,
-                             writer, scale, coding, block_sums=sums, cells_file=cells_temp)
+        with one_blas_thread():
+            result = verify_pass(stream, names, passthrough, mixing, anchors, transform, score_right,
+                                 writer, scale, coding, block_sums=sums, cells_file=cells_temp)
     finally:
         writer.close()
         created.extend(directory / p["name"] for p in writer.parts)
