@@ -328,3 +328,15 @@ def test_a_damaged_manifest(archive):
     (archive.path / "manifest.json").write_text("{ not json")
     with pytest.raises(rankfold.CorruptArchiveError, match=r"manifest\.json is not valid JSON"):
         rankfold.open(archive.path)
+
+
+def test_values_too_large_to_square_are_refused_with_the_column_named(tmp_path):
+    # float64 squares overflow beyond about 1.34e154 (IEEE 754 binary64 maximum 1.8e308)
+    x = np.random.default_rng(0).standard_normal((50, 4))  # invented data
+    x[:, 2] *= 1e200
+    with pytest.raises(rankfold.InvalidInputError, match=r"columns \['x2'\] .* too large to square"):
+        rankfold.compress(x, tmp_path / "big.rfa", rank=1)
+    assert not (tmp_path / "big.rfa").exists()
+    kept = rankfold.compress(pa.table({f"x{j}": x[:, j] for j in range(4)}), tmp_path / "ok.rfa",
+                             rank=1, exact_columns=["x2"])
+    assert np.array_equal(kept.rebuild().column("x2").to_numpy(), x[:, 2])

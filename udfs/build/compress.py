@@ -31,7 +31,7 @@ from ..factor.sketch import GramSketch, ShiftedGram
 from .commit import CELLS_SCHEMA, ArchiveWriter, RowPartWriter, concat_parquet, prepare_target
 from .executors import make_executor
 from .options import DEFAULT_RANK_CAP_DIVISOR, CompressOptions
-from .profile import ColumnProfile, Fingerprint, Transform, profile_rows
+from .profile import SUB_BLOCK_ROWS, ColumnProfile, Fingerprint, Transform, profile_rows
 from .select import AnchorRows, anchor_partial, merge_anchor_partials, sketch_of
 from .refit import KAPPA, OutlierScreen
 from .verify import Coding, VerifyResult, verify_pass
@@ -69,7 +69,8 @@ def _sketch_task(blocks, part, screen, width: int):
         screen.replaced = screen.rows_left_out = 0
     gram = GramSketch(width)
     for _, _, block, _ in blocks:
-        gram.update(screen.apply(block))
+        for lo in range(0, block.shape[0], SUB_BLOCK_ROWS):  # cache-sized temporaries
+            gram.update(screen.apply(block[lo:lo + SUB_BLOCK_ROWS]))
     counts = (screen.replaced, screen.rows_left_out) if isinstance(screen, OutlierScreen) else (0, 0)
     return gram, counts
 
@@ -247,7 +248,10 @@ def _compress(src, target: Path, opts: CompressOptions) -> Path:
     width = len(numeric)
     transform = Transform.fit(opts.transform, profile)
     # the sketch comes from the profile pass's co-moments, moved to the transform's shift
-    sketch = sketch_of(gram.gram(transform.shift, transform.scale))
+    with np.errstate(over="ignore", invalid="ignore"):
+        moments = gram.gram(transform.shift, transform.scale)
+    _check_squares(moments.gram, profile, numeric, src.description)
+    sketch = sketch_of(moments)
     goal = _Goal.from_options(opts, numeric)
     build = _first_build(opts, goal, rows, width, sketch, profile, transform, sample, numeric, passthrough)
     for attempt in range(_MAX_ATTEMPTS):
@@ -271,6 +275,21 @@ def _compress(src, target: Path, opts: CompressOptions) -> Path:
 
 
 _MAX_ATTEMPTS = 6
+
+
+def _check_squares(gram: np.ndarray, profile: ColumnProfile, numeric: list[str], description: str) -> None:
+    """Refuse columns whose squared deviations overflow float64 (|x - mean| beyond ~1e154):
+    their second moments, and so the sketch, cannot be formed."""
+    bad = ~np.isfinite(np.diag(gram)) | ~np.isfinite(profile.m2)
+    if bad.any():
+        names = [numeric[j] for j in np.flatnonzero(bad)]
+        largest = float(np.max(np.maximum(np.abs(profile.minimum[bad]), np.abs(profile.maximum[bad]))))
+        raise InvalidInputError(
+            f"The columns {names} of {description} hold values too large to square in float64 "
+            f"(|x| up to {largest:.3g}; squares overflow beyond about 1e154), so their spread "
+            "cannot be measured. Store them in other units (e.g. divided by a power of ten), or "
+            "keep them exactly with exact_columns=[...]."
+        )
 
 
 @dataclass

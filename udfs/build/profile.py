@@ -41,8 +41,10 @@ class Fingerprint:
         self.scale: np.ndarray | None = None
         self.rows = 0
 
-    def update(self, first: int, block: np.ndarray) -> None:
-        finite = block if np.isfinite(block).all() else np.where(np.isfinite(block), block, 0.0)
+    def update(self, first: int, block: np.ndarray, *, finite: bool = False) -> None:
+        """Add rows first .. first + b - 1 (``block`` (b, n)); ``finite=True`` promises that
+        every cell is finite (the check is then skipped)."""
+        finite = block if finite or np.isfinite(block).all() else np.where(np.isfinite(block), block, 0.0)
         g = _row_weights(first, block.shape[0])
         value, scale = g @ finite, np.abs(g) @ np.abs(finite)
         if self.value is None:
@@ -110,7 +112,8 @@ class ColumnProfile:
         safe = np.maximum(n, 1)
         delta = other.mean - self.mean
         mean = self.mean + delta * (other.valid / safe)
-        m2 = self.m2 + other.m2 + delta**2 * (self.valid * other.valid / safe)
+        with np.errstate(over="ignore", invalid="ignore"):  # overflowing spreads stay inf
+            m2 = self.m2 + other.m2 + delta**2 * (self.valid * other.valid / safe)
         return ColumnProfile(n, self.nulls + other.nulls, self.nans + other.nans,
                              self.infinities + other.infinities, mean, m2,
                              np.minimum(self.minimum, other.minimum),
@@ -149,16 +152,33 @@ def profile_rows(first: int, block: np.ndarray, mask: np.ndarray | None, profile
     ``gram``, each sub-block's co-moments about its own mean are merged in as well (the
     sketch of the first pass; see ``factor.sketch.ShiftedGram``). Returns the new profile
     and Gram state."""
+    with np.errstate(over="ignore", invalid="ignore"):  # squares beyond ~1e154: refused later
+        return _profile_rows(first, block, mask, profile, fingerprint, gram)
+
+
+def _profile_rows(first, block, mask, profile, fingerprint, gram):
     for lo in range(0, block.shape[0], SUB_BLOCK_ROWS):
         part = block[lo:lo + SUB_BLOCK_ROWS]
         part_mask = None if mask is None else mask[lo:lo + SUB_BLOCK_ROWS]
-        stats = profile_block(part, part_mask)
+        rows, width = part.shape
+        sums = part.sum(axis=0)  # inf - inf or an overflow: not finite, the general path
+        if part_mask is None and gram is not None and np.isfinite(sums).all():
+            # every cell is finite (a NaN or an infinity makes its column sum non-finite):
+            # one centred product gives the second moments and the co-moments together
+            mean = sums / rows
+            z = part - mean
+            products = z.T @ z
+            zeros = np.zeros(width, np.int64)
+            stats = ColumnProfile(np.full(width, rows, np.int64), zeros, zeros.copy(), zeros.copy(),
+                                  mean, np.diag(products).copy(), part.min(axis=0), part.max(axis=0))
+            gram = gram.merge(ShiftedGram.of_products(mean, products, z.sum(axis=0), rows))
+            fingerprint.update(first + lo, part, finite=True)
+        else:
+            stats = profile_block(part, part_mask)
+            fingerprint.update(first + lo, part)
+            if gram is not None:
+                gram = gram.merge(ShiftedGram.of_block(part, stats.mean, np.isfinite(part)))
         profile = profile.merge(stats)
-        fingerprint.update(first + lo, part)
-        if gram is not None:
-            every_cell_finite = stats.valid.min(initial=part.shape[0]) == part.shape[0]
-            finite = None if every_cell_finite else np.isfinite(part)
-            gram = gram.merge(ShiftedGram.of_block(part, stats.mean, finite))
     return profile, gram
 
 

@@ -159,13 +159,19 @@ def _open_text_source(text: str, connection: duckdb.DuckDBPyConnection | None) -
     return Source(connection, relation, schema, text)
 
 
-def block_from_batch(batch: pa.RecordBatch, names: list[str]) -> tuple[np.ndarray, np.ndarray | None]:
+def block_from_batch(batch: pa.RecordBatch, names: list[str],
+                     out: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray | None]:
     """Numeric columns of a batch as a float64 block (b, n) and a NULL mask (or None).
 
     NULL cells become NaN in the block; the mask tells them apart from NaN in the source.
+    With ``out`` (a Fortran-ordered float64 array of at least b rows and exactly n columns),
+    the block is written into its first b rows and is a view of it.
     """
     rows = batch.num_rows
-    block = np.empty((rows, len(names)), dtype=np.float64, order="F")
+    if out is not None and out.shape[0] >= rows and out.shape[1] == len(names):
+        block = out[:rows]
+    else:
+        block = np.empty((rows, len(names)), dtype=np.float64, order="F")
     mask = None
     for j, name in enumerate(names):
         column = batch.column(name)

@@ -155,13 +155,22 @@ class ShiftedGram:
         out.shift = np.array(shift, dtype=np.float64)
         if valid is None:
             z = block - out.shift
-            out.a = z.T @ z
-            out.b = np.repeat(z.sum(axis=0)[:, None], block.shape[1], axis=1)
-            out.c = np.full((block.shape[1], block.shape[1]), float(block.shape[0]))
+            return cls.of_products(out.shift, z.T @ z, z.sum(axis=0), block.shape[0])
         else:
             z = np.where(valid, block - out.shift, 0.0)
             v = valid.astype(np.float64)
             out.a, out.b, out.c = z.T @ z, z.T @ v, v.T @ v
+        return out
+
+    @classmethod
+    def of_products(cls, shift: np.ndarray, gram: np.ndarray, sums: np.ndarray, rows: int) -> "ShiftedGram":
+        """The state of a block of ``rows`` rows without missing cells, from Z^T Z (``gram``,
+        n x n) and the column sums of Z (``sums``, n) for Z = X - ``shift``."""
+        out = cls(gram.shape[0])
+        out.shift = np.array(shift, dtype=np.float64)
+        out.a = gram
+        out.b = np.repeat(np.asarray(sums, dtype=np.float64)[:, None], gram.shape[0], axis=1)
+        out.c = np.full(gram.shape, float(rows))
         return out
 
     def moved(self, shift: np.ndarray) -> "ShiftedGram":
@@ -169,9 +178,10 @@ class ShiftedGram:
         d = self.shift - np.asarray(shift, dtype=np.float64)
         out = ShiftedGram(self.width)
         out.shift = np.array(shift, dtype=np.float64)
-        bd = self.b * d[None, :]
-        out.a = self.a + bd + bd.T + self.c * np.outer(d, d)
-        out.b = self.b + d[:, None] * self.c
+        with np.errstate(over="ignore", invalid="ignore"):  # overflowing moments stay non-finite
+            bd = self.b * d[None, :]
+            out.a = self.a + bd + bd.T + self.c * np.outer(d, d)
+            out.b = self.b + d[:, None] * self.c
         out.c = self.c.copy()
         return out
 
