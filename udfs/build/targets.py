@@ -28,7 +28,7 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 import scipy.linalg
-import scipy.stats
+from scipy.special import ndtr  # standard normal CDF, as scipy.stats.norm.cdf (lighter import)
 
 from ..errors import InvalidInputError
 
@@ -100,7 +100,7 @@ def quantized_entropy_bits(ratio: np.ndarray) -> np.ndarray:
     if small.any():
         r = ratio[small][:, None]
         edges = np.arange(-40.5, 41.5, 1.0)[None, :]
-        cdf = scipy.stats.norm.cdf(edges / r)
+        cdf = ndtr(edges / r)
         p = np.diff(cdf, axis=1)
         with np.errstate(divide="ignore", invalid="ignore"):
             h = -np.sum(np.where(p > 0, p * np.log2(p), 0.0), axis=1)
@@ -156,7 +156,7 @@ def _coding_cost(sigma: np.ndarray, tolerance: np.ndarray, rows: int, residual: 
     with np.errstate(divide="ignore", invalid="ignore"):
         ratio = np.where(finite, sigma / np.where(finite, step, 1.0), 0.0)
         share = np.where(finite & (sigma > 0),
-                         2.0 * scipy.stats.norm.sf(np.where(sigma > 0, tolerance / np.maximum(sigma, 1e-300), np.inf)), 0.0)
+                         2.0 * ndtr(-np.where(sigma > 0, tolerance / np.maximum(sigma, 1e-300), np.inf)), 0.0)
     quantized = rows * quantized_entropy_bits(ratio) / 8.0 * CODING_OVERHEAD
     corrections = rows * share * CELL_BYTES
     if residual == "quantized":
