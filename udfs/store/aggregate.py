@@ -57,6 +57,21 @@ def _up(x):
 
 
 # -- written at compress time -----------------------------------------------------------------
+def _override_terms(x: np.ndarray, x_hat: np.ndarray, null: np.ndarray | None):
+    """Per overridden cell (arrays of one shape): the correction x - xhat (-xhat where NULL),
+    the magnitude |x| + |xhat| (|xhat| where NULL; 0 where not finite) and (x - xhat)^2
+    (0 where NULL)."""
+    with np.errstate(invalid="ignore", over="ignore"):
+        delta = x - x_hat
+        if null is None:
+            corr, mag, square = delta, np.abs(x) + np.abs(x_hat), delta * delta
+        else:
+            corr = np.where(null, -x_hat, delta)
+            mag = np.where(null, 0.0, np.abs(x)) + np.abs(x_hat)
+            square = np.where(null, 0.0, delta * delta)
+    return corr, np.where(np.isfinite(mag), mag, 0.0), square
+
+
 class BlockSums:
     """Per row-group sums gathered by the verify pass (one record per Parquet row group of the
     row files: each verify batch is cut at ``layout.ROW_GROUP_ROWS`` like the writer cuts it).
@@ -68,6 +83,9 @@ class BlockSums:
     stored exactly and those of them that are NULL), ov_corr (n: sum over those cells of the
     true value minus xhat, NULL cells counting -xhat), ov_abs (n: sum of |x| + |xhat| there),
     ov_sq (n: sum of (x - xhat)^2 over the non-NULL ones).
+
+    ``add`` makes the records of one block of rows; the verify pass instead takes the sums of
+    its sub-blocks with ``partial`` and appends one record per row group with ``add_partials``.
     """
 
     def __init__(self, width: int, basis: int, shift: np.ndarray):
@@ -78,41 +96,89 @@ class BlockSums:
     def add(self, first: int, filled: np.ndarray, codes: np.ndarray | None, xhat: np.ndarray,
             block: np.ndarray, mask: np.ndarray | None, approximated: np.ndarray,
             row_max: np.ndarray) -> None:
+        """Records for rows first .. first + b - 1, one per ``layout.ROW_GROUP_ROWS`` rows.
+
+        filled (b, c), codes (b, n) or None, xhat (b, n) (rebuilt values, residual included),
+        block (b, n) (source values, NaN where NULL), mask (b, n) NULL mask or None,
+        approximated (b, n) bool (False where a cell is stored exactly), row_max (b,)."""
         step = layout.ROW_GROUP_ROWS
         for lo in range(0, block.shape[0], step):
             hi = min(lo + step, block.shape[0])
-            self._add(first + lo, filled[lo:hi], None if codes is None else codes[lo:hi],
-                      xhat[lo:hi], block[lo:hi], None if mask is None else mask[lo:hi],
-                      approximated[lo:hi], row_max[lo:hi])
+            rows_i, cols_j = np.nonzero(~approximated[lo:hi])
+            part = self.partial(filled[lo:hi], None if codes is None else codes[lo:hi],
+                                xhat[lo:hi], block[lo:hi], None if mask is None else mask[lo:hi],
+                                rows=rows_i, cols=cols_j)
+            self.add_partials(first + lo, [part], row_max[lo:hi])
 
-    def _add(self, first, filled, codes, xhat, block, mask, approximated, row_max) -> None:
-        b, n = block.shape
+    def partial(self, filled: np.ndarray, codes: np.ndarray | None, xhat: np.ndarray,
+                block: np.ndarray, mask: np.ndarray | None, *,
+                code_columns: np.ndarray | None = None, exact_columns: np.ndarray | None = None,
+                rows: np.ndarray | None = None, cols: np.ndarray | None = None) -> dict[str, Any]:
+        """The additive sums of one row range of s rows (every field of a record except
+        first_row and rowmax_sum; ``rows`` is s). Partials of consecutive ranges add up to the
+        sums of their union, up to the order of floating-point summation.
+
+        filled (s, c); xhat, block (s, n); mask (s, n) or None; codes (s, n), or (s, q) with
+        ``code_columns`` (q,) naming their columns (the others have no code), or None.
+        Overridden cells (stored exactly): the whole columns ``exact_columns`` (summed per
+        column, O(s e) for e such columns), plus the cells at ``rows``, ``cols`` (equal-length
+        index arrays, outside ``exact_columns``; summed over their indices only, O(cells)).
+        """
+        s, n = block.shape
         d = filled - self.shift[None, :]
-        # overridden cells (stored exactly) are few beyond the exact basis columns: their sums
-        # are taken over their indices only, binned by column (O(cells), not O(b n))
-        rows_i, cols_j = np.nonzero(~approximated)
-        x, x_hat = block[rows_i, cols_j], xhat[rows_i, cols_j]
-        null = mask[rows_i, cols_j] if mask is not None else np.zeros(rows_i.size, bool)
-        with np.errstate(invalid="ignore", over="ignore"):
-            delta = x - x_hat
-            corr = np.where(null, -x_hat, delta)
-            mag = np.where(null, 0.0, np.abs(x)) + np.abs(x_hat)
-            square = np.where(null, 0.0, delta * delta)
-        per_column = (lambda weights: np.bincount(cols_j, weights=weights, minlength=n))
-        if codes is None:
-            q_sum = q_abs = q_sq = np.zeros(n)
-        else:
-            q_sum, q_abs, q_sq = codes.sum(axis=0), np.abs(codes).sum(axis=0), (codes * codes).sum(axis=0)
-        self.records.append({
-            "first_row": first, "rows": b,
-            "rowmax_sum": float(arithmetic.round_up(row_max).sum()),
+        abs_d = np.abs(d)
+        q_sum, q_abs, q_sq = np.zeros(n), np.zeros(n), np.zeros(n)
+        if codes is not None:
+            where = slice(None) if code_columns is None else code_columns
+            q_sum[where], q_abs[where], q_sq[where] = (codes.sum(axis=0), np.abs(codes).sum(axis=0),
+                                                       np.einsum("ij,ij->j", codes, codes))
+        ov_cells, ov_nulls = np.zeros(n, np.int64), np.zeros(n, np.int64)
+        ov_corr, ov_abs, ov_sq = np.zeros(n), np.zeros(n), np.zeros(n)
+        if rows is not None and rows.size:
+            x, x_hat = block[rows, cols], xhat[rows, cols]
+            null = mask[rows, cols] if mask is not None else None
+            corr, mag, square = _override_terms(x, x_hat, null)
+            per_column = (lambda weights: np.bincount(cols, weights=weights, minlength=n))
+            ov_cells += np.bincount(cols, minlength=n)
+            if null is not None:
+                ov_nulls += np.bincount(cols, weights=null.astype(np.float64), minlength=n).astype(np.int64)
+            ov_corr += per_column(corr)
+            ov_abs += per_column(mag)
+            ov_sq += per_column(square)
+        if exact_columns is not None and exact_columns.size:
+            null = mask[:, exact_columns] if mask is not None else None
+            corr, mag, square = _override_terms(block[:, exact_columns], xhat[:, exact_columns], null)
+            ov_cells[exact_columns] += s
+            if null is not None:
+                ov_nulls[exact_columns] += np.count_nonzero(null, axis=0)
+            with np.errstate(invalid="ignore", over="ignore"):  # inf - inf: NaN, as bincount gives
+                ov_corr[exact_columns] += corr.sum(axis=0)
+                ov_abs[exact_columns] += mag.sum(axis=0)
+                ov_sq[exact_columns] += square.sum(axis=0)
+        return {
+            "rows": s,
             "f_sum": filled.sum(axis=0), "f_abs": np.abs(filled).sum(axis=0), "d_sum": d.sum(axis=0),
-            "gram": (d.T @ d).ravel(), "gram_abs": (np.abs(d).T @ np.abs(d)).ravel(),
+            "gram": (d.T @ d).ravel(), "gram_abs": (abs_d.T @ abs_d).ravel(),
             "q_sum": q_sum, "q_abs": q_abs, "q_sq": q_sq,
-            "ov_cells": np.bincount(cols_j, minlength=n), "ov_nulls": per_column(null.astype(np.float64)).astype(np.int64),
-            "ov_corr": per_column(corr), "ov_abs": per_column(np.where(np.isfinite(mag), mag, 0.0)),
-            "ov_sq": per_column(square),
-        })
+            "ov_cells": ov_cells, "ov_nulls": ov_nulls, "ov_corr": ov_corr, "ov_abs": ov_abs,
+            "ov_sq": ov_sq,
+        }
+
+    def add_partials(self, first: int, partials: list[dict[str, Any]], row_max: np.ndarray) -> None:
+        """Append one record (one row group) for rows first .. first + len(row_max) - 1 from
+        the ``partial`` sums of consecutive row ranges that cover exactly those rows, in row
+        order; row_max (rows,) holds the row figures before they are stored."""
+        if sum(p["rows"] for p in partials) != row_max.shape[0]:
+            raise InvalidInputError(
+                f"Block sums for rows {first}.. cover {sum(p['rows'] for p in partials)} rows, "
+                f"but {row_max.shape[0]} row figures were given: pass the partials of exactly "
+                "the rows of the record.")
+        record: dict[str, Any] = {"first_row": first, "rows": row_max.shape[0],
+                                  "rowmax_sum": float(arithmetic.round_up(row_max).sum())}
+        for name in partials[0]:
+            if name != "rows":
+                record[name] = partials[0][name] if len(partials) == 1 else sum(p[name] for p in partials)
+        self.records.append(record)
 
     def table(self) -> pa.Table:
         lists = ["f_sum", "f_abs", "d_sum", "gram", "gram_abs", "q_sum", "q_abs", "q_sq",
