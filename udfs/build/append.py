@@ -237,7 +237,7 @@ def _write_version(reader: ArchiveReader, src, batch_rows, progress, created: li
     updates = {"valid": profile.valid, "nulls": profile.nulls, "nans": profile.nans,
                "infinities": profile.infinities, "mean": profile.mean, "std": std,
                "min": profile.minimum, "max": profile.maximum, "err_max": round_up(ledger.err_max),
-               "err_l2": round_up(ledger.err_l2), "err_sum": ledger.err_sum,
+               "err_l2": ledger.l2_upper(first_row + result.rows), "err_sum": ledger.err_sum,
                "err_cells": ledger.cells, "rel_rms": rel_rms}
     columns = cols
     for name, values in updates.items():

@@ -621,7 +621,7 @@ def _column_table(schema, numeric, profile, transform, mixing, result, coding) -
         "valid": profile.valid, "nulls": profile.nulls, "nans": profile.nans,
         "infinities": profile.infinities,
         "mean": profile.mean, "std": std, "min": profile.minimum, "max": profile.maximum,
-        "err_max": round_up(ledger.err_max), "err_l2": round_up(ledger.err_l2),
+        "err_max": round_up(ledger.err_max), "err_l2": ledger.l2_upper(result.rows),
         "err_sum": ledger.err_sum, "err_cells": ledger.cells,
         "rel_rms": rel_rms,
         "tolerance": pa.array(coding.tolerance, mask=~np.isfinite(coding.tolerance)),

@@ -68,6 +68,17 @@ class ColumnLedger:
         self.err_sum += block_sum
         self.cells += cells
 
+    def l2_upper(self, rows: int) -> np.ndarray:
+        """``err_l2`` as stored: an upper limit of the exact Euclidean norm of each column's
+        residual over a table of ``rows`` rows.
+
+        A computed sum of s squares falls short of the exact one by at most gamma_s of it in
+        any summation order (Higham, "Accuracy and Stability of Numerical Algorithms", 2nd
+        ed., 2002, chapter 4), the square root and each of the k hypot merges of block norms
+        add at most 2u more; s <= rows and k <= rows, so the norm is scaled by
+        1 + (3 rows + 8) u (1 + 5e-9 at 1.6e7 rows) and then rounded up."""
+        return arithmetic.round_up(self.err_l2 * (1.0 + (3.0 * rows + 8.0) * arithmetic.UNIT_ROUNDOFF))
+
     def merge(self, other: "ColumnLedger") -> "ColumnLedger":
         """The ledger of two disjoint row sets (associative: max, hypot, sums)."""
         return ColumnLedger(np.maximum(self.err_max, other.err_max), np.hypot(self.err_l2, other.err_l2),
