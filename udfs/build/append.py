@@ -195,8 +195,8 @@ def _write_version(reader: ArchiveReader, src, batch_rows, progress, created: li
             result = verify_pass(stream, names, passthrough, mixing, anchors, transform, score_right,
                                  writer, scale, coding, block_sums=sums, cells_file=cells_temp)
     finally:
+        created.extend(directory / p["name"] for p in writer.parts)  # removed on failure
         writer.close()
-        created.extend(directory / p["name"] for p in writer.parts)
     report.finish()
     if result.rows == 0:
         raise EmptySourceError(f"The appended source {src.description} has no rows; nothing to append.")

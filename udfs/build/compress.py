@@ -93,6 +93,8 @@ def _verify_task(blocks, part, temp, part_rows, names, passthrough, mixing, anch
                          cells_file=Path(temp) / f".cells-{part.index:05d}.parquet")
     if distributed:
         writer.close()
+    else:
+        writer.close_rows()  # the files are complete before their sizes are read
     return result, (list(writer.parts) if distributed else None), sums.records
 
 
