@@ -1,5 +1,8 @@
-"""Compress a source into an archive: profile, select (sketch, columns, rows), link, verify,
-commit. Each pass is a map over row partitions plus an associative merge (``executors``):
+"""Compress a source into an archive. By default two passes over the rows: profile (column
+statistics and the sketch), then verify (rebuild, measure, write); in between, columns are
+chosen and linked from the sketch alone. Links that keep anchor rows add a select pass; a
+refit without outliers adds a sketch pass (and, for those links, a second select). Commit last.
+Each pass is a map over row partitions plus an associative merge (``executors``):
 in process, the source is one partition streamed in row blocks through DuckDB; on Dask, the
 partitions are Parquet row-group ranges read by the workers. Memory is
 O((c + r) n + n^2 + block n), independent of the number of rows.
