@@ -1,5 +1,7 @@
-"""Pass 1, profile: per-column counts, mean, spread and range of each numeric column, plus an
-order-sensitive fingerprint of the rows so later passes can prove they saw the same table.
+"""Pass 1, profile: per-column counts, mean, spread and range of each numeric column, an
+order-sensitive fingerprint of the rows so later passes can prove they saw the same table,
+and the co-moments that become the sketch (``factor.sketch.ShiftedGram``), so that no
+separate sketch pass is needed.
 
 Means and second moments merge block by block with the pairwise update of Chan, Golub,
 LeVeque ("Algorithms for computing the sample variance", Am. Stat. 37(3), 1983), which stays

@@ -1,5 +1,6 @@
-"""Passes 2 and 3, select: sketch the transformed table (its Gram matrix), choose
-basis columns from the sketch, then stream once more to choose anchor rows.
+"""Select: the sketch of the transformed table (its Gram matrix, from the profile pass or
+from a refit's own pass) and its spectrum, from which basis columns are chosen; then, for
+the links that keep anchor rows (not the default cx), one more pass to choose them.
 
 Row choices:
 * ``qdeim``: Q-DEIM on the top-k left singular vectors, topped up by leverage. The rows
