@@ -9,7 +9,9 @@ together with ``connection=`` (a DuckDB connection).
 
 from __future__ import annotations
 
+import queue
 import re
+import threading
 from collections.abc import Iterator
 from dataclasses import dataclass
 from pathlib import Path
@@ -60,7 +62,7 @@ class Source:
         cursor = self.connection.cursor()
         try:
             reader = cursor.sql(f"SELECT {select} FROM {self.relation}").to_arrow_reader(batch_rows)
-            for batch in reader:
+            for batch in read_ahead(reader):
                 if batch.num_rows:
                     yield batch if batch.schema.equals(wanted) else batch.cast(wanted)
         finally:
@@ -69,6 +71,48 @@ class Source:
     def close(self) -> None:
         if self.owns_connection:
             self.connection.close()
+
+
+def read_ahead(reader: pa.RecordBatchReader, depth: int = 1) -> Iterator[pa.RecordBatch]:
+    """The batches of ``reader``, read by a helper thread up to ``depth`` batches ahead, so the
+    reader (DuckDB decoding Parquet on its own threads) works while the caller computes on
+    the previous batch. Errors of the reader are raised here; closing this generator early
+    stops the thread before it returns (memory: at most depth + 2 batches)."""
+    slots: queue.Queue = queue.Queue(maxsize=depth)
+    stop = threading.Event()
+    done = object()
+
+    def hand_over(item: Any) -> bool:
+        while not stop.is_set():
+            try:
+                slots.put(item, timeout=0.05)
+                return True
+            except queue.Full:
+                continue
+        return False
+
+    def produce() -> None:
+        try:
+            for batch in reader:
+                if not hand_over(batch):
+                    return
+            hand_over(done)
+        except BaseException as exc:  # handed to the caller's thread
+            hand_over(exc)
+
+    worker = threading.Thread(target=produce, name="rankfold-read-ahead", daemon=True)
+    worker.start()
+    try:
+        while True:
+            item = slots.get()
+            if item is done:
+                return
+            if isinstance(item, BaseException):
+                raise item
+            yield item
+    finally:
+        stop.set()
+        worker.join()
 
 
 def _schema_of(connection: duckdb.DuckDBPyConnection, relation: str) -> pa.Schema:
