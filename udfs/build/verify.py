@@ -389,7 +389,7 @@ class _Kernel:
             row_max_out[...] = 0.0
             row_l2_out[...] = 0.0
         fingerprint = Fingerprint()
-        fingerprint.update(first, x)
+        fingerprint.update(first, x, with_scale=False)  # the profile pass's sets the tolerance
         sums = None
         if self.block_sums is not None:
             rows_i, cols_j = self._overridden(stored, anchors)
