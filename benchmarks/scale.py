@@ -5,7 +5,9 @@ ratio to one DuckDB scan, and in-process vs Dask LocalCluster. A script, not a t
 
 (a) each compress runs in a subprocess; its peak RSS comes from getrusage(RUSAGE_CHILDREN)
     (max RSS of the waited-for children), its time from the child itself;
-(b) the same child times one full DuckDB scan of the source (every column streamed as Arrow);
+(b) a child of its own times one full DuckDB scan of the source (every column streamed as
+    Arrow); after one untimed warm-up scan, scans and compresses alternate (--repeats) and
+    the best of each is compared;
 (c) for the smallest size, the same compress on a LocalCluster with 2 worker processes,
     checked for the same basis columns, anchor rows and values.
 Data: invented (rank 8 plus 1% noise, fixed seeds), written as Parquet files in chunks of
@@ -16,6 +18,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import os
 import resource
 import shutil
 import subprocess
@@ -83,18 +86,29 @@ def main() -> None:
     parser.add_argument("--width", type=int, default=100)
     parser.add_argument("--out", type=Path, default=Path("scale_tmp"))
     parser.add_argument("--keep", action="store_true", help="keep the generated data")
+    parser.add_argument("--repeats", type=int, default=2,
+                        help="scan and compress runs per size, alternated (the best of each is compared)")
     args = parser.parse_args()
     args.out.mkdir(parents=True, exist_ok=True)
-    print(f"{'rows':>10} {'width':>5} {'scan s':>8} {'compress s':>10} {'ratio':>6} {'peak RSS MB':>11}")
+    print(f"{'rows':>10} {'width':>5} {'scan s':>8} {'compress s':>10} {'ratio':>6} {'peak RSS MB':>11}"
+          "   (best of each; every run in brackets)")
     peaks = []
     try:
         for rows in sorted(args.rows):
             data = args.out / f"data-{rows}"
             generate(data, rows, args.width)
-            scan, _ = child(data, args.out / "unused", "scan")
-            seconds, peak = child(data, args.out / f"a-{rows}.rfa", "local")
+            os.sync()  # the generated files are on disk before anything is timed
+            child(data, args.out / "unused", "scan")  # warm-up, untimed: same cache state for both
+            scans, runs, peak = [], [], 0.0
+            for _ in range(args.repeats):  # alternated, so drifts of the machine hit both alike
+                scans.append(child(data, args.out / "unused", "scan")[0])
+                shutil.rmtree(args.out / f"a-{rows}.rfa", ignore_errors=True)
+                seconds, peak = child(data, args.out / f"a-{rows}.rfa", "local")
+                runs.append(seconds)
             peaks.append(peak)
-            print(f"{rows:>10} {args.width:>5} {scan:>8.1f} {seconds:>10.1f} {seconds / scan:>6.2f} {peak:>11.0f}",
+            scan, seconds = min(scans), min(runs)
+            print(f"{rows:>10} {args.width:>5} {scan:>8.1f} {seconds:>10.1f} {seconds / scan:>6.2f} {peak:>11.0f}"
+                  f"   (scan {', '.join(f'{v:.1f}' for v in scans)}; compress {', '.join(f'{v:.1f}' for v in runs)})",
                   flush=True)
             if rows == min(args.rows):
                 import rankfold
