@@ -133,3 +133,21 @@ def test_passes_run_with_one_blas_thread_and_restore_the_setting(tmp_path):
         inside = [i["num_threads"] for i in threadpool_info() if i["user_api"] == "blas"]
     assert inside and set(inside) == {1}
     assert [(i["filepath"], i["num_threads"]) for i in threadpool_info() if i["user_api"] == "blas"] == before
+
+
+def test_anchor_scan_left_rows_without_a_transformed_copy_match_the_transformed_product():
+    # U_k = Z V_k S_k^-1 (numpy product on the transformed block) against the one-product form
+    from rankfold.udfs.build import select
+    from rankfold.udfs.build.profile import Transform
+    from rankfold.udfs.factor import cur
+    from rankfold.udfs.factor.sketch import GramSketch
+
+    rng = np.random.default_rng(3)  # invented table, means far from zero
+    x = rng.standard_normal((500, 6)) @ rng.standard_normal((6, 6)) * 5.0 + 1e3
+    transform = Transform("standardize", x.mean(axis=0), x.std(axis=0))
+    gram = GramSketch(6)
+    gram.update(transform.apply(x))
+    sketch = select.sketch_of(gram)
+    scan = select.AnchorScan(transform, sketch, "qdeim", 3, 12, 0, replace=False)
+    reference = cur.left_singular_rows(transform.apply(x), sketch.spectrum, 3)
+    assert np.allclose(scan._left_rows(x), reference, rtol=0, atol=1e-10)
