@@ -237,23 +237,24 @@ def test_a_truncated_file_is_refused_without_checksums(tmp_path):
         rankfold.open(path)
 
 
-def test_unknown_major_version_is_refused_naming_both_versions(tmp_path):
-    path = tmp_path / "future.rfa"
+def _archive_claiming_format(path, version: str):
+    """An archive whose manifest names another format version."""
     rankfold.compress(_float_table(), path, rank=2)
     manifest = json.loads((path / "manifest.json").read_text())
-    manifest["format_version"] = "7.2"
+    manifest["format_version"] = version
     (path / "manifest.json").write_text(json.dumps(manifest))
+    return path
+
+
+def test_unknown_major_version_is_refused_naming_both_versions(tmp_path):
+    path = _archive_claiming_format(tmp_path / "future.rfa", "7.2")
     with pytest.raises(rankfold.UnsupportedVersionError, match=r"format 7\.2 .*reads format 1\.x"):
         rankfold.open(path)
     assert issubclass(rankfold.UnsupportedVersionError, rankfold.CorruptArchiveError)
 
 
 def test_a_newer_minor_version_opens(tmp_path):
-    path = tmp_path / "minor.rfa"
-    rankfold.compress(_float_table(), path, rank=2)
-    manifest = json.loads((path / "manifest.json").read_text())
-    manifest["format_version"] = "1.9"
-    (path / "manifest.json").write_text(json.dumps(manifest))
+    path = _archive_claiming_format(tmp_path / "minor.rfa", "1.9")
     assert rankfold.open(path).shape == (40, 7)
 
 

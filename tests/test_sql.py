@@ -20,7 +20,7 @@ import pytest
 
 import rankfold
 import rankfold.udfs
-from duckdb_support import database_holding, registered_cursor
+from duckdb_support import database_fixtures
 from rankfold.udfs.sql import FUNCTIONS, register
 
 EXAMPLES = Path(__file__).resolve().parent.parent / "sql_examples"
@@ -63,19 +63,7 @@ def archive(tmp_path_factory) -> str:
     return str(path)
 
 
-@pytest.fixture(scope="module")
-def database():
-    connection = database_holding(_table(), "panel")
-    yield connection
-    connection.close()
-
-
-@pytest.fixture()
-def con(database):
-    """A fresh connection (cursor) to the module's database, registered like any caller."""
-    cursor = registered_cursor(database)
-    yield cursor
-    cursor.close()
+database, con = database_fixtures(_table, "panel")
 
 
 # -- checking answers --------------------------------------------------------------------------

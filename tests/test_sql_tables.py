@@ -17,7 +17,7 @@ import pytest
 
 import rankfold
 import rankfold.udfs
-from duckdb_support import database_holding, registered_cursor
+from duckdb_support import database_fixtures
 from rankfold.udfs.store.reader import ArchiveReader
 
 EXAMPLES = Path(__file__).resolve().parent.parent / "sql_examples"
@@ -61,18 +61,7 @@ def archives(tmp_path_factory) -> dict[str, str]:
             for k, o in OPTIONS.items()}
 
 
-@pytest.fixture(scope="module")
-def database():
-    connection = database_holding(_table(), "sites")
-    yield connection
-    connection.close()
-
-
-@pytest.fixture()
-def con(database):
-    cursor = registered_cursor(database)
-    yield cursor
-    cursor.close()
+database, con = database_fixtures(_table, "sites")
 
 
 def _fetch(con, sql) -> pa.Table:
