@@ -18,7 +18,6 @@ with the same result whatever the partitioning or executor.
 
 from __future__ import annotations
 
-from collections.abc import Callable, Iterator
 from dataclasses import dataclass
 
 import numpy as np
@@ -28,11 +27,9 @@ from ..factor import selection
 from ..factor.sketch import GramSketch, Spectrum
 from .profile import Transform
 
-__all__ = ["Sketch", "sketch_pass", "sketch_of", "AnchorRows", "anchor_pass", "AnchorPartial",
+__all__ = ["Sketch", "sketch_of", "AnchorRows", "AnchorPartial",
            "AnchorScan", "anchor_partial", "merge_anchor_partials", "row_uniforms"]
 
-# A block stream yields (first row position, raw block (b, n), NULL mask or None).
-BlockStream = Callable[[], Iterator[tuple[int, np.ndarray, "np.ndarray | None"]]]
 
 
 @dataclass
@@ -41,14 +38,6 @@ class Sketch:
 
     r: np.ndarray
     spectrum: Spectrum
-
-
-def sketch_pass(blocks: BlockStream, transform: Transform, width: int) -> Sketch:
-    """Gram sketch of the transformed table (see ``factor.sketch.GramSketch`` for the trade-off)."""
-    gram = GramSketch(width)
-    for _, block, _ in blocks():
-        gram.update(transform.apply(block))
-    return sketch_of(gram)
 
 
 def sketch_of(gram: GramSketch) -> Sketch:
@@ -87,25 +76,6 @@ class _RowKeeper:
         values = np.array([self.rows[int(p)][0] for p in positions], dtype=np.float64).reshape(-1, width)
         nulls = np.array([self.rows[int(p)][1] for p in positions], dtype=bool).reshape(-1, width)
         return AnchorRows(positions, values, nulls)
-
-
-def anchor_pass(
-    blocks: BlockStream,
-    transform: Transform,
-    sketch: Sketch,
-    method: str,
-    rank: int,
-    count: int,
-    seed: int,
-    *,
-    replace: bool,
-    draw: int = 0,
-) -> AnchorRows:
-    """Choose ``count`` anchor rows in one streaming pass (see the module docstring): the map
-    over one stream and the merge, as one call. ``seed`` and ``draw`` key the random numbers."""
-    partial = anchor_partial(blocks(), transform, sketch, method, rank, count, seed,
-                             replace=replace, draw=draw)
-    return merge_anchor_partials([partial], sketch.r.shape[0], method, count, replace=replace)
 
 
 # -- map and merge: partition-independent row choice --------------------------------------------
