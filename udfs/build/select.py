@@ -31,7 +31,6 @@ __all__ = ["Sketch", "sketch_of", "AnchorRows", "AnchorPartial",
            "AnchorScan", "anchor_partial", "merge_anchor_partials", "row_uniforms"]
 
 
-
 @dataclass
 class Sketch:
     """An n x n factor F with F^T F = Z^T Z of the transformed table Z, and its spectrum."""
