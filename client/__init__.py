@@ -53,7 +53,9 @@ def compress(source: Any, path: str | Path, *, rank: int | None = None, seed: in
         refit_outliers. Data: key (a column to address rows by), exact_columns (numeric
         columns kept exactly), connection (DuckDB, for table or query sources). Running:
         executor ('local' | 'dask' | a dask.distributed Client), storage_options, batch_rows,
-        progress (a callable), overwrite.
+        sketch_rows ('auto' | 'all' | a number of rows: the sketch that chooses the columns
+        reads a seeded sample of Parquet row groups; every error is still measured on every
+        row), progress (a callable), overwrite.
 
     Returns
     -------

@@ -50,6 +50,7 @@ def client():
     {"rank": 3, "rows": "leverage", "columns": "leverage", "link": "optimal"},
     {"rank": 3, "link": "textbook", "columns": "length_squared", "rows": "length_squared"},
     {"rank": 3, "method": "svd"},
+    {"rank": 3, "sketch_rows": 1500},  # the sketch from a seeded sample of row groups
 ])
 def test_same_seed_same_archive_on_both_executors(dataset, client, tmp_path, options):
     folder, x = dataset
@@ -71,8 +72,13 @@ def test_same_seed_same_archive_on_both_executors(dataset, client, tmp_path, opt
         p["first_row"] for p in dask.manifest["row_parts"])
     # progress through the same callback: every pass, ending at every row
     finished = [e for e in events if e["done"]]
-    assert {e["stage"] for e in finished} >= {"profile", "verify"}
-    assert all(e["rows_done"] == ROWS for e in finished)
+    sketch = dask.manifest["sketch"]
+    assert sketch == local.manifest["sketch"]
+    first = "sketch-sample" if sketch["sampled"] else "profile"
+    assert {e["stage"] for e in finished} >= {first, "verify"}
+    assert all(e["rows_done"] == (sketch["rows_read"] if e["stage"] == first else ROWS)
+               for e in finished)
+    assert sketch["sampled"] == ("sketch_rows" in options)
 
 
 def test_dask_reads_in_memory_tables_in_slices(client, tmp_path, monkeypatch):

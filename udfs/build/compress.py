@@ -1,6 +1,9 @@
 """Compress a source into an archive. By default two passes over the rows: profile (column
 statistics and the sketch), then verify (rebuild, measure, write); in between, columns are
-chosen and linked from the sketch alone. Links that keep anchor rows add a select pass; a
+chosen and linked from the sketch alone. For a large Parquet source the profile pass reads
+only a seeded sample of row groups (``sketch_rows``), and the verify pass, the one pass that
+reads every row, gathers the column statistics as well; every error is still measured on
+every row. Links that keep anchor rows add a select pass; a
 refit without outliers adds a sketch pass (and, for those links, a second select). Commit last.
 Each pass is a map over row partitions plus an associative merge (``executors``):
 in process, the source is one partition streamed in row blocks through DuckDB; on Dask, the
@@ -33,7 +36,9 @@ from . import link as _link
 from ..factor.sketch import GramSketch, ShiftedGram
 from .commit import CELLS_SCHEMA, ArchiveWriter, RowPartWriter, concat_parquet, prepare_target
 from .executors import make_executor
-from .options import DEFAULT_RANK_CAP_DIVISOR, CompressOptions
+from .options import (AUTO_SKETCH_ROWS, AUTO_SKETCH_ROWS_PER_COLUMN, DEFAULT_RANK_CAP_DIVISOR,
+                      CompressOptions)
+from .row_groups import RowGroup, choose_row_groups
 from .profile import SUB_BLOCK_ROWS, ColumnProfile, Fingerprint, Transform, profile_rows
 from .select import AnchorRows, anchor_partial, merge_anchor_partials, sketch_of
 from .refit import KAPPA, OutlierScreen
@@ -84,16 +89,18 @@ def _anchor_task(blocks, part, screen, sketch, method, rank, count, seed, replac
 
 
 def _verify_task(blocks, part, temp, part_rows, names, passthrough, mixing, anchors, transform,
-                 score_right, scale, coding, distributed, writer=None):
+                 score_right, scale, coding, distributed, profile_columns, writer=None):
     """Verify one partition: row files (its own names when distributed), exact cells in a
-    file of its own, the ledger and the per row-group sums."""
+    file of its own, the ledger and the per row-group sums (and with ``profile_columns``,
+    the column statistics)."""
     if writer is None:
         writer = RowPartWriter(Path(temp), part_rows,
                                lambda k: f".part-{part.index:05d}-{k:04d}.parquet")
     sums = BlockSums(len(names), mixing.weights.shape[0], mixing.fill)
     result = verify_pass(blocks, names, passthrough, mixing, anchors, transform, score_right,
                          writer, scale, coding, block_sums=sums,
-                         cells_file=Path(temp) / f".cells-{part.index:05d}.parquet")
+                         cells_file=Path(temp) / f".cells-{part.index:05d}.parquet",
+                         profile_columns=profile_columns)
     if distributed:
         writer.close()
     else:
@@ -107,10 +114,17 @@ class _Passes:
     def __init__(self, executor, opts: CompressOptions):
         self.ex, self.opts = executor, opts
 
-    def profile(self, numeric: list[str], keep_sample: bool):
+    def profile(self, numeric: list[str], keep_sample: bool, groups: list[RowGroup] | None = None):
+        """Statistics, fingerprint, a sample of encoded sizes and the co-moments: of every
+        row, or of the given row groups only."""
         extra = [n for n in self.ex.schema.names if n not in numeric] if keep_sample else []
-        parts = self.ex.run("profile", _profile_task, numeric, extra, None,
-                            (len(numeric), keep_sample))
+        if groups is None:
+            parts = self.ex.run("profile", _profile_task, numeric, extra, None,
+                                (len(numeric), keep_sample))
+        else:
+            parts = self.ex.run("sketch-sample", _profile_task, numeric, extra,
+                                sum(g.rows for g in groups), (len(numeric), keep_sample),
+                                partitions=self.ex.sample_partitions(groups))
         profile, fingerprint, sample = ColumnProfile.empty(len(numeric)), Fingerprint(), {}
         gram = ShiftedGram(len(numeric))
         for p, f, s, g in parts:
@@ -145,9 +159,78 @@ def compress(source: Any, path: str | Path, *, rank: int | None = None, seed: in
     executor = make_executor(opts.executor, source, opts.connection, opts.batch_rows, opts.progress,
                              opts.storage_options)
     try:
-        return _compress(executor, target, opts)
+        try:
+            return _compress(executor, target, opts)
+        except _SampleMissed:  # rare: the sample hid what the sketch must see; read every row
+            return _compress(executor, target, _all_rows(opts))
     finally:
         executor.close()
+
+
+class _SampleMissed(Exception):
+    """The verify pass found, outside the sketch's sample, an integer column beyond 2^53,
+    which must be kept exactly: compress again with a sketch of every row."""
+
+
+def _all_rows(opts: CompressOptions) -> CompressOptions:
+    again = copy.copy(opts)
+    again.sketch_rows = "all"
+    return again
+
+
+@dataclass(frozen=True)
+class _SketchRows:
+    """The rows the sketch reads: every row (``groups`` None), or a seeded sample of whole
+    Parquet row groups. ``total`` is the source's row count from the Parquet footers (None
+    when only a pass can count them)."""
+
+    groups: list[RowGroup] | None
+    total: int | None
+    of_groups: int = 0
+
+    @property
+    def sampled(self) -> bool:
+        return self.groups is not None
+
+    @property
+    def rows(self) -> int:
+        return sum(g.rows for g in self.groups) if self.groups is not None else (self.total or 0)
+
+    def recorded(self, rows: int) -> dict[str, Any]:
+        """The manifest's record of it."""
+        if not self.sampled:
+            return {"rows_read": rows, "of_rows": rows, "sampled": False}
+        return {"rows_read": self.rows, "of_rows": rows, "sampled": True,
+                "row_groups_read": len(self.groups), "of_row_groups": self.of_groups,
+                "first_rows": [g.first_row for g in self.groups]}
+
+
+def _sketch_rows(src, opts: CompressOptions, numeric: list[str]) -> _SketchRows:
+    """Whether the sketch reads a sample of row groups, and which (see ``sketch_rows``)."""
+    every = _SketchRows(None, None)
+    if not opts.may_sample_sketch:
+        return every
+    groups = src.row_groups(numeric)
+    if groups is None:
+        if isinstance(opts.sketch_rows, int):
+            raise InvalidInputError(
+                f"sketch_rows={opts.sketch_rows} reads a sample of Parquet row groups, but "
+                f"{src.description} is not a Parquet dataset whose files hold every numeric "
+                "column. Drop sketch_rows (the sketch then reads every row)."
+            )
+        return every
+    total = sum(g.rows for g in groups)
+    if opts.sketch_rows == "auto":
+        wanted = max(AUTO_SKETCH_ROWS, AUTO_SKETCH_ROWS_PER_COLUMN * len(numeric))
+    else:
+        wanted = opts.sketch_rows
+    chosen = choose_row_groups(groups, wanted, opts.seed)
+    read = sum(g.rows for g in chosen)
+    # "auto" samples only when that halves the rows read at least: below, the full profile
+    # costs little more and gives the exact statistics up front
+    if read >= total or (opts.sketch_rows == "auto" and 2 * read > total):
+        return _SketchRows(None, total)
+    return _SketchRows(chosen, total, len(groups))
 
 
 def _plan_columns(schema: pa.Schema, opts: CompressOptions) -> tuple[list[str], list[str]]:
@@ -230,14 +313,13 @@ def _compress(src, target: Path, opts: CompressOptions) -> Path:
             f"{src.schema.names}). rankfold compresses integer and floating-point columns."
         )
     passes = _Passes(src, opts)
-    profile, fingerprint, sample, gram = passes.profile(numeric, keep_sample=opts.has_targets)
-    rows = int(fingerprint.rows)
+    read = _sketch_rows(src, opts, numeric)
+    profile, fingerprint, sample, gram = passes.profile(numeric, keep_sample=opts.has_targets,
+                                                        groups=read.groups)
+    rows = int(read.total) if read.sampled else int(fingerprint.rows)
     if rows == 0:
         raise EmptySourceError(f"The source {src.description} has no rows; there is nothing to compress.")
-    too_big = [n for j, n in enumerate(numeric)
-               if pa.types.is_integer(src.schema.field(n).type)
-               and profile.valid[j] > 0  # an all-NULL column has range (inf, -inf)
-               and max(abs(profile.minimum[j]), abs(profile.maximum[j])) >= _EXACT_INTEGER_LIMIT]
+    too_big = _beyond_float64(src.schema, numeric, profile)
     if too_big:  # keep exactly, outside the factorization
         keep = [j for j, n in enumerate(numeric) if n not in too_big]
         profile = ColumnProfile(*(getattr(profile, f)[keep] for f in profile.__dataclass_fields__))
@@ -252,16 +334,19 @@ def _compress(src, target: Path, opts: CompressOptions) -> Path:
             )
     width = len(numeric)
     transform = Transform.fit(opts.transform, profile)
-    # the sketch comes from the profile pass's co-moments, moved to the transform's shift
+    # the sketch comes from the profile pass's co-moments, moved to the transform's shift;
+    # from a sample of m rows, scaled by rows / m to estimate the whole table's Gram matrix
     with np.errstate(over="ignore", invalid="ignore"):
         moments = gram.gram(transform.shift, transform.scale)
-    _check_squares(moments.gram, profile, numeric, src.description)
+        if read.sampled:
+            moments.gram *= rows / max(int(fingerprint.rows), 1)
+    _check_squares(np.diag(moments.gram), profile, numeric, src.description)
     sketch = sketch_of(moments)
     goal = _Goal.from_options(opts, numeric)
     build = _first_build(opts, goal, rows, width, sketch, profile, transform, sample, numeric, passthrough)
     for attempt in range(_MAX_ATTEMPTS):
         written = _write(src, target, opts, numeric, passthrough, rows, profile, fingerprint,
-                         transform, sketch, build, passes)
+                         transform, sketch, build, passes, read)
         verdict = goal.verdict(written, transform, sketch)
         if verdict is None or attempt == _MAX_ATTEMPTS - 1 or build.n_columns >= width:
             if verdict is not None and goal.target_bytes is None:
@@ -282,10 +367,22 @@ def _compress(src, target: Path, opts: CompressOptions) -> Path:
 _MAX_ATTEMPTS = 6
 
 
-def _check_squares(gram: np.ndarray, profile: ColumnProfile, numeric: list[str], description: str) -> None:
+def _beyond_float64(schema: pa.Schema, numeric: list[str], profile: ColumnProfile) -> list[str]:
+    """Integer columns holding values that float64 cannot hold exactly (|x| >= 2^53)."""
+    return [n for j, n in enumerate(numeric)
+            if pa.types.is_integer(schema.field(n).type)
+            and profile.valid[j] > 0  # an all-NULL column has range (inf, -inf)
+            and max(abs(profile.minimum[j]), abs(profile.maximum[j])) >= _EXACT_INTEGER_LIMIT]
+
+
+def _check_squares(second_moments: np.ndarray | None, profile: ColumnProfile, numeric: list[str],
+                   description: str) -> None:
     """Refuse columns whose squared deviations overflow float64 (|x - mean| beyond ~1e154):
-    their second moments, and so the sketch, cannot be formed."""
-    bad = ~np.isfinite(np.diag(gram)) | ~np.isfinite(profile.m2)
+    their second moments, and so the sketch, cannot be formed. ``second_moments`` (n,) is
+    the sketch's diagonal (None: check the profile alone)."""
+    bad = ~np.isfinite(profile.m2)
+    if second_moments is not None:
+        bad |= ~np.isfinite(second_moments)
     if bad.any():
         names = [numeric[j] for j in np.flatnonzero(bad)]
         largest = float(np.max(np.maximum(np.abs(profile.minimum[bad]), np.abs(profile.maximum[bad]))))
@@ -441,7 +538,10 @@ class _Written:
 
 
 def _write(src, target, opts, numeric, passthrough, rows, profile, fingerprint, transform,
-           sketch, build: _Build, passes: _Passes) -> _Written:
+           sketch, build: _Build, passes: _Passes, read: _SketchRows) -> _Written:
+    """One attempt: fit from the sketch, then the verify pass writes it to a temporary
+    directory. ``profile`` is the profile pass's (of a sample when ``read.sampled``: then
+    the verify pass gathers the statistics of every row, which the archive records)."""
     width = len(numeric)
     rng = np.random.default_rng(opts.seed)
     plan = build.coding_plan
@@ -480,12 +580,13 @@ def _write(src, target, opts, numeric, passthrough, rows, profile, fingerprint, 
         mixing = _trim_factors(mixing, coding.tolerance, profile)
     writer = ArchiveWriter(target, opts.overwrite)
     sums = BlockSums(width, mixing.weights.shape[0], mixing.fill)
+    scale = ledger_scale(profile)  # units of the row ledger (of the sample's spread, if sampled)
     try:
         distributed = passes.ex.distributed
         parts = passes.ex.run(
             "verify", _verify_task, numeric, passthrough, rows,
             (writer.temp, writer.part_rows, numeric, passthrough, mixing, anchors, transform,
-             score_right, ledger_scale(profile), coding, distributed)
+             score_right, scale, coding, distributed, read.sampled)
             + (() if distributed else (writer,)))
         result = VerifyResult.merge([p[0] for p in parts], width)
         if distributed:
@@ -493,23 +594,44 @@ def _write(src, target, opts, numeric, passthrough, rows, profile, fingerprint, 
         for p in parts:
             sums.records.extend(p[2])
         cell_files = [f".cells-{k:05d}.parquet" for k, p in enumerate(parts) if p[0].cells.written]
-        if not result.fingerprint.matches(fingerprint):
+        if read.sampled:
+            profile = _whole_table_profile(src, numeric, rows, result)
+        elif not result.fingerprint.matches(fingerprint):
             raise SourceChangedError(
                 f"The source {src.description} gave different rows in the profile and verify "
                 f"passes ({fingerprint.rows} then {result.rows} rows, or the same count with "
                 "other values or order). Compress a stable snapshot, or add an ORDER BY."
             )
-        files = _write_small_tables(writer, src.schema, numeric, profile, transform, mixing,
+        files = _write_small_tables(writer, src.schema, numeric, profile, scale, transform, mixing,
                                     anchors, result, basis_names, coding, cell_files)
         files.append(sums.write(writer))
         manifest = _manifest(src, opts, numeric, passthrough, rows, build, sketch.spectrum,
                              profile, transform, mixing, anchors, result, basis_names,
                              writer.parts, coding)
         manifest["refit"] = refit
+        manifest["sketch"] = read.recorded(rows)
+        if read.sampled:
+            manifest["errors"]["note"] += (
+                "; the spectrum, and so the optimal error, is estimated from the sketch's "
+                "sample of rows, while every error is measured on every row")
         return _Written(writer, result, manifest, [p["name"] for p in writer.parts] + files)
     except BaseException:
         writer.abort()
         raise
+
+
+def _whole_table_profile(src, numeric: list[str], rows: int, result: VerifyResult) -> ColumnProfile:
+    """The statistics of every row, gathered by the verify pass when the sketch read a
+    sample; checks what the profile pass would have checked on them."""
+    if result.rows != rows:
+        raise SourceChangedError(
+            f"The Parquet footers of {src.description} count {rows} rows, but the verify pass "
+            f"read {result.rows}. The files changed during compress: compress a stable snapshot."
+        )
+    if _beyond_float64(src.schema, numeric, result.profile):
+        raise _SampleMissed()
+    _check_squares(None, result.profile, numeric, src.description)
+    return result.profile
 
 
 def _no_anchors(width: int) -> AnchorRows:
@@ -603,7 +725,7 @@ def ledger_scale(profile: ColumnProfile) -> np.ndarray:
     return np.where((std > 0) & np.isfinite(std), std, 1.0)
 
 
-def _column_table(schema, numeric, profile, transform, mixing, result, coding) -> pa.Table:
+def _column_table(schema, numeric, profile, scale, transform, mixing, result, coding) -> pa.Table:
     width = len(numeric)
     is_basis = np.zeros(width, bool)
     if mixing.basis_columns is not None:
@@ -620,7 +742,7 @@ def _column_table(schema, numeric, profile, transform, mixing, result, coding) -
         "type": pa.array([str(schema.field(n).type) for n in numeric], pa.string()),
         "role": pa.array(np.where(is_basis, "basis", "derived").tolist(), pa.string()),
         "shift": transform.shift, "scale": transform.scale,
-        "ledger_scale": ledger_scale(profile),
+        "ledger_scale": scale,
         "offset": mixing.offset,
         "weights": pa.array(list(np.ascontiguousarray(mixing.weights.T)), pa.list_(pa.float64())),
         "valid": profile.valid, "nulls": profile.nulls, "nans": profile.nans,
@@ -634,10 +756,10 @@ def _column_table(schema, numeric, profile, transform, mixing, result, coding) -
     })
 
 
-def _write_small_tables(writer, schema, numeric, profile, transform, mixing, anchors, result,
+def _write_small_tables(writer, schema, numeric, profile, scale, transform, mixing, anchors, result,
                         basis_names, coding, cell_files=()) -> list[str]:
     writer.write_table(layout.COLUMNS,
-                       _column_table(schema, numeric, profile, transform, mixing, result, coding),
+                       _column_table(schema, numeric, profile, scale, transform, mixing, result, coding),
                        factor_columns=["shift", "scale", "offset"])
     anchor_cols = {layout.ROW_ID: pa.array(anchors.positions, pa.int64())}
     for j, name in enumerate(numeric):

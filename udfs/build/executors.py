@@ -32,6 +32,7 @@ import pyarrow.parquet as pq
 
 from ..errors import InvalidInputError
 from .progress import Progress
+from .row_groups import RowGroup, is_url, open_parquet, parquet_row_groups
 from .sources import Source, block_from_batch, open_source
 
 __all__ = ["Partition", "LocalExecutor", "DaskExecutor", "make_executor", "one_blas_thread",
@@ -70,10 +71,10 @@ class Partition:
                 if batch.num_rows:
                     yield batch if batch.schema.equals(wanted) else batch.cast(wanted)
             return
-        import fsspec
-
-        with fsspec.open(self.url, "rb", **(self.storage_options or {})) as handle:
-            reader = pq.ParquetFile(handle)
+        with open_parquet(self.url, self.storage_options) as handle:
+            # pre_buffer: one coalesced read per row group, decoded on Arrow's threads;
+            # measured 0.04 s against 0.1-0.3 s without, for 125,000 x 100 float64
+            reader = pq.ParquetFile(handle, pre_buffer=True)
             for batch in reader.iter_batches(batch_size=batch_rows, row_groups=self.row_groups,
                                              columns=wanted.names):
                 if batch.num_rows:
@@ -150,13 +151,28 @@ class LocalExecutor:
         self.buffer = BlockBuffer()
 
     def run(self, stage: str, task: Task, names: list[str], extra: list[str] = (),
-            total: int | None = None, args: tuple = ()) -> list[Any]:
+            total: int | None = None, args: tuple = (),
+            partitions: list[Partition] | None = None) -> list[Any]:
+        """``task`` over the whole source (one partition), or over the given ``partitions``
+        one after the other; the partials in partition order."""
         report = Progress(self.progress, stage, total)
+        out = []
         with one_blas_thread():
-            out = task(partition_blocks(self.partitions[0], names, list(extra), self.batch_rows, report,
-                                        self.buffer), self.partitions[0], *args)
+            for part in partitions if partitions is not None else self.partitions:
+                out.append(task(partition_blocks(part, names, list(extra), self.batch_rows, report,
+                                                 self.buffer), part, *args))
         report.finish()
-        return [out]
+        return out
+
+    def row_groups(self, numeric: list[str]) -> list[RowGroup] | None:
+        """The Parquet row groups of the source (None: not a Parquet dataset that pyarrow
+        reads with the same numeric columns; see ``row_groups.parquet_row_groups``)."""
+        files = self.source.parquet_files
+        return parquet_row_groups(files, numeric) if files else None
+
+    def sample_partitions(self, groups: list[RowGroup]) -> list[Partition]:
+        """Partitions reading only ``groups`` (row groups of this source), through pyarrow."""
+        return group_partitions(groups, self.schema, None)
 
     def close(self) -> None:
         self.buffer.array = None
@@ -172,9 +188,11 @@ class DaskExecutor:
     distributed = True
 
     def __init__(self, client, partitions: list[Partition], description: str, batch_rows: int,
-                 progress: Callable | None, owns_client: bool = False):
+                 progress: Callable | None, owns_client: bool = False,
+                 groups: list[RowGroup] | None = None):
         self.client = client
         self.partitions = partitions
+        self.groups = groups
         self.schema = partitions[0].schema
         self.description = description
         self.batch_rows = batch_rows
@@ -182,27 +200,44 @@ class DaskExecutor:
         self.owns_client = owns_client
 
     def run(self, stage: str, task: Task, names: list[str], extra: list[str] = (),
-            total: int | None = None, args: tuple = ()) -> list[Any]:
+            total: int | None = None, args: tuple = (),
+            partitions: list[Partition] | None = None) -> list[Any]:
+        """``task`` over every partition of the source, or over the given ``partitions``;
+        the partials in partition order."""
         from distributed import as_completed
 
         report = Progress(self.progress, stage, total)
         token = uuid.uuid4().hex[:12]
+        partitions = partitions if partitions is not None else self.partitions
         futures = [self.client.submit(_run, part, task, list(names), list(extra), self.batch_rows,
                                       args, key=f"rankfold-{stage}-{token}-{part.index}", pure=False)
-                   for part in self.partitions]
+                   for part in partitions]
         index = {f.key: i for i, f in enumerate(futures)}
         results: list[Any] = [None] * len(futures)
         try:
             for future in as_completed(futures):
                 i = index[future.key]
                 results[i] = future.result()
-                report.advance(self.partitions[i].rows or 0)
+                report.advance(partitions[i].rows or 0)
         except BaseException:
             for future in futures:
                 future.cancel()
             raise
         report.finish()
         return results
+
+    def row_groups(self, numeric: list[str]) -> list[RowGroup] | None:
+        """The Parquet row groups of the source (None for an in-memory source, or when some
+        file lacks one of the ``numeric`` columns)."""
+        if self.groups is None:
+            return None
+        present = set(self.schema.names)
+        return self.groups if all(n in present for n in numeric) else None
+
+    def sample_partitions(self, groups: list[RowGroup]) -> list[Partition]:
+        """Partitions reading only ``groups`` (row groups of this source)."""
+        options = self.partitions[0].storage_options if self.partitions else None
+        return group_partitions(groups, self.schema, options)
 
     def close(self) -> None:
         if self.owns_client:
@@ -236,14 +271,10 @@ def _dask_client(executor: Any):
         return distributed.Client(cluster), True
 
 
-def _is_url(text: str) -> bool:
-    return "://" in text and not text.startswith("file://")
-
-
 def _parquet_files(text: str, storage_options: dict | None) -> tuple[list[str], Source | None]:
     """The files of a Parquet source in DuckDB's order (sorted full paths), and for local
     files the DuckDB source (for its schema: the same types as the in-process executor)."""
-    if _is_url(text):
+    if is_url(text):
         import fsspec.core
 
         fs, root = fsspec.core.url_to_fs(text, **(storage_options or {}))
@@ -256,31 +287,29 @@ def _parquet_files(text: str, storage_options: dict | None) -> tuple[list[str], 
         protocol = text.split("://", 1)[0]
         return [f"{protocol}://{p}" for p in sorted(found)], None
     source = open_source(text)
-    target = f"{text}/**/*.parquet" if Path(text).is_dir() else text
-    files = [row[0] for row in source.connection.sql(
-        "SELECT file FROM glob(?) ORDER BY file", params=[target]).fetchall()]
-    return files, source
+    return source.parquet_files or [], source
 
 
-def _parquet_partitions(files: list[str], schema: pa.Schema, storage_options: dict | None) -> list[Partition]:
-    import fsspec
-
+def group_partitions(groups: list[RowGroup], schema: pa.Schema, storage_options: dict | None,
+                     max_rows: int = PARTITION_ROWS) -> list[Partition]:
+    """Partitions over ``groups`` (in source order): runs of consecutive row groups of one
+    file, cut once they hold ``max_rows`` rows. Row groups are never split."""
     partitions: list[Partition] = []
-    first = 0
-    for url in files:
-        with fsspec.open(url, "rb", **(storage_options or {})) as handle:
-            meta = pq.ParquetFile(handle).metadata
-        groups: list[int] = []
-        rows = 0
-        for g in range(meta.num_row_groups):
-            groups.append(g)
-            rows += meta.row_group(g).num_rows
-            if rows >= PARTITION_ROWS or g == meta.num_row_groups - 1:
-                if rows:
-                    partitions.append(Partition(len(partitions), first, rows, schema, url=url,
-                                                row_groups=groups, storage_options=storage_options))
-                first += rows
-                groups, rows = [], 0
+    run: list[RowGroup] = []
+
+    def close_run() -> None:
+        if run:
+            partitions.append(Partition(len(partitions), run[0].first_row, sum(g.rows for g in run),
+                                        schema, url=run[0].path, row_groups=[g.index for g in run],
+                                        storage_options=storage_options))
+            run.clear()
+
+    for group in groups:
+        if run and (group.path != run[-1].path or group.index != run[-1].index + 1
+                    or sum(g.rows for g in run) >= max_rows):
+            close_run()
+        run.append(group)
+    close_run()
     return partitions
 
 
@@ -288,7 +317,7 @@ def make_executor(executor: Any, source: Any, connection, batch_rows: int, progr
                   storage_options: dict | None = None):
     """The executor for ``compress(..., executor=...)``."""
     if executor is None or (isinstance(executor, str) and executor == "local"):
-        if isinstance(source, str) and _is_url(source):
+        if isinstance(source, str) and is_url(source):
             raise InvalidInputError(
                 f"The in-process executor reads local paths through DuckDB; {source!r} is a URL. "
                 "Use executor='dask' (reads any fsspec URL), or copy the data locally."
@@ -302,11 +331,13 @@ def make_executor(executor: Any, source: Any, connection, batch_rows: int, progr
             f"The 'executor' option of compress must be 'local', 'dask', a dask.distributed "
             f"Client or a scheduler address (tcp://host:port). Got {executor!r} instead."
         )
-    partitions, description, opened = _distributed_partitions(source, connection, batch_rows, storage_options)
+    partitions, description, opened, groups = _distributed_partitions(source, connection, batch_rows,
+                                                                      storage_options)
     client, owns = _dask_client(executor)
     if opened is not None:
         opened.close()
-    return DaskExecutor(client, partitions, description, batch_rows, progress, owns_client=owns)
+    return DaskExecutor(client, partitions, description, batch_rows, progress, owns_client=owns,
+                        groups=groups)
 
 
 def _distributed_partitions(source: Any, connection, batch_rows: int, storage_options):
@@ -332,10 +363,11 @@ def _distributed_partitions(source: Any, connection, batch_rows: int, storage_op
 
             with fsspec.open(files[0], "rb", **(storage_options or {})) as handle:
                 schema = pq.read_schema(handle)
-        partitions = _parquet_partitions(files, schema, storage_options)
+        groups = parquet_row_groups(files, storage_options=storage_options)
+        partitions = group_partitions(groups, schema, storage_options)
         if not partitions:  # every file empty: one empty partition, so the passes see 0 rows
             partitions = [Partition(0, 0, 0, schema, table=schema.empty_table())]
-        return partitions, text, local
+        return partitions, text, local, groups
     # in-memory sources: slices of one Arrow table (the schema DuckDB would give them)
     src = open_source(source, connection)
     try:
@@ -348,6 +380,6 @@ def _distributed_partitions(source: Any, connection, batch_rows: int, storage_op
                       for k, lo in enumerate(range(0, table.num_rows, step))]
         if not partitions:
             partitions = [Partition(0, 0, 0, src.schema, table=table)]
-        return partitions, src.description, None
+        return partitions, src.description, None, None
     finally:
         src.close()

@@ -24,6 +24,14 @@ TRANSFORMS = ("standardize", "center", "none")
 # exactly stay a small part of the table. Error and size targets choose better when given.
 DEFAULT_RANK_CAP_DIVISOR = 10
 
+# sketch_rows="auto": the sketch reads a seeded sample of Parquet row groups holding at least
+# max(AUTO_SKETCH_ROWS, AUTO_SKETCH_ROWS_PER_COLUMN * n) rows, when that is at most half the
+# table; otherwise every row. 2^17 rows estimate a 100 x 100 Gram matrix to about 0.3% per
+# entry (1 / sqrt(m) for independent rows; common practice); 256 rows per column keep the
+# sample well above the n rows that the n x n matrix needs to have full rank at all.
+AUTO_SKETCH_ROWS = 1 << 17
+AUTO_SKETCH_ROWS_PER_COLUMN = 256
+
 
 @dataclass
 class CompressOptions:
@@ -43,6 +51,7 @@ class CompressOptions:
     exact_columns: tuple[str, ...] = ()
     overwrite: bool = False
     batch_rows: int = 131_072
+    sketch_rows: Any = "auto"
     connection: Any = field(default=None, repr=False)
     progress: Any = field(default=None, repr=False)
     rel_error: Any = None
@@ -74,6 +83,13 @@ class CompressOptions:
         self.n_columns = _positive_int("n_columns", self.n_columns, allow_none=True)
         self.n_rows = _positive_int("n_rows", self.n_rows, allow_none=True)
         self.batch_rows = _positive_int("batch_rows", self.batch_rows, allow_none=False)
+        if self.sketch_rows not in ("auto", "all"):
+            if not _is_integer(self.sketch_rows) or self.sketch_rows < 1:
+                raise InvalidInputError(
+                    "The 'sketch_rows' option of compress must be 'auto', 'all' or a positive "
+                    f"number of rows. Got {self.sketch_rows!r} instead."
+                )
+            self.sketch_rows = int(self.sketch_rows)
         if not _is_integer(self.seed) or self.seed < 0:
             raise InvalidInputError(
                 f"The 'seed' option of compress must be a non-negative integer. Got {self.seed!r} instead."
@@ -135,6 +151,12 @@ class CompressOptions:
             raise InvalidInputError(
                 f"The 'key' option of compress must be one column name. Got {self.key!r} instead."
             )
+        if isinstance(self.sketch_rows, int) and (self.has_targets or self.refits):
+            raise InvalidInputError(
+                f"sketch_rows={self.sketch_rows} cannot be combined with an error or size target "
+                "or with refit_outliers: those need every row's statistics before the verify "
+                "pass. Drop sketch_rows (the sketch then reads every row)."
+            )
         if self.link == "textbook" and self.columns == "pivoted_qr":
             raise InvalidInputError(
                 "The 'textbook' link needs sampled columns (its 1/sqrt(s p) rescaling uses the "
@@ -149,6 +171,13 @@ class CompressOptions:
     @property
     def has_targets(self) -> bool:
         return any(v is not None for v in (self.rel_error, self.max_abs_error, self.target_bytes))
+
+    @property
+    def may_sample_sketch(self) -> bool:
+        """The sketch may come from a sample of row groups: no error or size target and no
+        refit, which need the full column statistics (or a second look at every row) before
+        the verify pass."""
+        return self.sketch_rows != "all" and not self.has_targets and not self.refits
 
     @property
     def sample_with_replacement(self) -> bool:

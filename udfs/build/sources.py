@@ -42,7 +42,9 @@ def quote_literal(text: str) -> str:
 class Source:
     """A relation on a DuckDB connection that can be streamed any number of times.
 
-    ``relation`` is SQL usable after FROM; ``description`` names the source in messages.
+    ``relation`` is SQL usable after FROM; ``description`` names the source in messages;
+    ``parquet_files`` lists the files of a Parquet path in the order DuckDB reads them
+    (None for other sources).
     """
 
     connection: duckdb.DuckDBPyConnection
@@ -50,6 +52,7 @@ class Source:
     schema: pa.Schema
     description: str
     owns_connection: bool = False
+    parquet_files: list[str] | None = None
 
     def batches(self, columns: list[str], batch_rows: int) -> Iterator[pa.RecordBatch]:
         """Stream ``columns`` (all when empty) in source order, ``batch_rows`` rows at a time.
@@ -184,10 +187,13 @@ def _open_text_source(text: str, connection: duckdb.DuckDBPyConnection | None) -
             relation = f"read_parquet({quote_literal(target)})"
         try:
             schema = _schema_of(con, relation)
+            files = None if lowered.endswith(_CSV_SUFFIXES) else [
+                row[0] for row in con.sql("SELECT file FROM glob(?) ORDER BY file",
+                                          params=[target]).fetchall()]
         except duckdb.Error as exc:
             con.close()
             raise InvalidInputError(f"DuckDB cannot read {text}: {exc}") from None
-        return Source(con, relation, schema, text, owns_connection=True)
+        return Source(con, relation, schema, text, owns_connection=True, parquet_files=files)
     if connection is None:
         raise InvalidInputError(
             f"The source {text!r} is neither a Parquet nor a CSV path; to compress a table or a "

@@ -1,6 +1,8 @@
 """Pass 4, verify: rebuild every block from the factors exactly as they will be stored,
 measure the residual, fill the error ledger, route cells that cannot be approximated to the
-exact-cell table, and write the row files.
+exact-cell table, and write the row files. When the sketch came from a sample of the rows,
+this pass also gathers every column's statistics (``profile_columns``), since it is then the
+only pass that reads every row.
 
 Guarantee established here: for every approximated cell (i, j),
 |x_ij - xhat_ij| <= min(scale_j * err_max_row_i, err_max_col_j) + slack_ij, where scale_j is
@@ -30,7 +32,7 @@ from ..errors import InvalidInputError, SourceChangedError
 from ..store import arithmetic, layout
 from .commit import CELLS_SCHEMA, ArchiveWriter
 from .link import Mixing
-from .profile import Fingerprint, Transform
+from .profile import ColumnProfile, Fingerprint, Transform, profile_block
 from .select import AnchorRows
 
 __all__ = ["ColumnLedger", "ExactCells", "verify_pass"]
@@ -213,18 +215,22 @@ class VerifyResult:
     rows: int
     corrections: int = 0
     basis_fill: np.ndarray | None = None
+    profile: ColumnProfile | None = None  # every column's statistics, when asked for
 
     @staticmethod
     def merge(results: list["VerifyResult"], width: int) -> "VerifyResult":
         """One result from the results of disjoint partitions (cells stay in their files)."""
         ledger, fingerprint = ColumnLedger.empty(width), Fingerprint()
         cells = ExactCells()
+        profile = ColumnProfile.empty(width) if results and results[0].profile is not None else None
         for r in results:
             ledger = ledger.merge(r.ledger)
             fingerprint = fingerprint.merge(r.fingerprint)
             cells.spilled += r.cells.count
+            if profile is not None:
+                profile = profile.merge(r.profile)
         return VerifyResult(ledger, cells, fingerprint, sum(r.rows for r in results),
-                            sum(r.corrections for r in results))
+                            sum(r.corrections for r in results), profile=profile)
 
 
 _CODE_LIMIT = 2.0**31 - 1  # residual codes are stored as int32
@@ -466,6 +472,7 @@ def verify_pass(
     block_sums=None,
     cells_file: Path | None = None,
     sub_rows: int | None = None,
+    profile_columns: bool = False,
 ) -> VerifyResult:
     """Run the verify pass and write the row files (see the module docstring).
 
@@ -473,8 +480,10 @@ def verify_pass(
     ``layout.ROW_GROUP_ROWS`` from its first row) and gives one ``block_sums`` record per row
     group; the cell-by-cell work runs over sub-blocks of ``sub_rows`` rows (default
     ``sub_block_rows(n)``; any value gives the same results up to the order of floating-point
-    summation in the ledger and the sums)."""
+    summation in the ledger and the sums). With ``profile_columns``, the result also holds
+    every column's statistics (``profile.ColumnProfile``) of the rows read."""
     width = len(names)
+    profile = ColumnProfile.empty(width) if profile_columns else None
     basis = mixing.basis_columns
     coding = coding or Coding.plain(width, mixing.weights.shape[0])
     ledger = ColumnLedger.empty(width)
@@ -544,6 +553,10 @@ def verify_pass(
                               None if mask is None else mask[lo:hi], piece.over_tolerance)
                 corrections_count += piece.corrections
                 partials.append(piece.sums)
+                if profile is not None:
+                    with np.errstate(over="ignore", invalid="ignore"):  # squares beyond ~1e154
+                        profile = profile.merge(profile_block(
+                            block[lo:hi], None if mask is None else mask[lo:hi]))
             if block_sums is not None:  # per row-group sums for aggregates (store/aggregate.py)
                 block_sums.add_partials(first + group, partials, row_max[group:end])
         columns = {layout.ROW_ID: pa.array(np.arange(first, first + b, dtype=np.int64))}
@@ -564,4 +577,4 @@ def verify_pass(
         columns[layout.ROW_ERR_L2] = pa.array(arithmetic.round_up_compact(row_l2, ledger_bits))
         writer.write_rows(pa.table(columns), first)
         rows += b
-    return VerifyResult(ledger, cells.finish(), fingerprint, rows, corrections_count)
+    return VerifyResult(ledger, cells.finish(), fingerprint, rows, corrections_count, profile=profile)
