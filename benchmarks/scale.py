@@ -9,7 +9,10 @@ ratio to one DuckDB scan, and in-process vs Dask LocalCluster. A script, not a t
     Arrow); after one untimed warm-up scan, scans and compresses alternate (--repeats) and
     the best of each is compared;
 (c) for the smallest size, the same compress on a LocalCluster with 2 worker processes,
-    checked for the same basis columns, anchor rows and values.
+    checked for the same basis columns, anchor rows and values;
+(d) how many rows the sketch read (a seeded sample of row groups by default, see
+    sketch_rows) and the archive's measured error, and for the smallest size the error of
+    the same compress with a sketch of every row (sketch_rows='all').
 Data: invented (rank 8 plus 1% noise, fixed seeds), written as Parquet files in chunks of
 250,000 rows so generating it stays small. Generated data is deleted at the end.
 """
@@ -37,6 +40,7 @@ import duckdb, numpy as np
 import rankfold
 import rankfold.udfs.build.compress  # imported before the clock starts, like duckdb for the scan
 source, target, executor = sys.argv[1], sys.argv[2], sys.argv[3]
+sketch_rows = sys.argv[4] if len(sys.argv) > 4 else "auto"
 out = {}
 if executor == "scan":
     con = duckdb.connect()
@@ -53,8 +57,10 @@ elif executor == "dask":
         out["seconds"] = time.perf_counter() - t
 else:
     t = time.perf_counter()
-    rankfold.compress(source, target, rank=8)
+    archive = rankfold.compress(source, target, rank=8, sketch_rows=sketch_rows)
     out["seconds"] = time.perf_counter() - t
+    out["relative_frobenius"] = archive.errors["relative_frobenius"]
+    out["sketch_rows_read"] = archive.manifest["sketch"]["rows_read"]
 print(json.dumps(out))
 """
 
@@ -70,14 +76,15 @@ def generate(folder: Path, rows: int, width: int) -> None:
                        folder / f"part-{k:05d}.parquet", row_group_size=125_000)
 
 
-def child(source: Path, target: Path, executor: str) -> tuple[float, float]:
-    """(seconds, peak RSS in MB) of one run in a fresh subprocess."""
+def child(source: Path, target: Path, executor: str, sketch_rows: str = "auto") -> tuple[float, float, dict]:
+    """(seconds, peak RSS in MB, everything the child printed) of one run in a fresh subprocess."""
     before = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
-    done = subprocess.run([sys.executable, "-c", CHILD, str(source), str(target), executor],
+    done = subprocess.run([sys.executable, "-c", CHILD, str(source), str(target), executor, sketch_rows],
                           capture_output=True, text=True, check=True)
     peak = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
     # ru_maxrss of RUSAGE_CHILDREN is the largest child so far: runs go smallest first
-    return json.loads(done.stdout.strip().splitlines()[-1])["seconds"], max(peak, before) / 1024
+    out = json.loads(done.stdout.strip().splitlines()[-1])
+    return out["seconds"], max(peak, before) / 1024, out
 
 
 def main() -> None:
@@ -103,17 +110,24 @@ def main() -> None:
             for _ in range(args.repeats):  # alternated, so drifts of the machine hit both alike
                 scans.append(child(data, args.out / "unused", "scan")[0])
                 shutil.rmtree(args.out / f"a-{rows}.rfa", ignore_errors=True)
-                seconds, peak = child(data, args.out / f"a-{rows}.rfa", "local")
+                seconds, peak, out = child(data, args.out / f"a-{rows}.rfa", "local")
                 runs.append(seconds)
             peaks.append(peak)
             scan, seconds = min(scans), min(runs)
             print(f"{rows:>10} {args.width:>5} {scan:>8.1f} {seconds:>10.1f} {seconds / scan:>6.2f} {peak:>11.0f}"
                   f"   (scan {', '.join(f'{v:.1f}' for v in scans)}; compress {', '.join(f'{v:.1f}' for v in runs)})",
                   flush=True)
+            print(f"  sketch read {out['sketch_rows_read']} of {rows} rows; relative Frobenius error "
+                  f"{out['relative_frobenius']:.5f}", flush=True)
             if rows == min(args.rows):
                 import rankfold
 
-                dask_seconds, _ = child(data, args.out / f"d-{rows}.rfa", "dask")
+                full_seconds, _, full = child(data, args.out / f"f-{rows}.rfa", "local", "all")
+                shutil.rmtree(args.out / f"f-{rows}.rfa", ignore_errors=True)
+                print(f"  with a sketch of every row (sketch_rows='all'): {full_seconds:.1f} s, relative "
+                      f"Frobenius error {full['relative_frobenius']:.5f} (sampled / full: "
+                      f"{out['relative_frobenius'] / full['relative_frobenius']:.4f})", flush=True)
+                dask_seconds, _, _ = child(data, args.out / f"d-{rows}.rfa", "dask")
                 a, b = rankfold.open(args.out / f"a-{rows}.rfa"), rankfold.open(args.out / f"d-{rows}.rfa")
                 same = a.basis_columns == b.basis_columns and a.anchor_rows == b.anchor_rows
                 diff = float(np.nanmax(np.abs(a.to_numpy(rows=slice(0, 200_000)) - b.to_numpy(rows=slice(0, 200_000)))))

@@ -314,6 +314,9 @@ def _compress(src, target: Path, opts: CompressOptions) -> Path:
         )
     passes = _Passes(src, opts)
     read = _sketch_rows(src, opts, numeric)
+    if read.sampled and (opts.method == "svd" or opts.link == "cx"):
+        # the next full pass is the verify pass: DuckDB starts on it while the sample is read
+        src.open_ahead(numeric, passthrough)
     profile, fingerprint, sample, gram = passes.profile(numeric, keep_sample=opts.has_targets,
                                                         groups=read.groups)
     rows = int(read.total) if read.sampled else int(fingerprint.rows)

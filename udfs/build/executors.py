@@ -61,9 +61,11 @@ class Partition:
     storage_options: dict | None = None
     table: pa.Table | None = field(default=None, repr=False)
 
-    def batches(self, columns: list[str], batch_rows: int) -> Iterator[pa.RecordBatch]:
+    def batches(self, columns: list[str], batch_rows: int, stream=None) -> Iterator[pa.RecordBatch]:
+        """The partition's batches; ``stream``: a DuckDB stream already opened for them
+        (``Source.stream``, in process only)."""
         if self.source is not None:
-            yield from self.source.batches(columns, batch_rows)
+            yield from self.source.batches(columns, batch_rows, stream)
             return
         wanted = pa.schema([self.schema.field(c) for c in columns]) if columns else self.schema
         if self.table is not None:
@@ -95,7 +97,8 @@ class BlockBuffer:
 
 
 def partition_blocks(partition: Partition, names: list[str], extra: list[str], batch_rows: int,
-                     report: Progress | None = None, buffer: BlockBuffer | None = None) -> Iterator[tuple]:
+                     report: Progress | None = None, buffer: BlockBuffer | None = None,
+                     stream=None) -> Iterator[tuple]:
     """Blocks (global first row, batch, float64 block, NULL mask) of one partition.
 
     Every block is a view of one buffer that the next block overwrites: a task must copy
@@ -105,12 +108,17 @@ def partition_blocks(partition: Partition, names: list[str], extra: list[str], b
     """
     first = partition.first_row
     buffer = buffer if buffer is not None else BlockBuffer()
-    for batch in partition.batches(list(dict.fromkeys(list(extra) + names)), batch_rows):
+    for batch in partition.batches(_columns(names, extra), batch_rows, stream):
         block, mask = block_from_batch(batch, names, out=buffer.at_least(batch.num_rows, len(names)))
         yield first, batch, block, mask
         first += batch.num_rows
         if report is not None:
             report.advance(batch.num_rows)
+
+
+def _columns(names: list[str], extra: list[str]) -> list[str]:
+    """The columns a pass reads: ``extra`` then the numeric ``names``, each once."""
+    return list(dict.fromkeys(list(extra) + list(names)))
 
 
 def one_blas_thread():
@@ -149,6 +157,20 @@ class LocalExecutor:
         self.progress = progress
         self.partitions = [Partition(0, 0, None, source.schema, source=source)]
         self.buffer = BlockBuffer()
+        self.opened: tuple[list[str], Any] | None = None  # (columns, stream) opened ahead
+
+    def open_ahead(self, names: list[str], extra: list[str] = ()) -> None:
+        """Start reading the whole source for the next full pass over these columns, so that
+        DuckDB's start-up (planning, first batches) overlaps what runs before it. A pass
+        over other columns closes the stream unread."""
+        self._close_ahead()
+        columns = _columns(names, extra)
+        self.opened = (columns, self.source.stream(columns, self.batch_rows))
+
+    def _close_ahead(self) -> None:
+        if self.opened is not None:
+            self.opened[1].close()
+            self.opened = None
 
     def run(self, stage: str, task: Task, names: list[str], extra: list[str] = (),
             total: int | None = None, args: tuple = (),
@@ -157,10 +179,24 @@ class LocalExecutor:
         one after the other; the partials in partition order."""
         report = Progress(self.progress, stage, total)
         out = []
-        with one_blas_thread():
-            for part in partitions if partitions is not None else self.partitions:
-                out.append(task(partition_blocks(part, names, list(extra), self.batch_rows, report,
-                                                 self.buffer), part, *args))
+        if total is not None and total >= self.batch_rows:
+            # full batches will come: size the buffer for them now, so that a first, shorter
+            # batch (a Parquet row group) does not leave a buffer that the next one outgrows
+            self.buffer.at_least(self.batch_rows, len(names))
+        stream = None
+        if partitions is None and self.opened is not None:
+            stream = self.opened[1] if self.opened[0] == _columns(names, extra) else None
+            if stream is None:
+                self._close_ahead()
+            self.opened = None
+        try:
+            with one_blas_thread():
+                for part in partitions if partitions is not None else self.partitions:
+                    out.append(task(partition_blocks(part, names, list(extra), self.batch_rows,
+                                                     report, self.buffer, stream), part, *args))
+        finally:
+            if stream is not None:  # a task that stopped early, or never read it
+                stream.close()
         report.finish()
         return out
 
@@ -175,6 +211,7 @@ class LocalExecutor:
         return group_partitions(groups, self.schema, None)
 
     def close(self) -> None:
+        self._close_ahead()
         self.buffer.array = None
         self.source.close()
 
@@ -233,6 +270,9 @@ class DaskExecutor:
             return None
         present = set(self.schema.names)
         return self.groups if all(n in present for n in numeric) else None
+
+    def open_ahead(self, names: list[str], extra: list[str] = ()) -> None:
+        """Nothing to start ahead: the workers open their own partitions."""
 
     def sample_partitions(self, groups: list[RowGroup]) -> list[Partition]:
         """Partitions reading only ``groups`` (row groups of this source)."""

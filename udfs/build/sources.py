@@ -12,7 +12,7 @@ from __future__ import annotations
 import queue
 import re
 import threading
-from collections.abc import Iterator
+from collections.abc import Callable, Iterable, Iterator
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -54,68 +54,119 @@ class Source:
     owns_connection: bool = False
     parquet_files: list[str] | None = None
 
-    def batches(self, columns: list[str], batch_rows: int) -> Iterator[pa.RecordBatch]:
-        """Stream ``columns`` (all when empty) in source order, ``batch_rows`` rows at a time.
+    def stream(self, columns: list[str], batch_rows: int) -> "ReadAhead":
+        """Start streaming ``columns`` (all when empty) in source order, ``batch_rows`` rows
+        at a time: DuckDB plans the query and decodes the first batches on a helper thread
+        from now on (measured 0.4 s to the first batch of 1e6 x 100 Parquet rows), so a
+        stream opened early costs the caller nothing until it is read. Read it with
+        :meth:`batches`; close it when it is not."""
+        select = ", ".join(quote_identifier(c) for c in columns) if columns else "*"
+        query = f"SELECT {select} FROM {self.relation}"
+
+        def duckdb_batches() -> Iterator[pa.RecordBatch]:
+            cursor = self.connection.cursor()
+            try:
+                yield from cursor.sql(query).to_arrow_reader(batch_rows)
+            finally:
+                cursor.close()
+
+        return ReadAhead(duckdb_batches)
+
+    def batches(self, columns: list[str], batch_rows: int,
+                stream: "ReadAhead | None" = None) -> Iterator[pa.RecordBatch]:
+        """Stream ``columns`` (all when empty) in source order, ``batch_rows`` rows at a time
+        (from ``stream``, when one was opened for them with :meth:`stream`).
 
         Batches carry the source's own Arrow types: DuckDB maps some types onto its own
         (large_string comes back as string, for one), so they are cast back to ``schema``.
         """
-        select = ", ".join(quote_identifier(c) for c in columns) if columns else "*"
         wanted = pa.schema([self.schema.field(c) for c in columns]) if columns else self.schema
-        cursor = self.connection.cursor()
+        stream = stream if stream is not None else self.stream(columns, batch_rows)
         try:
-            reader = cursor.sql(f"SELECT {select} FROM {self.relation}").to_arrow_reader(batch_rows)
-            for batch in read_ahead(reader):
+            for batch in stream:
                 if batch.num_rows:
                     yield batch if batch.schema.equals(wanted) else batch.cast(wanted)
         finally:
-            cursor.close()
+            stream.close()
 
     def close(self) -> None:
         if self.owns_connection:
             self.connection.close()
 
 
-def read_ahead(reader: pa.RecordBatchReader, depth: int = 1) -> Iterator[pa.RecordBatch]:
-    """The batches of ``reader``, read by a helper thread up to ``depth`` batches ahead, so the
-    reader (DuckDB decoding Parquet on its own threads) works while the caller computes on
-    the previous batch. Errors of the reader are raised here; closing this generator early
-    stops the thread before it returns (memory: at most depth + 2 batches)."""
-    slots: queue.Queue = queue.Queue(maxsize=depth)
-    stop = threading.Event()
-    done = object()
+_DONE = object()
 
-    def hand_over(item: Any) -> bool:
-        while not stop.is_set():
+
+class ReadAhead:
+    """The batches of a reader, read by a helper thread up to ``depth`` batches ahead, so
+    the reader (DuckDB decoding Parquet on its own threads) works while the caller computes
+    on the previous batch.
+
+    ``open_batches`` (called on the helper thread) gives the batches, e.g. a generator that
+    opens a DuckDB cursor and closes it in its ``finally``. The thread starts at once. Errors
+    of the reader are raised by ``next``; :meth:`close` (also at the end of the batches, or
+    after an error) stops the thread and closes the batches (memory: at most depth + 2
+    batches).
+    """
+
+    def __init__(self, open_batches: Callable[[], Iterator[pa.RecordBatch]], depth: int = 1):
+        self._slots: queue.Queue = queue.Queue(maxsize=depth)
+        self._stop = threading.Event()
+        self._closed = False
+        self._worker = threading.Thread(target=self._produce, args=(open_batches,),
+                                        name="rankfold-read-ahead", daemon=True)
+        self._worker.start()
+
+    def _hand_over(self, item: Any) -> bool:
+        while not self._stop.is_set():
             try:
-                slots.put(item, timeout=0.05)
+                self._slots.put(item, timeout=0.05)
                 return True
             except queue.Full:
                 continue
         return False
 
-    def produce() -> None:
+    def _produce(self, open_batches) -> None:
+        batches = None
         try:
-            for batch in reader:
-                if not hand_over(batch):
+            batches = open_batches()
+            for batch in batches:
+                if not self._hand_over(batch):
                     return
-            hand_over(done)
+            self._hand_over(_DONE)
         except BaseException as exc:  # handed to the caller's thread
-            hand_over(exc)
+            self._hand_over(exc)
+        finally:
+            if hasattr(batches, "close"):
+                batches.close()
 
-    worker = threading.Thread(target=produce, name="rankfold-read-ahead", daemon=True)
-    worker.start()
-    try:
-        while True:
-            item = slots.get()
-            if item is done:
-                return
-            if isinstance(item, BaseException):
-                raise item
-            yield item
-    finally:
-        stop.set()
-        worker.join()
+    def __iter__(self) -> "ReadAhead":
+        return self
+
+    def __next__(self) -> pa.RecordBatch:
+        if self._closed:
+            raise StopIteration
+        item = self._slots.get()
+        if item is _DONE:
+            self.close()
+            raise StopIteration
+        if isinstance(item, BaseException):
+            self.close()
+            raise item
+        return item
+
+    def close(self) -> None:
+        """Stop the helper thread and close the batches (idempotent)."""
+        if not self._closed:
+            self._closed = True
+            self._stop.set()
+            self._worker.join()
+
+
+def read_ahead(reader: Iterable[pa.RecordBatch], depth: int = 1) -> ReadAhead:
+    """The batches of ``reader`` (e.g. a ``pyarrow.RecordBatchReader``) read ahead by a helper
+    thread; see :class:`ReadAhead`."""
+    return ReadAhead(lambda: iter(reader), depth)
 
 
 def _schema_of(connection: duckdb.DuckDBPyConnection, relation: str) -> pa.Schema:

@@ -281,7 +281,7 @@ class _Piece:
     block_l2: np.ndarray
     block_sum: np.ndarray
     cells: np.ndarray
-    fingerprint: Fingerprint
+    fingerprint: Fingerprint | None
     corrections: int
     stored: np.ndarray | None        # (s, n) cells stored exactly outside kept rows/columns
     over_tolerance: np.ndarray | None  # (s, n) those of them that are corrections
@@ -316,6 +316,7 @@ class _Kernel:
     tolerance_columns: np.ndarray  # approximated columns with a finite tolerance
     ledger_scale: np.ndarray    # (n,)
     block_sums: Any
+    with_fingerprint: bool = True  # False: the pass is not compared with another one
 
     def __post_init__(self) -> None:
         # position of each column among the coded ones (-1: no residual code)
@@ -394,8 +395,10 @@ class _Kernel:
         else:
             row_max_out[...] = 0.0
             row_l2_out[...] = 0.0
-        fingerprint = Fingerprint()
-        fingerprint.update(first, x, with_scale=False)  # the profile pass's sets the tolerance
+        fingerprint = None
+        if self.with_fingerprint:
+            fingerprint = Fingerprint()
+            fingerprint.update(first, x, with_scale=False)  # the profile pass's sets the tolerance
         sums = None
         if self.block_sums is not None:
             rows_i, cols_j = self._overridden(stored, anchors)
@@ -498,7 +501,8 @@ def verify_pass(
     tolerance = coding.tolerance
     kernel = _Kernel(mixing, np.flatnonzero(is_basis), np.flatnonzero(~is_basis), with_residual,
                      steps[with_residual], tolerance, np.flatnonzero(np.isfinite(tolerance) & ~is_basis),
-                     np.asarray(ledger_scale, dtype=np.float64), block_sums)
+                     np.asarray(ledger_scale, dtype=np.float64), block_sums,
+                     with_fingerprint=not profile_columns)
     step = int(sub_rows) if sub_rows is not None else sub_block_rows(width)
     if step < 1:
         raise InvalidInputError(f"sub_rows must be a positive number of rows; got {sub_rows}.")
@@ -547,7 +551,8 @@ def verify_pass(
                                    buffers, None if codes is None else codes[lo:hi],
                                    row_max[lo:hi], row_l2[lo:hi])
                 ledger.add_stats(piece.block_max, piece.block_l2, piece.block_sum, piece.cells)
-                fingerprint = fingerprint.merge(piece.fingerprint)
+                if piece.fingerprint is not None:
+                    fingerprint = fingerprint.merge(piece.fingerprint)
                 if piece.stored is not None:
                     cells.add(first + lo, piece.stored, block[lo:hi],
                               None if mask is None else mask[lo:hi], piece.over_tolerance)
