@@ -77,6 +77,7 @@ def _summary_text(info: dict[str, Any]) -> str:
         f"shape         {rows} rows x {width} numeric columns",
         f"method        {info['method']}, rank {info['rank']} ({info['rank_reason']}), "
         f"transform {info['transform']}",
+        f"sketch        {_sketch_text(info['sketch'])}",
         f"size          {info['archive_bytes']:,} bytes in {len(info['files'])} files "
         f"(numeric block as raw float64: {info['raw_float64_bytes']:,} bytes)",
         "kept exactly:",
@@ -92,6 +93,23 @@ def _summary_text(info: dict[str, Any]) -> str:
         f"  max abs error / std     {_fmt(e.get('max_abs_error_over_std'))}",
     ]
     return "\n".join(lines)
+
+
+def _sketch_text(sketch: dict[str, Any]) -> str:
+    if not sketch["sampled"]:
+        return f"read every row ({sketch['rows_read']:,})"
+    return (f"read {sketch['rows_read']:,} of {sketch['of_rows']:,} rows (a seeded sample of "
+            f"{sketch['row_groups_read']} of {sketch['of_row_groups']} row groups); errors are "
+            "measured on every row")
+
+
+def _sketch_rows(text: str) -> str | int:
+    if text in ("auto", "all"):
+        return text
+    try:
+        return int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected 'auto', 'all' or a number of rows, got {text!r}") from None
 
 
 def _parse_rows(spec: str | None) -> Any:
@@ -122,7 +140,7 @@ def cmd_compress(args: argparse.Namespace) -> int:
 
     options: dict[str, Any] = {}
     for name in ("method", "columns", "link", "transform", "key", "n_columns", "n_rows",
-                 "max_abs_error", "rel_error", "target_bytes"):
+                 "max_abs_error", "rel_error", "target_bytes", "sketch_rows"):
         if getattr(args, name) is not None:
             options[name] = getattr(args, name)
     if args.rows_method is not None:
@@ -339,6 +357,10 @@ def build_parser() -> argparse.ArgumentParser:
                    help="target archive size in bytes; the rank is chosen to meet it")
     p.add_argument("--key", help="column to address rows by (kept exactly)")
     p.add_argument("--exact-columns", metavar="A,B", help="numeric columns to keep exactly, comma separated")
+    p.add_argument("--sketch-rows", type=_sketch_rows, dest="sketch_rows", metavar="N",
+                   help="rows the sketch that chooses the columns reads: auto (default: a seeded "
+                        "sample of Parquet row groups when the table is large), all, or a number; "
+                        "every error is still measured on every row")
     p.add_argument("--overwrite", action="store_true", help="replace an existing archive (never any other file)")
     p.set_defaults(func=cmd_compress)
 

@@ -98,6 +98,7 @@ def summary(archive: Any) -> dict[str, Any]:
         "rank": m["method"]["rank"],
         "rank_reason": m["method"].get("rank_reason"),
         "transform": m.get("transform"),
+        "sketch": _sketch_rows(m, rows),
         "options": m["method"].get("options", {}),
         "seed": m["method"].get("seed"),
         "basis_columns": arch.basis_columns,
@@ -108,6 +109,11 @@ def summary(archive: Any) -> dict[str, Any]:
         "files": files,
         "errors": arch.errors,
     }
+
+
+def _sketch_rows(manifest: dict[str, Any], rows: int) -> dict[str, Any]:
+    """Which rows the sketch read (archives written before sketch_rows read every row)."""
+    return manifest.get("sketch") or {"rows_read": rows, "of_rows": rows, "sampled": False}
 
 
 # -- why the basis columns ------------------------------------------------------------------------

@@ -296,3 +296,21 @@ def test_sketch_rows_needs_a_parquet_source_and_no_targets(dataset, tmp_path):
         rankfold.compress(np.ones((40, 3)), tmp_path / "x.rfa", sketch_rows=10)
     with pytest.raises(InvalidInputError, match="error or size target"):
         rankfold.compress(str(folder), tmp_path / "y.rfa", rel_error=0.1, sketch_rows=3000)
+
+
+def test_command_line_takes_sketch_rows_and_inspect_says_what_the_sketch_read(dataset, tmp_path, capsys):
+    from rankfold.cli import main
+
+    folder, _ = dataset
+    target = tmp_path / "cli.rfa"
+    assert main(["compress", str(folder), str(target), "--rank", "3", "--sketch-rows", "3000",
+                 "--quiet"]) == 0
+    sketch = rankfold.open(target).manifest["sketch"]
+    capsys.readouterr()
+    assert main(["inspect", str(target)]) == 0
+    out = capsys.readouterr().out
+    assert (f"sketch        read {sketch['rows_read']:,} of 30,000 rows (a seeded sample of "
+            f"{sketch['row_groups_read']} of {sketch['of_row_groups']} row groups)") in out
+    with pytest.raises(SystemExit):
+        main(["compress", str(folder), str(tmp_path / "bad.rfa"), "--sketch-rows", "many"])
+    assert "expected 'auto', 'all' or a number of rows" in capsys.readouterr().err
