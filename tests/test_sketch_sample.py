@@ -314,3 +314,18 @@ def test_command_line_takes_sketch_rows_and_inspect_says_what_the_sketch_read(da
     with pytest.raises(SystemExit):
         main(["compress", str(folder), str(tmp_path / "bad.rfa"), "--sketch-rows", "many"])
     assert "expected 'auto', 'all' or a number of rows" in capsys.readouterr().err
+
+
+def test_sampled_archive_passes_verify_against_its_source_and_takes_appended_rows(dataset, tmp_path):
+    """The independent check (rankfold.verify re-reads the source and compares every cell
+    with its bound) passes, and appended rows are verified with the sampled factors."""
+    folder, table = dataset
+    archive = rankfold.compress(str(folder), tmp_path / "v.rfa", rank=3, sketch_rows=3000, seed=2)
+    report = rankfold.verify(archive.path, str(folder))
+    assert report["ok"], report["problems"]
+    assert report["source"]["cells_checked"] == 30_000 * len(archive.numeric_columns)
+    more = table.slice(0, 2000)
+    grown = archive.append(more)
+    assert grown.shape == (32_000, archive.shape[1])
+    truth = np.vstack([_truth(archive, table), _truth(archive, more)])
+    _assert_bounds_hold(grown, truth)
