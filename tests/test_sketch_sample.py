@@ -149,6 +149,14 @@ def test_sampled_sketch_keeps_bounds_and_records_every_rows_statistics(dataset, 
         assert ledger.column("min")[j].as_py() == finite.min()
         assert ledger.column("max")[j].as_py() == finite.max()
     assert ledger.column("infinities")[archive.numeric_columns.index("v02")].as_py() == 5
+    # the relative error is of the whole table too: numpy, in the archive's transformed units
+    shift, scale = ledger.column("shift").to_numpy(), ledger.column("scale").to_numpy()
+    finite = np.isfinite(truth)
+    with np.errstate(invalid="ignore"):  # inf - inf where the cell is not finite
+        z = np.where(finite, (truth - shift) / scale, 0.0)
+        e = np.where(finite, (truth - archive.to_numpy()) / scale, 0.0)
+    np.testing.assert_allclose(archive.errors["relative_frobenius"],
+                               np.linalg.norm(e) / np.linalg.norm(z), rtol=1e-6)
 
 
 def test_sampled_sketch_is_as_good_as_the_full_one_on_a_uniform_table(dataset, tmp_path):

@@ -616,7 +616,7 @@ def _write(src, target, opts, numeric, passthrough, rows, profile, fingerprint, 
         if read.sampled:
             manifest["errors"]["note"] += (
                 "; the spectrum, and so the optimal error, is estimated from the sketch's "
-                "sample of rows, while every error is measured on every row")
+                "sample of rows; every error, and the table's norm, is measured on every row")
         return _Written(writer, result, manifest, [p["name"] for p in writer.parts] + files)
     except BaseException:
         writer.abort()
@@ -779,14 +779,23 @@ def _finite_or_none(value: float) -> float | None:
     return value if math.isfinite(value) else None
 
 
-def _error_summary(numeric, profile, transform, result, spectrum, rank) -> dict[str, Any]:
+def _transformed_norm(profile: ColumnProfile, transform: Transform) -> float:
+    """||Z||_F of the transformed table (missing cells at 0) from every row's statistics:
+    per column, sum_i (x_ij - shift_j)^2 / scale_j^2 = (m2_j + valid_j (mean_j - shift_j)^2) / scale_j^2."""
+    with np.errstate(over="ignore", invalid="ignore"):
+        per_column = (profile.m2 + profile.valid * (profile.mean - transform.shift) ** 2) / transform.scale**2
+    return float(np.sqrt(np.sum(per_column)))
+
+
+def _error_summary(numeric, profile, transform, result, spectrum, rank, sampled=False) -> dict[str, Any]:
     ledger = result.ledger
     std = profile.std
     rms = ledger.err_l2 / np.sqrt(np.maximum(ledger.cells, 1))
     with np.errstate(invalid="ignore", divide="ignore"):
         rel_rms = np.where(std > 0, rms / np.where(std > 0, std, 1), np.nan)
         max_over_std = np.where(std > 0, ledger.err_max / np.where(std > 0, std, 1), np.nan)
-    total = float(np.sqrt(np.sum(spectrum.values ** 2)))
+    # the spectrum of a sampled sketch estimates ||Z||_F; every row's statistics give it exactly
+    total = _transformed_norm(profile, transform) if sampled else float(np.sqrt(np.sum(spectrum.values ** 2)))
     z_err = float(np.sqrt(np.sum((ledger.err_l2 / transform.scale) ** 2)))
     worst = int(np.nanargmax(rel_rms)) if np.isfinite(rel_rms).any() else None
     optimum = spectrum.optimal_relative_error(rank)
@@ -846,6 +855,7 @@ def _manifest(src, opts, numeric, passthrough, rows, build, spectrum, profile, t
         "anchors": [int(p) for p in anchors.positions],
         "row_parts": parts,
         "spectrum": [float(s) for s in spectrum.values],
-        "errors": _error_summary(numeric, profile, transform, result, spectrum, build.rank),
+        "errors": _error_summary(numeric, profile, transform, result, spectrum, build.rank,
+                                 sampled=result.profile is not None),
         "files": [],
     }
