@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import json
 
+import duckdb
 import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
@@ -22,7 +23,8 @@ from hypothesis import strategies as st
 from scipy import stats
 
 import rankfold
-from rankfold.udfs.build.row_groups import RowGroup, choose_row_groups, parquet_row_groups
+from rankfold.udfs.build.row_groups import (RowGroup, choose_row_groups, parquet_row_groups,
+                                            table_row_groups)
 from rankfold.udfs.errors import InvalidInputError, SourceChangedError
 
 GROUP_ROWS = 500
@@ -300,7 +302,7 @@ def test_bad_sketch_rows_are_refused(tmp_path, value, message):
 
 def test_sketch_rows_needs_a_parquet_source_and_no_targets(dataset, tmp_path):
     folder, _ = dataset
-    with pytest.raises(InvalidInputError, match="not a Parquet dataset"):
+    with pytest.raises(InvalidInputError, match="neither a Parquet dataset"):
         rankfold.compress(np.ones((40, 3)), tmp_path / "x.rfa", sketch_rows=10)
     with pytest.raises(InvalidInputError, match="error or size target"):
         rankfold.compress(str(folder), tmp_path / "y.rfa", rel_error=0.1, sketch_rows=3000)
@@ -337,3 +339,53 @@ def test_sampled_archive_passes_verify_against_its_source_and_takes_appended_row
     assert grown.shape == (32_000, archive.shape[1])
     truth = np.vstack([_truth(archive, table), _truth(archive, more)])
     _assert_bounds_hold(grown, truth)
+
+
+# -- DuckDB tables: ranges of row ids ---------------------------------------------------------
+def _database(path, columns: dict, delete_every: int | None = None):
+    con = duckdb.connect(str(path))
+    con.from_arrow(pa.table(columns)).create("readings")
+    if delete_every:
+        con.sql(f"DELETE FROM readings WHERE rowid % {delete_every} = 0")
+    return con
+
+
+def test_table_row_groups_count_the_rows_of_each_rowid_range(tmp_path):
+    x = _low_rank(15, 20_000, 3)
+    con = _database(tmp_path / "t.duckdb", _floats(x), delete_every=7)
+    groups = table_row_groups(con, "readings", ["v00", "v01", "v02"])
+    assert len(groups) >= 8
+    first = 0
+    for g in groups:  # each range's count, asked of DuckDB directly
+        lo, hi = g.rowids
+        assert g.rows == con.sql(f"SELECT count(*) FROM readings WHERE rowid BETWEEN {lo} AND {hi}").fetchall()[0][0]
+        assert g.first_row == first and g.path is None
+        first += g.rows
+    assert first == con.sql("SELECT count(*) FROM readings").fetchall()[0][0] == 20_000 - 2858
+    con.sql("CREATE VIEW recent AS SELECT * FROM readings")
+    assert table_row_groups(con, "recent", ["v00"]) is None  # a view has no row ids
+    assert table_row_groups(con, "readings", ["v00", "RowId"]) is None  # shadowed row ids
+
+
+def test_sampled_sketch_of_a_duckdb_table(tmp_path):
+    x = _low_rank(16, 30_000, 8)
+    rng = np.random.default_rng(17)
+    columns = _floats(x)
+    columns["v03"] = pa.array(x[:, 3], mask=rng.random(30_000) < 0.05)
+    con = _database(tmp_path / "t.duckdb", columns, delete_every=11)
+    kept = con.sql("SELECT * FROM readings").to_arrow_table()
+    one = rankfold.compress("readings", tmp_path / "1.rfa", connection=con, rank=2, sketch_rows=3000, seed=3)
+    two = rankfold.compress("readings", tmp_path / "2.rfa", connection=con, rank=2, sketch_rows=3000, seed=3)
+    sketch = one.manifest["sketch"]
+    assert sketch["sampled"] and 3000 <= sketch["rows_read"] < kept.num_rows == sketch["of_rows"]
+    assert sketch == two.manifest["sketch"] and one.basis_columns == two.basis_columns
+    assert np.array_equal(one.to_numpy(), two.to_numpy(), equal_nan=True)
+    truth = _truth(one, kept)
+    _assert_bounds_hold(one, truth)
+    ledger = one.column_ledger()
+    for j in range(truth.shape[1]):  # statistics of every row (numpy)
+        finite = truth[:, j][np.isfinite(truth[:, j])]
+        assert ledger.column("valid")[j].as_py() == finite.size
+        np.testing.assert_allclose(ledger.column("mean")[j].as_py(), finite.mean(), rtol=1e-12, atol=1e-15)
+    with pytest.raises(InvalidInputError, match="neither a Parquet dataset"):
+        rankfold.compress("SELECT * FROM readings", tmp_path / "q.rfa", connection=con, sketch_rows=3000)

@@ -214,9 +214,10 @@ def _sketch_rows(src, opts: CompressOptions, numeric: list[str]) -> _SketchRows:
     if groups is None:
         if isinstance(opts.sketch_rows, int):
             raise InvalidInputError(
-                f"sketch_rows={opts.sketch_rows} reads a sample of Parquet row groups, but "
-                f"{src.description} is not a Parquet dataset whose files hold every numeric "
-                "column. Drop sketch_rows (the sketch then reads every row)."
+                f"sketch_rows={opts.sketch_rows} reads a sample of row groups, but "
+                f"{src.description} is neither a Parquet dataset whose files hold every numeric "
+                "column nor a DuckDB base table (views, queries and CSV files have no row groups "
+                "to pick). Drop sketch_rows (the sketch then reads every row)."
             )
         return every
     total = sum(g.rows for g in groups)

@@ -32,7 +32,8 @@ import pyarrow.parquet as pq
 
 from ..errors import InvalidInputError
 from .progress import Progress
-from .row_groups import RowGroup, is_url, open_parquet, parquet_row_groups
+from .row_groups import (RowGroup, is_url, open_parquet, parquet_row_groups, rowid_filter,
+                         table_row_groups)
 from .sources import Source, block_from_batch, open_source
 
 __all__ = ["Partition", "LocalExecutor", "DaskExecutor", "make_executor", "one_blas_thread",
@@ -48,8 +49,9 @@ Task = Callable[..., Any]
 class Partition:
     """Rows ``first_row`` .. ``first_row + rows - 1`` of the source.
 
-    Exactly one of: ``source`` (a DuckDB source, in process only), ``url`` + ``row_groups``
-    (Parquet through fsspec), ``table`` (an Arrow table slice)."""
+    Exactly one of: ``source`` (a DuckDB source, in process only; ``where``: only the rows
+    meeting that SQL condition), ``url`` + ``row_groups`` (Parquet, local or through fsspec),
+    ``table`` (an Arrow table slice)."""
 
     index: int
     first_row: int
@@ -60,12 +62,13 @@ class Partition:
     row_groups: list[int] | None = None
     storage_options: dict | None = None
     table: pa.Table | None = field(default=None, repr=False)
+    where: str | None = None
 
     def batches(self, columns: list[str], batch_rows: int, stream=None) -> Iterator[pa.RecordBatch]:
         """The partition's batches; ``stream``: a DuckDB stream already opened for them
         (``Source.stream``, in process only)."""
         if self.source is not None:
-            yield from self.source.batches(columns, batch_rows, stream)
+            yield from self.source.batches(columns, batch_rows, stream, self.where)
             return
         wanted = pa.schema([self.schema.field(c) for c in columns]) if columns else self.schema
         if self.table is not None:
@@ -204,10 +207,16 @@ class LocalExecutor:
         """The Parquet row groups of the source (None: not a Parquet dataset that pyarrow
         reads with the same numeric columns; see ``row_groups.parquet_row_groups``)."""
         files = self.source.parquet_files
-        return parquet_row_groups(files, numeric) if files else None
+        if files:
+            return parquet_row_groups(files, numeric)
+        return table_row_groups(self.source.connection, self.source.relation, self.schema.names)
 
     def sample_partitions(self, groups: list[RowGroup]) -> list[Partition]:
-        """Partitions reading only ``groups`` (row groups of this source), through pyarrow."""
+        """Partitions reading only ``groups`` (row groups of this source): through pyarrow
+        for Parquet files, through DuckDB with a row-id filter for a table."""
+        if groups and groups[0].path is None:
+            return [Partition(0, groups[0].first_row, sum(g.rows for g in groups), self.schema,
+                              source=self.source, where=rowid_filter(groups))]
         return group_partitions(groups, self.schema, None)
 
     def close(self) -> None:

@@ -1,8 +1,11 @@
-"""Row groups of a Parquet source, and the seeded sample of them that the sketch may read.
+"""Row groups of a Parquet source or a DuckDB table, and the seeded sample of them that the
+sketch may read.
 
 A Parquet footer gives every row group's row count without reading any data, so the rows of
 a dataset can be numbered (files in the source's order, groups in file order) and a sample
-of whole row groups read by index, decoding nothing else. The compress sketch (the n x n
+of whole row groups read by index, decoding nothing else. A DuckDB base table is cut the same
+way into ranges of its row ids, which DuckDB reads without scanning the rest (a filter on
+``rowid`` reaches the table scan: 250,000 of 4e6 rows x 100 read in 0.2 s). The compress sketch (the n x n
 Gram matrix that chooses the basis columns and their weights) can come from such a sample;
 the verify pass still reads every row and measures every error, so what the archive reports
 never rests on the sample.
@@ -17,18 +20,26 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-__all__ = ["RowGroup", "parquet_row_groups", "choose_row_groups", "open_parquet", "is_url"]
+__all__ = ["RowGroup", "parquet_row_groups", "table_row_groups", "choose_row_groups",
+           "rowid_filter", "open_parquet", "is_url"]
+
+# Row-id ranges of a DuckDB table: DuckDB's own row group size, or smaller for small tables
+# so that a sample can still be a small part of them (at least 64 ranges, 2048-row vectors).
+TABLE_GROUP_ROWS = 122_880
+_VECTOR_ROWS = 2048
 
 
 @dataclass(frozen=True)
 class RowGroup:
-    """Row group ``index`` of the Parquet file ``path``: source rows ``first_row`` ..
+    """Row group ``index`` of the Parquet file ``path``, or for a DuckDB table (``path``
+    None) the rows whose row ids lie in ``rowids`` (inclusive): source rows ``first_row`` ..
     ``first_row + rows - 1``."""
 
-    path: str
+    path: str | None
     index: int
     first_row: int
     rows: int
+    rowids: tuple[int, int] | None = None
 
 
 def is_url(text: str) -> bool:
@@ -75,6 +86,41 @@ def parquet_row_groups(files: list[str], numeric: list[str] | None = None,
                 groups.append(RowGroup(path, g, first, rows))
             first += rows
     return groups
+
+
+def table_row_groups(connection, relation: str, names: list[str]) -> list[RowGroup] | None:
+    """Ranges of row ids of a DuckDB base table, with the rows each holds (one grouped count
+    over the row ids: 19 ms for 4e6 rows); None when ``relation`` has no row ids (a view, a
+    query, a file reader) or has a column of its own named rowid, which would shadow them."""
+    import duckdb
+
+    if any(name.lower() == "rowid" for name in names):
+        return None
+    try:
+        largest = connection.sql(f"SELECT max(rowid) FROM {relation}").fetchall()[0][0]
+        if largest is None:
+            return []
+        span = _table_span(int(largest) + 1)
+        counts = connection.sql(
+            f"SELECT rowid // {span} AS g, count(*) FROM {relation} GROUP BY g ORDER BY g").fetchall()
+    except duckdb.Error:
+        return None
+    groups, first = [], 0
+    for g, rows in counts:
+        groups.append(RowGroup(None, int(g), first, int(rows), (int(g) * span, int(g) * span + span - 1)))
+        first += int(rows)
+    return groups
+
+
+def _table_span(rowids: int) -> int:
+    """Row ids per range: TABLE_GROUP_ROWS, or fewer (whole vectors) for at least 64 ranges."""
+    wanted = -(-rowids // 64)
+    return min(TABLE_GROUP_ROWS, max(_VECTOR_ROWS, -(-wanted // _VECTOR_ROWS) * _VECTOR_ROWS))
+
+
+def rowid_filter(groups: list[RowGroup]) -> str:
+    """A SQL condition selecting the rows of the given table row groups."""
+    return " OR ".join(f"rowid BETWEEN {g.rowids[0]} AND {g.rowids[1]}" for g in groups)
 
 
 def choose_row_groups(groups: list[RowGroup], wanted_rows: int, seed: int) -> list[RowGroup]:
