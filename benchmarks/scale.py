@@ -12,7 +12,9 @@ ratio to one DuckDB scan, and in-process vs Dask LocalCluster. A script, not a t
     checked for the same basis columns, anchor rows and values;
 (d) how many rows the sketch read (a seeded sample of row groups by default, see
     sketch_rows) and the archive's measured error, and for the smallest size the error of
-    the same compress with a sketch of every row (sketch_rows='all').
+    the same compress with a sketch of every row (sketch_rows='all');
+(e) with --duckdb-table, the same data loaded into a table of a DuckDB file database, and the
+    ratio of compressing that table to one scan of it (scan and compress alternated).
 Data: invented (rank 8 plus 1% noise, fixed seeds), written as Parquet files in chunks of
 250,000 rows so generating it stays small. Generated data is deleted at the end.
 """
@@ -49,6 +51,20 @@ if executor == "scan":
     for batch in con.sql(f"SELECT * FROM read_parquet('{source}/*.parquet')").to_arrow_reader(131072):
         rows += batch.num_rows
     out["seconds"] = time.perf_counter() - t
+elif executor == "table-scan":
+    con = duckdb.connect(source, read_only=True)
+    t = time.perf_counter()
+    rows = 0
+    for batch in con.sql("SELECT * FROM readings").to_arrow_reader(131072):
+        rows += batch.num_rows
+    out["seconds"] = time.perf_counter() - t
+elif executor == "table":
+    con = duckdb.connect(source, read_only=True)
+    t = time.perf_counter()
+    archive = rankfold.compress("readings", target, connection=con, rank=8, sketch_rows=sketch_rows)
+    out["seconds"] = time.perf_counter() - t
+    out["relative_frobenius"] = archive.errors["relative_frobenius"]
+    out["sketch_rows_read"] = archive.manifest["sketch"]["rows_read"]
 elif executor == "dask":
     from distributed import Client, LocalCluster
     with LocalCluster(n_workers=2, threads_per_worker=1, dashboard_address=None) as cluster, Client(cluster) as client:
@@ -87,12 +103,38 @@ def child(source: Path, target: Path, executor: str, sketch_rows: str = "auto") 
     return out["seconds"], max(peak, before) / 1024, out
 
 
+def table_ratio(data: Path, out: Path, rows: int, repeats: int) -> None:
+    """(e): the data as a DuckDB table; compress of the table against one scan of it."""
+    import duckdb
+
+    database = out / f"table-{rows}.duckdb"
+    database.unlink(missing_ok=True)
+    with duckdb.connect(str(database)) as con:
+        con.sql(f"CREATE TABLE readings AS SELECT * FROM read_parquet('{data}/*.parquet')")
+    os.sync()
+    child(database, out / "unused", "table-scan")  # warm-up, untimed
+    scans, runs = [], []
+    for _ in range(repeats):
+        scans.append(child(database, out / "unused", "table-scan")[0])
+        shutil.rmtree(out / f"t-{rows}.rfa", ignore_errors=True)
+        seconds, _, result = child(database, out / f"t-{rows}.rfa", "table")
+        runs.append(seconds)
+    shutil.rmtree(out / f"t-{rows}.rfa", ignore_errors=True)
+    database.unlink()
+    print(f"  DuckDB table: scan {min(scans):.1f} s, compress {min(runs):.1f} s, ratio "
+          f"{min(runs) / min(scans):.2f} (scan {', '.join(f'{v:.1f}' for v in scans)}; compress "
+          f"{', '.join(f'{v:.1f}' for v in runs)}); sketch read {result['sketch_rows_read']} rows",
+          flush=True)
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     parser.add_argument("--rows", type=int, nargs="+", default=[1_000_000, 4_000_000, 16_000_000])
     parser.add_argument("--width", type=int, default=100)
     parser.add_argument("--out", type=Path, default=Path("scale_tmp"))
     parser.add_argument("--keep", action="store_true", help="keep the generated data")
+    parser.add_argument("--duckdb-table", action="store_true",
+                        help="also compress the data as a table of a DuckDB file database")
     parser.add_argument("--repeats", type=int, default=2,
                         help="scan and compress runs per size, alternated (the best of each is compared)")
     args = parser.parse_args()
@@ -136,6 +178,8 @@ def main() -> None:
                       f"(first 200,000 rows) {diff:.2e}", flush=True)
             shutil.rmtree(args.out / f"a-{rows}.rfa", ignore_errors=True)
             shutil.rmtree(args.out / f"d-{rows}.rfa", ignore_errors=True)
+            if args.duckdb_table:
+                table_ratio(data, args.out, rows, args.repeats)
             if not args.keep:
                 shutil.rmtree(data)
         growth = peaks[-1] / peaks[0]
