@@ -3,8 +3,8 @@ ratio to one DuckDB scan, and in-process vs Dask LocalCluster. A script, not a t
 
     python benchmarks/scale.py --rows 1000000 4000000 16000000 --width 100 --out /work/scale_tmp
 
-(a) each compress runs in a subprocess; its peak RSS comes from getrusage(RUSAGE_CHILDREN)
-    (max RSS of the waited-for children), its time from the child itself;
+(a) each compress runs in a subprocess, which reports its own time and peak RSS
+    (getrusage(RUSAGE_SELF).ru_maxrss);
 (b) a child of its own times one full DuckDB scan of the source (every column streamed as
     Arrow); after one untimed warm-up scan, scans and compresses alternate (--repeats) and
     the best of each is compared;
@@ -24,7 +24,6 @@ from __future__ import annotations
 import argparse
 import json
 import os
-import resource
 import shutil
 import subprocess
 import sys
@@ -37,7 +36,7 @@ import pyarrow.parquet as pq
 CHUNK = 250_000
 
 CHILD = r"""
-import json, sys, time
+import json, resource, sys, time
 import duckdb, numpy as np
 import rankfold
 import rankfold.udfs.build.compress  # imported before the clock starts, like duckdb for the scan
@@ -77,6 +76,7 @@ else:
     out["seconds"] = time.perf_counter() - t
     out["relative_frobenius"] = archive.errors["relative_frobenius"]
     out["sketch_rows_read"] = archive.manifest["sketch"]["rows_read"]
+out["peak_rss_mb"] = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
 print(json.dumps(out))
 """
 
@@ -94,13 +94,10 @@ def generate(folder: Path, rows: int, width: int) -> None:
 
 def child(source: Path, target: Path, executor: str, sketch_rows: str = "auto") -> tuple[float, float, dict]:
     """(seconds, peak RSS in MB, everything the child printed) of one run in a fresh subprocess."""
-    before = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
     done = subprocess.run([sys.executable, "-c", CHILD, str(source), str(target), executor, sketch_rows],
                           capture_output=True, text=True, check=True)
-    peak = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
-    # ru_maxrss of RUSAGE_CHILDREN is the largest child so far: runs go smallest first
     out = json.loads(done.stdout.strip().splitlines()[-1])
-    return out["seconds"], max(peak, before) / 1024, out
+    return out["seconds"], out["peak_rss_mb"], out
 
 
 def table_ratio(data: Path, out: Path, rows: int, repeats: int) -> None:
@@ -113,17 +110,19 @@ def table_ratio(data: Path, out: Path, rows: int, repeats: int) -> None:
         con.sql(f"CREATE TABLE readings AS SELECT * FROM read_parquet('{data}/*.parquet')")
     os.sync()
     child(database, out / "unused", "table-scan")  # warm-up, untimed
-    scans, runs = [], []
+    scans, runs, peak = [], [], 0.0
     for _ in range(repeats):
         scans.append(child(database, out / "unused", "table-scan")[0])
         shutil.rmtree(out / f"t-{rows}.rfa", ignore_errors=True)
-        seconds, _, result = child(database, out / f"t-{rows}.rfa", "table")
+        seconds, rss, result = child(database, out / f"t-{rows}.rfa", "table")
         runs.append(seconds)
+        peak = max(peak, rss)
     shutil.rmtree(out / f"t-{rows}.rfa", ignore_errors=True)
     database.unlink()
     print(f"  DuckDB table: scan {min(scans):.1f} s, compress {min(runs):.1f} s, ratio "
           f"{min(runs) / min(scans):.2f} (scan {', '.join(f'{v:.1f}' for v in scans)}; compress "
-          f"{', '.join(f'{v:.1f}' for v in runs)}); sketch read {result['sketch_rows_read']} rows",
+          f"{', '.join(f'{v:.1f}' for v in runs)}); sketch read {result['sketch_rows_read']} rows; "
+          f"peak RSS {peak:.0f} MB (DuckDB's buffer pool holds table pages up to its memory_limit)",
           flush=True)
 
 
@@ -152,8 +151,9 @@ def main() -> None:
             for _ in range(args.repeats):  # alternated, so drifts of the machine hit both alike
                 scans.append(child(data, args.out / "unused", "scan")[0])
                 shutil.rmtree(args.out / f"a-{rows}.rfa", ignore_errors=True)
-                seconds, peak, out = child(data, args.out / f"a-{rows}.rfa", "local")
+                seconds, rss, out = child(data, args.out / f"a-{rows}.rfa", "local")
                 runs.append(seconds)
+                peak = max(peak, rss)
             peaks.append(peak)
             scan, seconds = min(scans), min(runs)
             print(f"{rows:>10} {args.width:>5} {scan:>8.1f} {seconds:>10.1f} {seconds / scan:>6.2f} {peak:>11.0f}"
