@@ -3,8 +3,8 @@ ratio to one DuckDB scan, and in-process vs Dask LocalCluster. A script, not a t
 
     python benchmarks/scale.py --rows 1000000 4000000 16000000 --width 100 --out /work/scale_tmp
 
-(a) each compress runs in a subprocess, which reports its own time and peak RSS
-    (getrusage(RUSAGE_SELF).ru_maxrss);
+(a) each compress runs in a subprocess, which reports its own time and peak RSS (VmHWM of
+    /proc/self/status: getrusage's ru_maxrss also counts the parent's RSS at fork);
 (b) a child of its own times one full DuckDB scan of the source (every column streamed as
     Arrow); after one untimed warm-up scan, scans and compresses alternate (--repeats) and
     the best of each is compared;
@@ -36,7 +36,7 @@ import pyarrow.parquet as pq
 CHUNK = 250_000
 
 CHILD = r"""
-import json, resource, sys, time
+import json, sys, time
 import duckdb, numpy as np
 import rankfold
 import rankfold.udfs.build.compress  # imported before the clock starts, like duckdb for the scan
@@ -76,7 +76,8 @@ else:
     out["seconds"] = time.perf_counter() - t
     out["relative_frobenius"] = archive.errors["relative_frobenius"]
     out["sketch_rows_read"] = archive.manifest["sketch"]["rows_read"]
-out["peak_rss_mb"] = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+out["peak_rss_mb"] = next(int(line.split()[1]) / 1024 for line in open("/proc/self/status")
+                         if line.startswith("VmHWM"))
 print(json.dumps(out))
 """
 
@@ -102,12 +103,11 @@ def child(source: Path, target: Path, executor: str, sketch_rows: str = "auto") 
 
 def table_ratio(data: Path, out: Path, rows: int, repeats: int) -> None:
     """(e): the data as a DuckDB table; compress of the table against one scan of it."""
-    import duckdb
-
     database = out / f"table-{rows}.duckdb"
     database.unlink(missing_ok=True)
-    with duckdb.connect(str(database)) as con:
-        con.sql(f"CREATE TABLE readings AS SELECT * FROM read_parquet('{data}/*.parquet')")
+    load = ("import duckdb, sys; duckdb.connect(sys.argv[1]).sql("
+            "f\"CREATE TABLE readings AS SELECT * FROM read_parquet('{sys.argv[2]}/*.parquet')\")")
+    subprocess.run([sys.executable, "-c", load, str(database), str(data)], check=True)  # not in this process
     os.sync()
     child(database, out / "unused", "table-scan")  # warm-up, untimed
     scans, runs, peak = [], [], 0.0

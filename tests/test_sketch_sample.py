@@ -180,6 +180,23 @@ def test_sampled_sketch_is_as_good_as_the_full_one_on_a_uniform_table(dataset, t
     assert a <= 3.0 * optimum
 
 
+@pytest.mark.parametrize("options", [
+    {"link": "optimal", "rows": "leverage", "columns": "leverage"},  # anchor rows: a full select pass
+    {"method": "svd"},
+    {"transform": "none"},
+])
+def test_sampled_sketch_with_other_methods_keeps_its_bounds(dataset, tmp_path, options):
+    folder, table = dataset
+    archive = rankfold.compress(str(folder), tmp_path / "m.rfa", rank=3, sketch_rows=3000, seed=6,
+                                **options)
+    assert archive.manifest["sketch"]["sampled"]
+    _assert_bounds_hold(archive, _truth(archive, table))
+    if "link" in options:  # anchor rows come from every row, and are kept exactly
+        rows = archive.anchor_rows
+        assert rows and np.array_equal(archive.to_numpy(rows=rows), _truth(archive, table)[rows],
+                                       equal_nan=True)
+
+
 def test_same_seed_same_sample_and_archive(dataset, tmp_path):
     folder, _ = dataset
     one = rankfold.compress(str(folder), tmp_path / "1.rfa", rank=3, sketch_rows=3000, seed=9)
