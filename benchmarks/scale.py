@@ -107,7 +107,8 @@ def table_ratio(data: Path, out: Path, rows: int, repeats: int) -> None:
     database.unlink(missing_ok=True)
     load = ("import duckdb, sys; duckdb.connect(sys.argv[1]).sql("
             "f\"CREATE TABLE readings AS SELECT * FROM read_parquet('{sys.argv[2]}/*.parquet')\")")
-    subprocess.run([sys.executable, "-c", load, str(database), str(data)], check=True)  # not in this process
+    subprocess.run([sys.executable, "-c", load, str(database), str(data)], check=True,
+                   capture_output=True)  # in a child: this process stays small for the others
     os.sync()
     child(database, out / "unused", "table-scan")  # warm-up, untimed
     scans, runs, peak = [], [], 0.0
