@@ -629,8 +629,9 @@ def _whole_table_profile(src, numeric: list[str], rows: int, result: VerifyResul
     sample; checks what the profile pass would have checked on them."""
     if result.rows != rows:
         raise SourceChangedError(
-            f"The Parquet footers of {src.description} count {rows} rows, but the verify pass "
-            f"read {result.rows}. The files changed during compress: compress a stable snapshot."
+            f"Before the passes, {src.description} held {rows} rows (counted from its Parquet "
+            f"footers or its table's row ids), but the verify pass read {result.rows}. The source "
+            "changed during compress: compress a stable snapshot."
         )
     if _beyond_float64(src.schema, numeric, result.profile):
         raise _SampleMissed()

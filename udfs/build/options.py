@@ -24,7 +24,8 @@ TRANSFORMS = ("standardize", "center", "none")
 # exactly stay a small part of the table. Error and size targets choose better when given.
 DEFAULT_RANK_CAP_DIVISOR = 10
 
-# sketch_rows="auto": the sketch reads a seeded sample of Parquet row groups holding at least
+# sketch_rows="auto": the sketch reads a seeded sample of row groups (of Parquet files, or
+# row-id ranges of a DuckDB table) holding at least
 # max(AUTO_SKETCH_ROWS, AUTO_SKETCH_ROWS_PER_COLUMN * n) rows, when that is at most half the
 # table; otherwise every row. 2^17 rows estimate a 100 x 100 Gram matrix to about 0.3% per
 # entry (1 / sqrt(m) for independent rows; common practice); 256 rows per column keep the
