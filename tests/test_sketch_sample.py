@@ -406,3 +406,22 @@ def test_sampled_sketch_of_a_duckdb_table(tmp_path):
         np.testing.assert_allclose(ledger.column("mean")[j].as_py(), finite.mean(), rtol=1e-12, atol=1e-15)
     with pytest.raises(InvalidInputError, match="neither a Parquet dataset"):
         rankfold.compress("SELECT * FROM readings", tmp_path / "q.rfa", connection=con, sketch_rows=3000)
+
+
+def test_a_failing_sample_pass_closes_the_stream_opened_ahead(dataset, tmp_path, monkeypatch):
+    """The verify pass's DuckDB stream is opened before the sample is read; when compress
+    stops on an error before the verify pass, that stream and its thread are closed too."""
+    import threading
+
+    from rankfold.udfs.build import compress as build
+
+    folder, _ = dataset
+
+    def broken(*args):
+        raise InvalidInputError("a failure inside the sample pass")
+
+    monkeypatch.setattr(build, "_profile_task", broken)
+    with pytest.raises(InvalidInputError, match="inside the sample pass"):
+        rankfold.compress(str(folder), tmp_path / "f.rfa", rank=3, sketch_rows=3000)
+    assert not [t for t in threading.enumerate() if t.name == "rankfold-read-ahead"]
+    assert not (tmp_path / "f.rfa").exists()
