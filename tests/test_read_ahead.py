@@ -9,7 +9,7 @@ import numpy as np
 import pyarrow as pa
 import pytest
 
-from rankfold.udfs.build.sources import read_ahead
+from rankfold.udfs.build.sources import ReadAhead
 
 
 def _reader(batches: int, rows: int = 50) -> pa.RecordBatchReader:
@@ -17,6 +17,11 @@ def _reader(batches: int, rows: int = 50) -> pa.RecordBatchReader:
     made = [pa.record_batch([pa.array(np.arange(k * rows, (k + 1) * rows, dtype=float))], schema=schema)
             for k in range(batches)]  # invented values
     return pa.RecordBatchReader.from_batches(schema, made)
+
+
+def read_ahead(reader: pa.RecordBatchReader, depth: int = 1) -> ReadAhead:
+    """The reader's batches through ReadAhead, as Source.stream uses it."""
+    return ReadAhead(lambda: iter(reader), depth)
 
 
 def _helpers() -> int:

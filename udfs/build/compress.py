@@ -193,14 +193,15 @@ class _SketchRows:
         return self.groups is not None
 
     @property
-    def rows(self) -> int:
-        return sum(g.rows for g in self.groups) if self.groups is not None else (self.total or 0)
+    def rows_read(self) -> int:
+        """Rows of the sampled groups."""
+        return sum(g.rows for g in self.groups)
 
     def recorded(self, rows: int) -> dict[str, Any]:
         """The manifest's record of it."""
         if not self.sampled:
             return {"rows_read": rows, "of_rows": rows, "sampled": False}
-        return {"rows_read": self.rows, "of_rows": rows, "sampled": True,
+        return {"rows_read": self.rows_read, "of_rows": rows, "sampled": True,
                 "row_groups_read": len(self.groups), "of_row_groups": self.of_groups,
                 "first_rows": [g.first_row for g in self.groups]}
 

@@ -204,8 +204,9 @@ class LocalExecutor:
         return out
 
     def row_groups(self, numeric: list[str]) -> list[RowGroup] | None:
-        """The Parquet row groups of the source (None: not a Parquet dataset that pyarrow
-        reads with the same numeric columns; see ``row_groups.parquet_row_groups``)."""
+        """The row groups of the source: of its Parquet files (``parquet_row_groups``), or
+        row-id ranges of a DuckDB base table (``table_row_groups``); None for other sources
+        or when some file lacks a numeric column."""
         files = self.source.parquet_files
         if files:
             return parquet_row_groups(files, numeric)
@@ -273,12 +274,10 @@ class DaskExecutor:
         return results
 
     def row_groups(self, numeric: list[str]) -> list[RowGroup] | None:
-        """The Parquet row groups of the source (None for an in-memory source, or when some
-        file lacks one of the ``numeric`` columns)."""
-        if self.groups is None:
-            return None
-        present = set(self.schema.names)
-        return self.groups if all(n in present for n in numeric) else None
+        """The Parquet row groups of the source, None for an in-memory source. (Every pass
+        here reads the files through pyarrow, so a file without a numeric column fails the
+        sample pass as it would fail every other.)"""
+        return self.groups
 
     def open_ahead(self, names: list[str], extra: list[str] = ()) -> None:
         """Nothing to start ahead: the workers open their own partitions."""

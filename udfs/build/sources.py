@@ -12,7 +12,7 @@ from __future__ import annotations
 import queue
 import re
 import threading
-from collections.abc import Callable, Iterable, Iterator
+from collections.abc import Callable, Iterator
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -56,10 +56,11 @@ class Source:
 
     def stream(self, columns: list[str], batch_rows: int, where: str | None = None) -> "ReadAhead":
         """Start streaming ``columns`` (all when empty) in source order, ``batch_rows`` rows
-        at a time (only the rows meeting the SQL condition ``where``, when given): DuckDB plans the query and decodes the first batches on a helper thread
-        from now on (measured 0.4 s to the first batch of 1e6 x 100 Parquet rows), so a
-        stream opened early costs the caller nothing until it is read. Read it with
-        :meth:`batches`; close it when it is not."""
+        at a time (only the rows meeting the SQL condition ``where``, when given). DuckDB
+        plans the query and decodes the first batches on a helper thread from now on
+        (measured 0.4 s to the first batch of 1e6 x 100 Parquet rows), so a stream opened
+        early costs the caller nothing until it is read. Read it with :meth:`batches`; close
+        it when it is not."""
         select = ", ".join(quote_identifier(c) for c in columns) if columns else "*"
         query = f"SELECT {select} FROM {self.relation}" + (f" WHERE {where}" if where else "")
 
@@ -162,12 +163,6 @@ class ReadAhead:
             self._closed = True
             self._stop.set()
             self._worker.join()
-
-
-def read_ahead(reader: Iterable[pa.RecordBatch], depth: int = 1) -> ReadAhead:
-    """The batches of ``reader`` (e.g. a ``pyarrow.RecordBatchReader``) read ahead by a helper
-    thread; see :class:`ReadAhead`."""
-    return ReadAhead(lambda: iter(reader), depth)
 
 
 def _schema_of(connection: duckdb.DuckDBPyConnection, relation: str) -> pa.Schema:
