@@ -157,3 +157,47 @@ def test_anchor_scan_left_rows_without_a_transformed_copy_match_the_transformed_
     scan = select.AnchorScan(transform, sketch, "qdeim", 3, 12, 0, replace=False)
     reference = cur.left_singular_rows(transform.apply(x), sketch.spectrum, 3)
     assert np.allclose(scan._left_rows(x), reference, rtol=0, atol=1e-10)
+
+
+# -- the executor interface ------------------------------------------------------------------------
+INTERFACE = {"schema", "description", "distributed", "run", "row_groups", "sample_partitions",
+             "open_ahead", "close"}
+
+
+def test_both_executors_implement_the_one_declared_interface():
+    from rankfold.udfs.build import executors
+
+    assert executors.Executor.__abstractmethods__ == INTERFACE - {"schema", "description", "distributed"}
+    assert set(executors.Executor.__annotations__) == {"schema", "description", "distributed"}
+    for cls in (executors.LocalExecutor, executors.DaskExecutor):
+        assert issubclass(cls, executors.Executor) and not cls.__abstractmethods__
+
+
+def test_compress_uses_only_the_declared_interface(dataset, tmp_path, monkeypatch):
+    """A compress whose executor answers only the interface's members gives the same archive."""
+    from rankfold.udfs.build import compress as compress_module
+    from rankfold.udfs.build import executors
+
+    used: set[str] = set()
+
+    class OnlyTheInterface:
+        def __init__(self, inner):
+            self._inner = inner
+
+        def __getattr__(self, name):
+            if name not in INTERFACE:
+                raise AttributeError(f"{name} is not part of the Executor interface")
+            used.add(name)
+            return getattr(self._inner, name)
+
+    def make(*args, **kwargs):
+        executor = executors.make_executor(*args, **kwargs)
+        assert isinstance(executor, executors.Executor)
+        return OnlyTheInterface(executor)
+
+    folder, _ = dataset
+    plain = rankfold.compress(str(folder), tmp_path / "plain.rfa", rank=3, sketch_rows=1500)
+    monkeypatch.setattr(compress_module, "make_executor", make)
+    proxied = rankfold.compress(str(folder), tmp_path / "proxied.rfa", rank=3, sketch_rows=1500)
+    assert np.array_equal(proxied.to_numpy(), plain.to_numpy(), equal_nan=True)
+    assert {"run", "close", "schema", "description", "distributed"} <= used

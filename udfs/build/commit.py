@@ -199,12 +199,6 @@ class ArchiveWriter:
     def write_rows(self, table: pa.Table, first_row: int) -> None:
         self._rows.write_rows(table, first_row)
 
-    def partition_writer(self, partition: int) -> RowPartWriter:
-        """A row writer for one partition of a distributed verify pass (its own file names;
-        ``adopt_parts`` renames them in row order at the end)."""
-        return RowPartWriter(self.temp, self.part_rows,
-                             lambda k: f".part-{partition:05d}-{k:04d}.parquet")
-
     def adopt_parts(self, parts: list[dict[str, Any]]) -> None:
         """Take the row files written by partitions: sorted by first row, renamed
         ``rows-NNNNN.parquet``, listed for the manifest."""

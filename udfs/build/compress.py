@@ -608,7 +608,7 @@ def _write(src, target, opts, numeric, passthrough, rows, profile, fingerprint, 
                 "other values or order). Compress a stable snapshot, or add an ORDER BY."
             )
         files = _write_small_tables(writer, src.schema, numeric, profile, scale, transform, mixing,
-                                    anchors, result, basis_names, coding, cell_files)
+                                    anchors, result, coding, cell_files)
         files.append(sums.write(writer))
         manifest = _manifest(src, opts, numeric, passthrough, rows, build, sketch.spectrum,
                              profile, transform, mixing, anchors, result, basis_names,
@@ -763,7 +763,7 @@ def _column_table(schema, numeric, profile, scale, transform, mixing, result, co
 
 
 def _write_small_tables(writer, schema, numeric, profile, scale, transform, mixing, anchors, result,
-                        basis_names, coding, cell_files=()) -> list[str]:
+                        coding, cell_files=()) -> list[str]:
     writer.write_table(layout.COLUMNS,
                        _column_table(schema, numeric, profile, scale, transform, mixing, result, coding),
                        factor_columns=["shift", "scale", "offset"])

@@ -19,6 +19,7 @@ aggregates, and the names of the files each partition wrote.
 
 from __future__ import annotations
 
+import abc
 import os
 import uuid
 from collections.abc import Callable, Iterator
@@ -36,7 +37,7 @@ from .row_groups import (RowGroup, is_url, open_parquet, parquet_row_groups, row
                          table_row_groups)
 from .sources import Source, block_from_batch, open_source
 
-__all__ = ["Partition", "LocalExecutor", "DaskExecutor", "make_executor", "one_blas_thread",
+__all__ = ["Partition", "Executor", "LocalExecutor", "DaskExecutor", "make_executor", "one_blas_thread",
            "PARTITION_ROWS"]
 
 # Rows per partition of the distributed executor (row groups are never split).
@@ -146,10 +147,46 @@ def _run(partition: Partition, task: Task, names: list[str], extra: list[str], b
         return task(partition_blocks(partition, names, extra, batch_rows), partition, *args)
 
 
-class LocalExecutor:
+class Executor(abc.ABC):
+    """What the compress passes use of an executor: these eight members, nothing else.
+
+    ``schema`` (pyarrow.Schema of the source), ``description`` (the source, for messages),
+    ``distributed`` (True when tasks run in other processes: each partition then writes its
+    own row files instead of sharing the caller's writer), and the methods below.
+    """
+
+    schema: pa.Schema
+    description: str
+    distributed: bool
+
+    @abc.abstractmethod
+    def run(self, stage: str, task: Task, names: list[str], extra: list[str] = (),
+            total: int | None = None, args: tuple = (),
+            partitions: list[Partition] | None = None) -> list[Any]:
+        """``task(blocks, partition, *args)`` over every partition of the source (or over the
+        given ``partitions``), reading the columns ``extra`` + ``names``; the partials in
+        partition order. ``stage`` and ``total`` (rows) feed the progress reports."""
+
+    @abc.abstractmethod
+    def row_groups(self, numeric: list[str]) -> list[RowGroup] | None:
+        """The source's row groups in row order, or None when it has none to sample."""
+
+    @abc.abstractmethod
+    def sample_partitions(self, groups: list[RowGroup]) -> list[Partition]:
+        """Partitions that read only ``groups`` (some of ``row_groups()``), for ``run``."""
+
+    @abc.abstractmethod
+    def open_ahead(self, names: list[str], extra: list[str] = ()) -> None:
+        """A hint: the next full pass reads these columns; start reading if that helps."""
+
+    @abc.abstractmethod
+    def close(self) -> None:
+        """Release the source, streams and anything the executor started."""
+
+
+class LocalExecutor(Executor):
     """In process: the source is one partition streamed through DuckDB."""
 
-    name = "local"
     distributed = False
 
     def __init__(self, source: Source, batch_rows: int, progress: Callable | None):
@@ -226,12 +263,11 @@ class LocalExecutor:
         self.source.close()
 
 
-class DaskExecutor:
+class DaskExecutor(Executor):
     """On a ``dask.distributed`` cluster: tasks per partition, partials merged by the caller.
 
     Progress is reported as partitions finish (rows of the finished partitions)."""
 
-    name = "dask"
     distributed = True
 
     def __init__(self, client, partitions: list[Partition], description: str, batch_rows: int,
@@ -362,7 +398,7 @@ def group_partitions(groups: list[RowGroup], schema: pa.Schema, storage_options:
 
 
 def make_executor(executor: Any, source: Any, connection, batch_rows: int, progress,
-                  storage_options: dict | None = None):
+                  storage_options: dict | None = None) -> Executor:
     """The executor for ``compress(..., executor=...)``."""
     if executor is None or (isinstance(executor, str) and executor == "local"):
         if isinstance(source, str) and is_url(source):

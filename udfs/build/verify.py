@@ -214,7 +214,6 @@ class VerifyResult:
     fingerprint: Fingerprint
     rows: int
     corrections: int = 0
-    basis_fill: np.ndarray | None = None
     profile: ColumnProfile | None = None  # every column's statistics, when asked for
 
     @staticmethod
