@@ -20,7 +20,6 @@ import pytest
 
 import rankfold
 import rankfold.udfs
-from duckdb_support import database_fixtures
 from rankfold.udfs.sql import FUNCTIONS, register
 
 EXAMPLES = Path(__file__).resolve().parent.parent / "sql_examples"
@@ -63,7 +62,7 @@ def archive(tmp_path_factory) -> str:
     return str(path)
 
 
-database, con = database_fixtures(_table, "panel")
+SQL_TABLE = (_table, "panel")  # the conftest fixtures `database` and `con` hold it
 
 
 # -- checking answers --------------------------------------------------------------------------
@@ -174,14 +173,9 @@ OWN_CHECKERS = {
 }
 
 
-# the table functions' examples run in tests/test_sql_tables.py, on an archive with a group key
-from test_sql_tables import CHECKERS as TABLE_CHECKERS  # noqa: E402
-
-CHECKERS = OWN_CHECKERS | TABLE_CHECKERS
-
-
-def test_every_example_has_a_checker():
-    assert sorted(p.name for p in EXAMPLES.glob("*.sql")) == sorted(CHECKERS)
+def test_every_scalar_example_has_a_checker(sql_examples):
+    # the table functions' examples run in tests/test_sql_tables.py, on an archive with a group key
+    assert sorted(OWN_CHECKERS) == sql_examples["scalar"]
     for path in EXAMPLES.glob("*.sql"):
         assert path.read_text().startswith("--"), f"{path.name} needs a header comment"
 

@@ -17,7 +17,6 @@ import pytest
 
 import rankfold
 import rankfold.udfs
-from duckdb_support import database_fixtures
 from rankfold.udfs.store.reader import ArchiveReader
 
 EXAMPLES = Path(__file__).resolve().parent.parent / "sql_examples"
@@ -61,7 +60,7 @@ def archives(tmp_path_factory) -> dict[str, str]:
             for k, o in OPTIONS.items()}
 
 
-database, con = database_fixtures(_table, "sites")
+SQL_TABLE = (_table, "sites")  # the conftest fixtures `database` and `con` hold it
 
 
 def _fetch(con, sql) -> pa.Table:
@@ -270,6 +269,10 @@ CHECKERS = {
     "bounds.sql": _check_bounds,
     "correlation.sql": _check_correlation,
 }
+
+
+def test_every_table_example_has_a_checker(sql_examples):
+    assert sorted(CHECKERS) == sql_examples["table"]
 
 
 def _statements(text: str) -> list[str]:
