@@ -40,56 +40,9 @@ CUR_COMBINATIONS = [
 METHODS = CUR_COMBINATIONS + [{"method": "svd"}]
 TRANSFORMS = ("standardize", "center", "none")
 SCALES = ("unit", "decades", "huge_mean", "extreme")
-DTYPES = (pa.float64(), pa.float32(), pa.int64(), pa.int32())
 
 SETTINGS = settings(max_examples=50, deadline=None, derandomize=True,
                     suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large])
-
-
-# -- invented tables ----------------------------------------------------------------------------
-def _invent(seed: int, m: int, n: int, scale: str, specials: bool) -> pa.Table:
-    """A table of m rows and n numeric columns, near low rank, from ``seed`` (see module doc)."""
-    rng = np.random.default_rng(seed)
-    k = int(rng.integers(1, 4))
-    noise = 10.0 ** rng.uniform(-8, -1)
-    block = rng.normal(size=(m, k)) @ rng.normal(size=(k, n)) + noise * rng.normal(size=(m, n))
-    if scale == "decades":
-        block *= 10.0 ** rng.integers(-8, 9, size=n)
-    elif scale == "huge_mean":
-        block = 1e9 * np.sign(rng.normal(size=n)) + block * 10.0 ** rng.uniform(-3, 1)
-    elif scale == "extreme":
-        block *= 10.0 ** rng.integers(-150, 151, size=n)
-    columns = {}
-    for j in range(n):
-        values = block[:, j].copy()
-        data_type = DTYPES[int(rng.integers(len(DTYPES)))]
-        nulls = (rng.random(m) < 0.08) if specials else np.zeros(m, bool)
-        if pa.types.is_integer(data_type):
-            # integers: a few decimal digits kept, clipped into the type (and below 2^53)
-            limit = min(float(np.iinfo(data_type.to_pandas_dtype()).max) / 2, 2.0**52)
-            values = np.clip(np.rint(values * 10.0 ** rng.integers(0, 4)), -limit, limit)
-            columns[f"c{j}"] = pa.array(values.astype(data_type.to_pandas_dtype()), data_type, mask=nulls)
-            continue
-        if pa.types.is_float32(data_type):
-            values = np.clip(values, -1e37, 1e37)
-        if specials:
-            u = rng.random(m)
-            values[u < 0.04] = np.nan
-            values[(u >= 0.04) & (u < 0.06)] = np.inf
-            values[(u >= 0.06) & (u < 0.08)] = -np.inf
-        columns[f"c{j}"] = pa.array(values.astype(data_type.to_pandas_dtype()), data_type, mask=nulls)
-    return pa.table(columns)
-
-
-def _truth(table: pa.Table) -> tuple[np.ndarray, np.ndarray]:
-    """The source as float64 (m, n) with NaN where NULL, and the NULL mask."""
-    values, nulls = [], []
-    for column in table.columns:
-        null = column.is_null().to_numpy(zero_copy_only=False)
-        filled = column.fill_null(0).to_numpy(zero_copy_only=False).astype(np.float64)
-        values.append(np.where(null, np.nan, filled))
-        nulls.append(null)
-    return np.column_stack(values), np.column_stack(nulls)
 
 
 @st.composite
@@ -107,7 +60,7 @@ def cases(draw):
     if batch_rows is not None:
         options["batch_rows"] = batch_rows
     data_seed = draw(st.integers(0, 2**32 - 1))
-    return _invent(data_seed, m, n, scale, specials), options
+    return (data_seed, m, n, scale, specials), options  # invented_table(*spec): see conftest
 
 
 def _compress(factory, table: pa.Table, options: dict) -> rankfold.Archive:
@@ -118,10 +71,11 @@ def _compress(factory, table: pa.Table, options: dict) -> rankfold.Archive:
 # -- properties ---------------------------------------------------------------------------------
 @SETTINGS
 @given(case=cases())
-def test_no_cell_exceeds_its_bound(tmp_path_factory, case):
-    table, options = case
+def test_no_cell_exceeds_its_bound(tmp_path_factory, invented_table, table_truth, assert_tight, case):
+    spec, options = case
+    table = invented_table(*spec)
     archive = _compress(tmp_path_factory, table, options)
-    truth, nulls = _truth(table)
+    truth, nulls = table_truth(table)
     values = archive.to_numpy()
     bounds = archive.cell_bounds()
     assert values.shape == bounds.shape == truth.shape == archive.shape
@@ -140,6 +94,8 @@ def test_no_cell_exceeds_its_bound(tmp_path_factory, case):
     assert np.array_equal(np.isnan(values), np.isnan(truth))
     assert np.array_equal(values[np.isinf(truth)], truth[np.isinf(truth)])
     assert np.all(bounds[~finite] == 0.0)
+    # and no bound is uselessly loose: each is within rounding of the errors it summarizes
+    assert_tight(archive, table, truth, values, bounds)
 
     rebuilt = archive.rebuild()
     for j, name in enumerate(archive.numeric_columns):
@@ -166,8 +122,9 @@ def test_no_cell_exceeds_its_bound(tmp_path_factory, case):
 
 @SETTINGS
 @given(case=cases(), picks=st.data())
-def test_subset_rebuild_is_the_slice_of_the_full_rebuild(tmp_path_factory, case, picks):
-    table, options = case
+def test_subset_rebuild_is_the_slice_of_the_full_rebuild(tmp_path_factory, invented_table, case, picks):
+    spec, options = case
+    table = invented_table(*spec)
     archive = _compress(tmp_path_factory, table, options)
     m, n = archive.shape
     full_values = archive.to_numpy()
@@ -200,13 +157,14 @@ def _assert_same_rebuild(values, bounds, ref_values, ref_bounds):
 
 # -- deterministic edges ------------------------------------------------------------------------
 @pytest.mark.parametrize("m, n", [(1, 1), (1, 7), (7, 1), (3, 9), (60, 2)])
-def test_degenerate_shapes_hold_their_bounds(tmp_path, m, n):
-    table = _invent(m * 100 + n, m, n, "decades", specials=True)
+def test_degenerate_shapes_hold_their_bounds(tmp_path, invented_table, table_truth, assert_tight, m, n):
+    table = invented_table(m * 100 + n, m, n, "decades", specials=True)
     archive = rankfold.compress(table, tmp_path / "edge.rfa", rank=1)
-    truth, _ = _truth(table)
+    truth, _ = table_truth(table)
     values, bounds = archive.to_numpy(), archive.cell_bounds()
     finite = np.isfinite(truth)
     assert np.all(np.abs(truth - values)[finite] <= bounds[finite])
+    assert_tight(archive, table, truth, values, bounds)
     assert np.array_equal(np.isnan(values), np.isnan(truth))
 
 

@@ -19,7 +19,6 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 import rankfold
-from tests.test_bounds_property import _invent, _truth
 
 SETTINGS = settings(max_examples=40, deadline=None, derandomize=True,
                     suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large])
@@ -49,12 +48,13 @@ def _check_within(archive, truth, tolerance):
 
 
 @st.composite
-def tolerance_cases(draw):
+def tolerance_cases(draw, invent, truth_of):
+    """(table, options); ``invent`` and ``truth_of``: the conftest fixtures of the same names."""
     m = draw(st.integers(1, 50))
     n = draw(st.integers(1, 10))
-    table = _invent(draw(st.integers(0, 2**32 - 1)), m, n,
-                    draw(st.sampled_from(["unit", "decades", "huge_mean"])), draw(st.booleans()))
-    truth, _ = _truth(table)
+    table = invent(draw(st.integers(0, 2**32 - 1)), m, n,
+                   draw(st.sampled_from(["unit", "decades", "huge_mean"])), draw(st.booleans()))
+    truth, _ = truth_of(table)
     finite = np.isfinite(truth)
     count = np.maximum(finite.sum(axis=0), 1)
     mean = np.where(finite, truth, 0.0).sum(axis=0) / count
@@ -77,15 +77,17 @@ def tolerance_cases(draw):
 
 
 @SETTINGS
-@given(case=tolerance_cases())
-def test_every_cell_within_the_tolerance(tmp_path_factory, case):
-    table, options = case
+@given(data=st.data())
+def test_every_cell_within_the_tolerance(tmp_path_factory, invented_table, table_truth, assert_tight, data):
+    table, options = data.draw(tolerance_cases(invented_table, table_truth), label="case")
     archive = rankfold.compress(table, tmp_path_factory.mktemp("t") / "a.rfa", **options)
-    truth, nulls = _truth(table)
+    truth, nulls = table_truth(table)
     tol = options["max_abs_error"]
     tolerance = (np.array([tol[n] for n in table.column_names]) if isinstance(tol, dict)
                  else np.full(truth.shape[1], tol))
-    _check_within(archive, truth, tolerance[None, :])
+    error, bounds = _check_within(archive, truth, tolerance[None, :])
+    # within the tolerance, and no looser than the errors it summarizes (conftest.bounds_are_tight)
+    assert_tight(archive, table, truth, archive.to_numpy(), bounds)
     rebuilt = archive.rebuild()
     for j, name in enumerate(table.column_names):
         column = rebuilt.column(name)
@@ -97,13 +99,13 @@ def test_every_cell_within_the_tolerance(tmp_path_factory, case):
     assert archive.manifest["targets"]["max_abs_error"] is not None
 
 
-def test_integer_columns_are_lossless_below_one_half(tmp_path):
+def test_integer_columns_are_lossless_below_one_half(tmp_path, table_truth):
     rng = np.random.default_rng(3)
     base = rng.standard_normal((2000, 3)) @ rng.standard_normal((3, 12)) * 40
     table = pa.table({f"n{j}": pa.array(np.rint(base[:, j]).astype(np.int32)) for j in range(12)})
     archive = rankfold.compress(table, tmp_path / "i.rfa", max_abs_error=0.49)
     assert archive.rebuild().equals(table)
-    truth, _ = _truth(table)
+    truth, _ = table_truth(table)
     np.testing.assert_array_equal(archive.to_numpy(), truth)
     assert np.all(archive.cell_bounds() == 0.0)
 
