@@ -68,11 +68,12 @@ SQL_TABLE = (_table, "panel")  # the conftest fixtures `database` and `con` hold
 # -- checking answers --------------------------------------------------------------------------
 def check_cells(rows, cols, values, bounds) -> int:
     """|true - value| <= bound for every cell; NULL exactly where the source is NULL; NaN where
-    it is NaN; bounds finite, >= 0 and below 5% of the column's spread. Returns cells checked."""
+    it is NaN; bounds finite, >= 0 and below 0.5% of the column's spread (measured: at most
+    0.35%, on the rank-8 archive of this rank-6 table with 1e-3 noise). Returns cells checked."""
     assert len(rows) == len(cols) == len(values) == len(bounds) > 0
     for r, c, v, b in zip(rows, cols, values, bounds):
         j = NAMES.index(c)
-        assert b is not None and math.isfinite(b) and 0.0 <= b <= 0.05 * STD[j], (r, c, b)
+        assert b is not None and math.isfinite(b) and 0.0 <= b <= 0.005 * STD[j], (r, c, b)
         if NULLS[r, j]:
             assert v is None, (r, c, v)
             assert b == 0.0
@@ -122,7 +123,7 @@ def _check_compress(result, workdir, con):
     assert result["rows"] == [ROWS] and result["columns"] == [COLS] and result["rank"] == [8]
     assert result["anchor_rows"][0] == 0  # the default cx link keeps no anchor rows
     assert 8 <= len(result["basis_columns"][0]) <= COLS
-    assert 0 < result["max_abs_error"][0] < 0.05 * STD.max()
+    assert 0 < result["max_abs_error"][0] < 0.0025 * STD.max()  # measured 0.0018
     written = rankfold.open(result["path"][0])
     rows = list(range(0, ROWS, 111))
     values, bounds = written.to_numpy(rows=rows, columns=NAMES), written.cell_bounds(rows=rows, columns=NAMES)
@@ -158,7 +159,7 @@ def _check_row(result, workdir, con):
 def _check_verify(result, workdir, con):
     finite = int(np.sum(~NULLS[:, 7] & ~np.isnan(X[:, 7])))
     assert result["checked"] == [finite] and result["violations"] == [0]
-    assert 0 < result["largest_bound"][0] < 0.05 * STD[7]
+    assert 0 < result["largest_bound"][0] < 0.003 * STD[7]  # measured 0.0023
 
 
 OWN_CHECKERS = {
