@@ -62,7 +62,7 @@ def test_same_seed_same_archive_on_both_executors(dataset, client, tmp_path, opt
     assert dask.anchor_rows == local.anchor_rows
     a, b = local.to_numpy(), dask.to_numpy()
     assert np.array_equal(np.isnan(a), np.isnan(b))
-    assert np.nanmax(np.abs(a - b)) <= 1e-9 * np.nanmax(np.abs(x))
+    assert np.nanmax(np.abs(a - b)) <= 1e-11 * np.nanmax(np.abs(x))  # measured <= 6e-13
     # every bound holds against the numpy truth on the distributed archive
     bounds = dask.cell_bounds()
     finite = np.isfinite(x)

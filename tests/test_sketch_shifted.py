@@ -59,7 +59,7 @@ def test_one_pass_gram_matches_numpy_with_large_means_and_missing_cells(kind):
     x = _invented(1)
     ours, reference = _one_pass(x, kind, [1, 700, 701, 2500]), _numpy_gram(x, kind)
     scale = np.sqrt(np.outer(np.diag(reference), np.diag(reference)))
-    assert np.all(np.abs(ours - reference) <= 1e-9 * scale + 1e-300)
+    assert np.all(np.abs(ours - reference) <= 1e-10 * scale + 1e-300)  # measured <= 8.9e-12
 
 
 def test_shifted_gram_merge_is_associative_and_block_independent():
@@ -91,7 +91,7 @@ def test_one_pass_gram_property(seed, rows, width, cut, kind):
     ours = _one_pass(x, kind, sorted({int(cut * rows)} - {0, rows}))
     reference = _numpy_gram(x, kind)
     scale = np.sqrt(np.outer(np.diag(reference), np.diag(reference)))
-    assert np.all(np.abs(ours - reference) <= 1e-8 * scale + 1e-12)
+    assert np.all(np.abs(ours - reference) <= 1e-9 * scale + 1e-12)  # measured <= 1.5e-10
 
 
 def test_compress_reports_the_spectrum_of_the_standardized_table(tmp_path):

@@ -146,7 +146,7 @@ def test_low_rank_beats_per_column_quantization(tmp_path):
                                     max_abs_error=dict(zip(names, tol)), **options)
         _check_within(archive, x, tol[None, :])
         size = sum(f["bytes"] for f in archive.manifest["files"])
-        assert size * 1.5 < baseline, (options, size, baseline)
+        assert size * 2.2 < baseline, (options, size, baseline)  # measured 2.55-2.57x smaller
 
 
 def _relative_error(archive, x: np.ndarray) -> tuple[float, np.ndarray]:
@@ -220,7 +220,7 @@ def test_refit_without_outliers_lowers_the_error_of_the_other_cells(tmp_path):
         figures[refit] = (archive.errors["mean_column_relative_rms"], archive.manifest["achieved"]["corrections"])
         if refit:
             assert archive.manifest["refit"]["cells_screened"] >= 100
-    assert figures[True][0] < 0.6 * figures[False][0]
+    assert figures[True][0] < 0.35 * figures[False][0]  # measured 0.26
     assert figures[True][1] < figures[False][1]
 
 
