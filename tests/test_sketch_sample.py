@@ -164,21 +164,21 @@ def test_sampled_sketch_keeps_bounds_and_records_every_rows_statistics(dataset, 
 
 def test_sampled_sketch_is_as_good_as_the_full_one_on_a_uniform_table(dataset, tmp_path):
     """On rows of one shape, a sample of 10% chooses as well as every row: the measured
-    error stays within 5% of the full sketch's, and near the SVD optimum of rank 3
+    error stays within 1% of the full sketch's, and within 1.3x the SVD optimum of rank 3
     (Eckart-Young: numpy.linalg.svd of the standardized table)."""
     folder, table = dataset
     sampled = rankfold.compress(str(folder), tmp_path / "s.rfa", rank=3, sketch_rows=3000, seed=4)
     full = rankfold.compress(str(folder), tmp_path / "f.rfa", rank=3, sketch_rows="all", seed=4)
     assert not full.manifest["sketch"]["sampled"]
     a, b = sampled.errors["relative_frobenius"], full.errors["relative_frobenius"]
-    assert a <= 1.05 * b
+    assert a <= 1.01 * b  # measured 1.0012 (seed 4)
     truth = _truth(full, table)
     keep = np.isfinite(truth).all(axis=1)
     z = truth[keep] - truth[keep].mean(axis=0)
     z /= z.std(axis=0)
     s = np.linalg.svd(z, compute_uv=False)
     optimum = np.sqrt(np.sum(s[3:] ** 2) / np.sum(s**2))
-    assert a <= 3.0 * optimum
+    assert a <= 1.3 * optimum  # measured 1.20
 
 
 @pytest.mark.parametrize("options", [
