@@ -1,0 +1,105 @@
+"""Mutation check, run by hand: break one public result on purpose, run the tests that must
+notice, put the code back. Every mutation must make at least one test fail.
+
+    python .ci/mutations.py            # every mutation
+    python .ci/mutations.py NAME ...   # some of them
+
+Each mutation replaces one exact line of the source (the anchor); when an anchor is no longer
+found the code has moved: update the anchor. The file is restored from its text in memory (not
+from git), so uncommitted work survives. Not run by .ci/run: it edits the source while it runs.
+"""
+
+from __future__ import annotations
+
+import subprocess
+import sys
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parents[1]
+
+# name -> (file, anchor, replacement, tests that must fail)
+MUTATIONS = {
+    "cell bound loose by 1000x": (
+        "udfs/store/reader.py", "        bounds[exact] = 0.0\n        return Rebuilt(",
+        "        bounds = bounds * 1000.0\n        bounds[exact] = 0.0\n        return Rebuilt(",
+        ["tests/test_bounds_property.py"]),
+    "column ledger loose by 1000x": (
+        "udfs/store/reader.py", '        self.err_max_col = cols.column("err_max").to_numpy()',
+        '        self.err_max_col = cols.column("err_max").to_numpy() * 1000.0',
+        ["tests/test_bounds_property.py"]),
+    "row ledger loose by 1000x": (
+        "udfs/store/reader.py",
+        "        by_row = arithmetic.round_up(row_max[:, None] * self.ledger_scale[col_idx][None, :])",
+        "        by_row = arithmetic.round_up(row_max[:, None] * 1000.0 * self.ledger_scale[col_idx][None, :])",
+        ["tests/test_bounds_property.py"]),
+    "SQL cell bound loose by 1000x": (
+        "udfs/sql/functions.py", "        return pa.array(bounds, pa.float64(), mask=missing)",
+        "        return pa.array(bounds * 1000.0, pa.float64(), mask=missing)",
+        ["tests/test_sql.py"]),
+    "SQL scan bound loose by 1000x": (
+        "udfs/sql/tables.py", '        outer_val, outer_bound = f"({lin})", f"({raw})"',
+        '        outer_val, outer_bound = f"({lin})", f"({raw} * 1000.0)"',
+        ["tests/test_sql_tables.py"]),
+    "aggregate bound loose by 1000x": (
+        "udfs/store/aggregate.py", "    bound = np.where(null, 0.0, bound)\n",
+        "    bound = np.where(null, 0.0, bound * 1000.0)\n",
+        ["tests/test_aggregate.py"]),
+    "covariance bound loose by 1000x": (
+        "udfs/store/aggregate.py", "    return names, cov, bound, fp, delta",
+        "    return names, cov, bound * 1000.0, fp, delta",
+        ["tests/test_aggregate.py"]),
+    "correlation bound of 2.0": (
+        "udfs/store/aggregate.py",
+        "        bound = np.where(np.isfinite(bound), np.minimum(bound, 2.0), 2.0)",
+        "        bound = np.full_like(bound, 2.0)",
+        ["tests/test_aggregate.py", "tests/test_sql_tables.py"]),
+    "values off by half a standard deviation": (
+        "udfs/store/reader.py", "        b, q = values.shape\n",
+        '        values = values + 0.5 * self.columns_table.column("std").to_numpy()[col_idx][None, :]\n'
+        "        b, q = values.shape\n",
+        ["tests/test_roundtrip.py", "tests/test_bounds_property.py"]),
+    "SQL scan values off by half a standard deviation": (
+        "udfs/sql/tables.py", '        outer_val, outer_bound = f"({lin})", f"({raw})"',
+        "        outer_val, outer_bound = (f\"({lin} + {0.5 * reader.columns_table.column('std')[j].as_py()!r})\", "
+        'f"({raw})")',
+        ["tests/test_sql_tables.py"]),
+    "silent rebuild log": (
+        "udfs/store/rebuild_log.py", "        text = json.dumps(entry, default=str)\n",
+        "        return entry\n        text = json.dumps(entry, default=str)\n",
+        ["tests/test_roundtrip.py", "tests/test_sql.py"]),
+}
+
+
+def run(name: str) -> bool:
+    """Apply mutation ``name``, run each of its test files; True when every file has a failure."""
+    path, anchor, replacement, tests = MUTATIONS[name]
+    source = ROOT / path
+    text = source.read_text(encoding="utf-8")
+    if text.count(anchor) != 1:
+        print(f"{name}: the anchor is not (exactly once) in {path}; update it")
+        return False
+    source.write_text(text.replace(anchor, replacement), encoding="utf-8")
+    caught = True
+    try:
+        for test in tests:
+            out = subprocess.run([sys.executable, "-m", "pytest", "-q", "-x", "-p", "no:cacheprovider", test],
+                                 cwd=ROOT, capture_output=True, text=True).stdout
+            failed = [line.split(" - ")[0] for line in out.splitlines() if line.startswith("FAILED")]
+            print(f"{name}: {test}: " + (f"caught by {failed[0][7:]}" if failed else "NOT CAUGHT"))
+            caught &= bool(failed)
+    finally:
+        source.write_text(text, encoding="utf-8")
+    return caught
+
+
+def main(names: list[str]) -> int:
+    unknown = [n for n in names if n not in MUTATIONS]
+    if unknown:
+        print(f"unknown mutations {unknown}; known: {list(MUTATIONS)}")
+        return 2
+    results = [run(name) for name in names or MUTATIONS]
+    return 0 if all(results) else 1
+
+
+if __name__ == "__main__":
+    sys.exit(main(sys.argv[1:]))
