@@ -156,6 +156,7 @@ def test_anchor_scan_left_rows_without_a_transformed_copy_match_the_transformed_
     sketch = select.sketch_of(gram)
     scan = select.AnchorScan(transform, sketch, "qdeim", 3, 12, 0, replace=False)
     reference = cur.left_singular_rows(transform.apply(x), sketch.spectrum, 3)
+    # private kernel (no public path): the anchor scan's left rows
     assert np.allclose(scan._left_rows(x), reference, rtol=0, atol=1e-10)
 
 

@@ -21,7 +21,7 @@ import pytest
 from matplotlib.image import imread
 
 import rankfold
-from rankfold.report import _g, column_selection, report_data, summary, write_report
+from rankfold.report import _g, column_selection, report_data, summary, write_report  # _g: the report's number format
 
 ROWS, COLS, RANK = 500, 12, 3
 
