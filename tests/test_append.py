@@ -33,7 +33,7 @@ def _digest(path) -> dict:
 
 @pytest.mark.parametrize("options", [{"rank": 3}, {"max_abs_error": 0.01}, {"method": "svd", "rank": 3},
                                      {"max_abs_error": 0.02, "basis_precision": "tolerance"}])
-def test_bounds_hold_for_appended_rows(tmp_path, options):
+def test_bounds_hold_for_appended_rows(tmp_path, assert_tight, options):
     first, more = _rows(3000, 1), _rows(800, 2)
     values = _values(more)
     values[5, 4] = np.nan  # exceptional cells are stored exactly, as in compress
@@ -57,6 +57,8 @@ def test_bounds_hold_for_appended_rows(tmp_path, options):
     ledger = grown.column_ledger()
     err = np.where(finite, error, 0.0)
     assert np.all(ledger.column("err_max").to_numpy() >= err.max(axis=0))
+    # and the merged ledger is tight: bounds within rounding of the errors (conftest.bounds_are_tight)
+    assert_tight(grown, first, truth, rebuilt, bounds)
     assert grown.rebuild(rows=rankfold.Keys([2005])).column("id").to_pylist() == [2005]
     assert [e["stage"] for e in events if e["done"]] == ["append"]
     assert events[-1]["rows_done"] == 800

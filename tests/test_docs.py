@@ -73,11 +73,3 @@ def test_the_tour_uses_only_real_commands_and_options():
         assert argv[0] == "rankfold"
         parser.parse_args(argv[1:])  # exits with code 2 on an unknown command or option
     assert "invented" in README.split("### Tour", 1)[1][:400]
-
-
-def test_ci_runs_the_readme_test_command_with_the_linter_first():
-    command = 'python -m pip install -e ".[test]" && python -m ruff check . && python -m pytest -q'
-    assert f"```bash\n{command}\n```" in README
-    assert f"```bash\n{command}\n```" in (ROOT / "DEVELOPERS.md").read_text(encoding="utf-8")
-    ci = (ROOT / ".ci" / "run").read_text(encoding="utf-8")
-    assert command in ci.splitlines()
