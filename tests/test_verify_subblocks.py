@@ -149,7 +149,7 @@ def test_column_ledger_is_numpys_residual_statistics(archives):
     assert np.all(err_max >= np.abs(residual).max(axis=0) - tiny)
     np.testing.assert_allclose(err_max, np.abs(residual).max(axis=0), rtol=1e-12, atol=tiny.max())
     np.testing.assert_allclose(ledger.column("err_l2").to_numpy(), np.linalg.norm(residual, axis=0),
-                               rtol=1e-9, atol=(tiny * np.sqrt(cells)).max())
+                               rtol=1e-11, atol=(tiny * np.sqrt(cells)).max())  # measured 2.1e-13
     np.testing.assert_allclose(ledger.column("err_sum").to_numpy(), residual.sum(axis=0),
                                rtol=0, atol=(1e-12 * cells * (err_max + tiny)).max())
 
