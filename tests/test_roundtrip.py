@@ -70,7 +70,7 @@ def _assert_within_bounds(archive: rankfold.Archive, table: pa.Table) -> None:
 
 
 # -- column types -------------------------------------------------------------------------------
-def test_every_column_type_round_trips(tmp_path):
+def test_every_column_type_round_trips(tmp_path, assert_tight):
     table = _every_type_table()
     archive = rankfold.compress(table, tmp_path / "types.rfa", rank=2, key="site")
     rebuilt = archive.rebuild()
@@ -85,6 +85,8 @@ def test_every_column_type_round_trips(tmp_path):
     assert "huge" not in archive.numeric_columns  # beyond 2^53: kept exactly, not factored
     assert archive.numeric_columns == [f"n_{t}" for t in INTEGER_TYPES] + ["f32", "f64"]
     _assert_within_bounds(archive, table)
+    truth = np.column_stack([_as_float(table.column(n)) for n in archive.numeric_columns])
+    assert_tight(archive, table, truth, archive.to_numpy(), archive.cell_bounds())  # conftest
     # integer columns come back as the nearest integer of the rebuilt value
     values = archive.to_numpy()
     for j, name in enumerate(archive.numeric_columns[:len(INTEGER_TYPES)]):
