@@ -21,7 +21,7 @@ def test_value_without_the_scale_pass_equals_numpy_with_missing_cells_at_zero():
         quick.update(lo, x[lo:lo + 700], with_scale=False)
     g = _row_weights(0, 3000)
     reference = g @ np.where(np.isfinite(x), x, 0.0)  # numpy.dot over the finite cells
-    assert np.allclose(quick.value, reference, rtol=1e-12, atol=1e-9)
+    assert np.allclose(quick.value, reference, rtol=1e-13, atol=0)  # measured 4.6e-15 relative
     assert np.all(quick.scale == 0)
 
 

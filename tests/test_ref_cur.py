@@ -85,8 +85,8 @@ def test_textbook_cur_bound(textbook_runs, s, r, reproduced):
     bound = 2 / np.sqrt(r) + 2 * r / s
     assert errors.mean() <= bound
     # The bound is loose by design (references.md 2.6); guard the estimator itself with the
-    # values reproduced there (different seeds, so within a factor 1.5).
-    assert reproduced / 1.5 <= errors.mean() <= reproduced * 1.5
+    # values reproduced there (different seeds: measured within 0.985-1.062 of them, so 1.15).
+    assert reproduced / 1.15 <= errors.mean() <= reproduced * 1.15
 
 
 def test_textbook_cur_improves_with_more_samples(textbook_runs):
@@ -128,7 +128,7 @@ def test_textbook_mixing_is_the_published_estimator():
     published = c @ u @ r_scaled
     columns, mixing = link.textbook_mixing(draws, p, a[rows])
     assert np.array_equal(columns, np.unique(draws))
-    assert np.allclose(a[:, columns] @ mixing, published, rtol=0, atol=1e-10 * np.abs(a).max())
+    assert np.allclose(a[:, columns] @ mixing, published, rtol=0, atol=1e-12 * np.abs(a).max())  # measured 4e-14
     # and it is an unbiased estimator of A P: average over many column draws (fixed rows)
     proj = link.row_projector(a[rows])
     mean = np.zeros_like(a)
@@ -136,7 +136,8 @@ def test_textbook_mixing_is_the_published_estimator():
         d = sampling.draw(p, 30, rng, replace=True)
         cols, mix = link.textbook_mixing(d, p, a[rows])
         mean += a[:, cols] @ mix / 2000
-    assert np.linalg.norm(mean - a @ proj) < 0.1 * np.linalg.norm(a @ proj)
+    # seeded Monte Carlo mean of 2000 draws: measured 0.011 relative off A P
+    assert np.linalg.norm(mean - a @ proj) < 0.03 * np.linalg.norm(a @ proj)
 
 
 # -- optimal core: Pythagoras (references.md 6.1) --------------------------------------------------
