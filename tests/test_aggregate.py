@@ -203,7 +203,8 @@ def test_property_aggregate_bounds_hold(tmp_path, seed, rows, cols, rank, method
     names = [f"v{j}" for j in range(cols)]
     table = pa.table({"g": pa.array(group), **{n: x[:, j] for j, n in enumerate(names)}})
     path = tmp_path / f"p{seed}_{rows}_{cols}.rfa"
-    archive = rankfold.compress(table, path, rank=rank, method=method, exact_columns=("g",),
+    # overwrite: hypothesis may draw the same (seed, rows, cols) again within one tmp_path
+    archive = rankfold.compress(table, path, rank=rank, method=method, exact_columns=("g",), overwrite=True,
                                 batch_rows=max(16, rows // 3))
     result = archive.aggregate(names, func, by="g")
     for k, g in enumerate(result.column("g").to_pylist()):
@@ -216,3 +217,11 @@ def test_property_aggregate_bounds_hold(tmp_path, seed, rows, cols, rank, method
     truth = x[start:].mean(axis=0) if func == "avg" else x[start:].sum(axis=0)
     for j, n in enumerate(names):
         assert abs(ranged.column(n)[0].as_py() - truth[j]) <= ranged.column(f"{n}_bound")[0].as_py()
+    # whole table: tight against sqrt(n) ||e_j|| of the served values (see test_whole_table_bounds_are_tight)
+    whole = archive.aggregate(names, func)
+    reference = np.sqrt(rows) * np.linalg.norm(x - archive.to_numpy(columns=names), axis=0)
+    scale = np.abs(x).max(axis=0) * rows
+    if func == "avg":
+        reference, scale = reference / rows, scale / rows
+    bound = np.array([whole.column(f"{n}_bound")[0].as_py() for n in names])
+    assert np.all(bound <= (1 + 1e-6) * reference + 1e-9 * scale)
