@@ -486,3 +486,63 @@ def test_sql_result_spool_is_named_after_its_process(tmp_path):
 
     sql = table_sql(pa.table({"a": [1]}))
     assert f"rankfold-sql-{os.getpid()}-" in sql
+
+
+_CRASH_POINTS = {
+    # after the journal lists the new files as pending, before any moves in
+    "before-moves": "versions.rename_noreplace = lambda *a, **k: os._exit(9)",
+    # after the new files moved in, before manifest.json is replaced
+    "before-manifest": "versions._check_unchanged = lambda *a, **k: os._exit(9)",
+    # after manifest.json was replaced, before the journal records the new state
+    "before-journal": """
+calls = []
+real = versions._write_journal
+def crash_second(*a, **k):
+    calls.append(1)
+    if len(calls) == 2:
+        os._exit(9)
+    return real(*a, **k)
+versions._write_journal = crash_second
+""",
+}
+
+
+def test_a_process_dying_at_each_step_of_the_commit(tmp_path):
+    """A child process exits abruptly (os._exit, no cleanup: as kill -9) at each step of the
+    commit of an overwrite and of an append: before the commit point the old version is read,
+    after it the new one; the next write takes the lock over and removes the leftovers."""
+    children, cases = [], []
+    for kind in ("overwrite", "append"):
+        for point, patch in _CRASH_POINTS.items():
+            path = tmp_path / f"{kind}-{point}.rfa"
+            rankfold.compress(_table(1, 300), path, rank=2)
+            write = ("rankfold.compress(table(2, 290), path, rank=2, overwrite=True)" if kind == "overwrite"
+                     else "rankfold.open(path).append(table(3, 20))")
+            body = "import os\nfrom rankfold.udfs.store import versions\n" + patch + f"""
+print("ready", flush=True); sys.stdin.readline()
+{write}
+print("not stopped", flush=True)
+"""
+            children.append(_child(body, path))
+            cases.append((kind, point, path))
+    _ready(children)
+    _go(children)
+    for child in children:
+        out, err = child.communicate(timeout=60)
+        assert child.returncode == 9, (out, err)
+    for kind, point, path in cases:
+        committed = point == "before-journal"
+        rows = (290 if kind == "overwrite" else 320) if committed else 300
+        archive = rankfold.open(path, checksums=True)
+        assert archive.shape[0] == rows, (kind, point)
+        assert _within(archive.to_numpy(), archive.cell_bounds(), _expected(rows))
+        assert versions.lock_path(path).exists()  # left by the dead writer
+        rankfold.open(path).append(_table(3, 20))  # the next write recovers
+        assert _within(rankfold.open(path, checksums=True).to_numpy(),
+                       rankfold.open(path).cell_bounds(), _expected(rows + 20))
+        journal = json.loads((path / versions.JOURNAL).read_text())["files"]
+        live = {f["name"] for f in rankfold.open(path).manifest["files"]}
+        assert {n for n, e in journal.items() if e["state"] == "live"} == live
+        assert not [n for n, e in journal.items() if e["state"] == "pending"]
+        assert set(os.listdir(path)) <= live | set(journal) | {"manifest.json", versions.JOURNAL}
+    assert _beside(tmp_path) == []

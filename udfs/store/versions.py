@@ -489,6 +489,11 @@ def publish_in_place(target: Path, temp: Path, new_files: list[str], *,
         found = _verified(fd, target, expect)
         journal = dict(found.journal)
         now = time.time()
+        # the journal knows every file of the old version before the commit, so that after a
+        # crash past the commit point they are still recognised as the archive's own
+        for entry in (found.manifest or {}).get("files", []):
+            if isinstance(entry, dict) and entry.get("name") not in journal:
+                journal[entry["name"]] = {"state": "live", "time": now}
         for name in new_files:
             if name in found.entries:
                 raise ArchiveExistsError(f"{target} already holds {name}; nothing was written.")
