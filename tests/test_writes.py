@@ -116,6 +116,21 @@ def test_folder_created_at_the_target_during_a_compress_survives(tmp_path, overw
     assert _beside(tmp_path) == []
 
 
+def test_writes_through_a_symbolic_link_go_to_the_archive_it_names(tmp_path):
+    real = tmp_path / "real.rfa"
+    rankfold.compress(_table(1, 300), real, rank=2)
+    link = tmp_path / "link.rfa"
+    link.symlink_to(real)
+    assert rankfold.open(link).append(_table(3, 20)).shape == (320, WIDTH)
+    rankfold.compress(_table(2, 290), link, rank=2, overwrite=True)
+    assert link.is_symlink() and rankfold.open(real).shape == (290, WIDTH)
+    (tmp_path / "file").write_text("x")
+    (tmp_path / "to-file").symlink_to(tmp_path / "file")
+    with pytest.raises(rankfold.ArchiveExistsError, match="it is a symbolic link"):
+        rankfold.compress(_table(1, 50), tmp_path / "to-file", rank=2, overwrite=True)
+    assert (tmp_path / "file").read_text() == "x"
+
+
 def test_rename_onto_a_path_that_appeared_fails(tmp_path):
     """renameat2(RENAME_NOREPLACE) (rename(2) man page): fails with EEXIST on any existing
     name, even an empty folder, which a plain rename would replace."""

@@ -122,6 +122,8 @@ def append(path: str | Path, source: Any, *, expected_id: str | None = None,
            progress=None) -> Path:
     """Append the rows of ``source`` to the archive at ``path``; returns the path."""
     directory = Path(path)
+    if directory.is_symlink():  # lock and write beside the folder the link names
+        directory = directory.resolve()
     if not directory.is_dir():
         raise ArchiveNotFoundError(f"No archive at {directory}. Check the path.")
     with versions.WriteLock(directory):  # one writer per path; leftovers of crashed writes go

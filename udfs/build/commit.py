@@ -33,6 +33,8 @@ def prepare_target(path: str | os.PathLike, overwrite: bool) -> Path:
     (a rankfold archive with nothing else inside, or an empty folder). The commit checks
     again, at the moment it publishes."""
     target = Path(path)
+    if target.is_symlink() and target.is_dir():  # write into the folder the link names
+        target = target.resolve()
     if target.exists() or target.is_symlink():
         if not overwrite:
             raise ArchiveExistsError(
