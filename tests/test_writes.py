@@ -131,9 +131,15 @@ def test_writes_through_a_symbolic_link_go_to_the_archive_it_names(tmp_path):
     assert (tmp_path / "file").read_text() == "x"
 
 
-def test_rename_onto_a_path_that_appeared_fails(tmp_path):
+@pytest.mark.parametrize("syscall", ["renameat2", "fallback"])
+def test_rename_onto_a_path_that_appeared_fails(tmp_path, monkeypatch, syscall):
     """renameat2(RENAME_NOREPLACE) (rename(2) man page): fails with EEXIST on any existing
-    name, even an empty folder, which a plain rename would replace."""
+    name, even an empty folder, which a plain rename would replace. The fallback (no
+    renameat2) links files (link(2) fails on an existing name) and checks folders first."""
+    if syscall == "fallback":
+        monkeypatch.setattr(versions, "_renameat2", None)
+    else:  # glibc 2.28+ has it; the writer relies on it on Linux
+        assert versions._renameat2 is not None or sys.platform != "linux"
     src = tmp_path / "src"
     src.mkdir()
     (src / "f").write_text("x")
@@ -145,6 +151,10 @@ def test_rename_onto_a_path_that_appeared_fails(tmp_path):
     assert (tmp_path / "empty").is_dir() and (tmp_path / "file").read_text() == "y"
     versions.rename_noreplace(src, tmp_path / "dst")
     assert (tmp_path / "dst" / "f").read_text() == "x"
+    with pytest.raises(FileExistsError):
+        versions.rename_noreplace(tmp_path / "dst" / "f", tmp_path / "file")
+    versions.rename_noreplace(tmp_path / "dst" / "f", tmp_path / "g")
+    assert (tmp_path / "g").read_text() == "x" and not (tmp_path / "dst" / "f").exists()
 
 
 # -- one writer per path ---------------------------------------------------------------------------
