@@ -373,15 +373,15 @@ def recover(target: str | os.PathLike, *, grace: float = GRACE_SECONDS) -> list[
                 shutil.rmtree(entry.path, ignore_errors=True)
                 removed.append(entry.name)
     fd = open_dir(target) if target.exists() or target.is_symlink() else None
-    if fd is None:
-        return removed
-    try:
-        found = survey(fd)
-        if found.manifest is None or found.manifest.get("format") != layout.FORMAT_NAME:
-            return removed
-        removed += [f"{target.name}/{n}" for n in _sweep_inside(fd, found, grace)]
-    finally:
-        os.close(fd)
+    if fd is not None:
+        try:
+            found = survey(fd)
+            if found.manifest is not None and found.manifest.get("format") == layout.FORMAT_NAME:
+                removed += [f"{target.name}/{n}" for n in _sweep_inside(fd, found, grace)]
+        finally:
+            os.close(fd)
+    if removed:
+        log.info("rankfold: removed leftovers and superseded files of %s: %s", target, ", ".join(removed))
     return removed
 
 
