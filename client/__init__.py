@@ -37,7 +37,9 @@ def compress(source: Any, path: str | Path, *, rank: int | None = None, seed: in
     source : 2-D numpy array, pyarrow Table, pandas DataFrame, Parquet/CSV path, or a table
         name or SELECT statement together with ``connection=``.
     path : the archive directory to create. It must not exist (or pass ``overwrite=True`` to
-        replace an existing archive; other files are never replaced).
+        replace an existing archive; other files are never replaced). One write per path at
+        a time: another compress or append to it raises ArchiveBusyError. Readers of the
+        replaced version keep reading it (README, "Versions, writers and crashes").
     rank : target rank k (default: the Gavish-Donoho hard threshold on the singular values of
         the transformed table, capped at a tenth of the numeric columns; targets choose it).
     seed : seed of the one numpy Generator used for every random choice; written to the manifest.

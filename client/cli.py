@@ -433,7 +433,42 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--out", default="rankfold-demo", help="working folder (default: ./rankfold-demo)")
     p.add_argument("--rows", type=int, default=20_000, help="rows to generate (default 20000)")
     p.set_defaults(func=cmd_demo)
+    _add_sweep_command(add)
     return parser
+
+
+# -- housekeeping: rankfold sweep (a self-contained block) ---------------------------------------
+def _add_sweep_command(add) -> None:
+    p = add("sweep", "remove superseded archive versions, leftovers of crashed writes and "
+                     "spooled SQL results",
+            "A write (compress --overwrite, append) keeps the files of the version it replaces\n"
+            "for a grace period, so that readers which opened that version keep reading it;\n"
+            "a killed write leaves a temporary folder beside the archive. This command takes\n"
+            "the archive's write lock and removes both (superseded files only once older than\n"
+            "--grace), then the SQL result spools of processes that no longer run.\n\n"
+            "examples:\n  rankfold sweep readings.rfa\n  rankfold sweep readings.rfa --grace 0")
+    p.add_argument("archive", nargs="?", help="archive directory (omit to sweep only the SQL spools)")
+    p.add_argument("--grace", type=float, default=None, metavar="SECONDS",
+                   help="keep superseded versions younger than this (default 3600)")
+    p.set_defaults(func=cmd_sweep)
+
+
+def cmd_sweep(args: argparse.Namespace) -> int:
+    from rankfold.udfs.sql.tables import sweep_spools
+    from rankfold.udfs.store import versions
+
+    grace = versions.GRACE_SECONDS if args.grace is None else args.grace
+    removed = versions.sweep(args.archive, grace=grace) if args.archive else []
+    spools = sweep_spools()
+    if args.json:
+        print(json.dumps({"archive": args.archive, "removed": removed, "spools_removed": spools}, indent=1))
+    elif not args.quiet:
+        print(f"removed {len(removed)} superseded or leftover entries"
+              + (f" of {args.archive}" if args.archive else "")
+              + f", and {len(spools)} SQL result spools of ended processes")
+        for name in removed + spools:
+            print(f"  {name}")
+    return EXIT_OK
 
 
 def main(argv: list[str] | None = None) -> int:

@@ -28,7 +28,7 @@ from rankfold.terminal import ProgressBar, format_seconds
 
 ROWS, COLS, RANK = 600, 14, 3
 NAMES = [f"m{j:02d}" for j in range(COLS)]
-SUBCOMMANDS = ["compress", "inspect", "rebuild", "query", "verify", "report", "demo"]
+SUBCOMMANDS = ["compress", "inspect", "rebuild", "query", "verify", "report", "demo", "sweep"]
 
 
 def _table(seed: int = 11) -> pa.Table:

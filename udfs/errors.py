@@ -12,6 +12,7 @@ built-in exception a caller would naturally catch, so ``except ValueError`` keep
     +-- UnknownColumnError (LookupError)        a column name the archive does not hold
     +-- RowOutOfRangeError (IndexError)         a row position or key the archive does not hold
     +-- ArchiveExistsError (FileExistsError)    refusing to replace an existing archive
+    +-- ArchiveBusyError (BlockingIOError)      another write to the same archive path runs
     +-- ArchiveNotFoundError (FileNotFoundError)
     +-- CorruptArchiveError (ValueError)        manifest or checksum does not match the files
     |   +-- UnsupportedVersionError             written by an incompatible format version
@@ -32,6 +33,7 @@ __all__ = [
     "UnknownColumnError",
     "RowOutOfRangeError",
     "ArchiveExistsError",
+    "ArchiveBusyError",
     "ArchiveNotFoundError",
     "CorruptArchiveError",
     "UnsupportedVersionError",
@@ -76,6 +78,10 @@ class RowOutOfRangeError(RankfoldError, IndexError):
 
 class ArchiveExistsError(RankfoldError, FileExistsError):
     """The target path exists and replacing it was not asked for."""
+
+
+class ArchiveBusyError(RankfoldError, BlockingIOError):
+    """Another compress, overwrite or append to the same archive path holds its write lock."""
 
 
 class ArchiveNotFoundError(RankfoldError, FileNotFoundError):

@@ -8,10 +8,12 @@ therefore holds for appended rows exactly as for the original ones. The column l
 merged (max, hypot, sums), as are the column statistics; the transform and the ledger scale
 stay those of the archive, which the rebuild formula depends on.
 
-A new archive version is written beside the old one and committed by one atomic rename of
-``manifest.json``: new row files get new names, and the small tables that change (columns,
-cells, blocks) are written under new names listed in the manifest's ``tables``. No existing
-file is modified, so a reader holding the old version keeps reading it.
+A new archive version is written into a temporary folder beside the archive, under the
+archive's write lock, then published (``store.versions.publish_in_place``): new row files and
+the small tables that change (columns, cells, blocks) get names carrying this version's token,
+listed in the manifest's ``tables``; they move into the archive, and one atomic rename of
+``manifest.json`` commits them. No existing file is modified, so a reader holding the old
+version keeps reading it; a killed append leaves the old version as it was.
 
 Drift: the relative error of all appended rows (Frobenius, after the transform) against a
 limit: the archive's ``rel_error`` target when it had one, else ``DRIFT_FACTOR`` times the
@@ -23,7 +25,7 @@ error measured at compress time; and the share of cells stored as corrections ag
 from __future__ import annotations
 
 import os
-import uuid
+import shutil
 from pathlib import Path
 from typing import Any
 
@@ -31,8 +33,8 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from ..errors import EmptySourceError, InvalidInputError
-from ..store import layout
+from ..errors import ArchiveNotFoundError, EmptySourceError, InvalidInputError
+from ..store import layout, versions
 from ..store.aggregate import BLOCKS, BlockSums
 from ..store.arithmetic import round_up
 from ..store.manifest import file_entry, write_manifest
@@ -50,7 +52,6 @@ __all__ = ["append", "DRIFT_FACTOR"]
 
 DRIFT_FACTOR = 1.5
 _EXACT_INTEGER_LIMIT = 2.0**53
-_LOCK = ".rankfold-append.lock"
 
 
 def _check_schema(source_schema: pa.Schema, manifest: dict, description: str, path: Path) -> None:
@@ -121,21 +122,13 @@ def append(path: str | Path, source: Any, *, expected_id: str | None = None,
            progress=None) -> Path:
     """Append the rows of ``source`` to the archive at ``path``; returns the path."""
     directory = Path(path)
-    lock = directory / _LOCK
-    try:
-        handle = os.open(lock, os.O_CREAT | os.O_EXCL | os.O_WRONLY)
-    except FileExistsError:
-        raise InvalidInputError(
-            f"Another append to {directory} is running (lock file {lock}). Wait for it to "
-            "finish; if no append is running, a crashed one left the lock: delete that file."
-        ) from None
-    except FileNotFoundError:
-        raise InvalidInputError(f"No archive at {directory}. Check the path.") from None
-    os.close(handle)
-    try:
+    if directory.is_symlink():  # lock and write beside the folder the link names
+        directory = directory.resolve()
+    if not directory.is_dir():
+        raise ArchiveNotFoundError(f"No archive at {directory}. Check the path.")
+    with versions.WriteLock(directory):  # one writer per path; leftovers of crashed writes go
+        versions.recover(directory)
         return _append(directory, source, expected_id, expected_version, connection, batch_rows, progress)
-    finally:
-        lock.unlink(missing_ok=True)
 
 
 def _append(directory, source, expected_id, expected_version, connection, batch_rows, progress) -> Path:
@@ -149,19 +142,16 @@ def _append(directory, source, expected_id, expected_version, connection, batch_
             "open it again with rankfold.open and append to that."
         )
     src = open_source(source, connection)
-    created: list[Path] = []
+    temp = versions.new_temp_dir(directory)
     try:
         _check_schema(src.schema, manifest, src.description, directory)
-        return _write_version(reader, src, batch_rows, progress, created)
-    except BaseException:
-        for file in created:
-            file.unlink(missing_ok=True)
-        raise
+        return _write_version(reader, src, batch_rows, progress, temp)
     finally:
         src.close()
+        shutil.rmtree(temp, ignore_errors=True)  # empty after a commit
 
 
-def _write_version(reader: ArchiveReader, src, batch_rows, progress, created: list[Path]) -> Path:
+def _write_version(reader: ArchiveReader, src, batch_rows, progress, temp: Path) -> Path:
     directory, manifest = reader.path, reader.manifest
     version = int(manifest.get("version", 0)) + 1
     names, passthrough = reader.numeric_columns, list(manifest["exact_columns"])
@@ -180,13 +170,12 @@ def _write_version(reader: ArchiveReader, src, batch_rows, progress, created: li
     anchors = AnchorRows(np.zeros(0, np.int64), np.zeros((0, width)), np.zeros((0, width), bool))
     coding = _coding(reader)
     first_row = reader.rows_count
-    token = uuid.uuid4().hex[:12]
+    token = versions.new_token()
     old_parts = list(manifest["row_parts"])
-    writer = RowPartWriter(directory, PART_ROWS,
-                           lambda k: layout.ROWS_PATTERN.format(len(old_parts) + k))
+    writer = RowPartWriter(temp, PART_ROWS, lambda k: versions.versioned_name(
+        layout.ROWS_PATTERN.format(len(old_parts) + k), token))
     sums = BlockSums(width, mixing.weights.shape[0], mixing.fill)
-    cells_temp = directory / f".append-{token}-cells.parquet"
-    created.append(cells_temp)
+    cells_temp = temp / f".append-{token}-cells.parquet"
     state = {"profile": ColumnProfile.empty(width), "z_norm2": 0.0}
     report = Progress(progress, "append", None)
     stream = _stream(src, names, passthrough, batch_rows, first_row, transform, state, report)
@@ -195,7 +184,6 @@ def _write_version(reader: ArchiveReader, src, batch_rows, progress, created: li
             result = verify_pass(stream, names, passthrough, mixing, anchors, transform, score_right,
                                  writer, scale, coding, block_sums=sums, cells_file=cells_temp)
     finally:
-        created.extend(directory / p["name"] for p in writer.parts)  # removed on failure
         writer.close()
     report.finish()
     if result.rows == 0:
@@ -203,10 +191,9 @@ def _write_version(reader: ArchiveReader, src, batch_rows, progress, created: li
     tables = dict(manifest.get("tables") or {})
     new_files: list[str] = [p["name"] for p in writer.parts]
     # cells: the old table, then the new rows' cells
-    cells_name = f"cells.v{version}.parquet"
-    created.append(directory / cells_name)
-    old_cells = layout.table_file(manifest, layout.CELLS)
-    concat_parquet(directory, [old_cells] + ([cells_temp.name] if result.cells.written else []),
+    cells_name = versions.versioned_name(f"cells.v{version}.parquet", token)
+    old_cells = os.path.abspath(directory / layout.table_file(manifest, layout.CELLS))
+    concat_parquet(temp, [old_cells] + ([cells_temp.name] if result.cells.written else []),
                    cells_name, CELLS_SCHEMA, remove=False)
     cells_temp.unlink(missing_ok=True)
     tables[layout.CELLS] = cells_name
@@ -215,10 +202,9 @@ def _write_version(reader: ArchiveReader, src, batch_rows, progress, created: li
     listed = {f["name"] for f in manifest["files"]}
     old_blocks = layout.table_file(manifest, BLOCKS)
     if old_blocks in listed:
-        blocks_name = f"blocks.v{version}.parquet"
-        created.append(directory / blocks_name)
+        blocks_name = versions.versioned_name(f"blocks.v{version}.parquet", token)
         blocks = pa.concat_tables([pq.read_table(directory / old_blocks), sums.table()])
-        _write_small(directory, blocks_name, blocks)
+        _write_small(temp, blocks_name, blocks)
         tables[BLOCKS] = blocks_name
         new_files.append(blocks_name)
     # columns: merged ledger and statistics
@@ -243,9 +229,8 @@ def _write_version(reader: ArchiveReader, src, batch_rows, progress, created: li
     for name, values in updates.items():
         i = columns.schema.get_field_index(name)
         columns = columns.set_column(i, name, pa.array(values, columns.schema.field(name).type))
-    columns_name = f"columns.v{version}.parquet"
-    created.append(directory / columns_name)
-    _write_small(directory, columns_name, columns, factor_columns=["shift", "scale", "offset"])
+    columns_name = versions.versioned_name(f"columns.v{version}.parquet", token)
+    _write_small(temp, columns_name, columns, factor_columns=["shift", "scale", "offset"])
     tables[layout.COLUMNS] = columns_name
     new_files.append(columns_name)
     # the manifest of the new version
@@ -260,8 +245,9 @@ def _write_version(reader: ArchiveReader, src, batch_rows, progress, created: li
                             state["z_norm2"])
     new["drift"] = _drift(manifest, result, transform, state["z_norm2"], width)
     new["files"] = [f for f in manifest["files"] if f["name"] not in replaced] + [
-        file_entry(directory, name) for name in new_files]
-    write_manifest(directory, new)  # the commit point: one atomic rename
+        file_entry(temp, name) for name in new_files]
+    write_manifest(temp, new)
+    versions.publish_in_place(directory, temp, new_files, expect=manifest)  # commit: one rename
     return directory
 
 

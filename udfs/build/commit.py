@@ -1,7 +1,9 @@
 """Commit: write into a temporary directory beside the target, write the manifest
-last, then move the directory into place. A failed or interrupted compress leaves no
-archive at the target and never touches an existing one; ``overwrite=True`` replaces only
-a directory that already is a rankfold archive (or an empty one).
+last, then publish it (``store.versions``): onto an absent path by a rename that fails if
+anything appeared there, or, with ``overwrite=True``, into a folder that is verified at that
+moment to be a rankfold archive with nothing else inside (or empty), as a new version whose
+files carry their own token, committed by replacing ``manifest.json`` atomically. A failed or
+interrupted compress leaves the target as it was; nothing is deleted at commit.
 """
 
 from __future__ import annotations
@@ -9,7 +11,6 @@ from __future__ import annotations
 import io
 import os
 import shutil
-import uuid
 from concurrent.futures import Future, ThreadPoolExecutor
 from pathlib import Path
 from typing import Any
@@ -18,7 +19,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from ..errors import ArchiveExistsError, InvalidInputError
-from ..store import layout
+from ..store import layout, versions
 from ..store.manifest import file_entry, write_manifest
 
 __all__ = ["prepare_target", "ArchiveWriter", "RowPartWriter", "PART_ROWS", "concat_parquet",
@@ -28,20 +29,29 @@ ZSTD_LEVEL = 3
 
 
 def prepare_target(path: str | os.PathLike, overwrite: bool) -> Path:
-    """Check the target before any work: refuse an existing path unless it may be replaced."""
+    """Check the target before any work: refuse an existing path unless it may be replaced
+    (a rankfold archive with nothing else inside, or an empty folder). The commit checks
+    again, at the moment it publishes."""
     target = Path(path)
+    if target.is_symlink() and target.is_dir():  # write into the folder the link names
+        target = target.resolve()
     if target.exists() or target.is_symlink():
         if not overwrite:
             raise ArchiveExistsError(
                 f"{target} already exists; rankfold never replaces data unasked. Choose another "
                 "path, or pass overwrite=True to replace an existing archive."
             )
-        is_archive = target.is_dir() and (target / layout.MANIFEST).is_file()
-        is_empty_dir = target.is_dir() and not any(target.iterdir())
-        if not (is_archive or is_empty_dir):
+        fd = versions.open_dir(target)  # a file or a symbolic link is refused here
+        try:
+            found = versions.survey(fd)
+        finally:
+            os.close(fd)
+        if found.kind == "foreign":
             raise ArchiveExistsError(
-                f"{target} exists and is not a rankfold archive; refusing to replace it even with "
-                "overwrite=True. Remove it yourself or choose another path."
+                f"{target} exists and is not a rankfold archive; refusing to replace it even "
+                f"with overwrite=True: it is {found.found}. rankfold replaces only a rankfold "
+                "archive with nothing else inside. Move your files out, remove it yourself or "
+                "choose another path."
             )
     if not target.parent.exists():
         raise InvalidInputError(f"The folder {target.parent} does not exist; create it first.")
@@ -186,8 +196,7 @@ class ArchiveWriter:
         self.target = target
         self.overwrite = overwrite
         self.part_rows = part_rows
-        self.temp = target.parent / f".{target.name}.rankfold-tmp-{uuid.uuid4().hex[:12]}"
-        self.temp.mkdir()
+        self.temp = versions.new_temp_dir(target)
         self._rows = RowPartWriter(self.temp, part_rows)
         self._adopted: list[dict[str, Any]] | None = None
 
@@ -228,21 +237,43 @@ class ArchiveWriter:
 
     # -- finish ----------------------------------------------------------------------------
     def commit(self, manifest: dict[str, Any], file_names: list[str]) -> Path:
-        """Record files with sizes and SHA-256, write the manifest, move into place."""
+        """Record files with sizes and SHA-256, write the manifest, publish (module docstring).
+
+        Into a folder that already holds files, every file name gets this version's token
+        (``versions.versioned_name``), so no name of an older version is reused."""
         self._close_part()
-        manifest["files"] = [file_entry(self.temp, name) for name in file_names]
-        write_manifest(self.temp, manifest)
-        if self.target.exists():
-            old = self.target.parent / f".{self.target.name}.rankfold-old-{uuid.uuid4().hex[:12]}"
-            os.replace(self.target, old)
-            try:
-                os.replace(self.temp, self.target)
-            except BaseException:
-                os.replace(old, self.target)
-                raise
-            shutil.rmtree(old, ignore_errors=True)
+        fd = versions.open_dir(self.target)
+        if fd is None:
+            in_place = False
         else:
-            os.replace(self.temp, self.target)
+            try:
+                found = versions.survey(fd)
+            finally:
+                os.close(fd)
+            if not self.overwrite:
+                raise ArchiveExistsError(
+                    f"{self.target} appeared while rankfold was writing an archive there "
+                    f"({found.found}); it was left untouched and the new archive discarded. "
+                    "Choose another path, or pass overwrite=True to replace an archive.")
+            in_place = True
+        names = list(file_names)
+        if in_place and found.entries:
+            token = versions.new_token()
+            renamed = {name: versions.versioned_name(name, token) for name in names}
+            for name, new in renamed.items():
+                os.rename(self.temp / name, self.temp / new)
+            manifest["row_parts"] = [dict(p, name=renamed[p["name"]]) for p in manifest["row_parts"]]
+            parts = {p["name"] for p in manifest["row_parts"]}
+            tables = dict(manifest.get("tables") or {})
+            tables.update({name: new for name, new in renamed.items() if new not in parts})
+            manifest["tables"] = tables
+            names = [renamed[name] for name in names]
+        manifest["files"] = [file_entry(self.temp, name) for name in names]
+        write_manifest(self.temp, manifest)
+        if in_place:
+            versions.publish_in_place(self.target, self.temp, names, expect=None)
+        else:
+            versions.publish_new(self.temp, self.target)
         return self.target
 
     def abort(self) -> None:

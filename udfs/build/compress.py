@@ -29,7 +29,7 @@ from ..errors import (EmptySourceError, InvalidInputError, NoNumericColumnsError
                       RankTooLargeError, SourceChangedError)
 from ..factor import cur as _cur
 from ..factor.svd import gavish_donoho_rank
-from ..store import layout
+from ..store import layout, versions
 from ..store.aggregate import BlockSums
 from ..store.arithmetic import round_up, trim_mantissa
 from . import link as _link
@@ -156,15 +156,17 @@ def compress(source: Any, path: str | Path, *, rank: int | None = None, seed: in
     """
     opts = CompressOptions.from_call(rank, seed, options)
     target = prepare_target(path, opts.overwrite)
-    executor = make_executor(opts.executor, source, opts.connection, opts.batch_rows, opts.progress,
-                             opts.storage_options)
-    try:
+    with versions.WriteLock(target):  # one writer per path; leftovers of crashed writes go
+        versions.recover(target)
+        executor = make_executor(opts.executor, source, opts.connection, opts.batch_rows,
+                                 opts.progress, opts.storage_options)
         try:
-            return _compress(executor, target, opts)
-        except _SampleMissed:  # rare: the sample hid what the sketch must see; read every row
-            return _compress(executor, target, _all_rows(opts))
-    finally:
-        executor.close()
+            try:
+                return _compress(executor, target, opts)
+            except _SampleMissed:  # rare: the sample hid what the sketch must see; read every row
+                return _compress(executor, target, _all_rows(opts))
+        finally:
+            executor.close()
 
 
 class _SampleMissed(Exception):

@@ -87,8 +87,12 @@ class _ScanReader(ArchiveReader):
 
     def _group(self, part: int, group: int) -> pa.Table:
         name = self.parts[part][2]
-        return self._groups.get(self._key + (part, group),
-                                lambda: pq.ParquetFile(self.path / name).read_row_group(group))
+
+        def load() -> pa.Table:
+            with self.version_files():
+                return pq.ParquetFile(self.path / name).read_row_group(group)
+
+        return self._groups.get(self._key + (part, group), load)
 
     def read_rows(self, positions: np.ndarray, columns: list[str] | None = None) -> pa.Table:
         positions = np.asarray(positions, dtype=np.int64)

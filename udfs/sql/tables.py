@@ -20,6 +20,7 @@ is a TEMP table macro ``FROM query(<prefix>__<verb>_sql(...))``: the UDF runs at
 from __future__ import annotations
 
 import atexit
+import os
 import shutil
 import tempfile
 import threading
@@ -37,7 +38,8 @@ from ..store import arithmetic, layout
 from ..store.aggregate import basis_sql, quote_ident, rows_source_sql, sql_literal
 from ..store.reader import ArchiveReader
 
-__all__ = ["scan_sql", "table_sql", "column_errors_sql", "row_errors_sql", "ResultCache"]
+__all__ = ["scan_sql", "table_sql", "column_errors_sql", "row_errors_sql", "ResultCache",
+           "sweep_spools"]
 
 U = arithmetic.UNIT_ROUNDOFF
 BOUND = "_rf_bound"
@@ -221,12 +223,13 @@ def row_errors_sql(reader: ArchiveReader) -> str:
 
 _SPOOL: dict[str, Any] = {}
 _SPOOL_LOCK = threading.Lock()
+_SPOOL_PREFIX = "rankfold-sql-"
 
 
 def _spool_dir() -> Path:
     with _SPOOL_LOCK:
-        if "dir" not in _SPOOL:
-            _SPOOL["dir"] = Path(tempfile.mkdtemp(prefix="rankfold-sql-"))
+        if "dir" not in _SPOOL:  # the pid in the name lets sweep_spools find dead owners
+            _SPOOL["dir"] = Path(tempfile.mkdtemp(prefix=f"{_SPOOL_PREFIX}{os.getpid()}-"))
             _SPOOL["count"] = 0
             atexit.register(shutil.rmtree, _SPOOL["dir"], True)
         _SPOOL["count"] += 1
@@ -240,6 +243,32 @@ def table_sql(table: pa.Table) -> str:
     path = _spool_dir()
     pq.write_table(table, path)
     return f"SELECT * FROM read_parquet({sql_literal(str(path))})"
+
+
+def sweep_spools(directory: str | os.PathLike | None = None) -> list[str]:
+    """Remove the spool folders of result files left by processes that ended without their
+    exit handler (killed): ``rankfold-sql-<pid>-*`` in the temporary folder whose pid no
+    longer runs. Returns the folders removed. Spools of running processes are kept."""
+    base = Path(directory or tempfile.gettempdir())
+    removed = []
+    for entry in base.glob(f"{_SPOOL_PREFIX}*-*"):
+        pid = entry.name[len(_SPOOL_PREFIX):].split("-", 1)[0]
+        if not pid.isdigit() or not entry.is_dir() or entry.is_symlink() or _running(int(pid)):
+            continue
+        shutil.rmtree(entry, ignore_errors=True)
+        if not entry.exists():  # another user's folder stays
+            removed.append(str(entry))
+    return removed
+
+
+def _running(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:  # another user's process
+        return True
+    return True
 
 
 class ResultCache:

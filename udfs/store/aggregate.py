@@ -223,7 +223,8 @@ def _blocks(reader) -> _Blocks | None:
     if layout.table_file(reader.manifest, BLOCKS) not in names:
         reader._rf_blocks = False  # archives written before blocks.parquet: scan instead
         return None
-    table = pq.read_table(reader.path / layout.table_file(reader.manifest, BLOCKS))
+    with reader.version_files():
+        table = pq.read_table(reader.path / layout.table_file(reader.manifest, BLOCKS))
     blocks = _Blocks(table.column("first_row").to_numpy(), table.column("rows").to_numpy(), table)
     reader._rf_blocks = blocks
     return blocks

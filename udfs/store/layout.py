@@ -12,6 +12,10 @@ An archive is a directory::
     cells.parquet          cells stored exactly: _rf_row, _rf_column, value, reason
 
 All of it is plain Parquet and JSON, readable by DuckDB or pyarrow without rankfold.
+These are the names of a folder's first version; every later version (append, overwrite)
+inserts its own token (``store.versions.versioned_name``), so no name is reused in a folder,
+and the manifest lists the current names (``row_parts``, ``tables``, ``files``). The journal
+``.rankfold-versions.json`` records superseded files until they are swept.
 """
 
 from __future__ import annotations

@@ -7,6 +7,7 @@ plus the exceptional cells) and reads row files by row group, only for the rows 
 from __future__ import annotations
 
 from collections.abc import Iterable
+from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -51,7 +52,8 @@ class ArchiveReader:
         self.manifest = read_manifest(self.path)
         check_files(self.path, self.manifest, checksums=checksums)
         try:
-            self._load()
+            with self.version_files():
+                self._load()
         except (OSError, pa.ArrowException, KeyError) as exc:
             raise CorruptArchiveError(f"{self.path} could not be read ({exc}); the archive is damaged.") from None
 
@@ -110,6 +112,24 @@ class ArchiveReader:
                     "development builds before format 1.0 was settled did; compress the source again."
                 )
         self.key = m.get("key")
+
+    @contextmanager
+    def version_files(self):
+        """Reads of this version's files inside: a file gone (swept after a later write
+        superseded this version, or removed by hand) raises ArchiveNotFoundError.
+
+        Every file name comes from the manifest read at open, and a name is never reused
+        inside an archive folder (``store.versions``), so a reader never mixes versions."""
+        try:
+            yield
+        except FileNotFoundError as exc:
+            name = Path(exc.filename).name if exc.filename else "A file"
+            raise ArchiveNotFoundError(
+                f"{name} of the archive version opened at {self.path} (version "
+                f"{self.manifest.get('version', 0)}) is gone: a later write superseded that "
+                "version and its files were swept, or they were removed by hand. Open the "
+                "archive again to read its current version."
+            ) from None
 
     # -- addressing -----------------------------------------------------------------------------
     def resolve_columns(self, columns: Any) -> list[str]:
@@ -172,7 +192,8 @@ class ArchiveReader:
         wanted = list(key_values) if isinstance(key_values, (list, tuple, np.ndarray)) else [key_values]
         found: dict[Any, int] = {}
         for first, _, name, _ in self.parts:
-            table = pq.read_table(self.path / name, columns=[layout.ROW_ID, self.key])
+            with self.version_files():
+                table = pq.read_table(self.path / name, columns=[layout.ROW_ID, self.key])
             keys = table.column(self.key)
             mask = pc.is_in(keys, value_set=pa.array(wanted, type=keys.type))
             hits = table.filter(mask)
@@ -189,7 +210,8 @@ class ArchiveReader:
     def read_rows(self, positions: np.ndarray, columns: list[str] | None = None) -> pa.Table:
         """Row-file columns (default: all) for ``positions``, in the order given."""
         if positions.size == 0:
-            schema = pq.read_schema(self.path / self.parts[0][2])
+            with self.version_files():
+                schema = pq.read_schema(self.path / self.parts[0][2])
             names = columns or schema.names
             return pa.table({n: pa.array([], schema.field(n).type) for n in names})
         order = np.argsort(positions, kind="stable")
@@ -201,7 +223,8 @@ class ArchiveReader:
                 continue
             local = sorted_pos[lo:hi] - first
             groups = np.unique(np.searchsorted(starts, local, side="right") - 1)
-            table = pq.ParquetFile(self.path / name).read_row_groups(groups.tolist(), columns=columns)
+            with self.version_files():
+                table = pq.ParquetFile(self.path / name).read_row_groups(groups.tolist(), columns=columns)
             group_first = starts[groups]
             offsets = np.cumsum([0] + [starts[g + 1] - starts[g] for g in groups])
             index_in_read = offsets[np.searchsorted(group_first, local, side="right") - 1] + (
