@@ -35,6 +35,7 @@ from ..errors import EmptySourceError, InvalidInputError
 from ..store import layout
 from ..store.aggregate import BLOCKS, BlockSums
 from ..store.arithmetic import round_up
+from ..store.integrity import WRITE_OPTIONS, read_small_table
 from ..store.manifest import file_entry, write_manifest
 from ..store.reader import ArchiveReader
 from .commit import CELLS_SCHEMA, PART_ROWS, ZSTD_LEVEL, RowPartWriter, concat_parquet
@@ -89,7 +90,7 @@ def _write_small(directory: Path, name: str, table: pa.Table, factor_columns=())
     encodings = {c: "BYTE_STREAM_SPLIT" for c in factor_columns}
     dictionary = [f.name for f in table.schema if f.name not in encodings]
     pq.write_table(table, directory / name, compression="zstd", compression_level=ZSTD_LEVEL,
-                   use_dictionary=dictionary, column_encoding=encodings or None)
+                   use_dictionary=dictionary, column_encoding=encodings or None, **WRITE_OPTIONS)
 
 
 def _stream(src, names, passthrough, batch_rows, first_row, transform, state, report):
@@ -217,7 +218,7 @@ def _write_version(reader: ArchiveReader, src, batch_rows, progress, created: li
     if old_blocks in listed:
         blocks_name = f"blocks.v{version}.parquet"
         created.append(directory / blocks_name)
-        blocks = pa.concat_tables([pq.read_table(directory / old_blocks), sums.table()])
+        blocks = pa.concat_tables([read_small_table(directory, manifest, old_blocks), sums.table()])
         _write_small(directory, blocks_name, blocks)
         tables[BLOCKS] = blocks_name
         new_files.append(blocks_name)
