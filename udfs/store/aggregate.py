@@ -31,7 +31,6 @@ from typing import Any
 import duckdb
 import numpy as np
 import pyarrow as pa
-import pyarrow.parquet as pq
 
 from ..errors import InvalidInputError, UnknownColumnError
 from . import arithmetic, layout

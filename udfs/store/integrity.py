@@ -180,6 +180,7 @@ def check_tables(reader) -> None:
     needed = {layout.ROW_ID: None, layout.ROW_ERR_MAX: None}
     needed.update({n: declared[n] for n in m.get("exact_columns", [])})
     needed.update({s: None for s in reader.basis_stored})
+    needed.update({layout.CODE_PATTERN.format(j): None for j in np.flatnonzero(np.isfinite(reader.residual_step))})
     for first, count, name, starts in reader.parts:
         if int(starts[-1]) != count:
             raise damaged(path / name, f"holds {int(starts[-1])} rows where the manifest records {count}")
