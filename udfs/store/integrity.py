@@ -44,7 +44,8 @@ from ..errors import CorruptArchiveError
 from . import layout
 from .manifest_schema import check_plain_name, files_used
 
-__all__ = ["PAGE_CHECKSUMS", "WRITE_OPTIONS", "footer_sha256", "check_listed_files", "read_small_table",
+__all__ = ["PAGE_CHECKSUMS", "WRITE_OPTIONS", "footer_sha256", "verified_metadata", "check_listed_files",
+           "read_small_table",
            "open_row_file", "check_tables", "RowFileSeal", "read_parquet_sql", "damaged"]
 
 # Parquet write options that every archive file is written with (page CRC-32 checksums).
@@ -66,6 +67,23 @@ def damaged(path: Path, what: str) -> CorruptArchiveError:
 def footer_sha256(path: Path) -> str:
     """SHA-256 of the Parquet footer of ``path``: the file metadata, its length and the
     trailing magic (the last ``footer length + 8`` bytes of the file)."""
+    return hashlib.sha256(_footer(path)).hexdigest()
+
+
+def verified_metadata(path: Path, entry: dict[str, Any]) -> pq.FileMetaData:
+    """The Parquet metadata of the row file ``path``, parsed from the very footer bytes whose
+    SHA-256 matched ``entry["footer_sha256"]``; readers then open the file with this metadata
+    (``pq.ParquetFile(path, metadata=...)``), so a footer changed later is never used."""
+    tail = _footer(path)
+    if hashlib.sha256(tail).hexdigest() != entry["footer_sha256"]:
+        raise damaged(path, "has a Parquet footer that does not match its digest in the manifest")
+    try:
+        return pq.read_metadata(pa.BufferReader(b"PAR1" + tail))
+    except (OSError, pa.ArrowException) as exc:
+        raise damaged(path, f"has a Parquet footer that cannot be read ({exc})") from None
+
+
+def _footer(path: Path) -> bytes:
     with open(path, "rb") as handle:
         handle.seek(0, os.SEEK_END)
         size = handle.tell()
@@ -77,7 +95,7 @@ def footer_sha256(path: Path) -> str:
         if tail[4:] != b"PAR1" or length + 12 > size:
             raise damaged(path, "does not end with a Parquet footer")
         handle.seek(size - _FOOTER_TAIL - length)
-        return hashlib.sha256(handle.read(length + _FOOTER_TAIL)).hexdigest()
+        return handle.read(length + _FOOTER_TAIL)
 
 
 def check_listed_files(directory: Path, manifest: dict[str, Any]) -> None:
@@ -134,10 +152,11 @@ def read_small_table(directory: Path, manifest: dict[str, Any], name: str) -> pa
         raise damaged(path, f"is not readable Parquet ({exc})") from None
 
 
-def open_row_file(path: Path) -> pq.ParquetFile:
-    """A row file opened for reading with page checksum verification."""
+def open_row_file(path: Path, metadata: pq.FileMetaData | None = None) -> pq.ParquetFile:
+    """A row file opened for reading with page checksum verification (and with ``metadata``
+    from :func:`verified_metadata` when given, instead of its footer as it is now)."""
     try:
-        return pq.ParquetFile(path, page_checksum_verification=PAGE_CHECKSUMS)
+        return pq.ParquetFile(path, metadata=metadata, page_checksum_verification=PAGE_CHECKSUMS)
     except (OSError, pa.ArrowException) as exc:
         raise damaged(path, f"is not readable Parquet ({exc})") from None
 

@@ -18,7 +18,8 @@ import pyarrow.parquet as pq
 
 from ..errors import ArchiveNotFoundError, CorruptArchiveError, RowOutOfRangeError, UnknownColumnError
 from . import arithmetic, layout
-from .integrity import RowFileSeal, check_tables, damaged, open_row_file, read_small_table
+from .integrity import (RowFileSeal, check_tables, damaged, open_row_file, read_small_table,
+                        verified_metadata)
 from .manifest import DIGEST_FIELD, check_files, read_manifest
 
 __all__ = ["ArchiveReader", "Rebuilt"]
@@ -74,8 +75,9 @@ class ArchiveReader:
         self.seal.check()
 
     def row_file(self, name: str) -> pq.ParquetFile:
-        """A row file of this archive, opened with Parquet page checksum verification."""
-        return open_row_file(self.path / name)
+        """A row file of this archive, opened with Parquet page checksum verification and the
+        footer that was checked on open."""
+        return open_row_file(self.path / name, self._metadata[name])
 
     def row_file_schema(self, name: str) -> pa.Schema:
         return self._row_schemas[name]
@@ -122,10 +124,12 @@ class ArchiveReader:
         self.cell_values = cells.column("value").fill_null(np.nan).to_numpy()
         self.parts = []
         self._row_schemas: dict[str, pa.Schema] = {}
+        self._metadata: dict[str, pq.FileMetaData] = {}
+        entries = {f["name"]: f for f in m["files"]}
         for part in m["row_parts"]:
-            handle = self.row_file(part["name"])
-            meta = handle.metadata
-            self._row_schemas[part["name"]] = handle.schema_arrow
+            meta = verified_metadata(self.path / part["name"], entries[part["name"]])
+            self._metadata[part["name"]] = meta
+            self._row_schemas[part["name"]] = meta.schema.to_arrow_schema()
             starts = np.cumsum([0] + [meta.row_group(g).num_rows for g in range(meta.num_row_groups)])
             self.parts.append((part["first_row"], part["rows"], part["name"], starts))
         if self.parts:
