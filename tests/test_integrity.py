@@ -19,6 +19,8 @@ import duckdb
 import numpy as np
 import pyarrow as pa
 import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
 
 import rankfold
 from rankfold.cli import main
@@ -347,3 +349,47 @@ def test_an_append_is_seen_by_the_next_query_in_the_same_process(tmp_path):
     assert first != second
     assert con.execute("SELECT count(*) FROM rankfold_row_errors(?)", [p]).fetchone() == (2 * ROWS,)
     assert con.execute("SELECT rankfold_cell(?, ?, 'c0') IS NOT NULL", [p, 2 * ROWS - 1]).fetchone() == (True,)
+
+
+# -- any sealed manifest: refused in one line or served, never a raw exception -----------------
+_JSON = st.recursive(st.none() | st.booleans() | st.integers(-2**70, 2**70) | st.floats(allow_nan=False, allow_infinity=False)
+                     | st.text(max_size=12),
+                     lambda inner: st.lists(inner, max_size=4) | st.dictionaries(st.text(max_size=6), inner, max_size=4),
+                     max_leaves=8)
+
+
+def _paths(value, prefix=()):
+    """Every path to a value inside a parsed manifest (keys and list positions)."""
+    yield prefix
+    if isinstance(value, dict):
+        for k, v in value.items():
+            yield from _paths(v, prefix + (k,))
+    elif isinstance(value, list):
+        for i, v in enumerate(value[:3]):
+            yield from _paths(v, prefix + (i,))
+
+
+@settings(max_examples=40, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(data=st.data())
+def test_any_sealed_manifest_edit_is_refused_cleanly_or_served(archive, data):
+    # property (common practice, fuzzing): replace one value anywhere in the manifest by any
+    # JSON value, seal it with a correct digest; open and a full rebuild either succeed or
+    # raise CorruptArchiveError, never TypeError/IndexError/KeyError/MemoryError
+    original = read_manifest(archive)
+    paths = [p for p in _paths(original) if p and p[0] != "manifest_sha256"]
+    where = data.draw(st.sampled_from(paths))
+    value = data.draw(_JSON)
+    manifest = json.loads(json.dumps(original))
+    node = manifest
+    for step in where[:-1]:
+        node = node[step]
+    node[where[-1]] = value
+    write_manifest(archive, manifest)
+    try:
+        arch = rankfold.open(archive)
+        arch.to_numpy()
+        arch.cell_bounds(rows=slice(0, 5))
+    except rankfold.CorruptArchiveError:
+        pass
+    finally:
+        write_manifest(archive, original)
