@@ -79,7 +79,7 @@ def _check_schema(source_schema: pa.Schema, manifest: dict, description: str, pa
 def _coding(reader: ArchiveReader) -> Coding:
     float32 = False
     if reader.parts and reader.basis_stored:
-        schema = pq.read_schema(reader.path / reader.parts[0][2])
+        schema = reader.row_file_schema(reader.parts[0][2])
         first = reader.basis_stored[0]
         float32 = first in schema.names and schema.field(first).type == pa.float32()
     return Coding(reader.tolerance.copy(), reader.residual_step.copy(), reader.basis_step.copy(),

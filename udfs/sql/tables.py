@@ -241,7 +241,7 @@ def table_sql(table: pa.Table) -> str:
     columns: a VALUES list of typed literals took 2.1 s to bind and run, the file 0.01 s."""
     path = _spool_dir()
     pq.write_table(table, path)
-    return f"SELECT * FROM read_parquet({sql_literal(str(path))})"
+    return f"SELECT * FROM {read_parquet_sql([path])}"
 
 
 class ResultCache:
