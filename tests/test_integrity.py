@@ -393,3 +393,14 @@ def test_any_sealed_manifest_edit_is_refused_cleanly_or_served(archive, data):
         pass
     finally:
         write_manifest(archive, original)
+
+
+def test_a_file_damaged_between_two_queries_is_refused_by_the_second(archive):
+    con = _con()
+    p = str(archive)
+    query = "SELECT count(*) FROM rankfold_scan(?)"
+    assert con.execute(query, [p]).fetchone() == (ROWS,)
+    name = archive / "rows-00000.parquet"
+    _flip(name, name.stat().st_size // 2, 2)  # same size, new mtime: hashed again
+    with pytest.raises(duckdb.Error, match="CorruptArchiveError"):
+        con.execute(query, [p]).fetchone()

@@ -70,8 +70,9 @@ class ArchiveReader:
         return self.manifest[DIGEST_FIELD]
 
     def verify_row_files(self) -> None:
-        """Check every row file's whole SHA-256 (cached until a file's size, mtime or inode
-        changes): for readers that do not check Parquet page checksums, such as DuckDB."""
+        """Check the whole SHA-256 of every file SQL reads: row files and small tables (cached
+        until a file's size, mtime or inode changes). For readers that do not check Parquet
+        page checksums, such as DuckDB."""
         self.seal.check()
 
     def row_file(self, name: str) -> pq.ParquetFile:
