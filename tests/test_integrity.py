@@ -18,6 +18,7 @@ from pathlib import Path
 import duckdb
 import numpy as np
 import pyarrow as pa
+import pyarrow.parquet  # noqa: F401 - pa.parquet
 import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
@@ -162,21 +163,27 @@ def test_a_row_file_corrupted_after_open_is_refused_at_read(archive):
 
 
 # -- columns.parquet swapped between two archives of one shape -------------------------------
+def _same_size_parquet(data: bytes, size: int) -> bytes:
+    """``data`` (a Parquet file) grown to ``size`` bytes and still valid: zero bytes inserted
+    just before the footer, which addresses pages by absolute offsets (Parquet format spec)."""
+    footer = int.from_bytes(data[-8:-4], "little") + 8
+    assert size >= len(data)
+    return data[:-footer] + bytes(size - len(data)) + data[-footer:]
+
+
 def test_columns_swapped_between_two_same_shape_archives_is_refused(pristine, tmp_path):
     other = _compress(tmp_path / "other.rfa", seed=1)
-    victim = tmp_path / "victim.rfa"
+    victim, donor = tmp_path / "victim.rfa", other
     shutil.copytree(pristine, victim)
-    (victim / "columns.parquet").unlink()
-    shutil.copy(other / "columns.parquet", victim / "columns.parquet")
-    pad = (victim / "columns.parquet").stat().st_size - (pristine / "columns.parquet").stat().st_size
-    if pad:  # make it the same size, as the issue's attack did: only the hash can tell
-        manifest = read_manifest(victim)
-        assert pad  # the sizes differ here; keep the digest honest so the size check is not what fires
-        for f in manifest["files"]:
-            if f["name"] == "columns.parquet":
-                f["bytes"] += pad
-        (victim / "manifest.json").write_text(json.dumps(manifest))
-        write_manifest(victim, manifest)
+    mine, theirs = (victim / "columns.parquet").read_bytes(), (donor / "columns.parquet").read_bytes()
+    if len(theirs) > len(mine):  # swap roles so that the file moved in is the smaller one
+        shutil.rmtree(victim)
+        shutil.copytree(other, victim)
+        mine, theirs = theirs, mine
+    swapped = _same_size_parquet(theirs, len(mine))
+    assert len(swapped) == len(mine) and swapped != mine
+    assert pa.parquet.read_table(pa.BufferReader(swapped)).num_rows == COLS  # a valid table
+    (victim / "columns.parquet").write_bytes(swapped)  # the manifest is untouched
     with pytest.raises(rankfold.CorruptArchiveError, match="columns.parquet does not match its SHA-256"):
         rankfold.open(victim)
     with pytest.raises(duckdb.Error, match="CorruptArchiveError"):
