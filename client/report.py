@@ -32,7 +32,6 @@ from pathlib import Path
 from typing import Any, Callable
 
 import numpy as np
-import pyarrow.parquet as pq
 
 from rankfold.udfs.errors import InvalidInputError, RankfoldError
 from rankfold.udfs.store import arithmetic, layout
@@ -168,7 +167,7 @@ def column_selection(archive: Any) -> dict[str, Any]:
         fill = np.array([b["fill"] for b in arch.manifest["basis"]], dtype=np.float64)
         gram = np.zeros((len(basis), len(basis)))
         for part in arch.manifest["row_parts"]:
-            file = pq.ParquetFile(arch.path / part["name"])
+            file = arch._reader.row_file(part["name"])
             for batch in file.iter_batches(batch_size=layout.ROW_GROUP_ROWS, columns=basis):
                 block = np.column_stack([batch.column(b).cast("double").fill_null(np.nan)
                                          .to_numpy(zero_copy_only=False) for b in basis])
@@ -228,7 +227,7 @@ def _sample_positions(arch: Archive, row_max: np.ndarray, count: int) -> np.ndar
 
 
 def _row_ledger(arch: Archive) -> np.ndarray:
-    parts = [pq.read_table(arch.path / p["name"], columns=[layout.ROW_ERR_MAX])
+    parts = [arch._reader.row_file(p["name"]).read(columns=[layout.ROW_ERR_MAX])
              .column(0).to_numpy(zero_copy_only=False) for p in arch.manifest["row_parts"]]
     return np.concatenate(parts).astype(np.float64) if parts else np.zeros(0)
 

@@ -24,6 +24,7 @@ import pyarrow as pa
 
 from rankfold.udfs.errors import InvalidInputError
 from rankfold.udfs.store import layout
+from rankfold.udfs.store.aggregate import rows_source_sql
 
 from .archive import Archive
 
@@ -115,11 +116,10 @@ def select_rows(archive: Any, predicate: str) -> np.ndarray:
     if not isinstance(predicate, str) or not predicate.strip():
         raise InvalidInputError("The row predicate is empty; give a SQL condition such as "
                                 "\"id BETWEEN 10 AND 20\".")
-    files = [str(arch.path / part["name"]) for part in arch.manifest["row_parts"]]
     exact = _exact_names(arch)
     con = duckdb.connect()
     try:
-        relation = f"read_parquet([{', '.join(_literal(f) for f in files)}])"
+        relation = rows_source_sql(arch._reader)  # this version's files, checked, no glob
         con.execute(f"CREATE TEMP VIEW kept AS SELECT {', '.join(_identifier(n) for n in [layout.ROW_ID] + exact)} "
                     f"FROM {relation}")
         rows = con.sql(f"SELECT {layout.ROW_ID} FROM kept WHERE ({predicate}) ORDER BY 1").fetchnumpy()

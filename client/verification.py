@@ -26,6 +26,7 @@ from rankfold.udfs.build.progress import Progress
 from rankfold.udfs.build.sources import block_from_batch, open_source
 from rankfold.udfs.errors import ArchiveNotFoundError, CorruptArchiveError
 from rankfold.udfs.store.manifest import read_manifest, sha256_of
+from rankfold.udfs.store.reader import ArchiveReader
 
 from .archive import Archive
 
@@ -47,7 +48,9 @@ def check_files(path: str | Path) -> list[dict[str, Any]]:
     for entry in manifest["files"]:
         file = directory / entry["name"]
         problem = None
-        if not file.is_file():
+        if file.is_symlink() and file.resolve().parent != directory.resolve():
+            problem = "a symbolic link that leaves the archive directory"
+        elif not file.is_file():
             problem = "missing"
         elif file.stat().st_size != entry["bytes"]:
             problem = f"{file.stat().st_size} bytes where the manifest records {entry['bytes']}"
@@ -78,6 +81,10 @@ def verify(archive: str | Path, source: Any = None, *, connection: Any = None,
         "source": None,
         "problems": [f"{f['name']}: {f['problem']}" for f in files if not f["ok"]],
     }
+    if report["checksums_ok"]:
+        # the manifest against the files' own contents (names, types, row counts): an edited
+        # manifest is refused here too, as CorruptArchiveError
+        ArchiveReader(path)
     if source is not None:
         if report["checksums_ok"]:
             report["source"] = _against_source(Archive(path), source, connection, batch_rows, progress)

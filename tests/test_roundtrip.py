@@ -21,6 +21,7 @@ import pyarrow.parquet as pq
 import pytest
 
 import rankfold
+from rankfold.udfs.store.manifest import write_manifest
 
 ROWS = 48
 INTEGER_TYPES = [pa.int8(), pa.int16(), pa.int32(), pa.int64(),
@@ -244,7 +245,7 @@ def _archive_claiming_format(path, version: str):
     rankfold.compress(_float_table(), path, rank=2)
     manifest = json.loads((path / "manifest.json").read_text())
     manifest["format_version"] = version
-    (path / "manifest.json").write_text(json.dumps(manifest))
+    write_manifest(path, manifest)  # as that version's writer would: with its own digest
     return path
 
 

@@ -37,6 +37,7 @@ from ..errors import ArchiveNotFoundError, EmptySourceError, InvalidInputError
 from ..store import layout, versions
 from ..store.aggregate import BLOCKS, BlockSums
 from ..store.arithmetic import round_up
+from ..store.integrity import WRITE_OPTIONS, read_small_table
 from ..store.manifest import file_entry, write_manifest
 from ..store.reader import ArchiveReader
 from .commit import CELLS_SCHEMA, PART_ROWS, ZSTD_LEVEL, RowPartWriter, concat_parquet
@@ -79,7 +80,7 @@ def _check_schema(source_schema: pa.Schema, manifest: dict, description: str, pa
 def _coding(reader: ArchiveReader) -> Coding:
     float32 = False
     if reader.parts and reader.basis_stored:
-        schema = pq.read_schema(reader.path / reader.parts[0][2])
+        schema = reader.row_file_schema(reader.parts[0][2])
         first = reader.basis_stored[0]
         float32 = first in schema.names and schema.field(first).type == pa.float32()
     return Coding(reader.tolerance.copy(), reader.residual_step.copy(), reader.basis_step.copy(),
@@ -90,7 +91,7 @@ def _write_small(directory: Path, name: str, table: pa.Table, factor_columns=())
     encodings = {c: "BYTE_STREAM_SPLIT" for c in factor_columns}
     dictionary = [f.name for f in table.schema if f.name not in encodings]
     pq.write_table(table, directory / name, compression="zstd", compression_level=ZSTD_LEVEL,
-                   use_dictionary=dictionary, column_encoding=encodings or None)
+                   use_dictionary=dictionary, column_encoding=encodings or None, **WRITE_OPTIONS)
 
 
 def _stream(src, names, passthrough, batch_rows, first_row, transform, state, report):
@@ -203,7 +204,7 @@ def _write_version(reader: ArchiveReader, src, batch_rows, progress, temp: Path)
     old_blocks = layout.table_file(manifest, BLOCKS)
     if old_blocks in listed:
         blocks_name = versions.versioned_name(f"blocks.v{version}.parquet", token)
-        blocks = pa.concat_tables([pq.read_table(directory / old_blocks), sums.table()])
+        blocks = pa.concat_tables([read_small_table(directory, manifest, old_blocks), sums.table()])
         _write_small(temp, blocks_name, blocks)
         tables[BLOCKS] = blocks_name
         new_files.append(blocks_name)

@@ -20,6 +20,7 @@ import pyarrow.parquet as pq
 
 from ..errors import ArchiveExistsError, InvalidInputError
 from ..store import layout, versions
+from ..store.integrity import WRITE_OPTIONS
 from ..store.manifest import file_entry, write_manifest
 
 __all__ = ["prepare_target", "ArchiveWriter", "RowPartWriter", "PART_ROWS", "concat_parquet",
@@ -130,7 +131,7 @@ class RowPartWriter:
             self._writer = pq.ParquetWriter(
                 self.directory / new_file, table.schema, compression="zstd",
                 compression_level=ZSTD_LEVEL, use_dictionary=dictionary,
-                column_encoding=encodings or None)
+                column_encoding=encodings or None, **WRITE_OPTIONS)
         self._writer.write_table(table, row_group_size=layout.ROW_GROUP_ROWS)
 
     def _close_file(self) -> None:
@@ -175,7 +176,7 @@ def concat_parquet(directory: Path, sources: list[str], target: str, schema: pa.
     """Stream the Parquet files ``sources`` (in order), then the tables ``extra``, into one
     file ``target`` (memory: one row group at a time); the sources are removed after."""
     with pq.ParquetWriter(directory / target, schema, compression="zstd",
-                          compression_level=ZSTD_LEVEL) as out:
+                          compression_level=ZSTD_LEVEL, **WRITE_OPTIONS) as out:
         for name in sources:
             handle = pq.ParquetFile(directory / name)
             for g in range(handle.metadata.num_row_groups):
@@ -233,7 +234,7 @@ class ArchiveWriter:
         dictionary = [f.name for f in table.schema if f.name not in encodings]
         pq.write_table(table, self.temp / name, compression="zstd",
                        compression_level=ZSTD_LEVEL, use_dictionary=dictionary,
-                       column_encoding=encodings or None)
+                       column_encoding=encodings or None, **WRITE_OPTIONS)
 
     # -- finish ----------------------------------------------------------------------------
     def commit(self, manifest: dict[str, Any], file_names: list[str]) -> Path:

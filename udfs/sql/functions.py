@@ -522,7 +522,10 @@ def _table_udf(prefix: str, verb: str, con) -> Callable:
         params = dict(zip([a.name for a in args], values[:q]))
         need("path", params["path"])
         reader = _reader(params["path"])
-        key = (verb, str(reader.path), reader.manifest["archive_id"],
+        # every query: the files DuckDB will read are unchanged since their SHA-256 was checked
+        # (a stat per file; a changed file is hashed again), even when the SQL text is cached
+        reader.verify_row_files()
+        key = (verb, str(reader.path), reader.version,
                tuple((k, tuple(v) if isinstance(v, list) else v) for k, v in params.items()))
         return _RESULTS.get(key, lambda: make(reader, params))
 

@@ -15,12 +15,13 @@ row groups (one byte budget for the process, least recently used first out). Mea
     rankfold_cell at 100k random rows                  1.28 s           0.15 s
 
 A cached reader is dropped when ``manifest.json`` changes: its inode, size or mtime, or the
-``archive_id`` written in it (an archive replaced with ``overwrite=True`` gets a new id).
+``manifest_sha256`` written first in it (every append and overwrite writes a new one). Decoded
+row groups are keyed by the row file's SHA-256 from the manifest, so no version serves
+another's rows, and they are read with Parquet page checksum verification.
 """
 
 from __future__ import annotations
 
-import json
 import os
 import re
 import threading
@@ -29,7 +30,6 @@ from pathlib import Path
 
 import numpy as np
 import pyarrow as pa
-import pyarrow.parquet as pq
 
 from ..errors import ArchiveNotFoundError
 from ..store import layout
@@ -41,11 +41,11 @@ __all__ = ["ReaderCache"]
 # basis columns is about 66 MB, so this holds two or three such groups, or many narrow ones.
 ROW_GROUP_CACHE_BYTES = 192 * 1024 * 1024
 
-_ARCHIVE_ID = re.compile(rb'"archive_id"\s*:\s*"([^"]*)"')
+_DIGEST = re.compile(rb'"manifest_sha256"\s*:\s*"([0-9a-f]{64})"')
 
 
 class _GroupCache:
-    """Least-recently-used decoded row groups, keyed by (archive path, archive_id, part, group),
+    """Least-recently-used decoded row groups, keyed by (archive path, file SHA-256, group),
     within one byte budget for the process."""
 
     def __init__(self, budget: int = ROW_GROUP_CACHE_BYTES):
@@ -83,16 +83,12 @@ class _ScanReader(ArchiveReader):
     def __init__(self, path: str | Path, groups: _GroupCache = _GROUPS):
         super().__init__(path)
         self._groups = groups
-        self._key = (str(self.path), self.manifest["archive_id"])
+        self._sha = {f["name"]: f["sha256"] for f in self.manifest["files"]}
 
     def _group(self, part: int, group: int) -> pa.Table:
         name = self.parts[part][2]
-
-        def load() -> pa.Table:
-            with self.version_files():
-                return pq.ParquetFile(self.path / name).read_row_group(group)
-
-        return self._groups.get(self._key + (part, group), load)
+        return self._groups.get((str(self.path), name, self._sha[name], group),
+                                lambda: self._read(name, lambda f: f.read_row_group(group)))
 
     def read_rows(self, positions: np.ndarray, columns: list[str] | None = None) -> pa.Table:
         positions = np.asarray(positions, dtype=np.int64)
@@ -122,7 +118,7 @@ class _ScanReader(ArchiveReader):
 
 
 def _signature(path: Path) -> tuple:
-    """(inode, size, mtime, archive_id) of the manifest; raises ArchiveNotFoundError."""
+    """(inode, size, mtime, manifest digest) of the manifest; raises ArchiveNotFoundError."""
     manifest = path / layout.MANIFEST
     try:
         stat = manifest.stat()
@@ -130,18 +126,11 @@ def _signature(path: Path) -> tuple:
         return ("missing",)
     except OSError as exc:
         raise ArchiveNotFoundError(f"Cannot read the archive at {path} ({exc}). Check the path.") from None
-    # the id is near the top of the manifest (the writer puts it fourth), so 4 KB find it
+    # the writer puts the digest first, so the first 4 KB find it
     with open(manifest, "rb") as handle:
         head = handle.read(4096)
-    found = _ARCHIVE_ID.search(head)
-    if found is None:
-        try:
-            archive_id = str(json.loads(manifest.read_bytes()).get("archive_id"))
-        except (ValueError, AttributeError):
-            archive_id = None
-    else:
-        archive_id = found.group(1).decode("utf-8", "replace")
-    return (stat.st_ino, stat.st_size, stat.st_mtime_ns, archive_id)
+    found = _DIGEST.search(head)
+    return (stat.st_ino, stat.st_size, stat.st_mtime_ns, found.group(1) if found else None)
 
 
 class ReaderCache:

@@ -13,7 +13,8 @@ is a TEMP table macro ``FROM query(<prefix>__<verb>_sql(...))``: the UDF runs at
 * ``aggregate``, ``covariance``, ``correlation``: answered in Python by
   ``store.aggregate`` (on a cursor of the registering connection), handed back through a
   Parquet file in a temporary folder (see ``table_sql``).
-  A result is cached per request and archive state, so the second bind costs nothing.
+  A result is cached per request and archive version (the manifest digest), so the second
+  bind costs nothing and an append or overwrite is seen by the next query.
 * ``column_errors``, ``row_errors``: the error ledger as tables, straight from the Parquet files.
 """
 
@@ -36,6 +37,7 @@ from ..errors import InvalidInputError
 from ..store import aggregate as agg
 from ..store import arithmetic, layout
 from ..store.aggregate import basis_sql, quote_ident, rows_source_sql, sql_literal
+from ..store.integrity import read_parquet_sql
 from ..store.reader import ArchiveReader
 
 __all__ = ["scan_sql", "table_sql", "column_errors_sql", "row_errors_sql", "ResultCache",
@@ -85,15 +87,15 @@ def scan_sql(reader: ArchiveReader, columns: Any = None, bounds: str = "row",
     joins = ""
     use_anchors = bool(reader.anchor_positions.size) and bool(derived)
     if use_anchors:
-        anchor = sql_literal(str((reader.path / layout.table_file(reader.manifest, layout.ANCHORS)).resolve()))
+        anchor = read_parquet_sql([reader.path / layout.table_file(reader.manifest, layout.ANCHORS)])
         picked = ", ".join(f"{quote_ident(names[s])} AS __av{s}" for s in derived)
         inner.append("a.__anchor")
         inner += [f"a.__av{s}" for s in derived]
         joins += (f" LEFT JOIN (SELECT {layout.ROW_ID}, true AS __anchor, {picked} FROM "
-                  f"read_parquet({anchor})) a ON r.{layout.ROW_ID} = a.{layout.ROW_ID}")
+                  f"{anchor}) a ON r.{layout.ROW_ID} = a.{layout.ROW_ID}")
     with_cells = [s for s in derived if np.isin(col_idx[s], reader.cell_cols).any()] if reader.cell_rows.size else []
     if with_cells:
-        cells = sql_literal(str((reader.path / layout.table_file(reader.manifest, layout.CELLS)).resolve()))
+        cells = read_parquet_sql([reader.path / layout.table_file(reader.manifest, layout.CELLS)])
         wanted = ", ".join(str(int(col_idx[s])) for s in with_cells)
         parts = []
         for s in with_cells:
@@ -101,7 +103,7 @@ def scan_sql(reader: ArchiveReader, columns: Any = None, bounds: str = "row",
             parts.append(f"bool_or({layout.COLUMN_ID} = {j}) AS __ch{s}")
             parts.append(f"max(value) FILTER (WHERE {layout.COLUMN_ID} = {j}) AS __cv{s}")
         inner += [f"x.__ch{s}" for s in with_cells] + [f"x.__cv{s}" for s in with_cells]
-        joins += (f" LEFT JOIN (SELECT {layout.ROW_ID}, {', '.join(parts)} FROM read_parquet({cells}) "
+        joins += (f" LEFT JOIN (SELECT {layout.ROW_ID}, {', '.join(parts)} FROM {cells} "
                   f"WHERE {layout.COLUMN_ID} IN ({wanted}) GROUP BY {layout.ROW_ID}) x "
                   f"ON r.{layout.ROW_ID} = x.{layout.ROW_ID}")
     outer = [quote_ident(n) for n in exact_cols]
@@ -211,7 +213,8 @@ def column_errors_sql(reader: ArchiveReader) -> str:
               "err_max", "err_l2", "err_sum", "err_cells", "rel_rms", "tolerance", "residual_step"]
     have = set(reader.columns_table.column_names)
     cols = ", ".join(n for n in wanted if n in have)
-    return f"SELECT {cols} FROM read_parquet({sql_literal(str((reader.path / layout.table_file(reader.manifest, layout.COLUMNS)).resolve()))})"
+    reader.verify_row_files()  # DuckDB reads the columns table again: check it is unchanged
+    return f"SELECT {cols} FROM {read_parquet_sql([reader.path / layout.table_file(reader.manifest, layout.COLUMNS)])}"
 
 
 def row_errors_sql(reader: ArchiveReader) -> str:
@@ -242,7 +245,7 @@ def table_sql(table: pa.Table) -> str:
     columns: a VALUES list of typed literals took 2.1 s to bind and run, the file 0.01 s."""
     path = _spool_dir()
     pq.write_table(table, path)
-    return f"SELECT * FROM read_parquet({sql_literal(str(path))})"
+    return f"SELECT * FROM {read_parquet_sql([path])}"
 
 
 def sweep_spools(directory: str | os.PathLike | None = None) -> list[str]:
@@ -272,8 +275,9 @@ def _running(pid: int) -> bool:
 
 
 class ResultCache:
-    """The last few generated statements, keyed by request and archive state (the UDFs run
-    twice per query, at bind time)."""
+    """The last few generated statements, keyed by request and archive version (the
+    manifest's digest, ``ArchiveReader.version``: an append or overwrite makes a new key), so
+    the second bind of one query costs nothing and no query sees an older version's answer."""
 
     def __init__(self, size: int = 16):
         self._items: OrderedDict = OrderedDict()

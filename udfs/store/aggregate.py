@@ -31,10 +31,10 @@ from typing import Any
 import duckdb
 import numpy as np
 import pyarrow as pa
-import pyarrow.parquet as pq
 
 from ..errors import InvalidInputError, UnknownColumnError
 from . import arithmetic, layout
+from .integrity import read_parquet_sql, read_small_table
 
 __all__ = ["BLOCKS", "BlockSums", "aggregate", "covariance", "correlation", "FUNCS",
            "basis_sql", "rows_source_sql", "sql_literal", "quote_ident"]
@@ -224,7 +224,7 @@ def _blocks(reader) -> _Blocks | None:
         reader._rf_blocks = False  # archives written before blocks.parquet: scan instead
         return None
     with reader.version_files():
-        table = pq.read_table(reader.path / layout.table_file(reader.manifest, BLOCKS))
+        table = read_small_table(reader.path, reader.manifest, layout.table_file(reader.manifest, BLOCKS))
     blocks = _Blocks(table.column("first_row").to_numpy(), table.column("rows").to_numpy(), table)
     reader._rf_blocks = blocks
     return blocks
@@ -254,8 +254,10 @@ def sql_literal(value: Any) -> str:
 
 
 def rows_source_sql(reader) -> str:
-    files = ", ".join(sql_literal(str((reader.path / p[2]).resolve())) for p in reader.parts)
-    return f"read_parquet([{files}])"
+    """``read_parquet`` of exactly this archive version's row files (names from the manifest,
+    never a glob), after checking their SHA-256: DuckDB does not verify page checksums."""
+    reader.verify_row_files()
+    return read_parquet_sql([reader.path / p[2] for p in reader.parts])
 
 
 def basis_sql(reader, t: int) -> str:

@@ -3,7 +3,10 @@
 It records the format name and version, the writer (name and version), creation time, the
 source schema (names, Arrow types and roles, in source order), the shape, the method with its
 options and seed, the basis and anchor rows, every file with its size and SHA-256, and an
-error summary. Readers refuse an unknown major version and name both versions.
+error summary, and ``manifest_sha256``: the SHA-256 of the manifest's own canonical JSON
+without that entry (:func:`manifest_digest`), written first so that a reader finds it in the
+file's first bytes. Readers refuse an unknown major version and name both versions, then check
+the digest, then the declared schema (``manifest_schema``).
 """
 
 from __future__ import annotations
@@ -16,8 +19,11 @@ from typing import Any
 
 from ..errors import CorruptArchiveError, UnsupportedVersionError
 from . import layout
+from .integrity import check_listed_files, footer_sha256
+from .manifest_schema import DIGEST_FIELD, older_format_rules, validate
 
-__all__ = ["sha256_of", "file_entry", "write_manifest", "read_manifest", "check_files"]
+__all__ = ["sha256_of", "file_entry", "write_manifest", "read_manifest", "check_files",
+           "manifest_digest", "DIGEST_FIELD"]
 
 REQUIRED_KEYS = ("format", "format_version", "writer", "archive_id", "shape", "schema",
                  "numeric_columns", "method", "basis", "anchors", "files", "errors")
@@ -32,8 +38,21 @@ def sha256_of(path: Path, chunk: int = 1 << 20) -> str:
 
 
 def file_entry(directory: Path, name: str) -> dict[str, Any]:
+    """The manifest's record of one file: name, size, SHA-256, and for Parquet files the
+    SHA-256 of the footer (checked on every open, where hashing a whole row file is not)."""
     path = directory / name
-    return {"name": name, "bytes": path.stat().st_size, "sha256": sha256_of(path)}
+    entry = {"name": name, "bytes": path.stat().st_size, "sha256": sha256_of(path)}
+    if name.endswith(".parquet"):
+        entry["footer_sha256"] = footer_sha256(path)
+    return entry
+
+
+def manifest_digest(manifest: dict[str, Any]) -> str:
+    """SHA-256 of the canonical JSON of ``manifest`` without its ``manifest_sha256`` entry
+    (keys sorted, no spaces, ASCII only: the same bytes whatever the writer's layout)."""
+    body = {k: v for k, v in manifest.items() if k != DIGEST_FIELD}
+    text = json.dumps(body, sort_keys=True, separators=(",", ":"), ensure_ascii=True, allow_nan=False)
+    return hashlib.sha256(text.encode("ascii")).hexdigest()
 
 
 def write_manifest(directory: Path, manifest: dict[str, Any]) -> None:
@@ -42,9 +61,11 @@ def write_manifest(directory: Path, manifest: dict[str, Any]) -> None:
     version, never a mix (an append commits a new archive version this way)."""
     path = directory / layout.MANIFEST
     temp = directory / f".{layout.MANIFEST}.{os.getpid()}.tmp"
+    body = {k: v for k, v in manifest.items() if k != DIGEST_FIELD}
+    sealed = {DIGEST_FIELD: manifest_digest(body), **body}
     try:
         with open(temp, "w", encoding="utf-8") as handle:
-            json.dump(manifest, handle, indent=1, sort_keys=False, allow_nan=False)
+            json.dump(sealed, handle, indent=1, sort_keys=False, allow_nan=False)
             handle.write("\n")
             handle.flush()
             os.fsync(handle.fileno())
@@ -78,31 +99,36 @@ def read_manifest(directory: Path) -> dict[str, Any]:
         )
     version = str(manifest.get("format_version", ""))
     if version.split(".")[0] != layout.FORMAT_VERSION.split(".")[0]:
-        writer = manifest.get("writer", {})
+        writer = manifest.get("writer") if isinstance(manifest.get("writer"), dict) else {}
         raise UnsupportedVersionError(
             f"{directory} uses archive format {version or '?'} (written by "
             f"{writer.get('name', '?')} {writer.get('version', '?')}); this rankfold reads "
             f"format {layout.FORMAT_VERSION.split('.')[0]}.x. Open it with a matching rankfold version."
         )
+    older_format_rules(manifest, path)
+    try:
+        digest = manifest_digest(manifest)
+    except (ValueError, RecursionError):  # NaN or infinity (JSON extensions), or absurd nesting
+        digest = None
+    if digest is None or manifest.get(DIGEST_FIELD) != digest:
+        raise CorruptArchiveError(
+            f"{path} does not match its own {DIGEST_FIELD}: the manifest was edited or damaged "
+            "after it was written. Restore the archive from a copy or compress the source again."
+        )
     missing = [key for key in REQUIRED_KEYS if key not in manifest]
     if missing:
         raise CorruptArchiveError(f"{path} lacks the entries {missing}; the archive is damaged.")
+    validate(manifest, path)
     return manifest
 
 
 def check_files(directory: Path, manifest: dict[str, Any], *, checksums: bool) -> None:
-    """Check that every listed file exists with its recorded size (and SHA-256 if asked)."""
-    for entry in manifest["files"]:
+    """Check that every listed file is a regular file inside the archive with its recorded
+    size and (Parquet) footer digest, and with its whole-file SHA-256 if asked."""
+    check_listed_files(directory, manifest)
+    for entry in manifest["files"] if checksums else ():
         path = directory / entry["name"]
-        if not path.is_file():
-            raise CorruptArchiveError(f"{directory} is missing {entry['name']}; the archive is damaged.")
-        size = path.stat().st_size
-        if size != entry["bytes"]:
-            raise CorruptArchiveError(
-                f"{path} has {size} bytes where the manifest records {entry['bytes']}; "
-                "the archive is damaged or was edited."
-            )
-        if checksums and sha256_of(path) != entry["sha256"]:
+        if sha256_of(path) != entry["sha256"]:
             raise CorruptArchiveError(
                 f"{path} does not match its SHA-256 in the manifest; the archive is damaged "
                 "or was edited."

@@ -19,7 +19,9 @@ import pyarrow.parquet as pq
 
 from ..errors import ArchiveNotFoundError, CorruptArchiveError, RowOutOfRangeError, UnknownColumnError
 from . import arithmetic, layout
-from .manifest import check_files, read_manifest
+from .integrity import (RowFileSeal, check_tables, damaged, open_row_file, read_small_table,
+                        verified_metadata)
+from .manifest import DIGEST_FIELD, check_files, read_manifest
 
 __all__ = ["ArchiveReader", "Rebuilt"]
 
@@ -40,8 +42,10 @@ class Rebuilt:
 
 
 class ArchiveReader:
-    """Opens an archive directory: validates the manifest and the files' sizes
-    (``checksums=True`` also checks every SHA-256)."""
+    """Opens an archive directory: checks the manifest's own digest and declared schema, the
+    files' sizes and Parquet footer digests, the small tables' SHA-256, and the manifest against
+    the tables and footers (``integrity``); row-file pages are CRC-checked on every read.
+    ``checksums=True`` also checks every file's whole SHA-256 on open."""
 
     def __init__(self, path: str | Path, *, checksums: bool = False):
         self.path = Path(path)
@@ -51,18 +55,42 @@ class ArchiveReader:
             raise CorruptArchiveError(f"{self.path} is a file, not an archive directory.")
         self.manifest = read_manifest(self.path)
         check_files(self.path, self.manifest, checksums=checksums)
+        self.seal = RowFileSeal(self.path, self.manifest)
         try:
             with self.version_files():
                 self._load()
-        except (OSError, pa.ArrowException, KeyError) as exc:
+                check_tables(self)
+        except (CorruptArchiveError, ArchiveNotFoundError):
+            raise
+        except (OSError, pa.ArrowException, KeyError, TypeError, ValueError, IndexError) as exc:
             raise CorruptArchiveError(f"{self.path} could not be read ({exc}); the archive is damaged.") from None
+
+    @property
+    def version(self) -> str:
+        """This archive version's identity: the SHA-256 of its manifest (an append or an
+        overwrite gives a new one). Caches of answers are keyed by it."""
+        return self.manifest[DIGEST_FIELD]
+
+    def verify_row_files(self) -> None:
+        """Check the whole SHA-256 of every file SQL reads: row files and small tables (cached
+        until a file's size, mtime or inode changes). For readers that do not check Parquet
+        page checksums, such as DuckDB."""
+        self.seal.check()
+
+    def row_file(self, name: str) -> pq.ParquetFile:
+        """A row file of this archive, opened with Parquet page checksum verification and the
+        footer that was checked on open."""
+        return open_row_file(self.path / name, self._metadata[name])
+
+    def row_file_schema(self, name: str) -> pa.Schema:
+        return self._row_schemas[name]
 
     def _load(self) -> None:
         m = self.manifest
         self.numeric_columns: list[str] = list(m["numeric_columns"])
         self.column_index = {n: j for j, n in enumerate(self.numeric_columns)}
         self.rows_count = int(m["shape"][0])
-        cols = pq.read_table(self.path / layout.table_file(m, layout.COLUMNS))
+        cols = read_small_table(self.path, m, layout.table_file(m, layout.COLUMNS))
         self.columns_table = cols
         self.offset = cols.column("offset").to_numpy()
         self.weights = np.array(cols.column("weights").to_pylist(), dtype=np.float64).T.reshape(
@@ -83,7 +111,7 @@ class ArchiveReader:
                               if "residual_step" in cols.column_names else np.full(width, np.nan))
         types = {f["name"]: f["type"] for f in m["schema"]}
         self.is_integer = np.array([types[n].startswith(("int", "uint")) for n in self.numeric_columns])
-        anchors = pq.read_table(self.path / layout.table_file(m, layout.ANCHORS))
+        anchors = read_small_table(self.path, m, layout.table_file(m, layout.ANCHORS))
         self.anchor_positions = anchors.column(layout.ROW_ID).to_numpy()
         self.anchor_lookup = {int(p): i for i, p in enumerate(self.anchor_positions)}
         self.anchor_values = np.column_stack(
@@ -92,18 +120,23 @@ class ArchiveReader:
         self.anchor_nulls = np.column_stack(
             [anchors.column(n).is_null().to_numpy(zero_copy_only=False) for n in self.numeric_columns]
         ) if self.anchor_positions.size else np.zeros((0, len(self.numeric_columns)), bool)
-        cells = pq.read_table(self.path / layout.table_file(m, layout.CELLS))
+        cells = read_small_table(self.path, m, layout.table_file(m, layout.CELLS))
         self.cell_rows = cells.column(layout.ROW_ID).to_numpy()
         self.cell_cols = cells.column(layout.COLUMN_ID).to_numpy()
         self.cell_nulls = cells.column("value").is_null().to_numpy(zero_copy_only=False)
         self.cell_values = cells.column("value").fill_null(np.nan).to_numpy()
         self.parts = []
+        self._row_schemas: dict[str, pa.Schema] = {}
+        self._metadata: dict[str, pq.FileMetaData] = {}
+        entries = {f["name"]: f for f in m["files"]}
         for part in m["row_parts"]:
-            meta = pq.ParquetFile(self.path / part["name"]).metadata
+            meta = verified_metadata(self.path / part["name"], entries[part["name"]])
+            self._metadata[part["name"]] = meta
+            self._row_schemas[part["name"]] = meta.schema.to_arrow_schema()
             starts = np.cumsum([0] + [meta.row_group(g).num_rows for g in range(meta.num_row_groups)])
             self.parts.append((part["first_row"], part["rows"], part["name"], starts))
         if self.parts:
-            schema = pq.read_schema(self.path / self.parts[0][2])
+            schema = self.row_file_schema(self.parts[0][2])
             signed = [f.name for f in schema if f.name.startswith(layout.CODE_PATTERN.format(""))
                       and not pa.types.is_unsigned_integer(f.type)]
             if signed:
@@ -192,8 +225,7 @@ class ArchiveReader:
         wanted = list(key_values) if isinstance(key_values, (list, tuple, np.ndarray)) else [key_values]
         found: dict[Any, int] = {}
         for first, _, name, _ in self.parts:
-            with self.version_files():
-                table = pq.read_table(self.path / name, columns=[layout.ROW_ID, self.key])
+            table = self._read(name, lambda f: f.read(columns=[layout.ROW_ID, self.key]))
             keys = table.column(self.key)
             mask = pc.is_in(keys, value_set=pa.array(wanted, type=keys.type))
             hits = table.filter(mask)
@@ -210,8 +242,7 @@ class ArchiveReader:
     def read_rows(self, positions: np.ndarray, columns: list[str] | None = None) -> pa.Table:
         """Row-file columns (default: all) for ``positions``, in the order given."""
         if positions.size == 0:
-            with self.version_files():
-                schema = pq.read_schema(self.path / self.parts[0][2])
+            schema = self.row_file_schema(self.parts[0][2])
             names = columns or schema.names
             return pa.table({n: pa.array([], schema.field(n).type) for n in names})
         order = np.argsort(positions, kind="stable")
@@ -223,8 +254,7 @@ class ArchiveReader:
                 continue
             local = sorted_pos[lo:hi] - first
             groups = np.unique(np.searchsorted(starts, local, side="right") - 1)
-            with self.version_files():
-                table = pq.ParquetFile(self.path / name).read_row_groups(groups.tolist(), columns=columns)
+            table = self._read(name, lambda f: f.read_row_groups(groups.tolist(), columns=columns))
             group_first = starts[groups]
             offsets = np.cumsum([0] + [starts[g + 1] - starts[g] for g in groups])
             index_in_read = offsets[np.searchsorted(group_first, local, side="right") - 1] + (
@@ -234,6 +264,17 @@ class ArchiveReader:
         inverse = np.empty_like(order)
         inverse[order] = np.arange(order.size)
         return table.take(pa.array(inverse))
+
+    def _read(self, name: str, how) -> pa.Table:
+        """``how(row file)`` with a damaged page (checksum, encoding) refused as corruption and
+        a file of this version that is gone refused as ArchiveNotFoundError."""
+        with self.version_files():
+            try:
+                return how(self.row_file(name))
+            except FileNotFoundError:
+                raise
+            except (OSError, pa.ArrowException) as exc:
+                raise damaged(self.path / name, f"could not be read ({exc})") from None
 
     def basis_block(self, rows: pa.Table) -> np.ndarray:
         """Filled basis values (b, c) as float64 from a row-file table."""

@@ -1,0 +1,413 @@
+"""Integrity on every read path (issue 12, items 2-4): damaged or edited archives are refused.
+
+Each failure mode of the issue is reproduced: a flipped bit in every archive file (Python and
+SQL), ``columns.parquet`` swapped between two archives of one shape, one-word manifest edits
+that keep valid JSON, crafted manifests that name files outside the archive, malformed fields,
+glob characters in the archive path, and an append seen by the next SQL query. The reference
+for "served correctly" is the pristine archive's own rebuild (numpy equality), and for the
+digests hashlib.sha256 (FIPS 180-4).
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import shutil
+from pathlib import Path
+
+import duckdb
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet  # noqa: F401 - pa.parquet
+import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+
+import rankfold
+from rankfold.cli import main
+from rankfold.udfs.sql import register
+from rankfold.udfs.store.manifest import manifest_digest, read_manifest, write_manifest
+
+ROWS, COLS = 400, 6
+
+
+def _table(seed: int) -> pa.Table:
+    """Invented rank-2 data plus small noise (seed), an id key and a text column; a
+    NaN in every column (one row each), so that the archive stores exact cells."""
+    rng = np.random.default_rng(seed)
+    x = rng.standard_normal((ROWS, 2)) @ rng.standard_normal((2, COLS)) + 1e-3 * rng.standard_normal((ROWS, COLS))
+    x[7 + np.arange(COLS), np.arange(COLS)] = np.nan
+    cols = {"id": np.arange(ROWS, dtype=np.int64), "site": np.where(np.arange(ROWS) % 3, "east", "west")}
+    cols.update({f"c{j}": x[:, j] for j in range(COLS)})
+    return pa.table(cols)
+
+
+def _compress(path: Path, seed: int = 0) -> Path:
+    # link="optimal" keeps anchor rows, so every kind of file is present
+    path.parent.mkdir(parents=True, exist_ok=True)
+    rankfold.compress(_table(seed), path, rank=2, key="id", link="optimal", seed=0)
+    return path
+
+
+@pytest.fixture(scope="module")
+def pristine(tmp_path_factory) -> Path:
+    return _compress(tmp_path_factory.mktemp("integrity") / "base.rfa")
+
+
+@pytest.fixture
+def archive(pristine, tmp_path) -> Path:
+    copy = tmp_path / "copy.rfa"
+    shutil.copytree(pristine, copy)
+    return copy
+
+
+def _served(path: Path):
+    arch = rankfold.open(path)
+    values, bounds = arch.to_numpy(), arch.cell_bounds()
+    return values, bounds, arch.aggregate(["c0", "c4"], "sum").to_pylist()
+
+
+def _flip(path: Path, position: int, bit: int = 0) -> None:
+    data = bytearray(path.read_bytes())
+    data[position] ^= 1 << bit
+    path.write_bytes(bytes(data))
+
+
+def _con() -> duckdb.DuckDBPyConnection:
+    con = duckdb.connect()
+    register(con)
+    return con
+
+
+def _sql_served(con, path: Path):
+    p = str(path)
+    scan = con.execute("SELECT * FROM rankfold_scan(?, bounds := 'cell') ORDER BY _rf_row", [p]).fetchall()
+    cells = con.execute("SELECT rankfold_cell_with_bound(?, r, 'c2') FROM range(?) t(r)", [p, ROWS]).fetchall()
+    agg = con.execute("SELECT * FROM rankfold_aggregate(?, ['c0', 'c4'], func := 'sum')", [p]).fetchall()
+    return scan, cells, agg
+
+
+def _same(a, b) -> bool:
+    """Equal, NaN equal to NaN (numpy.testing.assert_equal semantics)."""
+    try:
+        np.testing.assert_equal(a, b)
+    except AssertionError:
+        return False
+    return True
+
+
+def test_the_fixture_holds_every_kind_of_file(pristine):
+    names = {f["name"] for f in read_manifest(pristine)["files"]}
+    assert names == {"rows-00000.parquet", "columns.parquet", "anchors.parquet", "cells.parquet",
+                     "blocks.parquet"}
+    arch = rankfold.open(pristine)
+    assert arch._reader.anchor_positions.size > 0 and arch._reader.cell_rows.size > 0
+
+
+# -- a flipped bit in any file ----------------------------------------------------------------
+@pytest.mark.parametrize("name", ["rows-00000.parquet", "columns.parquet", "anchors.parquet",
+                                  "cells.parquet", "blocks.parquet"])
+def test_a_flipped_bit_in_any_file_is_refused_or_harmless_in_python(pristine, archive, name):
+    truth = _served(pristine)
+    size = (archive / name).stat().st_size
+    refused = 0
+    positions = np.unique(np.linspace(4, size - 9, 24).astype(int))
+    for k, pos in enumerate(positions):
+        _flip(archive / name, int(pos), k % 8)
+        try:
+            got = _served(archive)
+        except rankfold.CorruptArchiveError:
+            refused += 1
+        else:
+            # a flip the checks let through must not change a single value or bound
+            assert _same(got[0], truth[0]) and _same(got[1], truth[1]) and _same(got[2], truth[2]), (name, pos)
+        _flip(archive / name, int(pos), k % 8)
+    # small tables are hashed whole: every flip is refused; row files: data pages carry CRCs
+    assert refused == len(positions) if name != "rows-00000.parquet" else refused >= len(positions) * 3 // 4
+
+
+@pytest.mark.parametrize("name", ["rows-00000.parquet", "columns.parquet", "anchors.parquet",
+                                  "cells.parquet", "blocks.parquet"])
+def test_a_flipped_bit_in_any_file_is_refused_in_sql(pristine, archive, name):
+    con = _con()
+    truth = _sql_served(con, pristine)
+    size = (archive / name).stat().st_size
+    _flip(archive / name, size // 2, 3)  # the middle: data pages (footers are checked on open)
+    try:
+        got = _sql_served(con, archive)
+    except duckdb.Error as exc:
+        assert "CorruptArchiveError" in str(exc)
+    else:
+        assert got == truth, name
+
+
+def test_a_flipped_data_page_bit_is_refused_by_every_sql_function(archive):
+    con = _con()
+    p = str(archive)
+    _flip(archive / "rows-00000.parquet", (archive / "rows-00000.parquet").stat().st_size // 3, 5)
+    queries = ["SELECT count(*) FROM rankfold_scan(?)",
+               "SELECT * FROM rankfold_row_errors(?)",
+               "SELECT * FROM rankfold_aggregate(?, ['c1'], group_by := 'site')",
+               "SELECT rankfold_cell(?, 11, 'c1')"]
+    for sql in queries:
+        with pytest.raises(duckdb.Error, match="CorruptArchiveError"):
+            con.execute(sql, [p]).fetchall()
+
+
+def test_a_row_file_corrupted_after_open_is_refused_at_read(archive):
+    arch = rankfold.open(archive)
+    name = "rows-00000.parquet"
+    _flip(archive / name, (archive / name).stat().st_size // 2, 1)
+    with pytest.raises(rankfold.CorruptArchiveError, match="rows-00000.parquet could not be read"):
+        arch.to_numpy()
+
+
+# -- columns.parquet swapped between two archives of one shape -------------------------------
+def _same_size_parquet(data: bytes, size: int) -> bytes:
+    """``data`` (a Parquet file) grown to ``size`` bytes and still valid: zero bytes inserted
+    just before the footer, which addresses pages by absolute offsets (Parquet format spec)."""
+    footer = int.from_bytes(data[-8:-4], "little") + 8
+    assert size >= len(data)
+    return data[:-footer] + bytes(size - len(data)) + data[-footer:]
+
+
+def test_columns_swapped_between_two_same_shape_archives_is_refused(pristine, tmp_path):
+    other = _compress(tmp_path / "other.rfa", seed=1)
+    victim, donor = tmp_path / "victim.rfa", other
+    shutil.copytree(pristine, victim)
+    mine, theirs = (victim / "columns.parquet").read_bytes(), (donor / "columns.parquet").read_bytes()
+    if len(theirs) > len(mine):  # swap roles so that the file moved in is the smaller one
+        shutil.rmtree(victim)
+        shutil.copytree(other, victim)
+        mine, theirs = theirs, mine
+    swapped = _same_size_parquet(theirs, len(mine))
+    assert len(swapped) == len(mine) and swapped != mine
+    assert pa.parquet.read_table(pa.BufferReader(swapped)).num_rows == COLS  # a valid table
+    (victim / "columns.parquet").write_bytes(swapped)  # the manifest is untouched
+    with pytest.raises(rankfold.CorruptArchiveError, match="columns.parquet does not match its SHA-256"):
+        rankfold.open(victim)
+    with pytest.raises(duckdb.Error, match="CorruptArchiveError"):
+        _con().execute("SELECT count(*) FROM rankfold_scan(?)", [str(victim)]).fetchall()
+
+
+# -- one-word edits of the manifest -----------------------------------------------------------
+def _edit_text(path: Path, old: str, new: str, count: int = 1) -> None:
+    text = (path / "manifest.json").read_text()
+    assert text.count(old) >= count, old
+    (path / "manifest.json").write_text(text.replace(old, new, count))
+
+
+def _swap_names(path: Path) -> None:
+    text = (path / "manifest.json").read_text()
+    (path / "manifest.json").write_text(text.replace('"c1"', '"@@"').replace('"c2"', '"c1"').replace('"@@"', '"c2"'))
+
+
+EDITS = {
+    "column type": lambda p: _edit_text(p, '"type": "double"', '"type": "float"'),
+    "two names swapped": _swap_names,
+    "shape": lambda p: _edit_text(p, f"  {ROWS},\n", f"  {ROWS - 1},\n"),
+}
+
+
+@pytest.mark.parametrize("edit", list(EDITS))
+def test_a_one_word_manifest_edit_is_refused_everywhere(archive, capsys, edit):
+    before = json.loads((archive / "manifest.json").read_text())
+    EDITS[edit](archive)
+    after = json.loads((archive / "manifest.json").read_text())  # still valid JSON
+    assert after != before
+    with pytest.raises(rankfold.CorruptArchiveError, match="does not match its own manifest_sha256"):
+        rankfold.open(archive)
+    with pytest.raises(duckdb.Error, match="CorruptArchiveError"):
+        _con().execute("SELECT count(*) FROM rankfold_scan(?)", [str(archive)]).fetchall()
+    code = main(["verify", str(archive)])  # without --source
+    err = capsys.readouterr().err
+    assert code == 1 and err.count("\n") == 1 and "manifest_sha256" in err
+
+
+@pytest.mark.parametrize("edit", list(EDITS))
+def test_a_resealed_manifest_edit_is_caught_by_the_files_own_schemas(archive, edit):
+    # someone who edits the manifest and recomputes its digest: the cross-checks against the
+    # columns table and the row files' footers still disagree
+    EDITS[edit](archive)
+    manifest = json.loads((archive / "manifest.json").read_text())
+    write_manifest(archive, manifest)
+    with pytest.raises(rankfold.CorruptArchiveError,
+                       match="types than the manifest|names the numeric columns differently|where the shape says 399"):
+        rankfold.open(archive)
+
+
+def test_the_digest_is_sha256_of_the_canonical_manifest(pristine):
+    manifest = json.loads((pristine / "manifest.json").read_text())
+    body = {k: v for k, v in manifest.items() if k != "manifest_sha256"}
+    canonical = json.dumps(body, sort_keys=True, separators=(",", ":"), ensure_ascii=True)
+    assert manifest["manifest_sha256"] == hashlib.sha256(canonical.encode()).hexdigest()  # hashlib
+    assert manifest_digest(manifest) == manifest["manifest_sha256"]
+    assert (pristine / "manifest.json").read_text().startswith('{\n "manifest_sha256": ')
+
+
+# -- crafted manifests that reach outside the archive ----------------------------------------
+def _crafted(folder: Path, victim: Path, rename) -> Path:
+    """A folder holding only a sealed manifest whose file names point at ``victim``'s files."""
+    folder.mkdir()
+    manifest = read_manifest(victim)
+    for f in manifest["files"]:
+        f["name"] = rename(f["name"])
+    for part in manifest["row_parts"]:
+        part["name"] = rename(part["name"])
+    manifest["tables"] = {t: rename(t) for t in ("columns.parquet", "anchors.parquet", "cells.parquet",
+                                                 "blocks.parquet")}
+    write_manifest(folder, manifest)
+    return folder
+
+
+@pytest.mark.parametrize("how", ["relative", "absolute"])
+def test_a_manifest_naming_files_outside_the_archive_is_refused(pristine, tmp_path, capsys, how):
+    rename = (lambda n: f"../{pristine.name}/{n}") if how == "relative" else (lambda n: str(pristine / n))
+    folder = _crafted(tmp_path / pristine.name.replace("base", "evil"), pristine, rename)
+    shutil.copytree(pristine, tmp_path / pristine.name)  # the victim beside it
+    with pytest.raises(rankfold.CorruptArchiveError, match="cannot hold a path separator"):
+        rankfold.open(folder)
+    with pytest.raises(duckdb.Error, match="CorruptArchiveError"):
+        _con().execute("SELECT count(*) FROM rankfold_scan(?)", [str(folder)]).fetchall()
+    code = main(["verify", str(folder)])
+    err = capsys.readouterr().err
+    assert code == 1 and err.count("\n") == 1 and "cannot hold a path separator" in err
+
+
+def test_a_symlink_leaving_the_archive_is_refused(pristine, tmp_path):
+    folder = tmp_path / "linked.rfa"
+    shutil.copytree(pristine, folder)
+    other = _compress(tmp_path / "other.rfa", seed=1)
+    (folder / "cells.parquet").unlink()
+    (folder / "cells.parquet").symlink_to(other / "cells.parquet")
+    with pytest.raises(rankfold.CorruptArchiveError, match="symbolic link that leaves the archive"):
+        rankfold.open(folder)
+
+
+# -- malformed fields --------------------------------------------------------------------------
+MALFORMED = {
+    "shape null": ("shape", None, "manifest.shape is null"),
+    "shape negative": ("shape", [-5, COLS], r"manifest.shape\[0\] is -5, outside"),
+    "shape 10^12": ("shape", [10**12, COLS], "hold 400 rows where the shape says 1000000000000"),
+    "numeric_columns a number": ("numeric_columns", 5, "manifest.numeric_columns is a number"),
+    "files empty": ("files", [], "manifest.files has 0 entries"),
+    "row_parts empty": ("row_parts", [], "manifest.row_parts has 0 entries"),
+    "rows of a part a string": ("row_parts", [{"name": "rows-00000.parquet", "first_row": 0, "rows": "400"}],
+                                r"manifest.row_parts\[0\].rows is a string"),
+    "fill not finite": ("basis", [{"name": "c0", "fill": "nan"}], r"manifest.basis\[0\].fill is a string"),
+    "digest missing": ("manifest_sha256", "absent", "has no manifest_sha256"),
+}
+
+
+@pytest.mark.parametrize("case", list(MALFORMED))
+def test_a_malformed_field_is_one_clear_error_in_python_sql_and_cli(archive, capsys, case):
+    field, value, message = MALFORMED[case]
+    manifest = read_manifest(archive)
+    if value == "absent":
+        del manifest[field]
+        (archive / "manifest.json").write_text(json.dumps(manifest))
+    else:
+        manifest[field] = value
+        write_manifest(archive, manifest)  # sealed: only the schema can refuse it
+    with pytest.raises(rankfold.CorruptArchiveError, match=message):
+        rankfold.open(archive)
+    with pytest.raises(duckdb.Error, match="CorruptArchiveError"):
+        _con().execute("SELECT rankfold_cell(?, 0, 'c0')", [str(archive)]).fetchall()
+    for command in (["inspect", str(archive)], ["verify", str(archive)],
+                    ["rebuild", str(archive), "--rows", "0:2"]):
+        code = main(command)
+        err = capsys.readouterr().err
+        assert code == 1 and err.startswith("rankfold: error: ") and err.count("\n") == 1, (command, err)
+        assert "Traceback" not in err
+
+
+# -- SQL reads exactly this archive's files ---------------------------------------------------
+@pytest.mark.parametrize("folder", ["a[ab]", "a*", "a?"])
+def test_glob_characters_in_the_archive_path_read_only_that_archive(tmp_path, folder):
+    target = _compress(tmp_path / folder / "t.rfa", seed=0)
+    for sibling, seed in (("aa", 1), ("ab", 2), ("a-x", 3)):  # would match the patterns above
+        _compress(tmp_path / sibling / "t.rfa", seed=seed)
+    con = _con()
+    scan = con.execute("SELECT c1, _rf_row FROM rankfold_scan(?) ORDER BY _rf_row", [str(target)]).fetchall()
+    assert len(scan) == ROWS
+    expected = rankfold.open(target).to_numpy(columns=["c1"])[:, 0]
+    np.testing.assert_allclose([r[0] for r in scan], expected, rtol=0, atol=1e-12)
+    errors = con.execute("SELECT count(*) FROM rankfold_row_errors(?)", [str(target)]).fetchone()
+    assert errors == (ROWS,)
+    agg = con.execute("SELECT * FROM rankfold_aggregate(?, ['c1'], func := 'avg', group_by := 'site')",
+                      [str(target)]).fetchall()
+    python = rankfold.open(target).aggregate(["c1"], "avg", by="site").to_pylist()
+    assert _same(agg, [tuple(row.values()) for row in python])
+
+
+def test_an_append_is_seen_by_the_next_query_in_the_same_process(tmp_path):
+    path = tmp_path / "grow.rfa"
+    rankfold.compress(_table(0), path, rank=2, key="id", seed=0)
+    con = _con()
+    p = str(path)
+    assert con.execute("SELECT count(*) FROM rankfold_scan(?)", [p]).fetchone() == (ROWS,)
+    sums = "SELECT * FROM rankfold_aggregate(?, ['c0'], func := 'count')"
+    first = con.execute(sums, [p]).fetchall()
+    more = _table(5)
+    more = more.set_column(0, "id", pa.array(np.arange(ROWS, 2 * ROWS, dtype=np.int64)))
+    rankfold.open(path).append(more)
+    assert con.execute("SELECT count(*) FROM rankfold_scan(?)", [p]).fetchone() == (2 * ROWS,)
+    second = con.execute(sums, [p]).fetchall()
+    assert first != second
+    assert con.execute("SELECT count(*) FROM rankfold_row_errors(?)", [p]).fetchone() == (2 * ROWS,)
+    assert con.execute("SELECT rankfold_cell(?, ?, 'c0') IS NOT NULL", [p, 2 * ROWS - 1]).fetchone() == (True,)
+
+
+# -- any sealed manifest: refused in one line or served, never a raw exception -----------------
+_JSON = st.recursive(st.none() | st.booleans() | st.integers(-2**70, 2**70) | st.floats(allow_nan=False, allow_infinity=False)
+                     | st.text(max_size=12),
+                     lambda inner: st.lists(inner, max_size=4) | st.dictionaries(st.text(max_size=6), inner, max_size=4),
+                     max_leaves=8)
+
+
+def _paths(value, prefix=()):
+    """Every path to a value inside a parsed manifest (keys and list positions)."""
+    yield prefix
+    if isinstance(value, dict):
+        for k, v in value.items():
+            yield from _paths(v, prefix + (k,))
+    elif isinstance(value, list):
+        for i, v in enumerate(value[:3]):
+            yield from _paths(v, prefix + (i,))
+
+
+@settings(max_examples=40, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(data=st.data())
+def test_any_sealed_manifest_edit_is_refused_cleanly_or_served(archive, data):
+    # property (common practice, fuzzing): replace one value anywhere in the manifest by any
+    # JSON value, seal it with a correct digest; open and a full rebuild either succeed or
+    # raise CorruptArchiveError, never TypeError/IndexError/KeyError/MemoryError
+    original = read_manifest(archive)
+    paths = [p for p in _paths(original) if p and p[0] != "manifest_sha256"]
+    where = data.draw(st.sampled_from(paths))
+    value = data.draw(_JSON)
+    manifest = json.loads(json.dumps(original))
+    node = manifest
+    for step in where[:-1]:
+        node = node[step]
+    node[where[-1]] = value
+    write_manifest(archive, manifest)
+    try:
+        arch = rankfold.open(archive)
+        arch.to_numpy()
+        arch.cell_bounds(rows=slice(0, 5))
+    except rankfold.CorruptArchiveError:
+        pass
+    finally:
+        write_manifest(archive, original)
+
+
+def test_a_file_damaged_between_two_queries_is_refused_by_the_second(archive):
+    con = _con()
+    p = str(archive)
+    query = "SELECT count(*) FROM rankfold_scan(?)"
+    assert con.execute(query, [p]).fetchone() == (ROWS,)
+    name = archive / "rows-00000.parquet"
+    _flip(name, name.stat().st_size // 2, 2)  # same size, new mtime: hashed again
+    with pytest.raises(duckdb.Error, match="CorruptArchiveError"):
+        con.execute(query, [p]).fetchone()

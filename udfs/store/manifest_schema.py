@@ -1,0 +1,318 @@
+"""The manifest's declared schema, and the checks that need only the manifest itself.
+
+``MANIFEST_SCHEMA`` declares every field a reader uses: its JSON type, its range, and for
+lists their items. ``validate(manifest, path)`` checks a parsed manifest against it, then the
+rules that tie fields together (the numeric columns are the schema's numeric columns, the row
+parts cover rows 0..m-1 without gap, every file the reader opens is listed with its SHA-256).
+Any failure is one :class:`CorruptArchiveError` line naming the field, what it holds and what
+was expected, so no malformed value reaches numpy or pyarrow as a raw TypeError, IndexError or
+MemoryError.
+
+File names must be plain names inside the archive directory: no separator, no ``..``, no
+absolute path, no drive, no NUL (a crafted manifest must not read another archive's files).
+That symlinks stay inside the directory is checked where the files are opened
+(``integrity.check_listed_files``), since it needs the file system.
+
+Older format versions are handled in one place only: :func:`older_format_rules`.
+"""
+
+from __future__ import annotations
+
+import math
+import re
+from dataclasses import dataclass, field
+from typing import Any
+
+from ..errors import CorruptArchiveError
+from . import layout
+
+__all__ = ["MANIFEST_SCHEMA", "DIGEST_FIELD", "MAX_ROWS", "MAX_COLUMNS", "validate",
+           "check_plain_name", "older_format_rules", "files_used"]
+
+DIGEST_FIELD = "manifest_sha256"
+# Row positions must be exact in float64 and in JSON readers of every language (2^53 - 1,
+# common practice for JSON integers); widths beyond a million columns are not a table we write.
+MAX_ROWS = 2**53 - 1
+MAX_COLUMNS = 1_000_000
+MAX_FILE_BYTES = 2**62
+_HEX64 = re.compile(r"[0-9a-f]{64}")
+_NAME_LIMIT = 255  # longest file name on common file systems (common practice)
+
+
+# -- the declaration language: a few node types, each checks one JSON value --------------------
+class _Bad(Exception):
+    """A value that breaks the schema: ``where`` (a JSON path) and ``what`` was wrong."""
+
+    def __init__(self, where: str, what: str):
+        super().__init__(where, what)
+        self.where, self.what = where, what
+
+
+def _show(value: Any) -> str:
+    text = repr(value)
+    return text if len(text) <= 60 else text[:57] + "..."
+
+
+def _kind(value: Any) -> str:
+    return {dict: "an object", list: "a list", str: "a string", bool: "a boolean",
+            type(None): "null"}.get(type(value), "a number")
+
+
+@dataclass(frozen=True)
+class Int:
+    low: int = 0
+    high: int = MAX_ROWS
+
+    def check(self, value: Any, where: str) -> None:
+        if isinstance(value, bool) or not isinstance(value, int):
+            raise _Bad(where, f"is {_kind(value)} ({_show(value)}), not an integer")
+        if not self.low <= value <= self.high:
+            raise _Bad(where, f"is {value}, outside {self.low}..{self.high}")
+
+
+@dataclass(frozen=True)
+class Num:
+    positive: bool = False
+
+    def check(self, value: Any, where: str) -> None:
+        if isinstance(value, bool) or not isinstance(value, (int, float)):
+            raise _Bad(where, f"is {_kind(value)} ({_show(value)}), not a number")
+        if not math.isfinite(value):
+            raise _Bad(where, f"is {value}, not a finite number")
+        if self.positive and not value > 0:
+            raise _Bad(where, f"is {value}, not a positive number")
+
+
+@dataclass(frozen=True)
+class Text:
+    choices: tuple[str, ...] = ()
+    pattern: str | None = None
+    max_len: int = 10_000
+
+    def check(self, value: Any, where: str) -> None:
+        if not isinstance(value, str):
+            raise _Bad(where, f"is {_kind(value)} ({_show(value)}), not a string")
+        if not value or len(value) > self.max_len:
+            raise _Bad(where, f"has {len(value)} characters (1..{self.max_len} expected)")
+        if self.choices and value not in self.choices:
+            raise _Bad(where, f"is {_show(value)}, not one of {list(self.choices)}")
+        if self.pattern and not re.fullmatch(self.pattern, value):
+            raise _Bad(where, f"is {_show(value)}, not of the form {self.pattern}")
+
+
+@dataclass(frozen=True)
+class FileName:
+    def check(self, value: Any, where: str) -> None:
+        Text(max_len=_NAME_LIMIT).check(value, where)
+        problem = check_plain_name(value)
+        if problem:
+            raise _Bad(where, f"is {_show(value)}: {problem}")
+
+
+@dataclass(frozen=True)
+class Digest:
+    def check(self, value: Any, where: str) -> None:
+        if not isinstance(value, str) or not _HEX64.fullmatch(value):
+            raise _Bad(where, f"is {_show(value)}, not a SHA-256 digest (64 lowercase hex digits)")
+
+
+@dataclass(frozen=True)
+class Nullable:
+    inner: Any
+
+    def check(self, value: Any, where: str) -> None:
+        if value is not None:
+            self.inner.check(value, where)
+
+
+@dataclass(frozen=True)
+class Anything:
+    def check(self, value: Any, where: str) -> None:
+        return None
+
+
+@dataclass(frozen=True)
+class Seq:
+    item: Any
+    min_len: int = 0
+    max_len: int = MAX_COLUMNS
+    length: int | None = None
+    unique: bool = False
+
+    def check(self, value: Any, where: str) -> None:
+        if not isinstance(value, list):
+            raise _Bad(where, f"is {_kind(value)} ({_show(value)}), not a list")
+        if self.length is not None and len(value) != self.length:
+            raise _Bad(where, f"has {len(value)} entries where {self.length} are expected")
+        if not self.min_len <= len(value) <= self.max_len:
+            raise _Bad(where, f"has {len(value)} entries ({self.min_len}..{self.max_len} expected)")
+        for i, item in enumerate(value):
+            self.item.check(item, f"{where}[{i}]")
+        if self.unique and len(set(map(str, value))) != len(value):
+            raise _Bad(where, "lists an entry twice")
+
+
+@dataclass(frozen=True)
+class Record:
+    required: dict[str, Any]
+    optional: dict[str, Any] = field(default_factory=dict)
+
+    def check(self, value: Any, where: str) -> None:
+        if not isinstance(value, dict):
+            raise _Bad(where, f"is {_kind(value)} ({_show(value)}), not an object")
+        for name, spec in self.required.items():
+            if name not in value:
+                raise _Bad(where, f"lacks the entry {name!r}")
+            spec.check(value[name], f"{where}.{name}")
+        for name, spec in self.optional.items():
+            if name in value:
+                spec.check(value[name], f"{where}.{name}")
+
+
+@dataclass(frozen=True)
+class Mapping:
+    value: Any
+
+    def check(self, value: Any, where: str) -> None:
+        if not isinstance(value, dict):
+            raise _Bad(where, f"is {_kind(value)} ({_show(value)}), not an object")
+        for name, item in value.items():
+            self.value.check(item, f"{where}.{name}")
+
+
+# -- the manifest ---------------------------------------------------------------------------
+_COLUMN = Text(max_len=10_000)
+MANIFEST_SCHEMA = Record(
+    required={
+        "format": Text(choices=(layout.FORMAT_NAME,)),
+        "format_version": Text(pattern=r"[0-9]{1,4}\.[0-9]{1,4}"),
+        "writer": Record({"name": Text(max_len=200), "version": Text(max_len=200)}),
+        "archive_id": Text(max_len=200),
+        "shape": Seq(Int(), length=2),
+        "schema": Seq(Record({"name": _COLUMN, "type": Text(max_len=2000),
+                              "role": Text(choices=("numeric", "exact"))}), min_len=1),
+        "numeric_columns": Seq(_COLUMN, min_len=1, unique=True),
+        "method": Record({"kind": Text(max_len=100), "rank": Int(0, MAX_COLUMNS)}),
+        "basis": Seq(Record({"name": _COLUMN, "fill": Num()},
+                            {"stored_as": _COLUMN, "step": Num(positive=True)})),
+        "anchors": Seq(Int(), max_len=MAX_ROWS, unique=True),
+        "row_parts": Seq(Record({"name": FileName(), "first_row": Int(), "rows": Int(1, MAX_ROWS)}),
+                         min_len=1, max_len=10_000_000),
+        "files": Seq(Record({"name": FileName(), "bytes": Int(0, MAX_FILE_BYTES), "sha256": Digest()},
+                            {"footer_sha256": Digest()}), min_len=1, max_len=10_000_000),
+        "errors": Record({}),
+        DIGEST_FIELD: Digest(),
+    },
+    optional={
+        "exact_columns": Seq(_COLUMN, unique=True),
+        "key": Nullable(_COLUMN),
+        "tables": Nullable(Mapping(FileName())),
+        "version": Int(0, MAX_ROWS),
+        "spectrum": Nullable(Seq(Num())),
+        "drift": Nullable(Record({})),
+        "transform": Anything(),
+    },
+)
+
+
+def check_plain_name(name: str) -> str | None:
+    """Why ``name`` is not a plain file name inside the archive directory (None if it is)."""
+    if name in (".", ".."):
+        return "a file name cannot be '.' or '..'"
+    if "/" in name or "\\" in name:
+        return "a file name cannot hold a path separator"
+    if "\x00" in name or ":" in name:
+        return "a file name cannot hold NUL or ':'"
+    if name == layout.MANIFEST:
+        return "the manifest cannot list itself"
+    return None
+
+
+def files_used(manifest: dict[str, Any]) -> list[str]:
+    """Every file a reader opens for this manifest: the row parts, then the small tables
+    (the blocks table only when listed: archives may go without it)."""
+    from .aggregate import BLOCKS  # noqa: PLC0415 - aggregate imports this module's users
+
+    names = [p["name"] for p in manifest["row_parts"]]
+    names += [layout.table_file(manifest, t) for t in (layout.COLUMNS, layout.ANCHORS, layout.CELLS)]
+    listed = {f["name"] for f in manifest["files"]}
+    blocks = layout.table_file(manifest, BLOCKS)
+    return names + ([blocks] if blocks in listed else [])
+
+
+def older_format_rules(manifest: dict[str, Any], path: Any) -> None:
+    """The one place that knows older format versions.
+
+    Format 1.0 archives written before manifests carried their own digest
+    (``manifest_sha256``) and the Parquet footer digests of their row files are refused:
+    without them an edited manifest cannot be told from a true one. Refuse with what to do.
+    """
+    if DIGEST_FIELD not in manifest:
+        raise CorruptArchiveError(
+            f"{path} has no {DIGEST_FIELD}: it was written by a rankfold before manifests "
+            "carried their own digest, or the entry was removed. It cannot be checked for edits; "
+            "compress the source again."
+        )
+
+
+def validate(manifest: dict[str, Any], path: Any) -> None:
+    """Check ``manifest`` (parsed JSON) against :data:`MANIFEST_SCHEMA` and the rules tying
+    its fields together; raise :class:`CorruptArchiveError` (one line) on the first problem."""
+    try:
+        MANIFEST_SCHEMA.check(manifest, "manifest")
+        _cross_check(manifest)
+    except _Bad as bad:
+        raise CorruptArchiveError(
+            f"{path}: {bad.where} {bad.what}; the archive is damaged or was edited: restore "
+            "it from a copy or compress the source again."
+        ) from None
+
+
+def _cross_check(m: dict[str, Any]) -> None:
+    rows, width = m["shape"]
+    if rows < 1:
+        raise _Bad("manifest.shape[0]", f"is {rows}; an archive holds at least one row")
+    if not 1 <= width <= MAX_COLUMNS:
+        raise _Bad("manifest.shape[1]", f"is {width}, outside 1..{MAX_COLUMNS}")
+    names = [f["name"] for f in m["schema"]]
+    if len(set(names)) != len(names):
+        raise _Bad("manifest.schema", "names a column twice")
+    numeric = [f["name"] for f in m["schema"] if f["role"] == "numeric"]
+    if m["numeric_columns"] != numeric:
+        raise _Bad("manifest.numeric_columns", "differs from the schema's numeric columns")
+    if len(numeric) != width:
+        raise _Bad("manifest.shape[1]", f"is {width} where the schema has {len(numeric)} numeric columns")
+    exact = {f["name"] for f in m["schema"] if f["role"] == "exact"}
+    if "exact_columns" in m and set(m["exact_columns"]) != exact:
+        raise _Bad("manifest.exact_columns", "differs from the schema's exact columns")
+    if m.get("key") is not None and m["key"] not in exact:
+        raise _Bad("manifest.key", f"is {_show(m['key'])}, not one of the exact columns")
+    basis = [b["name"] for b in m["basis"]]
+    scores = {n for n in basis if n.startswith(layout.RESERVED_PREFIX)}  # SVD scores
+    if len(set(basis)) != len(basis) or not set(basis) - scores <= set(numeric):
+        raise _Bad("manifest.basis", "names a column twice or one that is not numeric")
+    stored = [b.get("stored_as", b["name"]) for b in m["basis"]]
+    if len(set(stored)) != len(stored) or set(stored) & exact:
+        raise _Bad("manifest.basis", "stores two entries, or an exact column, in one row-file column")
+    if any(a >= rows for a in m["anchors"]):
+        raise _Bad("manifest.anchors", f"holds a row position beyond the {rows} rows")
+    expected = 0
+    for k, part in enumerate(m["row_parts"]):
+        if part["first_row"] != expected:
+            raise _Bad(f"manifest.row_parts[{k}].first_row",
+                       f"is {part['first_row']} where {expected} follows the previous parts")
+        expected += part["rows"]
+    if expected != rows:
+        raise _Bad("manifest.row_parts", f"hold {expected} rows where the shape says {rows}")
+    listed = [f["name"] for f in m["files"]]
+    if len(set(listed)) != len(listed):
+        raise _Bad("manifest.files", "lists a file twice")
+    for name in files_used(m):
+        if check_plain_name(name):
+            raise _Bad("manifest.tables", f"names {_show(name)}: {check_plain_name(name)}")
+        if name not in listed:
+            raise _Bad("manifest.files", f"does not list {name}, which the archive uses")
+    by_name = {f["name"]: f for f in m["files"]}
+    for part in m["row_parts"]:
+        if "footer_sha256" not in by_name[part["name"]]:
+            raise _Bad("manifest.files", f"gives no footer_sha256 for the row file {part['name']}")
