@@ -157,6 +157,8 @@ def open_row_file(path: Path, metadata: pq.FileMetaData | None = None) -> pq.Par
     from :func:`verified_metadata` when given, instead of its footer as it is now)."""
     try:
         return pq.ParquetFile(path, metadata=metadata, page_checksum_verification=PAGE_CHECKSUMS)
+    except FileNotFoundError:
+        raise  # a file of the version that is gone: the reader says so (ArchiveNotFoundError)
     except (OSError, pa.ArrowException) as exc:
         raise damaged(path, f"is not readable Parquet ({exc})") from None
 

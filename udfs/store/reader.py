@@ -254,7 +254,8 @@ class ArchiveReader:
                 continue
             local = sorted_pos[lo:hi] - first
             groups = np.unique(np.searchsorted(starts, local, side="right") - 1)
-            table = self._read(name, lambda f: f.read_row_groups(groups.tolist(), columns=columns))
+            wanted = groups.tolist()
+            table = self._read(name, lambda f, wanted=wanted: f.read_row_groups(wanted, columns=columns))
             group_first = starts[groups]
             offsets = np.cumsum([0] + [starts[g + 1] - starts[g] for g in groups])
             index_in_read = offsets[np.searchsorted(group_first, local, side="right") - 1] + (
