@@ -114,8 +114,8 @@ def test_empty_selection_gives_null_and_zero_count(archive):
     (dict(columns=["nope"]), UnknownColumnError, "no numeric column 'nope'"),
     (dict(columns=["x1"], func="median"), InvalidInputError, "func must be one of"),
     (dict(columns=["x1"], by="x2"), UnknownColumnError, "no key (exact) column 'x2'"),
-    (dict(columns=["x1"], where="x2 > 0"), InvalidInputError, "not a predicate on the key columns"),
-    (dict(columns=["x1"], where="id > 0; DROP TABLE t"), InvalidInputError, "without ';'"),
+    (dict(columns=["x1"], where="x2 > 0"), InvalidInputError, "is not one of the columns it may use"),
+    (dict(columns=["x1"], where="id > 0; DROP TABLE t"), InvalidInputError, "more than one statement"),
     (dict(columns=["x1"], rows=[1, 2]), InvalidInputError, "rows must be a slice"),
     (dict(columns=None), InvalidInputError, "needs the numeric columns"),
 ])

@@ -34,8 +34,9 @@ import pyarrow.parquet as pq
 from ..errors import InvalidInputError
 from ..store import aggregate as agg
 from ..store import arithmetic, layout
-from ..store.aggregate import basis_sql, quote_ident, rows_source_sql, sql_literal
+from ..store.aggregate import basis_sql, rows_source_sql
 from ..store.reader import ArchiveReader
+from ..store.sql_text import quote_identifier, sql_literal
 
 __all__ = ["scan_sql", "table_sql", "column_errors_sql", "row_errors_sql", "ResultCache"]
 
@@ -69,7 +70,7 @@ def scan_sql(reader: ArchiveReader, columns: Any = None, bounds: str = "row",
     col_idx = np.array([reader.column_index[n] for n in names], np.int64)
     is_basis = reader.is_basis[col_idx] if col_idx.size else np.zeros(0, bool)
     derived = [s for s in range(len(names)) if not is_basis[s]]
-    inner = [f"r.{layout.ROW_ID}"] + [f"r.{quote_ident(n)}" for n in exact_cols]
+    inner = [f"r.{layout.ROW_ID}"] + [f"r.{quote_identifier(n)}" for n in exact_cols]
     if derived and c:
         fs = [basis_sql(reader, t) for t in range(c)]
         inner.append(f"[{', '.join(fs)}]::DOUBLE[{c}] AS __f")
@@ -77,14 +78,14 @@ def scan_sql(reader: ArchiveReader, columns: Any = None, bounds: str = "row",
     inner.append(f"r.{layout.ROW_ERR_MAX} AS __rowmax")
     for s in range(len(names)):
         if is_basis[s]:
-            inner.append(f"r.{quote_ident(names[s])} AS __b{s}")
+            inner.append(f"r.{quote_identifier(names[s])} AS __b{s}")
         elif np.isfinite(reader.residual_step[col_idx[s]]):
-            inner.append(f"{layout.code_sql('r.' + quote_ident(layout.CODE_PATTERN.format(int(col_idx[s]))))} AS __q{s}")
+            inner.append(f"{layout.code_sql('r.' + quote_identifier(layout.CODE_PATTERN.format(int(col_idx[s]))))} AS __q{s}")
     joins = ""
     use_anchors = bool(reader.anchor_positions.size) and bool(derived)
     if use_anchors:
         anchor = sql_literal(str((reader.path / layout.table_file(reader.manifest, layout.ANCHORS)).resolve()))
-        picked = ", ".join(f"{quote_ident(names[s])} AS __av{s}" for s in derived)
+        picked = ", ".join(f"{quote_identifier(names[s])} AS __av{s}" for s in derived)
         inner.append("a.__anchor")
         inner += [f"a.__av{s}" for s in derived]
         joins += (f" LEFT JOIN (SELECT {layout.ROW_ID}, true AS __anchor, {picked} FROM "
@@ -102,14 +103,14 @@ def scan_sql(reader: ArchiveReader, columns: Any = None, bounds: str = "row",
         joins += (f" LEFT JOIN (SELECT {layout.ROW_ID}, {', '.join(parts)} FROM read_parquet({cells}) "
                   f"WHERE {layout.COLUMN_ID} IN ({wanted}) GROUP BY {layout.ROW_ID}) x "
                   f"ON r.{layout.ROW_ID} = x.{layout.ROW_ID}")
-    outer = [quote_ident(n) for n in exact_cols]
+    outer = [quote_identifier(n) for n in exact_cols]
     bound_exprs = []
     gamma = 2.0 * (c + 3) * U / (1.0 - (c + 3) * U)
     per_cell = bounds == "cell"
     for s, name in enumerate(names):
         j = int(col_idx[s])
         if is_basis[s]:
-            outer.append(f"CAST(__b{s} AS DOUBLE) AS {quote_ident(name)}")
+            outer.append(f"CAST(__b{s} AS DOUBLE) AS {quote_identifier(name)}")
             bound_exprs.append("0.0::DOUBLE")
             continue
         offset = float(reader.offset[j])
@@ -145,17 +146,17 @@ def scan_sql(reader: ArchiveReader, columns: Any = None, bounds: str = "row",
         if over_v:
             outer_val = f"CASE {' '.join(over_v)} ELSE {outer_val} END"
             outer_bound = f"CASE {' '.join(over_b)} ELSE {outer_bound} END"
-        outer.append(f"{outer_val} AS {quote_ident(name)}")
+        outer.append(f"{outer_val} AS {quote_identifier(name)}")
         bound_exprs.append(outer_bound if per_cell else None)
     if bounds == "row":
         outer.append(f"{_row_bound(reader, col_idx[derived], derived, use_anchors, gamma)} AS {BOUND}")
     elif bounds == "cell":
-        outer += [f"CAST({b} AS DOUBLE) AS {quote_ident(n + '_bound')}" for n, b in zip(names, bound_exprs)]
+        outer += [f"CAST({b} AS DOUBLE) AS {quote_identifier(n + '_bound')}" for n, b in zip(names, bound_exprs)]
     outer.append(layout.ROW_ID)
     source = rows_source_sql(reader)
     if predicate is not None:
-        agg.check_where(reader, con, predicate)
-        source = f"(SELECT * FROM {source} WHERE {predicate})"
+        condition = agg.check_where(reader, con, predicate)
+        source = f"(SELECT * FROM {source} WHERE {condition})"
     return f"SELECT {', '.join(outer)} FROM (SELECT {', '.join(inner)} FROM {source} r{joins})"
 
 
@@ -214,7 +215,7 @@ def column_errors_sql(reader: ArchiveReader) -> str:
 
 def row_errors_sql(reader: ArchiveReader) -> str:
     key = reader.manifest.get("key")
-    keys = f"{quote_ident(key)}, " if key else ""
+    keys = f"{quote_identifier(key)}, " if key else ""
     return (f"SELECT {layout.ROW_ID}, {keys}{layout.ROW_ERR_MAX} AS err_max_scaled, "
             f"{layout.ROW_ERR_L2} AS err_l2_scaled FROM {rows_source_sql(reader)}")
 

@@ -24,7 +24,6 @@ what the error of a sum of N_a independent errors of that size would typically b
 from __future__ import annotations
 
 import math
-import re
 from dataclasses import dataclass
 from typing import Any
 
@@ -35,9 +34,10 @@ import pyarrow.parquet as pq
 
 from ..errors import InvalidInputError, UnknownColumnError
 from . import arithmetic, layout
+from .sql_text import checked_condition, quote_identifier, sql_literal
 
 __all__ = ["BLOCKS", "BlockSums", "aggregate", "covariance", "correlation", "FUNCS",
-           "basis_sql", "rows_source_sql", "sql_literal", "quote_ident"]
+           "basis_sql", "rows_source_sql", "check_where"]
 
 BLOCKS = "blocks.parquet"
 FUNCS = ("sum", "avg", "count")
@@ -230,28 +230,6 @@ def _blocks(reader) -> _Blocks | None:
 
 
 # -- SQL pieces shared with the scan ----------------------------------------------------------
-def quote_ident(name: str) -> str:
-    return '"' + name.replace('"', '""') + '"'
-
-
-def sql_literal(value: Any) -> str:
-    """A SQL literal that DuckDB reads back as the same value (floats as DOUBLE, exactly)."""
-    if value is None:
-        return "NULL"
-    if isinstance(value, (bool, np.bool_)):
-        return "true" if value else "false"
-    if isinstance(value, (int, np.integer)):
-        return str(int(value))
-    if isinstance(value, (float, np.floating)):
-        v = float(value)
-        if math.isnan(v):
-            return "'nan'::DOUBLE"
-        if math.isinf(v):
-            return "'inf'::DOUBLE" if v > 0 else "'-inf'::DOUBLE"
-        return f"{v:.17e}::DOUBLE"
-    return "'" + str(value).replace("'", "''") + "'"
-
-
 def rows_source_sql(reader) -> str:
     files = ", ".join(sql_literal(str((reader.path / p[2]).resolve())) for p in reader.parts)
     return f"read_parquet([{files}])"
@@ -260,7 +238,7 @@ def rows_source_sql(reader) -> str:
 def basis_sql(reader, t: int) -> str:
     """SQL of the filled value of basis entry t (code * step where stored as codes; the fill
     where NULL or not finite), as DOUBLE: the same value ``ArchiveReader.basis_block`` gives."""
-    column = quote_ident(reader.basis_stored[t])
+    column = quote_identifier(reader.basis_stored[t])
     fill = sql_literal(float(reader.fill[t]))
     step = reader.basis_step[t]
     if np.isfinite(step):
@@ -320,29 +298,31 @@ def _check_by(reader, by: Any) -> list[str]:
     return names
 
 
-_FORBIDDEN = re.compile(r";|--|/\*")
-
-
 def check_where(reader, con, where: Any) -> str | None:
+    """``where`` checked by parsing (``sql_text.checked_condition``): one expression over the
+    key (exact) columns and ``_rf_row``, returned as the SQL to run; then bound against those
+    columns, so a type error is reported here. Raises ConditionRefusedError otherwise."""
     if where is None:
         return None
-    if not isinstance(where, str) or not where.strip() or _FORBIDDEN.search(where):
-        raise InvalidInputError(
-            f"where must be one SQL predicate on key columns, such as \"site = 'A'\", without "
-            f"';' or comments; got {where!r}.")
     allowed = set(reader.manifest.get("exact_columns", [])) | {layout.ROW_ID}
-    # bind the predicate against the key columns alone: a numeric column in it fails here
-    keys = ", ".join(quote_ident(n) for n in sorted(allowed))
+    own = con is None
+    con = _connection(con)
+    # bind the checked condition against the key columns alone: a numeric column fails here
+    keys = ", ".join(quote_identifier(n) for n in sorted(allowed))
     try:
+        condition = checked_condition(where, sorted(allowed), what="row condition (where/predicate)", con=con)
         con.execute(f"DESCRIBE SELECT * FROM (SELECT {keys} FROM {rows_source_sql(reader)}) "
-                    f"WHERE {where}").fetchall()
+                    f"WHERE {condition}").fetchall()
     except duckdb.Error as exc:
         first = str(exc).splitlines()[0]
         raise InvalidInputError(
             f"where {where!r} is not a predicate on the key columns {sorted(allowed)} of the "
             f"archive {reader.path} ({first}). Numeric columns are approximated: filter on key "
             "columns, or filter rankfold_scan's rebuilt rows instead.") from None
-    return where
+    finally:
+        if own:
+            con.close()
+    return condition
 
 
 def _check_rows(reader, rows: Any) -> tuple[int, int] | None:
@@ -415,7 +395,7 @@ def _scan_partials(reader, con, names, col_idx, by, where, row_range):
     if row_range is not None:
         conds.append(f"{layout.ROW_ID} >= {row_range[0]} AND {layout.ROW_ID} < {row_range[1]}")
     cond = (" WHERE " + " AND ".join(conds)) if conds else ""
-    group = ", ".join(quote_ident(b) for b in by)
+    group = ", ".join(quote_identifier(b) for b in by)
     steps = reader.residual_step[col_idx]
     is_basis = reader.is_basis[col_idx]
     coded = np.isfinite(steps) & ~is_basis
@@ -426,10 +406,10 @@ def _scan_partials(reader, con, names, col_idx, by, where, row_range):
     basis_slot = {reader.basis_names[t]: t for t in range(c)}
     for s in range(q):
         if coded[s]:
-            code = layout.code_sql(quote_ident(layout.CODE_PATTERN.format(int(col_idx[s]))))
+            code = layout.code_sql(quote_identifier(layout.CODE_PATTERN.format(int(col_idx[s]))))
             items += [f"sum({code})::DOUBLE AS __q{s}", f"sum(abs({code}))::DOUBLE AS __qa{s}"]
         if is_basis[s]:
-            col = f"CAST({quote_ident(names[s])} AS DOUBLE)"
+            col = f"CAST({quote_identifier(names[s])} AS DOUBLE)"
             items += [f"sum({col}) AS __bs{s}", f"count({col}) AS __bc{s}", f"sum(abs({col})) AS __ba{s}"]
     select = (f"{group}, " if by else "") + ", ".join(items)
     sql = f"SELECT {select} FROM {source}{cond}" + (f" GROUP BY {group} ORDER BY {group}" if by else "")
@@ -465,13 +445,13 @@ def _scan_partials(reader, con, names, col_idx, by, where, row_range):
         con.register(view, overrides)
         try:
             code_case = " ".join(
-                f"WHEN {s} THEN {layout.code_sql('r.' + quote_ident(layout.CODE_PATTERN.format(int(col_idx[s]))))}"
+                f"WHEN {s} THEN {layout.code_sql('r.' + quote_identifier(layout.CODE_PATTERN.format(int(col_idx[s]))))}"
                 for s in range(q) if coded[s])
             code_expr = f"CAST(CASE o._rf_slot {code_case} ELSE 0 END AS DOUBLE)" if code_case else "0.0"
-            inner = [layout.ROW_ID] + [quote_ident(b) for b in by]
+            inner = [layout.ROW_ID] + [quote_identifier(b) for b in by]
             inner += [f"{e} AS __f{t}" for t, e in enumerate(f)]
-            inner += [quote_ident(layout.CODE_PATTERN.format(int(col_idx[s]))) for s in range(q) if coded[s]]
-            keys = ", ".join(f"r.{quote_ident(b)}" for b in by)
+            inner += [quote_identifier(layout.CODE_PATTERN.format(int(col_idx[s]))) for s in range(q) if coded[s]]
+            keys = ", ".join(f"r.{quote_identifier(b)}" for b in by)
             items = ["o._rf_slot AS __slot", "count(*) AS __n", "count(o._rf_value) AS __nn",
                      "sum(o._rf_value) AS __v", "sum(abs(o._rf_value)) AS __va",
                      f"sum({code_expr}) AS __q", f"sum(abs({code_expr})) AS __qa"]
