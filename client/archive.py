@@ -191,6 +191,9 @@ class Archive:
         each column its value and ``<column>_bound``, a hard bound on |true - value| (0 for
         counts); ``estimates=True`` adds ``<column>_estimate``, a typical error (an estimate,
         not a bound). A group whose column has only NULLs gives NULL (bound 0), as SQL does.
+        The value is the aggregate of the values as stored (not of the clamped, rounded cells
+        that :meth:`rebuild` serves) and its bound covers the aggregate of the TRUE values;
+        it can differ from the sum of rebuilt cells by at most this bound plus their bounds.
         """
         return _aggregate.aggregate(self._reader, columns, func, by, where, rows=rows, estimates=estimates)
 

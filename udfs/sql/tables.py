@@ -104,6 +104,8 @@ def scan_sql(reader: ArchiveReader, columns: Any = None, bounds: str = "row",
                   f"WHERE {layout.COLUMN_ID} IN ({wanted}) GROUP BY {layout.ROW_ID}) x "
                   f"ON r.{layout.ROW_ID} = x.{layout.ROW_ID}")
     outer = [quote_identifier(n) for n in exact_cols]
+    middle: list[str] = []  # stored value __v<s> and bound __e<s> of each derived column
+    widened: list[str] = []
     bound_exprs = []
     gamma = 2.0 * (c + 3) * U / (1.0 - (c + 3) * U)
     per_cell = bounds == "cell"
@@ -132,10 +134,9 @@ def scan_sql(reader: ArchiveReader, columns: Any = None, bounds: str = "row",
                f"{sql_literal(gamma)} * ({mag})) * {sql_literal(1.0 + 16 * U)}")
         if np.isfinite(tol):
             raw = f"least({raw}, {sql_literal(tol)})"
-        outer_val, outer_bound = f"({lin})", f"({raw})"
-        if reader.is_integer[j]:
-            outer_val = f"(CASE WHEN {raw} < 0.5 THEN round_even({lin}, 0) ELSE {lin} END)"
-            outer_bound = f"(CASE WHEN {raw} < 0.5 THEN 0.0 ELSE {raw} END)"
+        middle += [f"{lin} AS __v{s}", f"{raw} AS __e{s}"]
+        outer_val, outer_bound = _served(reader, j, f"__v{s}", f"__e{s}")
+        served_extra = reader.kind[j] != "d"  # the served bound may exceed the stored one
         over_v, over_b = [], []
         if use_anchors:
             over_v.append(f"WHEN __anchor THEN CAST(__av{s} AS DOUBLE)")
@@ -148,8 +149,13 @@ def scan_sql(reader: ArchiveReader, columns: Any = None, bounds: str = "row",
             outer_bound = f"CASE {' '.join(over_b)} ELSE {outer_bound} END"
         outer.append(f"{outer_val} AS {quote_identifier(name)}")
         bound_exprs.append(outer_bound if per_cell else None)
+        if served_extra:
+            widened.append(outer_bound)
     if bounds == "row":
-        outer.append(f"{_row_bound(reader, col_idx[derived], derived, use_anchors, gamma)} AS {BOUND}")
+        row = _row_bound(reader, col_idx[derived], derived, use_anchors, gamma)
+        if widened:  # integer and float32 cells: their served bounds, beside the stored ones
+            row = f"greatest({row}, {', '.join(f'CAST({w} AS DOUBLE)' for w in widened)})"
+        outer.append(f"{row} AS {BOUND}")
     elif bounds == "cell":
         outer += [f"CAST({b} AS DOUBLE) AS {quote_identifier(n + '_bound')}" for n, b in zip(names, bound_exprs)]
     outer.append(layout.ROW_ID)
@@ -157,7 +163,41 @@ def scan_sql(reader: ArchiveReader, columns: Any = None, bounds: str = "row",
     if predicate is not None:
         condition = agg.check_where(reader, con, predicate)
         source = f"(SELECT * FROM {source} WHERE {condition})"
-    return f"SELECT {', '.join(outer)} FROM (SELECT {', '.join(inner)} FROM {source} r{joins})"
+    stored = f"(SELECT {', '.join(inner)} FROM {source} r{joins})"
+    if middle:
+        stored = f"(SELECT *, {', '.join(middle)} FROM {stored})"
+    return f"SELECT {', '.join(outer)} FROM {stored}"
+
+
+def _served(reader: ArchiveReader, j: int, v: str, b: str) -> tuple[str, str]:
+    """SQL of the served value and its bound for numeric column j from the stored value ``v``
+    and bound ``b`` (column names): the same steps as ``arithmetic.serve`` -- clamped into the
+    column's observed range, rounded half to even in integer columns (bound: the farthest
+    integer the true value can be), narrowed to FLOAT in float32 columns (bound grown by the
+    rounding; the factor 1 + 8u covers this expression's own rounding)."""
+    lower, upper = float(reader.lower[j]), float(reader.upper[j])
+    clamped = v
+    if np.isfinite(upper):
+        clamped = f"least({clamped}, {sql_literal(upper)})"
+    if np.isfinite(lower):
+        clamped = f"greatest({clamped}, {sql_literal(lower)})"
+    kind = reader.kind[j]
+    if kind == "i":
+        r = f"round_even({clamped}, 0)"
+        low = f"nextafter({v} - {b}, {sql_literal(-np.inf)})"
+        high = f"nextafter({v} + {b}, {sql_literal(np.inf)})"
+        if np.isfinite(lower):
+            low = f"greatest({low}, {sql_literal(lower)})"
+        if np.isfinite(upper):
+            high = f"least({high}, {sql_literal(upper)})"
+        low, high = f"ceil({low})", f"floor({high})"
+        bound = (f"(CASE WHEN {low} <= {high} THEN greatest({high} - {r}, {r} - {low}, 0.0) "
+                 f"ELSE ({b} + abs({r} - {v})) * {sql_literal(1.0 + 8 * U)} END)")
+        return f"({r})", bound
+    if kind == "f":  # (DuckDB has no half float: float16 columns are served as DOUBLE)
+        r = f"CAST(CAST({clamped} AS FLOAT) AS DOUBLE)"
+        return f"({r})", f"(({b} + abs({r} - {clamped})) * {sql_literal(1.0 + 8 * U)})"
+    return f"({clamped})", f"({b})"
 
 
 def _row_bound(reader, cols: np.ndarray, slots: list[int], use_anchors: bool, gamma: float) -> str:

@@ -530,7 +530,15 @@ def aggregate(reader, columns: Any, func: str = "avg", by: Any = None, where: st
     that satisfy ``where`` (a SQL predicate on key columns) and lie in ``rows`` (a slice of
     positions), from the factors. Returns one row per group: the ``by`` columns, then per column
     its value and ``<column>_bound`` (hard bound on |true - value|; 0 for counts), and with
-    ``estimates=True`` also ``<column>_estimate`` (a typical error, not a bound)."""
+    ``estimates=True`` also ``<column>_estimate`` (a typical error, not a bound).
+
+    What the value is: the aggregate of the values as stored (the factors' rebuild, exact
+    cells applied), clamped into what the column's observed range allows (see
+    ``_within_range``); its bound covers |aggregate of the TRUE source values - value|. It is
+    not computed from the served cells (which are clamped one by one, and rounded in integer
+    columns), so it may differ from the sum or mean of ``Archive.rebuild()``'s values; both
+    are within their own bounds of the truth, so they differ by at most this bound plus the
+    sum (or mean) of those cells' bounds."""
     func = _check_func(func)
     if columns is None:
         raise InvalidInputError("aggregate() needs the numeric columns to aggregate, e.g. ['x1', 'x2'].")
@@ -587,6 +595,9 @@ def _finish(reader, names, col_idx, func, keys: pa.Table, part: _Partial, estima
         else:
             value, bound, estimate = count, np.zeros_like(count), np.zeros_like(count)
             null = np.zeros_like(count, bool)
+        if func in ("sum", "avg"):
+            value, bound = _within_range(reader, col_idx, func, value, bound, count)
+            estimate = np.minimum(estimate, bound)
     bound = np.where(null, 0.0, bound)
     estimate = np.where(null, 0.0, estimate)
     arrays, out_names = [keys.column(b) for b in by], list(by)
@@ -606,6 +617,39 @@ def _finish(reader, names, col_idx, func, keys: pa.Table, part: _Partial, estima
         "rankfold.bound": "hard bound on |true - value| from the error ledger, as stored",
         "rankfold.estimate": "estimate, not a bound: sqrt(cells) * rms error of the column",
     })
+
+
+def _within_range(reader, col_idx, func: str, value: np.ndarray, bound: np.ndarray,
+                  count: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Narrow a sum or mean (g, q) with its bound to what the column's observed range allows:
+    the true sum of `count` values in [lower_j, upper_j] lies in [count lower_j, count
+    upper_j] (the mean in [lower_j, upper_j]). The value is clamped into that range and the
+    bound becomes the farthest end of [value - bound, value + bound] intersected with it, so
+    it never grows. Columns with NaN or infinite values (their sums are not finite) and
+    empty intersections (which the bound's premise excludes) are left as they are. The ends
+    count * lower_j are moved out by one ulp to cover their own rounding."""
+    lower, upper = reader.lower[col_idx][None, :], reader.upper[col_idx][None, :]
+    cols = reader.columns_table
+    special = np.zeros(col_idx.size, bool)
+    for name in ("nans", "infinities"):
+        if name in cols.column_names:
+            special |= cols.column(name).to_numpy()[col_idx] > 0
+    with np.errstate(invalid="ignore", over="ignore"):
+        if func == "sum":
+            low = np.nextafter(count * lower, -np.inf)
+            high = np.nextafter(count * upper, np.inf)
+        else:
+            low, high = np.broadcast_to(lower, value.shape), np.broadcast_to(upper, value.shape)
+        # where the true value can be, widened by one ulp at each end for their rounding
+        a = np.nextafter(np.maximum(value - bound, low), -np.inf)
+        b = np.nextafter(np.minimum(value + bound, high), np.inf)
+        usable = (np.isfinite(low) & np.isfinite(high) & np.isfinite(value) & (count > 0)
+                  & ~special[None, :] & (a <= b))
+        clamped = np.minimum(np.maximum(value, low), high)
+        # clamping onto a range that holds the true value never moves away from it: the old
+        # bound holds for the clamped value as well, and the narrowed one may be smaller
+        narrowed = np.minimum(_up(np.maximum(b - clamped, clamped - a)), bound)
+    return np.where(usable, clamped, value), np.where(usable, narrowed, bound)
 
 
 # -- covariance and correlation --------------------------------------------------------------

@@ -25,7 +25,8 @@ from __future__ import annotations
 import numpy as np
 
 __all__ = ["UNIT_ROUNDOFF", "fill_missing", "approximate", "add_residual", "slack", "slack_limit",
-           "round_up", "round_up_compact", "quantize", "trim_mantissa", "encode_codes", "decode_codes"]
+           "round_up", "round_up_compact", "quantize", "trim_mantissa", "encode_codes", "decode_codes",
+           "serve"]
 
 UNIT_ROUNDOFF = 2.0**-53
 
@@ -182,3 +183,58 @@ def decode_codes(stored: np.ndarray) -> np.ndarray:
     """Zigzag uint32 codes back to signed integers, as float64."""
     u = np.asarray(stored).astype(np.int64)
     return np.where(u % 2 == 0, u // 2, -((u + 1) // 2)).astype(np.float64)
+
+
+def serve(values: np.ndarray, bounds: np.ndarray, approximated: np.ndarray, lower: np.ndarray,
+          upper: np.ndarray, kind: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """The values a reader hands out and bounds that hold for THEM, shape (b, q) each.
+
+    ``values``/``bounds``: rebuilt values and their bounds (|true - value| <= bound);
+    ``approximated`` (b, q): cells to serve (others, exact or NULL, are returned as they are);
+    ``lower``/``upper`` (q,): each column's observed minimum and maximum (finite values;
+    +-inf when unknown); ``kind`` (q,): 'i' integer column, 'f' float32, 'e' float16, 'd'
+    float64. Returns new arrays:
+
+    * every approximated value is clamped into [lower_j, upper_j]. The true value lies in
+      that interval, and clamping onto an interval that holds the true value never moves
+      away from it (projection onto a convex set), so the bound stays valid as it is;
+    * integer columns: the clamped value c is rounded half to even to r, and the bound
+      becomes the largest |t - r| over the integers t in [max(v - b, lower), min(v + b,
+      upper)] -- the only values the true (integer) one can take. It is 0 when b < 0.5 (r is
+      then the true value) and at most b + 1/2; the ends of the interval are widened by one
+      ulp to cover the rounding of v +- b;
+    * float32 and float16 columns: the value is rounded to that type (as the typed table
+      holds it) and the bound grows by the rounding, rounded up.
+    """
+    bounds = bounds.copy()
+    if not approximated.any():
+        return values.copy(), bounds
+    with np.errstate(invalid="ignore", over="ignore"):
+        clamped = np.minimum(np.maximum(values, lower[None, :]), upper[None, :])
+    served = approximated & np.isfinite(clamped)
+    integer = served & (kind == "i")[None, :]
+    if integer.any():
+        v, b = values[integer], bounds[integer]  # before clamping: the tighter interval
+        lo_col = np.broadcast_to(lower[None, :], values.shape)[integer]
+        hi_col = np.broadcast_to(upper[None, :], values.shape)[integer]
+        rounded = np.rint(clamped[integer])
+        with np.errstate(invalid="ignore", over="ignore"):
+            low = np.ceil(np.maximum(np.nextafter(v - b, -np.inf), lo_col))
+            high = np.floor(np.minimum(np.nextafter(v + b, np.inf), hi_col))
+            within = np.maximum(np.maximum(high - rounded, rounded - low), 0.0)
+            # an empty interval breaks the bound's own premise: fall back to the triangle
+            # inequality |t - r| <= |t - v| + |v - r|, rounded up
+            fallback = round_up(b + np.abs(rounded - v))
+        bounds[integer] = np.where(low <= high, within, fallback)
+        clamped[integer] = rounded
+    values = np.where(served, clamped, values)
+    for code, narrow in (("f", np.float32), ("e", np.float16)):
+        typed = served & (kind == code)[None, :]
+        if typed.any():
+            v = values[typed]
+            with np.errstate(over="ignore"):
+                r = v.astype(narrow).astype(np.float64)
+            finite = np.isfinite(r)
+            values[typed] = np.where(finite, r, v)
+            bounds[typed] = np.where(finite, round_up(bounds[typed] + np.abs(r - v)), bounds[typed])
+    return values, bounds

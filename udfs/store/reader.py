@@ -27,7 +27,8 @@ __all__ = ["ArchiveReader", "Rebuilt"]
 class Rebuilt:
     """A rebuilt block: ``values`` and ``bounds`` (b, q) float64, ``exact`` (b, q) bool,
     ``nulls`` (b, q) bool (source NULLs), for ``positions`` (b,) and ``columns`` (q names),
-    plus ``rows``: the row-file table of those rows (keys, basis, ledger)."""
+    plus ``rows``: the row-file table of those rows (keys, basis, ledger), and ``slack`` (b, q)
+    (the floating-point part of the bounds; only from ``rebuild(serve=False)``)."""
 
     positions: np.ndarray
     columns: list[str]
@@ -36,6 +37,7 @@ class Rebuilt:
     exact: np.ndarray
     nulls: np.ndarray
     rows: pa.Table
+    slack: np.ndarray | None = None
 
 
 class ArchiveReader:
@@ -81,6 +83,15 @@ class ArchiveReader:
                               if "residual_step" in cols.column_names else np.full(width, np.nan))
         types = {f["name"]: f["type"] for f in m["schema"]}
         self.is_integer = np.array([types[n].startswith(("int", "uint")) for n in self.numeric_columns])
+        # how a served value is typed: 'i' integer, 'f' float32, 'e' float16, 'd' float64
+        self.kind = np.array(["i" if i else {"float": "f", "halffloat": "e"}.get(types[n], "d")
+                              for n, i in zip(self.numeric_columns, self.is_integer)], dtype="<U1")
+        # observed range of each column's finite values (the profile of every row): rebuilt
+        # values are clamped into it (arithmetic.serve)
+        self.lower = (cols.column("min").to_numpy(zero_copy_only=False).astype(np.float64)
+                      if "min" in cols.column_names else np.full(width, -np.inf))
+        self.upper = (cols.column("max").to_numpy(zero_copy_only=False).astype(np.float64)
+                      if "max" in cols.column_names else np.full(width, np.inf))
         anchors = pq.read_table(self.path / layout.table_file(m, layout.ANCHORS))
         self.anchor_positions = anchors.column(layout.ROW_ID).to_numpy()
         self.anchor_lookup = {int(p): i for i, p in enumerate(self.anchor_positions)}
@@ -236,8 +247,12 @@ class ArchiveReader:
                     rows.column(layout.CODE_PATTERN.format(int(j))).to_numpy(zero_copy_only=False))
         return codes
 
-    def rebuild(self, rows: Any = None, columns: Any = None, *, positions: np.ndarray | None = None) -> Rebuilt:
-        """Rebuild ``rows`` x ``columns`` with bounds (see :class:`Rebuilt`)."""
+    def rebuild(self, rows: Any = None, columns: Any = None, *, positions: np.ndarray | None = None,
+                serve: bool = True) -> Rebuilt:
+        """Rebuild ``rows`` x ``columns`` with bounds (see :class:`Rebuilt`): the values served
+        to users (clamped, rounded to the column's type, see ``arithmetic.serve``), or with
+        ``serve=False`` the values as stored (the factors' arithmetic, exact cells applied)
+        together with their floating-point ``slack``."""
         names = self.resolve_columns(columns)
         pos = positions if positions is not None else self.resolve_rows(rows)
         col_idx = np.array([self.column_index[n] for n in names], dtype=np.int64)
@@ -282,12 +297,16 @@ class ArchiveReader:
         # exact cells
         if self.cell_rows.size and b:
             self._apply_cells(pos, col_idx, values, nulls, exact)
-        # an integer column's true value is an integer: within 0.5 of it, rounding finds it
-        whole = self.is_integer[col_idx][None, :] & ~exact & ~nulls & (bounds < 0.5)
-        if whole.any():
-            values[whole] = np.rint(values[whole])
-            exact |= whole
         bounds[exact] = 0.0
+        if not serve:
+            return Rebuilt(pos, names, values, bounds, exact, nulls, table, slack)
+        # served values: clamped into the observed range, integer columns rounded and float32
+        # columns narrowed, each bound for the value handed out (arithmetic.serve). An integer
+        # cell whose bound becomes 0 holds its true value: it counts as exact.
+        approximated = ~exact & ~nulls
+        values, bounds = arithmetic.serve(values, bounds, approximated, self.lower[col_idx],
+                                          self.upper[col_idx], self.kind[col_idx])
+        exact |= approximated & self.is_integer[col_idx][None, :] & (bounds == 0.0)
         return Rebuilt(pos, names, values, bounds, exact, nulls, table)
 
     def _row_file_columns(self, col_idx: np.ndarray) -> list[str]:
