@@ -152,3 +152,43 @@ def test_aggregates_cover_the_true_values_and_respect_the_range(tmp_path):
             value, bound = result.column(name)[0].as_py(), result.column(f"{name}_bound")[0].as_py()
             assert abs(reference[t] - value) <= bound
             assert value >= 0.0  # a sum or mean of non-negative values is never negative
+
+
+# -- names (issue 12, item 6) ------------------------------------------------------------------------
+@pytest.fixture(scope="module")
+def clashing(tmp_path_factory):
+    """A source column ``q_bound`` beside ``q``, and a key ``r_estimate`` beside ``r``."""
+    rng = np.random.default_rng(4)
+    x = rng.standard_normal((200, 2)) @ rng.standard_normal((2, 4))
+    table = pa.table({"r_estimate": np.arange(200) % 4, "q": x[:, 0], "q_bound": x[:, 1],
+                      "r": x[:, 2], "s": x[:, 3]})
+    return rankfold.compress(table, tmp_path_factory.mktemp("names") / "n.rfa", rank=2,
+                             exact_columns=("r_estimate",))
+
+
+def test_bound_names_cannot_collide_in_aggregates(clashing):
+    with pytest.raises(rankfold.InvalidInputError, match="two columns named 'q_bound': the bound of 'q' "
+                       "and the sum of 'q_bound'"):
+        clashing.aggregate(["q", "q_bound"], "sum")
+    with pytest.raises(rankfold.InvalidInputError, match="two columns named 'r_estimate'"):
+        clashing.aggregate(["r"], "avg", by="r_estimate", estimates=True)
+    # one at a time, nothing collides
+    assert clashing.aggregate(["q"], "sum").column_names == ["q", "q_bound"]
+    assert clashing.aggregate(["q_bound"], "sum").column_names == ["q_bound", "q_bound_bound"]
+
+
+def test_bound_names_cannot_collide_in_sql(clashing):
+    con = duckdb.connect()
+    try:
+        rankfold.udfs.register(con)
+        for sql in (f"SELECT * FROM rankfold_scan('{clashing.path}', bounds := 'cell')",
+                    f"SELECT * FROM rankfold_aggregate('{clashing.path}', ['q', 'q_bound'], func := 'sum')"):
+            with pytest.raises(duckdb.Error, match="two columns named 'q_bound'"):
+                con.execute(sql).fetchall()
+        # the row bound has a reserved name: no clash
+        assert con.execute(f"SELECT count(*) FROM rankfold_scan('{clashing.path}')").fetchall() == [(200,)]
+        names = con.sql(f"SELECT * FROM rankfold_scan('{clashing.path}', columns := ['q_bound'], "
+                        "bounds := 'cell')").columns
+        assert names == ["r_estimate", "q_bound", "q_bound_bound", "_rf_row"]
+    finally:
+        con.close()

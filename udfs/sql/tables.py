@@ -151,6 +151,13 @@ def scan_sql(reader: ArchiveReader, columns: Any = None, bounds: str = "row",
         bound_exprs.append(outer_bound if per_cell else None)
         if served_extra:
             widened.append(outer_bound)
+    named = [(n, f"the key column {n!r}") for n in exact_cols]
+    named += [(n, f"the rebuilt column {n!r}") for n in names]
+    named += {"row": [(BOUND, "the row bound")], "none": [],
+              "cell": [(f"{n}_bound", f"the bound of {n!r}") for n in names]}[bounds]
+    named.append((layout.ROW_ID, "the row position"))
+    agg.check_result_names(named, "This scan", "Use bounds := 'row' (one _rf_bound per row), scan "
+                           "those columns separately, or rename the source column and compress again.")
     if bounds == "row":
         row = _row_bound(reader, col_idx[derived], derived, use_anchors, gamma)
         if widened:  # integer and float32 cells: their served bounds, beside the stored ones

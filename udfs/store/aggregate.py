@@ -37,7 +37,7 @@ from . import arithmetic, layout
 from .sql_text import checked_condition, quote_identifier, sql_literal
 
 __all__ = ["BLOCKS", "BlockSums", "aggregate", "covariance", "correlation", "FUNCS",
-           "basis_sql", "rows_source_sql", "check_where"]
+           "basis_sql", "rows_source_sql", "check_where", "check_result_names"]
 
 BLOCKS = "blocks.parquet"
 FUNCS = ("sum", "avg", "count")
@@ -296,6 +296,21 @@ def _check_by(reader, by: Any) -> list[str]:
                 f"The archive {reader.path} has no key (exact) column {name!r} to group by; its "
                 f"key columns are {exact}. Numeric columns are approximated and cannot be group keys.")
     return names
+
+
+def check_result_names(columns: list[tuple[str, str]], request: str, remedy: str) -> None:
+    """Refuse a result whose column names collide: ``columns`` lists (name, what it holds)
+    in result order, e.g. ("q_bound", "the bound of 'q'"). Names are compared without case,
+    as DuckDB does. The scan and the aggregates both call this, so a source column named
+    like another column's bound or estimate is refused the same way in Python and SQL."""
+    seen: dict[str, str] = {}
+    for name, what in columns:
+        folded = name.casefold()
+        if folded in seen:
+            raise InvalidInputError(
+                f"{request} would return two columns named {name!r}: {seen[folded]} and {what}. "
+                f"{remedy}")
+        seen[folded] = what
 
 
 def check_where(reader, con, where: Any) -> str | None:
@@ -600,6 +615,13 @@ def _finish(reader, names, col_idx, func, keys: pa.Table, part: _Partial, estima
             estimate = np.minimum(estimate, bound)
     bound = np.where(null, 0.0, bound)
     estimate = np.where(null, 0.0, estimate)
+    named = [(b, f"the group column {b!r}") for b in by]
+    for name in names:
+        named += [(name, f"the {func} of {name!r}"), (f"{name}_bound", f"the bound of {name!r}")]
+        if estimates:
+            named.append((f"{name}_estimate", f"the error estimate of {name!r}"))
+    check_result_names(named, "This aggregate", "Aggregate those columns in separate calls, or "
+                       "rename the source column and compress again.")
     arrays, out_names = [keys.column(b) for b in by], list(by)
     for s, name in enumerate(names):
         if func == "count":
