@@ -216,7 +216,12 @@ def _describe_rows(rows: Any) -> Any:
         return None
     if isinstance(rows, slice):
         return f"{rows.start}:{rows.stop}:{rows.step}"
-    return np.atleast_1d(np.asarray(rows)).tolist()
+    if isinstance(rows, range):
+        return f"{rows.start}:{rows.stop}:{rows.step}"
+    positions = np.atleast_1d(np.asarray(rows))
+    if positions.size > 100:  # a log record stays small: the count and the span
+        return f"{positions.size} positions from {int(positions.min())} to {int(positions.max())}"
+    return positions.tolist()
 
 
 def _typed(values: np.ndarray, nulls: np.ndarray, type_name: str) -> pa.Array:

@@ -19,7 +19,7 @@ def _rows(m: int, seed: int, drift: float = 0.0) -> pa.Table:
     rng = np.random.default_rng(seed)
     x = rng.standard_normal((m, 3)) @ MIX + 0.01 * rng.standard_normal((m, WIDTH))
     x += drift * rng.standard_normal((m, WIDTH))
-    columns = {"id": pa.array(np.arange(m) + 1000 * seed)}
+    columns = {"id": pa.array(np.arange(m) + 100_000 * seed)}
     columns |= {f"c{j}": x[:, j] for j in range(WIDTH)}
     return pa.table(columns)
 
@@ -58,7 +58,7 @@ def test_bounds_hold_for_appended_rows(tmp_path, options):
     ledger = grown.column_ledger()
     err = np.where(finite, error, 0.0)
     assert np.all(ledger.column("err_max").to_numpy() >= err.max(axis=0))
-    assert grown.rebuild(rows=rankfold.Keys([2005])).column("id").to_pylist() == [2005]
+    assert grown.rebuild(rows=rankfold.Keys([200_005])).column("id").to_pylist() == [200_005]
     assert [e["stage"] for e in events if e["done"]] == ["append"]
     assert events[-1]["rows_done"] == 800
 

@@ -36,6 +36,7 @@ from . import link as _link
 from ..factor.sketch import GramSketch, ShiftedGram
 from .commit import CELLS_SCHEMA, ArchiveWriter, RowPartWriter, concat_parquet, prepare_target
 from .executors import make_executor
+from .keys import check_unique_key
 from .options import (AUTO_SKETCH_ROWS, AUTO_SKETCH_ROWS_PER_COLUMN, DEFAULT_RANK_CAP_DIVISOR,
                       CompressOptions)
 from .row_groups import RowGroup, choose_row_groups
@@ -599,6 +600,9 @@ def _write(src, target, opts, numeric, passthrough, rows, profile, fingerprint, 
         for p in parts:
             sums.records.extend(p[2])
         cell_files = [f".cells-{k:05d}.parquet" for k, p in enumerate(parts) if p[0].cells.written]
+        if opts.key:
+            check_unique_key([writer.temp / part["name"] for part in writer.parts], opts.key,
+                             src.description)
         if read.sampled:
             profile = _whole_table_profile(src, numeric, rows, result)
         elif not result.fingerprint.matches(fingerprint):

@@ -16,7 +16,8 @@ import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
-from ..errors import ArchiveNotFoundError, CorruptArchiveError, RowOutOfRangeError, UnknownColumnError
+from ..errors import (ArchiveNotFoundError, CorruptArchiveError, InvalidInputError, RowOutOfRangeError,
+                      UnknownColumnError)
 from . import arithmetic, layout
 from .manifest import check_files, read_manifest
 
@@ -38,6 +39,11 @@ class Rebuilt:
     nulls: np.ndarray
     rows: pa.Table
     slack: np.ndarray | None = None
+
+
+def _short(value: Any) -> str:
+    text = repr(value)
+    return text if len(text) <= 200 else text[:200] + " ..."
 
 
 class ArchiveReader:
@@ -144,12 +150,20 @@ class ArchiveReader:
         return names
 
     def resolve_rows(self, rows: Any) -> np.ndarray:
-        """Row positions (int64, shape (b,)) from None, an int, a slice or a sequence of ints."""
+        """Row positions (int64, shape (b,)) from None, an int, a slice, a range or a sequence
+        of ints (negative positions count from the end). A request outside the archive is
+        refused before anything of its size is allocated: a slice or range is checked by its
+        ends, an array by its minimum and maximum (no temporary arrays)."""
         m = self.rows_count
         if rows is None:
             return np.arange(m, dtype=np.int64)
         if isinstance(rows, slice):  # no arange(m): a range of a large archive stays small
             return np.arange(*rows.indices(m), dtype=np.int64)
+        if isinstance(rows, range):
+            if len(rows):
+                self._check_span(min(rows[0], rows[-1]), max(rows[0], rows[-1]))
+            out = np.arange(rows.start, rows.stop, rows.step, dtype=np.int64)
+            return np.where(out < 0, out + m, out) if len(rows) and min(rows[0], rows[-1]) < 0 else out
         array = np.atleast_1d(np.asarray(rows))
         if array.ndim > 1:
             raise RowOutOfRangeError(
@@ -160,18 +174,23 @@ class ArchiveReader:
             return np.zeros(0, dtype=np.int64)
         if not np.issubdtype(array.dtype, np.integer):
             raise RowOutOfRangeError(
-                f"Rows are 0-based integer positions; got {rows!r}. To address rows by key "
+                f"Rows are 0-based integer positions; got {_short(rows)}. To address rows by key "
                 "value, use rankfold.Keys([...])."
             )
         # checked before any cast, so that e.g. a uint64 beyond 2^63 is reported as given
-        bad = array[(array < -m) | (array >= m)]
-        if bad.size:
+        low, high = int(array.min()), int(array.max())
+        self._check_span(low, high)
+        out = array.astype(np.int64, copy=False)
+        return np.where(out < 0, out + m, out) if low < 0 else out
+
+    def _check_span(self, low: int, high: int) -> None:
+        m = self.rows_count
+        bad = low if low < -m else high if high >= m else None
+        if bad is not None:
             raise RowOutOfRangeError(
-                f"Row position {int(bad[0])} is out of range for the archive {self.path} with "
+                f"Row position {bad} is out of range for the archive {self.path} with "
                 f"{m} rows (valid: 0 to {m - 1}, or -{m} to -1 from the end)."
             )
-        out = array.astype(np.int64)
-        return np.where(out < 0, out + m, out)
 
     def locate(self, key_values: Any) -> np.ndarray:
         """Positions of the rows whose key column equals each of ``key_values`` (in order)."""
@@ -188,7 +207,10 @@ class ArchiveReader:
             mask = pc.is_in(keys, value_set=pa.array(wanted, type=keys.type))
             hits = table.filter(mask)
             for k, p in zip(hits.column(self.key).to_pylist(), hits.column(layout.ROW_ID).to_pylist()):
-                found.setdefault(k, p)
+                if found.setdefault(k, p) != p:  # archives written before keys were checked
+                    raise InvalidInputError(
+                        f"The key {self.key} = {k!r} names more than one row of {self.path} "
+                        f"(rows {found[k]} and {p}, at least); address these rows by position.")
         missing = [k for k in wanted if k not in found]
         if missing:
             raise RowOutOfRangeError(
