@@ -699,6 +699,64 @@ def covariance(reader, columns: Any = None) -> tuple[list[str], np.ndarray, np.n
 
 
 def _covariance(reader, columns: Any = None):
+    """(names, C, B, fp, d): the covariance of the values as stored, by the cheaper route that
+    sees them: from the Gram matrix of the basis values (no scan) when the low-rank part is
+    the whole stored value up to the residual, else (no basis, residual codes, or overridden
+    cells that weigh more than the residual) from one scan of the rebuilt values."""
+    names, col_idx = _cov_columns(reader, columns)
+    blocks = _blocks(reader)
+    if blocks is not None and len(reader.basis_names):
+        every = np.ones(blocks.first.size, bool)
+        coded = np.isfinite(reader.residual_step[col_idx]) & ~reader.is_basis[col_idx]
+        ov_sq = blocks.stack("ov_sq", every)[:, col_idx].sum(axis=0)
+        err_l2 = reader.columns_table.column("err_l2").to_numpy()[col_idx]
+        if not coded.any() and np.all(np.sqrt(ov_sq) <= err_l2):
+            return _gram_covariance(reader, columns)
+    return _stored_covariance(reader, names, col_idx)
+
+
+def _stored_covariance(reader, names: list[str], col_idx: np.ndarray, *,
+                       chunk_rows: int = layout.ROW_GROUP_ROWS):
+    """(names, C, B, fp, d) from one pass over the values as stored (``rebuild(serve=False)``:
+    basis part, residual codes and exact cells; memory of one chunk), for any archive: rank
+    0, quantized codings, many exact cells.
+
+    x = v + e with v the stored value as rebuilt here: e is 0 on exact cells, and on the
+    others at most the verify pass's error (its column norm is ``err_l2``, an upper limit)
+    plus this rebuild's floating-point slack, so ||P e_j|| <= d_j = err_l2_j + ||slack_j||.
+    The co-moments are summed about the profile's means (Chan et al.: shifting keeps the
+    cancellation small); their floating-point error is at most 8 gamma_{m+16}
+    sqrt(C_jj C_ll) (Higham eq. 3.4-3.5 with |a|.|b| <= ||a|| ||b||, Cauchy-Schwarz)."""
+    m = reader.rows_count
+    if m < 2:
+        raise InvalidInputError(f"A sample covariance needs at least 2 rows; {reader.path} has {m}.")
+    q = col_idx.size
+    shift = reader.columns_table.column("mean").to_numpy()[col_idx].astype(np.float64)
+    shift = np.where(np.isfinite(shift), shift, 0.0)
+    gram, total, slack_sq = np.zeros((q, q)), np.zeros(q), np.zeros(q)
+    for lo in range(0, m, chunk_rows):
+        block = reader.rebuild(columns=names, positions=np.arange(lo, min(lo + chunk_rows, m)), serve=False)
+        d = block.values - shift[None, :]
+        gram += d.T @ d
+        total += d.sum(axis=0)
+        slack = np.where(block.exact, 0.0, block.slack)
+        slack_sq += np.einsum("ij,ij->j", slack, slack)
+    mm = float(m)
+    g = _gamma(mm + 16)
+    cov = (gram - np.outer(total, total) / mm) / (mm - 1)
+    cov = (cov + cov.T) / 2.0
+    diag = np.maximum(np.diag(gram), 0.0) * (1 + 4 * g)
+    fp = _up(8.0 * g * np.sqrt(np.outer(diag, diag)) / (mm - 1) * (1 + 8 * U))
+    err_l2 = reader.columns_table.column("err_l2").to_numpy()[col_idx]
+    delta = _up(err_l2 + np.sqrt(_up(slack_sq)) * (1 + 4 * U))
+    delta = np.where(reader.is_basis[col_idx], 0.0, delta)
+    spread = _up(np.sqrt(np.maximum(np.diag(cov) + np.diag(fp), 0.0) * (mm - 1)))
+    bound = _up((np.outer(spread, delta) + np.outer(delta, spread) + np.outer(delta, delta)) / (mm - 1)
+                * (1 + 8 * U) + fp)
+    return names, cov, bound, fp, delta
+
+
+def _gram_covariance(reader, columns: Any = None):
     """(names, C, B): the sample covariance (divisor rows - 1) of the chosen numeric columns as
     rebuilt from the Gram matrix of the basis values, and B, a hard bound on |true C - C|
     elementwise. With x = xhat + e (e: everything the basis part misses, i.e. the ledger's
@@ -741,25 +799,42 @@ def _covariance(reader, columns: Any = None):
 
 
 def correlation(reader, columns: Any = None) -> tuple[list[str], np.ndarray, np.ndarray]:
-    """(names, R, B): Pearson correlations from the factors and a hard bound on |true R - R|.
-    For centred vectors u, uh with ||u - uh|| <= d, ||u/|u| - uh/|uh||| <= 2 d / |uh|, so
-    |cos(u, v) - cos(uh, vh)| <= 2 d_u / |uh| + 2 d_v / |vh| (capped at 2, the range)."""
+    """(names, R, B): Pearson correlations of the values as stored and a hard bound on
+    |true R - R|.
+
+    For centred vectors u (true) and uh (stored) with ||u - uh|| <= d, the angle between
+    them is at most theta = asin(d / |uh|) (pi once d >= |uh|). Angles between directions
+    obey the triangle inequality (they are a metric on the sphere), so the true angle
+    between u and v lies within theta_u + theta_v of the stored one, phi = arccos(R), and
+    the true correlation lies in [cos(min(pi, phi + theta)), cos(max(0, phi - theta))]. The
+    bound is the farther end of that interval from R: at most 1 + |R|, about
+    sin(phi) (theta_u + theta_v) when the errors are small. The floating-point error of R
+    (from the covariance's) widens the interval first."""
     names, cov, _, fp, delta = _covariance(reader, columns)
     m = float(reader.rows_count)
     var = np.diag(cov)
     with np.errstate(invalid="ignore", divide="ignore"):
         sd = np.sqrt(np.maximum(var, 0.0))
         corr = np.clip(cov / np.outer(sd, sd), -1.0, 1.0)
-        norm = sd * math.sqrt(m - 1)
         # the computed norms carry floating-point error: take them down by its bound
-        low = np.sqrt(np.maximum(var - np.diag(fp), 0.0) * (m - 1))
-        rel = np.where(low > 0, 2.0 * delta / low, np.inf)
-        low_sd = low / math.sqrt(m - 1)
-        fp_rel = (2.0 * fp / np.outer(low_sd, low_sd)
-                  + np.abs(corr) * (np.diag(fp) / low_sd**2)[:, None] + np.abs(corr) * (np.diag(fp) / low_sd**2)[None, :])
-        bound = _up(rel[:, None] + rel[None, :] + fp_rel + 16 * U * (1 + np.abs(corr)))
-        bound = np.where(np.isfinite(bound), np.minimum(bound, 2.0), 2.0)
-        bad = ~(norm > 0)
+        low_var = np.maximum(var - np.diag(fp), 0.0)
+        low = np.sqrt(low_var * (m - 1))
+        theta = np.where((low > 0) & (delta < low), np.arcsin(np.minimum(delta / low, 1.0)), np.pi)
+        theta = np.where(delta == 0, 0.0, theta * (1 + 1e-12))
+        low_sd = np.sqrt(low_var)
+        fp_r = (2.0 * fp / np.outer(low_sd, low_sd)
+                + np.abs(corr) * (np.diag(fp) / low_var)[:, None] + np.abs(corr) * (np.diag(fp) / low_var)[None, :]
+                + 16 * U * (1 + np.abs(corr)))
+        fp_r = np.where(np.isfinite(fp_r), fp_r, 2.0)
+        phi_lo = np.arccos(np.minimum(corr + fp_r, 1.0))
+        phi_hi = np.arccos(np.maximum(corr - fp_r, -1.0))
+        spread = theta[:, None] + theta[None, :]
+        top = np.cos(np.maximum(phi_lo - spread, 0.0))
+        bottom = np.cos(np.minimum(phi_hi + spread, np.pi))
+        # cos and arccos are within a few ulps (common practice): 1e-15 absolute more
+        bound = _up(np.maximum(top - corr, corr - bottom) + 1e-15)
+        bad = ~(low > 0)
+        bound = np.where(np.isfinite(bound) & ~bad[:, None] & ~bad[None, :], np.minimum(bound, 2.0), 2.0)
         corr[bad, :] = np.nan
         corr[:, bad] = np.nan
     np.fill_diagonal(bound, np.where(bad, 2.0, 0.0))
