@@ -136,7 +136,7 @@ def scan_sql(reader: ArchiveReader, columns: Any = None, bounds: str = "row",
             raw = f"least({raw}, {sql_literal(tol)})"
         middle += [f"{lin} AS __v{s}", f"{raw} AS __e{s}"]
         outer_val, outer_bound = _served(reader, j, f"__v{s}", f"__e{s}")
-        served_extra = reader.kind[j] != "d"  # the served bound may exceed the stored one
+        served_extra = reader.kind[j] == "i"  # the served bound may exceed the stored one
         over_v, over_b = [], []
         if use_anchors:
             over_v.append(f"WHEN __anchor THEN CAST(__av{s} AS DOUBLE)")
@@ -180,8 +180,9 @@ def _served(reader: ArchiveReader, j: int, v: str, b: str) -> tuple[str, str]:
     """SQL of the served value and its bound for numeric column j from the stored value ``v``
     and bound ``b`` (column names): the same steps as ``arithmetic.serve`` -- clamped into the
     column's observed range, rounded half to even in integer columns (bound: the farthest
-    integer the true value can be), narrowed to FLOAT in float32 columns (bound grown by the
-    rounding; the factor 1 + 8u covers this expression's own rounding)."""
+    integer the true value can be; in the fallback, the factor 1 + 8u covers this
+    expression's own rounding). SQL serves every numeric column as DOUBLE, so float32
+    columns are not narrowed here."""
     lower, upper = float(reader.lower[j]), float(reader.upper[j])
     clamped = v
     if np.isfinite(upper):
@@ -201,9 +202,7 @@ def _served(reader: ArchiveReader, j: int, v: str, b: str) -> tuple[str, str]:
         bound = (f"(CASE WHEN {low} <= {high} THEN greatest({high} - {r}, {r} - {low}, 0.0) "
                  f"ELSE ({b} + abs({r} - {v})) * {sql_literal(1.0 + 8 * U)} END)")
         return f"({r})", bound
-    if kind == "f":  # (DuckDB has no half float: float16 columns are served as DOUBLE)
-        r = f"CAST(CAST({clamped} AS FLOAT) AS DOUBLE)"
-        return f"({r})", f"(({b} + abs({r} - {clamped})) * {sql_literal(1.0 + 8 * U)})"
+    # float columns (float32 too: SQL serves DOUBLE) are clamped only, their bound unchanged
     return f"({clamped})", f"({b})"
 
 

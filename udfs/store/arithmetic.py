@@ -203,12 +203,15 @@ def serve(values: np.ndarray, bounds: np.ndarray, approximated: np.ndarray, lowe
       upper)] -- the only values the true (integer) one can take. It is 0 when b < 0.5 (r is
       then the true value) and at most b + 1/2; the ends of the interval are widened by one
       ulp to cover the rounding of v +- b;
-    * float32 and float16 columns: the value is rounded to that type (as the typed table
-      holds it) and the bound grows by the rounding, rounded up.
+    * float32 and float16 columns: the same on that type's grid -- the clamped value is
+      rounded to the nearest number of the type (as the typed table holds it), and the bound
+      becomes the farthest number of the type in [v - b, v + b] (within the range); 0 when
+      only one is there, at most b plus half a unit in the last place.
     """
     bounds = bounds.copy()
     if not approximated.any():
         return values.copy(), bounds
+    raw_values, raw_bounds = values, bounds.copy()
     with np.errstate(invalid="ignore", over="ignore"):
         clamped = np.minimum(np.maximum(values, lower[None, :]), upper[None, :])
     served = approximated & np.isfinite(clamped)
@@ -231,10 +234,28 @@ def serve(values: np.ndarray, bounds: np.ndarray, approximated: np.ndarray, lowe
     for code, narrow in (("f", np.float32), ("e", np.float16)):
         typed = served & (kind == code)[None, :]
         if typed.any():
-            v = values[typed]
-            with np.errstate(over="ignore"):
-                r = v.astype(narrow).astype(np.float64)
-            finite = np.isfinite(r)
-            values[typed] = np.where(finite, r, v)
-            bounds[typed] = np.where(finite, round_up(bounds[typed] + np.abs(r - v)), bounds[typed])
+            values[typed], bounds[typed] = _narrow(
+                values[typed], raw_values[typed], raw_bounds[typed], narrow,
+                np.broadcast_to(lower[None, :], values.shape)[typed],
+                np.broadcast_to(upper[None, :], values.shape)[typed])
     return values, bounds
+
+
+def _narrow(clamped: np.ndarray, v: np.ndarray, b: np.ndarray, narrow: type, lower: np.ndarray,
+            upper: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Served value and bound of float cells of a narrower type (see ``serve``): 1-D arrays
+    of the clamped values, the stored values, their bounds and the column range."""
+    with np.errstate(over="ignore", invalid="ignore"):
+        served = clamped.astype(narrow)
+        low = np.maximum(np.nextafter(v - b, -np.inf), lower)
+        high = np.minimum(np.nextafter(v + b, np.inf), upper)
+        first = low.astype(narrow)  # the smallest number of the type at or above low
+        first = np.where(first.astype(np.float64) < low, np.nextafter(first, narrow(np.inf)), first)
+        last = high.astype(narrow)  # the largest at or below high
+        last = np.where(last.astype(np.float64) > high, np.nextafter(last, narrow(-np.inf)), last)
+        r, a, z = served.astype(np.float64), first.astype(np.float64), last.astype(np.float64)
+        within = round_up(np.maximum(np.maximum(z - r, r - a), 0.0))
+        fallback = round_up(b + np.abs(r - v))
+        ok = np.isfinite(r) & np.isfinite(a) & np.isfinite(z) & (a <= z)
+    finite = np.isfinite(r)
+    return np.where(finite, r, clamped), np.where(ok, within, np.where(finite, fallback, b))
