@@ -198,16 +198,19 @@ class Archive:
         return _aggregate.aggregate(self._reader, columns, func, by, where, rows=rows, estimates=estimates)
 
     def covariance(self, columns: Any = None) -> pa.Table:
-        """Sample covariance (divisor rows - 1) of numeric ``columns`` (default: all) from the
-        c x c Gram matrix of the basis columns, as a long table (column_a, column_b, value,
-        bound); ``bound`` is a hard bound on |true - value|. Columns with NULL, NaN or infinite
-        values are refused (InvalidInputError)."""
+        """Sample covariance (divisor rows - 1) of numeric ``columns`` (default: all) of the
+        values as stored, as a long table (column_a, column_b, value, bound); ``bound`` is a
+        hard bound on |true - value| (Cauchy-Schwarz over the column error norms). Computed
+        from the c x c Gram matrix of the basis columns when that is the whole stored value,
+        else (rank 0, quantized residuals, many exact cells) from one pass over the stored
+        values. Columns with NULL, NaN or infinite values are refused (InvalidInputError)."""
         return _aggregate.pairs_table(*_aggregate.covariance(self._reader, columns))
 
     def correlation(self, columns: Any = None) -> pa.Table:
-        """Pearson correlation of numeric ``columns`` (default: all) from the factors, as a long
-        table (column_a, column_b, value, bound); ``bound`` is a hard bound on |true - value|
-        (at most 2, the width of [-1, 1])."""
+        """Pearson correlation of numeric ``columns`` (default: all) of the values as stored,
+        as a long table (column_a, column_b, value, bound); ``bound`` is a hard bound on
+        |true - value| from the angle each column's error can turn it by (at most 1 + |value|;
+        2 with a NaN value where a column's stored spread cannot be told from its error)."""
         return _aggregate.pairs_table(*_aggregate.correlation(self._reader, columns))
 
 
