@@ -181,6 +181,10 @@ def checked_condition(condition: Any, allowed: Iterable[str], *, what: str = "ro
         lookup = {name.lower(): name for name in allowed}
         _check_expression(node["select_list"][0], lookup, condition, what, hint)
         rendered = con.execute("SELECT json_deserialize_sql(?)", [json.dumps(parsed)]).fetchall()[0][0]
+        # the rendering must read back as the very tree that was checked (positions aside)
+        again = json.loads(con.execute("SELECT json_serialize_sql(?)", [rendered]).fetchall()[0][0])
+        if again.get("error") or _without_positions(again) != _without_positions(parsed):
+            _refuse(condition, what, hint, "DuckDB does not read its own rendering of it back the same way")
     except duckdb.Error as exc:
         raise ConditionRefusedError(
             f"The {what} {condition!r} could not be parsed ({str(exc).splitlines()[0]}). {hint}") from None
@@ -190,6 +194,15 @@ def checked_condition(condition: Any, allowed: Iterable[str], *, what: str = "ro
     if not rendered.startswith("SELECT "):
         raise ConditionRefusedError(f"The {what} {condition!r} could not be rendered back. {hint}")
     return f"({rendered[len('SELECT '):]})"
+
+
+def _without_positions(tree: Any) -> Any:
+    """The parse tree without the query_location fields (they differ between renderings)."""
+    if isinstance(tree, dict):
+        return {k: _without_positions(v) for k, v in tree.items() if not k.startswith("query_location")}
+    if isinstance(tree, list):
+        return [_without_positions(v) for v in tree]
+    return tree
 
 
 def _refuse(condition: str, what: str, hint: str, detail: str) -> None:
