@@ -63,7 +63,7 @@ def test_verify_catches_a_rounding_that_its_bound_misses(digits, monkeypatch):
     """The old behaviour (round, keep the float's bound) is caught by verify --source."""
     table, archive = digits
 
-    def rounds_without_widening(values, bounds, approximated, lower, upper, kind):
+    def rounds_without_widening(values, bounds, approximated, lower, upper, kind, special=None):
         out = values.copy()
         integer = approximated & (kind == "i")[None, :]
         out[integer] = np.rint(out[integer])

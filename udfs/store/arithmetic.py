@@ -186,67 +186,85 @@ def decode_codes(stored: np.ndarray) -> np.ndarray:
 
 
 def serve(values: np.ndarray, bounds: np.ndarray, approximated: np.ndarray, lower: np.ndarray,
-          upper: np.ndarray, kind: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """The values a reader hands out and bounds that hold for THEM, shape (b, q) each.
+          upper: np.ndarray, kind: np.ndarray, special: np.ndarray | None = None
+          ) -> tuple[np.ndarray, np.ndarray]:
+    """The values a reader hands out and bounds that hold for THEM, shape (b, q) each,
+    computed IN PLACE in ``values`` and ``bounds`` (which are returned).
 
     ``values``/``bounds``: rebuilt values and their bounds (|true - value| <= bound);
-    ``approximated`` (b, q): cells to serve (others, exact or NULL, are returned as they are);
+    ``approximated`` (b, q): cells to serve (others, exact or NULL, keep their value);
     ``lower``/``upper`` (q,): each column's observed minimum and maximum (finite values;
     +-inf when unknown); ``kind`` (q,): 'i' integer column, 'f' float32, 'e' float16, 'd'
-    float64. Returns new arrays:
+    float64; ``special`` (q,): columns that may hold NaN or infinite cells (None: any).
 
     * every approximated value is clamped into [lower_j, upper_j]. The true value lies in
       that interval, and clamping onto an interval that holds the true value never moves
-      away from it (projection onto a convex set), so the bound stays valid as it is;
+      away from it (projection onto a convex set), so the bound stays valid as it is. Exact
+      finite cells are true values, inside the interval: clamping leaves them as they are,
+      so only columns with NaN or infinite cells need the mask;
     * integer columns: the clamped value c is rounded half to even to r, and the bound
       becomes the largest |t - r| over the integers t in [max(v - b, lower), min(v + b,
       upper)] -- the only values the true (integer) one can take. It is 0 when b < 0.5 (r is
-      then the true value) and at most b + 1/2; the ends of the interval are widened by one
-      ulp to cover the rounding of v +- b;
+      then the true value) and at most b + 1/2; the ends of the interval are widened to
+      cover the rounding of v +- b;
     * float32 and float16 columns: the same on that type's grid -- the clamped value is
       rounded to the nearest number of the type (as the typed table holds it), and the bound
       becomes the farthest number of the type in [v - b, v + b] (within the range); 0 when
       only one is there, at most b plus half a unit in the last place.
     """
-    bounds = bounds.copy()
-    if not approximated.any():
-        return values.copy(), bounds
-    raw_values, raw_bounds = values, bounds.copy()
+    special = np.ones(kind.shape, bool) if special is None else special
+    plain = ~special
+    # typed columns keep their stored values: v +- b (before clamping) is the tighter interval
+    typed = {code: np.flatnonzero(kind == code) for code in ("i", "f", "e")}
+    stored = {code: values[:, idx].copy() for code, idx in typed.items() if idx.size}
     with np.errstate(invalid="ignore", over="ignore"):
-        clamped = np.minimum(np.maximum(values, lower[None, :]), upper[None, :])
-    served = approximated & np.isfinite(clamped)
-    integer = served & (kind == "i")[None, :]
-    if integer.any():
-        v, b = values[integer], bounds[integer]  # before clamping: the tighter interval
-        lo_col = np.broadcast_to(lower[None, :], values.shape)[integer]
-        hi_col = np.broadcast_to(upper[None, :], values.shape)[integer]
-        rounded = np.rint(clamped[integer])
+        if plain.all():  # the common case: one pass, in place
+            np.clip(values, lower[None, :], upper[None, :], out=values)
+        elif plain.any():
+            idx = np.flatnonzero(plain)
+            values[:, idx] = np.clip(values[:, idx], lower[idx][None, :], upper[idx][None, :])
+        for j in np.flatnonzero(special):
+            cells = approximated[:, j] & np.isfinite(values[:, j])
+            values[cells, j] = np.clip(values[cells, j], lower[j], upper[j])
+    for code, v in stored.items():
+        idx = typed[code]
+        c, b = values[:, idx], bounds[:, idx]
+        a = approximated[:, idx] & np.isfinite(c)
+        if not a.any():
+            continue
+        lo, hi = lower[idx][None, :], upper[idx][None, :]
         with np.errstate(invalid="ignore", over="ignore"):
-            low = np.ceil(np.maximum(np.nextafter(v - b, -np.inf), lo_col))
-            high = np.floor(np.minimum(np.nextafter(v + b, np.inf), hi_col))
-            within = np.maximum(np.maximum(high - rounded, rounded - low), 0.0)
-            # an empty interval breaks the bound's own premise: fall back to the triangle
-            # inequality |t - r| <= |t - v| + |v - r|, rounded up
-            fallback = round_up(b + np.abs(rounded - v))
-        bounds[integer] = np.where(low <= high, within, fallback)
-        clamped[integer] = rounded
-    values = np.where(served, clamped, values)
-    for code, narrow in (("f", np.float32), ("e", np.float16)):
-        typed = served & (kind == code)[None, :]
-        if typed.any():
-            values[typed], bounds[typed] = _narrow(
-                values[typed], raw_values[typed], raw_bounds[typed], narrow,
-                np.broadcast_to(lower[None, :], values.shape)[typed],
-                np.broadcast_to(upper[None, :], values.shape)[typed])
+            if code == "i":
+                r, bound = _round_to_integers(c, v, b, lo, hi)
+            else:
+                r, bound = _narrow(c, v, b, np.float32 if code == "f" else np.float16, lo, hi)
+        values[:, idx] = np.where(a, r, c)
+        bounds[:, idx] = np.where(a, bound, b)
     return values, bounds
 
 
-def _narrow(clamped: np.ndarray, v: np.ndarray, b: np.ndarray, narrow: type, lower: np.ndarray,
+def _round_to_integers(c, v, b, lower, upper):
+    """Served value and bound of integer cells (see ``serve``): c the clamped values, v the
+    stored ones, b their bounds."""
+    rounded = np.rint(c)
+    # the interval v +- b, each end moved out by 4u (|v| + b): more than the rounding of
+    # v - b, v + b and of this step itself
+    margin = (np.abs(v) + b) * (4.0 * UNIT_ROUNDOFF)
+    low = np.ceil(np.maximum(v - b - margin, lower))
+    high = np.floor(np.minimum(v + b + margin, upper))
+    bound = np.maximum(np.maximum(high - rounded, rounded - low), 0.0)
+    empty = low > high
+    if empty.any():  # breaks the bound's own premise: the triangle inequality, rounded up
+        bound = np.where(empty, round_up(b + np.abs(rounded - v)), bound)
+    return rounded, bound
+
+
+def _narrow(c: np.ndarray, v: np.ndarray, b: np.ndarray, narrow: type, lower: np.ndarray,
             upper: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Served value and bound of float cells of a narrower type (see ``serve``): 1-D arrays
-    of the clamped values, the stored values, their bounds and the column range."""
+    """Served value and bound of float cells of a narrower type (see ``serve``): arrays of
+    the clamped values, the stored values, their bounds and the column range (broadcast)."""
     with np.errstate(over="ignore", invalid="ignore"):
-        served = clamped.astype(narrow)
+        served = c.astype(narrow)
         low = np.maximum(np.nextafter(v - b, -np.inf), lower)
         high = np.minimum(np.nextafter(v + b, np.inf), upper)
         first = low.astype(narrow)  # the smallest number of the type at or above low
@@ -258,4 +276,4 @@ def _narrow(clamped: np.ndarray, v: np.ndarray, b: np.ndarray, narrow: type, low
         fallback = round_up(b + np.abs(r - v))
         ok = np.isfinite(r) & np.isfinite(a) & np.isfinite(z) & (a <= z)
     finite = np.isfinite(r)
-    return np.where(finite, r, clamped), np.where(ok, within, np.where(finite, fallback, b))
+    return np.where(finite, r, c), np.where(ok, within, np.where(finite, fallback, b))

@@ -98,6 +98,11 @@ class ArchiveReader:
                       if "min" in cols.column_names else np.full(width, -np.inf))
         self.upper = (cols.column("max").to_numpy(zero_copy_only=False).astype(np.float64)
                       if "max" in cols.column_names else np.full(width, np.inf))
+        # columns that may hold NaN or infinite cells (unknown counts: assume they may)
+        self.special = np.zeros(width, bool)
+        for name in ("nans", "infinities"):
+            self.special |= (cols.column(name).to_numpy(zero_copy_only=False) > 0
+                             if name in cols.column_names else True)
         anchors = pq.read_table(self.path / layout.table_file(m, layout.ANCHORS))
         self.anchor_positions = anchors.column(layout.ROW_ID).to_numpy()
         self.anchor_lookup = {int(p): i for i, p in enumerate(self.anchor_positions)}
@@ -327,7 +332,7 @@ class ArchiveReader:
         # cell whose bound becomes 0 holds its true value: it counts as exact.
         approximated = ~exact & ~nulls
         values, bounds = arithmetic.serve(values, bounds, approximated, self.lower[col_idx],
-                                          self.upper[col_idx], self.kind[col_idx])
+                                          self.upper[col_idx], self.kind[col_idx], self.special[col_idx])
         exact |= approximated & self.is_integer[col_idx][None, :] & (bounds == 0.0)
         return Rebuilt(pos, names, values, bounds, exact, nulls, table)
 
