@@ -128,7 +128,10 @@ def select_rows(archive: Any, predicate: str) -> np.ndarray:
 
 def _exact_names(arch: Archive) -> list[str]:
     """Columns of the row files that hold source values exactly, in source order."""
-    kept = set(arch.manifest.get("exact_columns", [])) | set(arch.basis_columns)
+    # basis columns count only when stored as themselves (not as quantized codes)
+    exact_basis = {b["name"] for b in arch.manifest.get("basis", [])
+                   if "step" not in b and b.get("stored_as", b["name"]) == b["name"]}
+    kept = set(arch.manifest.get("exact_columns", [])) | exact_basis
     return [f["name"] for f in arch.manifest["schema"] if f["name"] in kept]
 
 

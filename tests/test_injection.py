@@ -148,3 +148,17 @@ def test_quoting_helpers():
         qualified_name("a.b.c.d")
     with pytest.raises(InvalidInputError):
         qualified_name('"open')
+
+
+def test_quantized_basis_column_is_not_a_row_condition_column(tmp_path):
+    """A basis column stored as quantized codes is approximate: it cannot choose rows."""
+    rng = np.random.default_rng(0)
+    x = rng.standard_normal((300, 2)) @ rng.standard_normal((2, 6))
+    table = pa.table({"id": np.arange(300), **{f"c{j}": x[:, j] for j in range(6)}})
+    archive = rankfold.compress(table, tmp_path / "q.rfa", max_abs_error=0.1,
+                                basis_precision="tolerance", exact_columns=("id",))
+    coded = [b["name"] for b in archive.manifest["basis"] if "step" in b]
+    assert coded
+    assert select_rows(archive, "id < 3").tolist() == [0, 1, 2]
+    with pytest.raises(ConditionRefusedError, match=f"'{coded[0]}' is not one of the columns"):
+        select_rows(archive, f"{coded[0]} > 0")
