@@ -191,20 +191,26 @@ class Archive:
         each column its value and ``<column>_bound``, a hard bound on |true - value| (0 for
         counts); ``estimates=True`` adds ``<column>_estimate``, a typical error (an estimate,
         not a bound). A group whose column has only NULLs gives NULL (bound 0), as SQL does.
+        The value is the aggregate of the values as stored (not of the clamped, rounded cells
+        that :meth:`rebuild` serves) and its bound covers the aggregate of the TRUE values;
+        it can differ from the sum of rebuilt cells by at most this bound plus their bounds.
         """
         return _aggregate.aggregate(self._reader, columns, func, by, where, rows=rows, estimates=estimates)
 
     def covariance(self, columns: Any = None) -> pa.Table:
-        """Sample covariance (divisor rows - 1) of numeric ``columns`` (default: all) from the
-        c x c Gram matrix of the basis columns, as a long table (column_a, column_b, value,
-        bound); ``bound`` is a hard bound on |true - value|. Columns with NULL, NaN or infinite
-        values are refused (InvalidInputError)."""
+        """Sample covariance (divisor rows - 1) of numeric ``columns`` (default: all) of the
+        values as stored, as a long table (column_a, column_b, value, bound); ``bound`` is a
+        hard bound on |true - value| (Cauchy-Schwarz over the column error norms). Computed
+        from the c x c Gram matrix of the basis columns when that is the whole stored value,
+        else (rank 0, quantized residuals, many exact cells) from one pass over the stored
+        values. Columns with NULL, NaN or infinite values are refused (InvalidInputError)."""
         return _aggregate.pairs_table(*_aggregate.covariance(self._reader, columns))
 
     def correlation(self, columns: Any = None) -> pa.Table:
-        """Pearson correlation of numeric ``columns`` (default: all) from the factors, as a long
-        table (column_a, column_b, value, bound); ``bound`` is a hard bound on |true - value|
-        (at most 2, the width of [-1, 1])."""
+        """Pearson correlation of numeric ``columns`` (default: all) of the values as stored,
+        as a long table (column_a, column_b, value, bound); ``bound`` is a hard bound on
+        |true - value| from the angle each column's error can turn it by (at most 1 + |value|;
+        2 with a NaN value where a column's stored spread cannot be told from its error)."""
         return _aggregate.pairs_table(*_aggregate.correlation(self._reader, columns))
 
 
@@ -213,7 +219,12 @@ def _describe_rows(rows: Any) -> Any:
         return None
     if isinstance(rows, slice):
         return f"{rows.start}:{rows.stop}:{rows.step}"
-    return np.atleast_1d(np.asarray(rows)).tolist()
+    if isinstance(rows, range):
+        return f"{rows.start}:{rows.stop}:{rows.step}"
+    positions = np.atleast_1d(np.asarray(rows))
+    if positions.size > 100:  # a log record stays small: the count and the span
+        return f"{positions.size} positions from {int(positions.min())} to {int(positions.max())}"
+    return positions.tolist()
 
 
 def _typed(values: np.ndarray, nulls: np.ndarray, type_name: str) -> pa.Array:

@@ -25,6 +25,7 @@ import pyarrow as pa
 from rankfold.udfs.errors import InvalidInputError
 from rankfold.udfs.store import layout
 from rankfold.udfs.store.aggregate import rows_source_sql
+from rankfold.udfs.store.sql_text import checked_condition, quote_identifier, sql_literal
 
 from .archive import Archive
 
@@ -38,14 +39,6 @@ def _archive(archive: Any) -> Archive:
     return archive if isinstance(archive, Archive) else Archive(archive)
 
 
-def _literal(text: str) -> str:
-    return "'" + text.replace("'", "''") + "'"
-
-
-def _identifier(name: str) -> str:
-    return '"' + name.replace('"', '""') + '"'
-
-
 def connect(archive: Any, *, view: str = VIEW):
     """A fresh DuckDB connection with the SQL functions registered and the archive as ``view``."""
     import duckdb
@@ -55,10 +48,10 @@ def connect(archive: Any, *, view: str = VIEW):
     arch = _archive(archive)
     con = duckdb.connect()
     names = rankfold.udfs.register(con)
-    con.execute(f"SET VARIABLE {PATH_VARIABLE} = {_literal(str(arch.path))}")
+    con.execute(f"SET VARIABLE {PATH_VARIABLE} = {sql_literal(str(arch.path))}")
     if "rankfold_scan" in names:
-        con.execute(f"CREATE TEMP VIEW {_identifier(view)} AS "
-                    f"SELECT * FROM rankfold_scan({_literal(str(arch.path))})")
+        con.execute(f"CREATE TEMP VIEW {quote_identifier(view)} AS "
+                    f"SELECT * FROM rankfold_scan({sql_literal(str(arch.path))})")
     else:
         table = arch.rebuild()
         table = table.add_column(0, layout.ROW_ID, pa.array(np.arange(table.num_rows, dtype=np.int64)))
@@ -99,7 +92,7 @@ def _first_line(exc: Exception) -> str:
 
 
 def _column_list(con, view: str, limit: int = 12) -> str:
-    names = con.sql(f"SELECT * FROM {_identifier(view)} LIMIT 0").columns
+    names = con.sql(f"SELECT * FROM {quote_identifier(view)} LIMIT 0").columns
     return ", ".join(names[:limit]) + (f" ... ({len(names)} in all)" if len(names) > limit else "")
 
 
@@ -113,16 +106,15 @@ def select_rows(archive: Any, predicate: str) -> np.ndarray:
     import duckdb
 
     arch = _archive(archive)
-    if not isinstance(predicate, str) or not predicate.strip():
-        raise InvalidInputError("The row predicate is empty; give a SQL condition such as "
-                                "\"id BETWEEN 10 AND 20\".")
     exact = _exact_names(arch)
     con = duckdb.connect()
     try:
+        # one expression over the exactly kept columns, checked by parsing (never run as given)
+        condition = checked_condition(predicate, [layout.ROW_ID] + exact, what="row condition", con=con)
         relation = rows_source_sql(arch._reader)  # this version's files, checked, no glob
-        con.execute(f"CREATE TEMP VIEW kept AS SELECT {', '.join(_identifier(n) for n in [layout.ROW_ID] + exact)} "
+        con.execute(f"CREATE TEMP VIEW kept AS SELECT {', '.join(quote_identifier(n) for n in [layout.ROW_ID] + exact)} "
                     f"FROM {relation}")
-        rows = con.sql(f"SELECT {layout.ROW_ID} FROM kept WHERE ({predicate}) ORDER BY 1").fetchnumpy()
+        rows = con.sql(f"SELECT {layout.ROW_ID} FROM kept WHERE {condition} ORDER BY 1").fetchnumpy()
     except duckdb.Error as exc:
         first = _first_line(exc)
         raise InvalidInputError(
@@ -136,7 +128,10 @@ def select_rows(archive: Any, predicate: str) -> np.ndarray:
 
 def _exact_names(arch: Archive) -> list[str]:
     """Columns of the row files that hold source values exactly, in source order."""
-    kept = set(arch.manifest.get("exact_columns", [])) | set(arch.basis_columns)
+    # basis columns count only when stored as themselves (not as quantized codes)
+    exact_basis = {b["name"] for b in arch.manifest.get("basis", [])
+                   if "step" not in b and b.get("stored_as", b["name"]) == b["name"]}
+    kept = set(arch.manifest.get("exact_columns", [])) | exact_basis
     return [f["name"] for f in arch.manifest["schema"] if f["name"] in kept]
 
 

@@ -4,7 +4,8 @@
 size and SHA-256. ``verify(archive_path, source=...)`` also streams the source once, rebuilds
 the same rows from the archive and checks, cell by cell, that
 
-* every rebuilt numeric value is within its bound of the source value,
+* every rebuilt numeric value, as ``Archive.rebuild()`` returns it (typed: integer columns
+  rounded, float32 columns narrowed), is within its bound of the source value,
 * NULL, NaN and infinite cells come back exactly as they were,
 * the columns kept exactly (keys, non-numeric columns) are equal,
 * the source has the archive's rows and columns,
@@ -137,6 +138,12 @@ def _compare(arch: Archive, src, batch_rows: int, progress: Callable | None) -> 
             start = stop
             continue
         rebuilt = arch._rebuild("verify", slice(start, stop), None)
+        # compare what rebuild() hands out: the typed table (integers rounded, float32
+        # narrowed, all clamped), read back as float64 -- not an intermediate value
+        served = arch._table(rebuilt)
+        rebuilt.values = np.column_stack(
+            [served.column(name).cast(pa.float64()).fill_null(np.nan).to_numpy() for name in numeric]
+        ) if numeric else rebuilt.values
         truth, mask = block_from_batch(batch, numeric)
         src_null = mask if mask is not None else np.zeros_like(rebuilt.nulls)
         # missing-value pattern: NULL where NULL, NaN where NaN, the same infinity

@@ -313,9 +313,9 @@ def test_rebuild_errors(archive, tmp_path, capsys):
         assert code == 1 and one_line_error(err) == message, extra
     assert existing.read_text() == "keep me\n"
     code, _, err = run(capsys, "rebuild", archive, "--where", "m99 > 1")
-    assert code == 1 and one_line_error(err).startswith("The row predicate 'm99 > 1' failed: Binder Error:")
-    assert one_line_error(err).endswith(f"It may use only the columns kept exactly: id, site, "
-                                        f"{', '.join(rankfold.open(archive).basis_columns)}.")
+    assert code == 1 and one_line_error(err).startswith("The row condition 'm99 > 1' was refused: 'm99' is not one of the columns")
+    allowed = ["id", "site", *rankfold.open(archive).basis_columns]
+    assert all(f"'{name}'" in one_line_error(err) for name in allowed)  # the columns it may use
 
 
 def test_rebuild_overwrite_replaces_an_output_file(archive, tmp_path, capsys):

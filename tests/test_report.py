@@ -21,6 +21,7 @@ import pytest
 from matplotlib.image import imread
 
 import rankfold
+from rankfold.udfs.store.reader import ArchiveReader
 from rankfold.report import _g, column_selection, report_data, summary, write_report  # _g: the report's number format
 
 ROWS, COLS, RANK = 500, 12, 3
@@ -142,7 +143,9 @@ def test_heatmap_with_source_shows_true_errors_within_the_bounds(archive):
 def test_leverage_matches_numpy_svd_of_the_rebuilt_table(archive):
     selection = column_selection(archive)
     ledger = archive.column_ledger().to_pydict()
-    z = (archive.to_numpy() - np.array(ledger["shift"])) / np.array(ledger["scale"])
+    # the table as stored (the factors' arithmetic, before serving clamps values into range)
+    stored = ArchiveReader(archive.path).rebuild(serve=False).values
+    z = (stored - np.array(ledger["shift"])) / np.array(ledger["scale"])
     fill = {b["name"]: b["fill"] for b in archive.manifest["basis"]}
     for j, name in enumerate(archive.numeric_columns):  # NULL basis cells are rebuilt from their fill value
         if name in fill:

@@ -9,6 +9,7 @@ built-in exception a caller would naturally catch, so ``except ValueError`` keep
     |   +-- NoNumericColumnsError               nothing to factor
     |   +-- RankTooLargeError                   rank or sample sizes exceed the table
     |   +-- UnknownOptionError (TypeError too)  a misspelled or unsupported option
+    |   +-- ConditionRefusedError               a row condition that is not one plain expression
     +-- UnknownColumnError (LookupError)        a column name the archive does not hold
     +-- RowOutOfRangeError (IndexError)         a row position or key the archive does not hold
     +-- ArchiveExistsError (FileExistsError)    refusing to replace an existing archive
@@ -30,6 +31,7 @@ __all__ = [
     "NoNumericColumnsError",
     "RankTooLargeError",
     "UnknownOptionError",
+    "ConditionRefusedError",
     "UnknownColumnError",
     "RowOutOfRangeError",
     "ArchiveExistsError",
@@ -63,6 +65,12 @@ class RankTooLargeError(InvalidInputError):
 
 class UnknownOptionError(InvalidInputError, TypeError):
     """An option name or option value that rankfold does not know."""
+
+
+class ConditionRefusedError(InvalidInputError):
+    """A row condition (``--where``, ``predicate :=``, ``where=``) that is not one expression
+    over the allowed columns: a second statement, a subquery, a table or window function, a
+    function outside the allow-list, or a column it may not use."""
 
 
 class UnknownColumnError(RankfoldError, LookupError):

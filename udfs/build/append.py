@@ -42,6 +42,7 @@ from ..store.manifest import file_entry, write_manifest
 from ..store.reader import ArchiveReader
 from .commit import CELLS_SCHEMA, PART_ROWS, ZSTD_LEVEL, RowPartWriter, concat_parquet
 from .executors import one_blas_thread
+from .keys import check_unique_key
 from .link import Mixing
 from .profile import ColumnProfile, Transform, profile_block
 from .progress import Progress
@@ -189,6 +190,10 @@ def _write_version(reader: ArchiveReader, src, batch_rows, progress, temp: Path)
     report.finish()
     if result.rows == 0:
         raise EmptySourceError(f"The appended source {src.description} has no rows; nothing to append.")
+    if manifest.get("key"):  # the old rows and the new ones together: one row per key value
+        check_unique_key([directory / p["name"] for p in old_parts] + [temp / p["name"] for p in writer.parts],
+                         manifest["key"],
+                         f"the archive {directory} with the appended rows of {src.description}")
     tables = dict(manifest.get("tables") or {})
     new_files: list[str] = [p["name"] for p in writer.parts]
     # cells: the old table, then the new rows' cells

@@ -36,6 +36,7 @@ from . import link as _link
 from ..factor.sketch import GramSketch, ShiftedGram
 from .commit import CELLS_SCHEMA, ArchiveWriter, RowPartWriter, concat_parquet, prepare_target
 from .executors import make_executor
+from .keys import check_unique_key
 from .options import (AUTO_SKETCH_ROWS, AUTO_SKETCH_ROWS_PER_COLUMN, DEFAULT_RANK_CAP_DIVISOR,
                       CompressOptions)
 from .row_groups import RowGroup, choose_row_groups
@@ -350,6 +351,7 @@ def _compress(src, target: Path, opts: CompressOptions) -> Path:
     _check_squares(np.diag(moments.gram), profile, numeric, src.description)
     sketch = sketch_of(moments)
     goal = _Goal.from_options(opts, numeric)
+    goal.serving(src.schema, numeric, profile)
     build = _first_build(opts, goal, rows, width, sketch, profile, transform, sample, numeric, passthrough)
     for attempt in range(_MAX_ATTEMPTS):
         written = _write(src, target, opts, numeric, passthrough, rows, profile, fingerprint,
@@ -410,6 +412,41 @@ class _Goal:
     max_abs_error: np.ndarray | None
     max_abs_error_per_column: bool
     target_bytes: int | None
+    margin: np.ndarray | None = None  # how far serving may move a value (see ``serving``)
+    integer: np.ndarray | None = None
+
+    def serving(self, schema: pa.Schema, names: list[str], profile: ColumnProfile) -> None:
+        """Record how far ``arithmetic.serve`` may move a stored value: integer columns are
+        rounded (1/2), float32 / float16 columns narrowed (at most one ulp of that type at the
+        column's largest magnitude: served values are clamped into the observed range first).
+        An error target implies the profile of every row (``may_sample_sketch``), so the
+        range is the table's."""
+        types = [schema.field(n).type for n in names]
+        self.integer = np.array([pa.types.is_integer(t) for t in types], bool)
+        reach = np.maximum(np.abs(profile.minimum), np.abs(profile.maximum))
+        reach = np.where(np.isfinite(reach), reach, 0.0)
+        margin = np.zeros(len(names))
+        for j, t in enumerate(types):
+            if pa.types.is_float32(t):
+                margin[j] = float(np.spacing(np.float32(reach[j])))
+            elif pa.types.is_float16(t):
+                margin[j] = float(np.spacing(np.float16(min(reach[j], 65504.0))))
+        self.margin = margin
+
+    def stored_tolerance(self) -> np.ndarray | None:
+        """The tolerance the stored values must meet so that the SERVED values meet
+        ``max_abs_error``. An integer column is served rounded, which moves a value by up to
+        1/2: with t >= 1/2 its stored values must be within t - 1/2 (then the rounded value
+        is within t of the integer truth); below 1/2 rounding finds the truth itself. A
+        float32 column is served narrowed: its stored values must be within
+        max(t - margin, t / 2) (``arithmetic.serve``: within t either way)."""
+        t = self.max_abs_error
+        if t is None or self.integer is None:
+            return t
+        # t - margin leaves room for the narrowing; below t / 2, t / 2 does: where half a unit
+        # exceeds the stored error, only one number of the type is possible (bound 0)
+        floats = np.maximum(t - self.margin, t / 2.0)
+        return np.where(self.integer, np.where(t >= 0.5, t - 0.5, t), floats)
 
     @classmethod
     def from_options(cls, opts: CompressOptions, names: list[str]) -> "_Goal":
@@ -495,7 +532,7 @@ def _first_build(opts, goal, rows, width, sketch, profile, transform, sample, nu
         exact = np.array([sample.get(n, 8.0) for n in numeric])
         limit = min(width - 1, rows, max(1, width // 2)) if method == "cur" else min(width, rows, max(1, width // 2))
         plan = targets.plan_for_tolerance(
-            method=method, rows=rows, width=width, tolerance=goal.max_abs_error,
+            method=method, rows=rows, width=width, tolerance=goal.stored_tolerance(),
             scale=transform.scale, std=profile.std, res=res, order=order, exact_bytes=exact,
             residual=opts.residual, basis_precision=opts.basis_precision, rank=opts.rank,
             max_columns=max(limit, 0))
@@ -601,6 +638,9 @@ def _write(src, target, opts, numeric, passthrough, rows, profile, fingerprint, 
         for p in parts:
             sums.records.extend(p[2])
         cell_files = [f".cells-{k:05d}.parquet" for k, p in enumerate(parts) if p[0].cells.written]
+        if opts.key:
+            check_unique_key([writer.temp / part["name"] for part in writer.parts], opts.key,
+                             src.description)
         if read.sampled:
             profile = _whole_table_profile(src, numeric, rows, result)
         elif not result.fingerprint.matches(fingerprint):

@@ -22,20 +22,12 @@ import numpy as np
 import pyarrow as pa
 
 from ..errors import InvalidInputError
+from ..store.sql_text import one_query, qualified_name, quote_identifier, sql_literal
 
-__all__ = ["Source", "open_source", "quote_identifier", "block_from_batch"]
+__all__ = ["Source", "open_source", "block_from_batch"]
 
 _PARQUET_SUFFIXES = (".parquet", ".pq", ".parq")
 _CSV_SUFFIXES = (".csv", ".tsv", ".txt", ".csv.gz", ".tsv.gz", ".csv.zst")
-
-
-def quote_identifier(name: str) -> str:
-    """Quote a column or table name for DuckDB SQL."""
-    return '"' + name.replace('"', '""') + '"'
-
-
-def quote_literal(text: str) -> str:
-    return "'" + text.replace("'", "''") + "'"
 
 
 @dataclass
@@ -226,12 +218,12 @@ def _open_text_source(text: str, connection: duckdb.DuckDBPyConnection | None) -
         if lowered.endswith(_CSV_SUFFIXES):
             if not path.exists():
                 raise InvalidInputError(f"No CSV file at {text}. Check the path.")
-            relation = f"read_csv({quote_literal(text)})"
+            relation = f"read_csv({sql_literal(text)})"
         else:
             target = f"{text}/**/*.parquet" if path.is_dir() else text
             if not path.is_dir() and not any(ch in text for ch in "*?") and not path.exists():
                 raise InvalidInputError(f"No Parquet file at {text}. Check the path.")
-            relation = f"read_parquet({quote_literal(target)})"
+            relation = f"read_parquet({sql_literal(target)})"
         try:
             schema = _schema_of(con, relation)
             files = None if lowered.endswith(_CSV_SUFFIXES) else [
@@ -246,9 +238,8 @@ def _open_text_source(text: str, connection: duckdb.DuckDBPyConnection | None) -
             f"The source {text!r} is neither a Parquet nor a CSV path; to compress a table or a "
             "query, pass connection=<the DuckDB connection that holds it>."
         )
-    relation = f"({text})" if is_query else (
-        text if "." in text or '"' in text else quote_identifier(text)
-    )
+    # a table name, dotted or not, is quoted part by part (never pasted raw)
+    relation = f"({one_query(text, connection)})" if is_query else qualified_name(text)
     try:
         schema = _schema_of(connection, relation)
     except duckdb.Error as exc:

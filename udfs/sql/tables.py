@@ -36,9 +36,10 @@ import pyarrow.parquet as pq
 from ..errors import InvalidInputError
 from ..store import aggregate as agg
 from ..store import arithmetic, layout
-from ..store.aggregate import basis_sql, quote_ident, rows_source_sql, sql_literal
+from ..store.aggregate import basis_sql, rows_source_sql
 from ..store.integrity import read_parquet_sql
 from ..store.reader import ArchiveReader
+from ..store.sql_text import quote_identifier, sql_literal
 
 __all__ = ["scan_sql", "table_sql", "column_errors_sql", "row_errors_sql", "ResultCache",
            "sweep_spools"]
@@ -73,7 +74,7 @@ def scan_sql(reader: ArchiveReader, columns: Any = None, bounds: str = "row",
     col_idx = np.array([reader.column_index[n] for n in names], np.int64)
     is_basis = reader.is_basis[col_idx] if col_idx.size else np.zeros(0, bool)
     derived = [s for s in range(len(names)) if not is_basis[s]]
-    inner = [f"r.{layout.ROW_ID}"] + [f"r.{quote_ident(n)}" for n in exact_cols]
+    inner = [f"r.{layout.ROW_ID}"] + [f"r.{quote_identifier(n)}" for n in exact_cols]
     if derived and c:
         fs = [basis_sql(reader, t) for t in range(c)]
         inner.append(f"[{', '.join(fs)}]::DOUBLE[{c}] AS __f")
@@ -81,14 +82,14 @@ def scan_sql(reader: ArchiveReader, columns: Any = None, bounds: str = "row",
     inner.append(f"r.{layout.ROW_ERR_MAX} AS __rowmax")
     for s in range(len(names)):
         if is_basis[s]:
-            inner.append(f"r.{quote_ident(names[s])} AS __b{s}")
+            inner.append(f"r.{quote_identifier(names[s])} AS __b{s}")
         elif np.isfinite(reader.residual_step[col_idx[s]]):
-            inner.append(f"{layout.code_sql('r.' + quote_ident(layout.CODE_PATTERN.format(int(col_idx[s]))))} AS __q{s}")
+            inner.append(f"{layout.code_sql('r.' + quote_identifier(layout.CODE_PATTERN.format(int(col_idx[s]))))} AS __q{s}")
     joins = ""
     use_anchors = bool(reader.anchor_positions.size) and bool(derived)
     if use_anchors:
         anchor = read_parquet_sql([reader.path / layout.table_file(reader.manifest, layout.ANCHORS)])
-        picked = ", ".join(f"{quote_ident(names[s])} AS __av{s}" for s in derived)
+        picked = ", ".join(f"{quote_identifier(names[s])} AS __av{s}" for s in derived)
         inner.append("a.__anchor")
         inner += [f"a.__av{s}" for s in derived]
         joins += (f" LEFT JOIN (SELECT {layout.ROW_ID}, true AS __anchor, {picked} FROM "
@@ -106,14 +107,16 @@ def scan_sql(reader: ArchiveReader, columns: Any = None, bounds: str = "row",
         joins += (f" LEFT JOIN (SELECT {layout.ROW_ID}, {', '.join(parts)} FROM {cells} "
                   f"WHERE {layout.COLUMN_ID} IN ({wanted}) GROUP BY {layout.ROW_ID}) x "
                   f"ON r.{layout.ROW_ID} = x.{layout.ROW_ID}")
-    outer = [quote_ident(n) for n in exact_cols]
+    outer = [quote_identifier(n) for n in exact_cols]
+    middle: list[str] = []  # stored value __v<s> and bound __e<s> of each derived column
+    widened: list[str] = []
     bound_exprs = []
     gamma = 2.0 * (c + 3) * U / (1.0 - (c + 3) * U)
     per_cell = bounds == "cell"
     for s, name in enumerate(names):
         j = int(col_idx[s])
         if is_basis[s]:
-            outer.append(f"CAST(__b{s} AS DOUBLE) AS {quote_ident(name)}")
+            outer.append(f"CAST(__b{s} AS DOUBLE) AS {quote_identifier(name)}")
             bound_exprs.append("0.0::DOUBLE")
             continue
         offset = float(reader.offset[j])
@@ -135,10 +138,9 @@ def scan_sql(reader: ArchiveReader, columns: Any = None, bounds: str = "row",
                f"{sql_literal(gamma)} * ({mag})) * {sql_literal(1.0 + 16 * U)}")
         if np.isfinite(tol):
             raw = f"least({raw}, {sql_literal(tol)})"
-        outer_val, outer_bound = f"({lin})", f"({raw})"
-        if reader.is_integer[j]:
-            outer_val = f"(CASE WHEN {raw} < 0.5 THEN round_even({lin}, 0) ELSE {lin} END)"
-            outer_bound = f"(CASE WHEN {raw} < 0.5 THEN 0.0 ELSE {raw} END)"
+        middle += [f"{lin} AS __v{s}", f"{raw} AS __e{s}"]
+        outer_val, outer_bound = _served(reader, j, f"__v{s}", f"__e{s}")
+        served_extra = reader.kind[j] == "i"  # the served bound may exceed the stored one
         over_v, over_b = [], []
         if use_anchors:
             over_v.append(f"WHEN __anchor THEN CAST(__av{s} AS DOUBLE)")
@@ -149,18 +151,63 @@ def scan_sql(reader: ArchiveReader, columns: Any = None, bounds: str = "row",
         if over_v:
             outer_val = f"CASE {' '.join(over_v)} ELSE {outer_val} END"
             outer_bound = f"CASE {' '.join(over_b)} ELSE {outer_bound} END"
-        outer.append(f"{outer_val} AS {quote_ident(name)}")
+        outer.append(f"{outer_val} AS {quote_identifier(name)}")
         bound_exprs.append(outer_bound if per_cell else None)
+        if served_extra:
+            widened.append(outer_bound)
+    named = [(n, f"the key column {n!r}") for n in exact_cols]
+    named += [(n, f"the rebuilt column {n!r}") for n in names]
+    named += {"row": [(BOUND, "the row bound")], "none": [],
+              "cell": [(f"{n}_bound", f"the bound of {n!r}") for n in names]}[bounds]
+    named.append((layout.ROW_ID, "the row position"))
+    agg.check_result_names(named, "This scan", "Use bounds := 'row' (one _rf_bound per row), scan "
+                           "those columns separately, or rename the source column and compress again.")
     if bounds == "row":
-        outer.append(f"{_row_bound(reader, col_idx[derived], derived, use_anchors, gamma)} AS {BOUND}")
+        row = _row_bound(reader, col_idx[derived], derived, use_anchors, gamma)
+        if widened:  # integer and float32 cells: their served bounds, beside the stored ones
+            row = f"greatest({row}, {', '.join(f'CAST({w} AS DOUBLE)' for w in widened)})"
+        outer.append(f"{row} AS {BOUND}")
     elif bounds == "cell":
-        outer += [f"CAST({b} AS DOUBLE) AS {quote_ident(n + '_bound')}" for n, b in zip(names, bound_exprs)]
+        outer += [f"CAST({b} AS DOUBLE) AS {quote_identifier(n + '_bound')}" for n, b in zip(names, bound_exprs)]
     outer.append(layout.ROW_ID)
     source = rows_source_sql(reader)
     if predicate is not None:
-        agg.check_where(reader, con, predicate)
-        source = f"(SELECT * FROM {source} WHERE {predicate})"
-    return f"SELECT {', '.join(outer)} FROM (SELECT {', '.join(inner)} FROM {source} r{joins})"
+        condition = agg.check_where(reader, con, predicate)
+        source = f"(SELECT * FROM {source} WHERE {condition})"
+    stored = f"(SELECT {', '.join(inner)} FROM {source} r{joins})"
+    if middle:
+        stored = f"(SELECT *, {', '.join(middle)} FROM {stored})"
+    return f"SELECT {', '.join(outer)} FROM {stored}"
+
+
+def _served(reader: ArchiveReader, j: int, v: str, b: str) -> tuple[str, str]:
+    """SQL of the served value and its bound for numeric column j from the stored value ``v``
+    and bound ``b`` (column names): the same steps as ``arithmetic.serve`` -- clamped into the
+    column's observed range, rounded half to even in integer columns (bound: the farthest
+    integer the true value can be; in the fallback, the factor 1 + 8u covers this
+    expression's own rounding). SQL serves every numeric column as DOUBLE, so float32
+    columns are not narrowed here."""
+    lower, upper = float(reader.lower[j]), float(reader.upper[j])
+    clamped = v
+    if np.isfinite(upper):
+        clamped = f"least({clamped}, {sql_literal(upper)})"
+    if np.isfinite(lower):
+        clamped = f"greatest({clamped}, {sql_literal(lower)})"
+    kind = reader.kind[j]
+    if kind == "i":
+        r = f"round_even({clamped}, 0)"
+        low = f"nextafter({v} - {b}, {sql_literal(-np.inf)})"
+        high = f"nextafter({v} + {b}, {sql_literal(np.inf)})"
+        if np.isfinite(lower):
+            low = f"greatest({low}, {sql_literal(lower)})"
+        if np.isfinite(upper):
+            high = f"least({high}, {sql_literal(upper)})"
+        low, high = f"ceil({low})", f"floor({high})"
+        bound = (f"(CASE WHEN {low} <= {high} THEN greatest({high} - {r}, {r} - {low}, 0.0) "
+                 f"ELSE ({b} + abs({r} - {v})) * {sql_literal(1.0 + 8 * U)} END)")
+        return f"({r})", bound
+    # float columns (float32 too: SQL serves DOUBLE) are clamped only, their bound unchanged
+    return f"({clamped})", f"({b})"
 
 
 def _row_bound(reader, cols: np.ndarray, slots: list[int], use_anchors: bool, gamma: float) -> str:
@@ -219,7 +266,7 @@ def column_errors_sql(reader: ArchiveReader) -> str:
 
 def row_errors_sql(reader: ArchiveReader) -> str:
     key = reader.manifest.get("key")
-    keys = f"{quote_ident(key)}, " if key else ""
+    keys = f"{quote_identifier(key)}, " if key else ""
     return (f"SELECT {layout.ROW_ID}, {keys}{layout.ROW_ERR_MAX} AS err_max_scaled, "
             f"{layout.ROW_ERR_L2} AS err_l2_scaled FROM {rows_source_sql(reader)}")
 

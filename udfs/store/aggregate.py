@@ -23,8 +23,6 @@ what the error of a sum of N_a independent errors of that size would typically b
 
 from __future__ import annotations
 
-import math
-import re
 from dataclasses import dataclass
 from typing import Any
 
@@ -35,9 +33,10 @@ import pyarrow as pa
 from ..errors import InvalidInputError, UnknownColumnError
 from . import arithmetic, layout
 from .integrity import read_parquet_sql, read_small_table
+from .sql_text import checked_condition, quote_identifier, sql_literal
 
 __all__ = ["BLOCKS", "BlockSums", "aggregate", "covariance", "correlation", "FUNCS",
-           "basis_sql", "rows_source_sql", "sql_literal", "quote_ident"]
+           "basis_sql", "rows_source_sql", "check_where", "check_result_names"]
 
 BLOCKS = "blocks.parquet"
 FUNCS = ("sum", "avg", "count")
@@ -231,28 +230,6 @@ def _blocks(reader) -> _Blocks | None:
 
 
 # -- SQL pieces shared with the scan ----------------------------------------------------------
-def quote_ident(name: str) -> str:
-    return '"' + name.replace('"', '""') + '"'
-
-
-def sql_literal(value: Any) -> str:
-    """A SQL literal that DuckDB reads back as the same value (floats as DOUBLE, exactly)."""
-    if value is None:
-        return "NULL"
-    if isinstance(value, (bool, np.bool_)):
-        return "true" if value else "false"
-    if isinstance(value, (int, np.integer)):
-        return str(int(value))
-    if isinstance(value, (float, np.floating)):
-        v = float(value)
-        if math.isnan(v):
-            return "'nan'::DOUBLE"
-        if math.isinf(v):
-            return "'inf'::DOUBLE" if v > 0 else "'-inf'::DOUBLE"
-        return f"{v:.17e}::DOUBLE"
-    return "'" + str(value).replace("'", "''") + "'"
-
-
 def rows_source_sql(reader) -> str:
     """``read_parquet`` of exactly this archive version's row files (names from the manifest,
     never a glob), after checking their SHA-256: DuckDB does not verify page checksums."""
@@ -263,7 +240,7 @@ def rows_source_sql(reader) -> str:
 def basis_sql(reader, t: int) -> str:
     """SQL of the filled value of basis entry t (code * step where stored as codes; the fill
     where NULL or not finite), as DOUBLE: the same value ``ArchiveReader.basis_block`` gives."""
-    column = quote_ident(reader.basis_stored[t])
+    column = quote_identifier(reader.basis_stored[t])
     fill = sql_literal(float(reader.fill[t]))
     step = reader.basis_step[t]
     if np.isfinite(step):
@@ -323,29 +300,46 @@ def _check_by(reader, by: Any) -> list[str]:
     return names
 
 
-_FORBIDDEN = re.compile(r";|--|/\*")
+def check_result_names(columns: list[tuple[str, str]], request: str, remedy: str) -> None:
+    """Refuse a result whose column names collide: ``columns`` lists (name, what it holds)
+    in result order, e.g. ("q_bound", "the bound of 'q'"). Names are compared without case,
+    as DuckDB does. The scan and the aggregates both call this, so a source column named
+    like another column's bound or estimate is refused the same way in Python and SQL."""
+    seen: dict[str, str] = {}
+    for name, what in columns:
+        folded = name.casefold()
+        if folded in seen:
+            raise InvalidInputError(
+                f"{request} would return two columns named {name!r}: {seen[folded]} and {what}. "
+                f"{remedy}")
+        seen[folded] = what
 
 
 def check_where(reader, con, where: Any) -> str | None:
+    """``where`` checked by parsing (``sql_text.checked_condition``): one expression over the
+    key (exact) columns and ``_rf_row``, returned as the SQL to run; then bound against those
+    columns, so a type error is reported here. Raises ConditionRefusedError otherwise."""
     if where is None:
         return None
-    if not isinstance(where, str) or not where.strip() or _FORBIDDEN.search(where):
-        raise InvalidInputError(
-            f"where must be one SQL predicate on key columns, such as \"site = 'A'\", without "
-            f"';' or comments; got {where!r}.")
     allowed = set(reader.manifest.get("exact_columns", [])) | {layout.ROW_ID}
-    # bind the predicate against the key columns alone: a numeric column in it fails here
-    keys = ", ".join(quote_ident(n) for n in sorted(allowed))
+    own = con is None
+    con = _connection(con)
+    # bind the checked condition against the key columns alone: a numeric column fails here
+    keys = ", ".join(quote_identifier(n) for n in sorted(allowed))
     try:
+        condition = checked_condition(where, sorted(allowed), what="row condition (where/predicate)", con=con)
         con.execute(f"DESCRIBE SELECT * FROM (SELECT {keys} FROM {rows_source_sql(reader)}) "
-                    f"WHERE {where}").fetchall()
+                    f"WHERE {condition}").fetchall()
     except duckdb.Error as exc:
         first = str(exc).splitlines()[0]
         raise InvalidInputError(
             f"where {where!r} is not a predicate on the key columns {sorted(allowed)} of the "
             f"archive {reader.path} ({first}). Numeric columns are approximated: filter on key "
             "columns, or filter rankfold_scan's rebuilt rows instead.") from None
-    return where
+    finally:
+        if own:
+            con.close()
+    return condition
 
 
 def _check_rows(reader, rows: Any) -> tuple[int, int] | None:
@@ -418,7 +412,7 @@ def _scan_partials(reader, con, names, col_idx, by, where, row_range):
     if row_range is not None:
         conds.append(f"{layout.ROW_ID} >= {row_range[0]} AND {layout.ROW_ID} < {row_range[1]}")
     cond = (" WHERE " + " AND ".join(conds)) if conds else ""
-    group = ", ".join(quote_ident(b) for b in by)
+    group = ", ".join(quote_identifier(b) for b in by)
     steps = reader.residual_step[col_idx]
     is_basis = reader.is_basis[col_idx]
     coded = np.isfinite(steps) & ~is_basis
@@ -429,10 +423,10 @@ def _scan_partials(reader, con, names, col_idx, by, where, row_range):
     basis_slot = {reader.basis_names[t]: t for t in range(c)}
     for s in range(q):
         if coded[s]:
-            code = layout.code_sql(quote_ident(layout.CODE_PATTERN.format(int(col_idx[s]))))
+            code = layout.code_sql(quote_identifier(layout.CODE_PATTERN.format(int(col_idx[s]))))
             items += [f"sum({code})::DOUBLE AS __q{s}", f"sum(abs({code}))::DOUBLE AS __qa{s}"]
         if is_basis[s]:
-            col = f"CAST({quote_ident(names[s])} AS DOUBLE)"
+            col = f"CAST({quote_identifier(names[s])} AS DOUBLE)"
             items += [f"sum({col}) AS __bs{s}", f"count({col}) AS __bc{s}", f"sum(abs({col})) AS __ba{s}"]
     select = (f"{group}, " if by else "") + ", ".join(items)
     sql = f"SELECT {select} FROM {source}{cond}" + (f" GROUP BY {group} ORDER BY {group}" if by else "")
@@ -468,13 +462,13 @@ def _scan_partials(reader, con, names, col_idx, by, where, row_range):
         con.register(view, overrides)
         try:
             code_case = " ".join(
-                f"WHEN {s} THEN {layout.code_sql('r.' + quote_ident(layout.CODE_PATTERN.format(int(col_idx[s]))))}"
+                f"WHEN {s} THEN {layout.code_sql('r.' + quote_identifier(layout.CODE_PATTERN.format(int(col_idx[s]))))}"
                 for s in range(q) if coded[s])
             code_expr = f"CAST(CASE o._rf_slot {code_case} ELSE 0 END AS DOUBLE)" if code_case else "0.0"
-            inner = [layout.ROW_ID] + [quote_ident(b) for b in by]
+            inner = [layout.ROW_ID] + [quote_identifier(b) for b in by]
             inner += [f"{e} AS __f{t}" for t, e in enumerate(f)]
-            inner += [quote_ident(layout.CODE_PATTERN.format(int(col_idx[s]))) for s in range(q) if coded[s]]
-            keys = ", ".join(f"r.{quote_ident(b)}" for b in by)
+            inner += [quote_identifier(layout.CODE_PATTERN.format(int(col_idx[s]))) for s in range(q) if coded[s]]
+            keys = ", ".join(f"r.{quote_identifier(b)}" for b in by)
             items = ["o._rf_slot AS __slot", "count(*) AS __n", "count(o._rf_value) AS __nn",
                      "sum(o._rf_value) AS __v", "sum(abs(o._rf_value)) AS __va",
                      f"sum({code_expr}) AS __q", f"sum(abs({code_expr})) AS __qa"]
@@ -553,7 +547,15 @@ def aggregate(reader, columns: Any, func: str = "avg", by: Any = None, where: st
     that satisfy ``where`` (a SQL predicate on key columns) and lie in ``rows`` (a slice of
     positions), from the factors. Returns one row per group: the ``by`` columns, then per column
     its value and ``<column>_bound`` (hard bound on |true - value|; 0 for counts), and with
-    ``estimates=True`` also ``<column>_estimate`` (a typical error, not a bound)."""
+    ``estimates=True`` also ``<column>_estimate`` (a typical error, not a bound).
+
+    What the value is: the aggregate of the values as stored (the factors' rebuild, exact
+    cells applied), clamped into what the column's observed range allows (see
+    ``_within_range``); its bound covers |aggregate of the TRUE source values - value|. It is
+    not computed from the served cells (which are clamped one by one, and rounded in integer
+    columns), so it may differ from the sum or mean of ``Archive.rebuild()``'s values; both
+    are within their own bounds of the truth, so they differ by at most this bound plus the
+    sum (or mean) of those cells' bounds."""
     func = _check_func(func)
     if columns is None:
         raise InvalidInputError("aggregate() needs the numeric columns to aggregate, e.g. ['x1', 'x2'].")
@@ -610,8 +612,18 @@ def _finish(reader, names, col_idx, func, keys: pa.Table, part: _Partial, estima
         else:
             value, bound, estimate = count, np.zeros_like(count), np.zeros_like(count)
             null = np.zeros_like(count, bool)
+        if func in ("sum", "avg"):
+            value, bound = _within_range(reader, col_idx, func, value, bound, count)
+            estimate = np.minimum(estimate, bound)
     bound = np.where(null, 0.0, bound)
     estimate = np.where(null, 0.0, estimate)
+    named = [(b, f"the group column {b!r}") for b in by]
+    for name in names:
+        named += [(name, f"the {func} of {name!r}"), (f"{name}_bound", f"the bound of {name!r}")]
+        if estimates:
+            named.append((f"{name}_estimate", f"the error estimate of {name!r}"))
+    check_result_names(named, "This aggregate", "Aggregate those columns in separate calls, or "
+                       "rename the source column and compress again.")
     arrays, out_names = [keys.column(b) for b in by], list(by)
     for s, name in enumerate(names):
         if func == "count":
@@ -629,6 +641,39 @@ def _finish(reader, names, col_idx, func, keys: pa.Table, part: _Partial, estima
         "rankfold.bound": "hard bound on |true - value| from the error ledger, as stored",
         "rankfold.estimate": "estimate, not a bound: sqrt(cells) * rms error of the column",
     })
+
+
+def _within_range(reader, col_idx, func: str, value: np.ndarray, bound: np.ndarray,
+                  count: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Narrow a sum or mean (g, q) with its bound to what the column's observed range allows:
+    the true sum of `count` values in [lower_j, upper_j] lies in [count lower_j, count
+    upper_j] (the mean in [lower_j, upper_j]). The value is clamped into that range and the
+    bound becomes the farthest end of [value - bound, value + bound] intersected with it, so
+    it never grows. Columns with NaN or infinite values (their sums are not finite) and
+    empty intersections (which the bound's premise excludes) are left as they are. The ends
+    count * lower_j are moved out by one ulp to cover their own rounding."""
+    lower, upper = reader.lower[col_idx][None, :], reader.upper[col_idx][None, :]
+    cols = reader.columns_table
+    special = np.zeros(col_idx.size, bool)
+    for name in ("nans", "infinities"):
+        if name in cols.column_names:
+            special |= cols.column(name).to_numpy()[col_idx] > 0
+    with np.errstate(invalid="ignore", over="ignore"):
+        if func == "sum":
+            low = np.nextafter(count * lower, -np.inf)
+            high = np.nextafter(count * upper, np.inf)
+        else:
+            low, high = np.broadcast_to(lower, value.shape), np.broadcast_to(upper, value.shape)
+        # where the true value can be, widened by one ulp at each end for their rounding
+        a = np.nextafter(np.maximum(value - bound, low), -np.inf)
+        b = np.nextafter(np.minimum(value + bound, high), np.inf)
+        usable = (np.isfinite(low) & np.isfinite(high) & np.isfinite(value) & (count > 0)
+                  & ~special[None, :] & (a <= b))
+        clamped = np.minimum(np.maximum(value, low), high)
+        # clamping onto a range that holds the true value never moves away from it: the old
+        # bound holds for the clamped value as well, and the narrowed one may be smaller
+        narrowed = np.minimum(_up(np.maximum(b - clamped, clamped - a)), bound)
+    return np.where(usable, clamped, value), np.where(usable, narrowed, bound)
 
 
 # -- covariance and correlation --------------------------------------------------------------
@@ -656,6 +701,64 @@ def covariance(reader, columns: Any = None) -> tuple[list[str], np.ndarray, np.n
 
 
 def _covariance(reader, columns: Any = None):
+    """(names, C, B, fp, d): the covariance of the values as stored, by the cheaper route that
+    sees them: from the Gram matrix of the basis values (no scan) when the low-rank part is
+    the whole stored value up to the residual, else (no basis, residual codes, or overridden
+    cells that weigh more than the residual) from one scan of the rebuilt values."""
+    names, col_idx = _cov_columns(reader, columns)
+    blocks = _blocks(reader)
+    if blocks is not None and len(reader.basis_names):
+        every = np.ones(blocks.first.size, bool)
+        coded = np.isfinite(reader.residual_step[col_idx]) & ~reader.is_basis[col_idx]
+        ov_sq = blocks.stack("ov_sq", every)[:, col_idx].sum(axis=0)
+        err_l2 = reader.columns_table.column("err_l2").to_numpy()[col_idx]
+        if not coded.any() and np.all(np.sqrt(ov_sq) <= err_l2):
+            return _gram_covariance(reader, columns)
+    return _stored_covariance(reader, names, col_idx)
+
+
+def _stored_covariance(reader, names: list[str], col_idx: np.ndarray, *,
+                       chunk_rows: int = layout.ROW_GROUP_ROWS):
+    """(names, C, B, fp, d) from one pass over the values as stored (``rebuild(serve=False)``:
+    basis part, residual codes and exact cells; memory of one chunk), for any archive: rank
+    0, quantized codings, many exact cells.
+
+    x = v + e with v the stored value as rebuilt here: e is 0 on exact cells, and on the
+    others at most the verify pass's error (its column norm is ``err_l2``, an upper limit)
+    plus this rebuild's floating-point slack, so ||P e_j|| <= d_j = err_l2_j + ||slack_j||.
+    The co-moments are summed about the profile's means (Chan et al.: shifting keeps the
+    cancellation small); their floating-point error is at most 8 gamma_{m+16}
+    sqrt(C_jj C_ll) (Higham eq. 3.4-3.5 with |a|.|b| <= ||a|| ||b||, Cauchy-Schwarz)."""
+    m = reader.rows_count
+    if m < 2:
+        raise InvalidInputError(f"A sample covariance needs at least 2 rows; {reader.path} has {m}.")
+    q = col_idx.size
+    shift = reader.columns_table.column("mean").to_numpy()[col_idx].astype(np.float64)
+    shift = np.where(np.isfinite(shift), shift, 0.0)
+    gram, total, slack_sq = np.zeros((q, q)), np.zeros(q), np.zeros(q)
+    for lo in range(0, m, chunk_rows):
+        block = reader.rebuild(columns=names, positions=np.arange(lo, min(lo + chunk_rows, m)), serve=False)
+        d = block.values - shift[None, :]
+        gram += d.T @ d
+        total += d.sum(axis=0)
+        slack = np.where(block.exact, 0.0, block.slack)
+        slack_sq += np.einsum("ij,ij->j", slack, slack)
+    mm = float(m)
+    g = _gamma(mm + 16)
+    cov = (gram - np.outer(total, total) / mm) / (mm - 1)
+    cov = (cov + cov.T) / 2.0
+    diag = np.maximum(np.diag(gram), 0.0) * (1 + 4 * g)
+    fp = _up(8.0 * g * np.sqrt(np.outer(diag, diag)) / (mm - 1) * (1 + 8 * U))
+    err_l2 = reader.columns_table.column("err_l2").to_numpy()[col_idx]
+    delta = _up(err_l2 + np.sqrt(_up(slack_sq)) * (1 + 4 * U))
+    delta = np.where(reader.is_basis[col_idx], 0.0, delta)
+    spread = _up(np.sqrt(np.maximum(np.diag(cov) + np.diag(fp), 0.0) * (mm - 1)))
+    bound = _up((np.outer(spread, delta) + np.outer(delta, spread) + np.outer(delta, delta)) / (mm - 1)
+                * (1 + 8 * U) + fp)
+    return names, cov, bound, fp, delta
+
+
+def _gram_covariance(reader, columns: Any = None):
     """(names, C, B): the sample covariance (divisor rows - 1) of the chosen numeric columns as
     rebuilt from the Gram matrix of the basis values, and B, a hard bound on |true C - C|
     elementwise. With x = xhat + e (e: everything the basis part misses, i.e. the ledger's
@@ -698,25 +801,42 @@ def _covariance(reader, columns: Any = None):
 
 
 def correlation(reader, columns: Any = None) -> tuple[list[str], np.ndarray, np.ndarray]:
-    """(names, R, B): Pearson correlations from the factors and a hard bound on |true R - R|.
-    For centred vectors u, uh with ||u - uh|| <= d, ||u/|u| - uh/|uh||| <= 2 d / |uh|, so
-    |cos(u, v) - cos(uh, vh)| <= 2 d_u / |uh| + 2 d_v / |vh| (capped at 2, the range)."""
+    """(names, R, B): Pearson correlations of the values as stored and a hard bound on
+    |true R - R|.
+
+    For centred vectors u (true) and uh (stored) with ||u - uh|| <= d, the angle between
+    them is at most theta = asin(d / |uh|) (pi once d >= |uh|). Angles between directions
+    obey the triangle inequality (they are a metric on the sphere), so the true angle
+    between u and v lies within theta_u + theta_v of the stored one, phi = arccos(R), and
+    the true correlation lies in [cos(min(pi, phi + theta)), cos(max(0, phi - theta))]. The
+    bound is the farther end of that interval from R: at most 1 + |R|, about
+    sin(phi) (theta_u + theta_v) when the errors are small. The floating-point error of R
+    (from the covariance's) widens the interval first."""
     names, cov, _, fp, delta = _covariance(reader, columns)
     m = float(reader.rows_count)
     var = np.diag(cov)
     with np.errstate(invalid="ignore", divide="ignore"):
         sd = np.sqrt(np.maximum(var, 0.0))
         corr = np.clip(cov / np.outer(sd, sd), -1.0, 1.0)
-        norm = sd * math.sqrt(m - 1)
         # the computed norms carry floating-point error: take them down by its bound
-        low = np.sqrt(np.maximum(var - np.diag(fp), 0.0) * (m - 1))
-        rel = np.where(low > 0, 2.0 * delta / low, np.inf)
-        low_sd = low / math.sqrt(m - 1)
-        fp_rel = (2.0 * fp / np.outer(low_sd, low_sd)
-                  + np.abs(corr) * (np.diag(fp) / low_sd**2)[:, None] + np.abs(corr) * (np.diag(fp) / low_sd**2)[None, :])
-        bound = _up(rel[:, None] + rel[None, :] + fp_rel + 16 * U * (1 + np.abs(corr)))
-        bound = np.where(np.isfinite(bound), np.minimum(bound, 2.0), 2.0)
-        bad = ~(norm > 0)
+        low_var = np.maximum(var - np.diag(fp), 0.0)
+        low = np.sqrt(low_var * (m - 1))
+        theta = np.where((low > 0) & (delta < low), np.arcsin(np.minimum(delta / low, 1.0)), np.pi)
+        theta = np.where(delta == 0, 0.0, theta * (1 + 1e-12))
+        low_sd = np.sqrt(low_var)
+        fp_r = (2.0 * fp / np.outer(low_sd, low_sd)
+                + np.abs(corr) * (np.diag(fp) / low_var)[:, None] + np.abs(corr) * (np.diag(fp) / low_var)[None, :]
+                + 16 * U * (1 + np.abs(corr)))
+        fp_r = np.where(np.isfinite(fp_r), fp_r, 2.0)
+        phi_lo = np.arccos(np.minimum(corr + fp_r, 1.0))
+        phi_hi = np.arccos(np.maximum(corr - fp_r, -1.0))
+        spread = theta[:, None] + theta[None, :]
+        top = np.cos(np.maximum(phi_lo - spread, 0.0))
+        bottom = np.cos(np.minimum(phi_hi + spread, np.pi))
+        # cos and arccos are within a few ulps (common practice): 1e-15 absolute more
+        bound = _up(np.maximum(top - corr, corr - bottom) + 1e-15)
+        bad = ~(low > 0)
+        bound = np.where(np.isfinite(bound) & ~bad[:, None] & ~bad[None, :], np.minimum(bound, 2.0), 2.0)
         corr[bad, :] = np.nan
         corr[:, bad] = np.nan
     np.fill_diagonal(bound, np.where(bad, 2.0, 0.0))

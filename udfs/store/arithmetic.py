@@ -25,7 +25,8 @@ from __future__ import annotations
 import numpy as np
 
 __all__ = ["UNIT_ROUNDOFF", "fill_missing", "approximate", "add_residual", "slack", "slack_limit",
-           "round_up", "round_up_compact", "quantize", "trim_mantissa", "encode_codes", "decode_codes"]
+           "round_up", "round_up_compact", "quantize", "trim_mantissa", "encode_codes", "decode_codes",
+           "serve"]
 
 UNIT_ROUNDOFF = 2.0**-53
 
@@ -182,3 +183,97 @@ def decode_codes(stored: np.ndarray) -> np.ndarray:
     """Zigzag uint32 codes back to signed integers, as float64."""
     u = np.asarray(stored).astype(np.int64)
     return np.where(u % 2 == 0, u // 2, -((u + 1) // 2)).astype(np.float64)
+
+
+def serve(values: np.ndarray, bounds: np.ndarray, approximated: np.ndarray, lower: np.ndarray,
+          upper: np.ndarray, kind: np.ndarray, special: np.ndarray | None = None
+          ) -> tuple[np.ndarray, np.ndarray]:
+    """The values a reader hands out and bounds that hold for THEM, shape (b, q) each,
+    computed IN PLACE in ``values`` and ``bounds`` (which are returned).
+
+    ``values``/``bounds``: rebuilt values and their bounds (|true - value| <= bound);
+    ``approximated`` (b, q): cells to serve (others, exact or NULL, keep their value);
+    ``lower``/``upper`` (q,): each column's observed minimum and maximum (finite values;
+    +-inf when unknown); ``kind`` (q,): 'i' integer column, 'f' float32, 'e' float16, 'd'
+    float64; ``special`` (q,): columns that may hold NaN or infinite cells (None: any).
+
+    * every approximated value is clamped into [lower_j, upper_j]. The true value lies in
+      that interval, and clamping onto an interval that holds the true value never moves
+      away from it (projection onto a convex set), so the bound stays valid as it is. Exact
+      finite cells are true values, inside the interval: clamping leaves them as they are,
+      so only columns with NaN or infinite cells need the mask;
+    * integer columns: the clamped value c is rounded half to even to r, and the bound
+      becomes the largest |t - r| over the integers t in [max(v - b, lower), min(v + b,
+      upper)] -- the only values the true (integer) one can take. It is 0 when b < 0.5 (r is
+      then the true value) and at most b + 1/2; the ends of the interval are widened to
+      cover the rounding of v +- b;
+    * float32 and float16 columns: the same on that type's grid -- the clamped value is
+      rounded to the nearest number of the type (as the typed table holds it), and the bound
+      becomes the farthest number of the type in [v - b, v + b] (within the range); 0 when
+      only one is there, at most b plus half a unit in the last place.
+    """
+    special = np.ones(kind.shape, bool) if special is None else special
+    plain = ~special
+    # typed columns keep their stored values: v +- b (before clamping) is the tighter interval
+    typed = {code: np.flatnonzero(kind == code) for code in ("i", "f", "e")}
+    stored = {code: values[:, idx].copy() for code, idx in typed.items() if idx.size}
+    with np.errstate(invalid="ignore", over="ignore"):
+        if plain.all():  # the common case: one pass, in place
+            np.clip(values, lower[None, :], upper[None, :], out=values)
+        elif plain.any():
+            idx = np.flatnonzero(plain)
+            values[:, idx] = np.clip(values[:, idx], lower[idx][None, :], upper[idx][None, :])
+        for j in np.flatnonzero(special):
+            cells = approximated[:, j] & np.isfinite(values[:, j])
+            values[cells, j] = np.clip(values[cells, j], lower[j], upper[j])
+    for code, v in stored.items():
+        idx = typed[code]
+        c, b = values[:, idx], bounds[:, idx]
+        a = approximated[:, idx] & np.isfinite(c)
+        if not a.any():
+            continue
+        lo, hi = lower[idx][None, :], upper[idx][None, :]
+        with np.errstate(invalid="ignore", over="ignore"):
+            if code == "i":
+                r, bound = _round_to_integers(c, v, b, lo, hi)
+            else:
+                r, bound = _narrow(c, v, b, np.float32 if code == "f" else np.float16, lo, hi)
+        values[:, idx] = np.where(a, r, c)
+        bounds[:, idx] = np.where(a, bound, b)
+    return values, bounds
+
+
+def _round_to_integers(c, v, b, lower, upper):
+    """Served value and bound of integer cells (see ``serve``): c the clamped values, v the
+    stored ones, b their bounds."""
+    rounded = np.rint(c)
+    # the interval v +- b, each end moved out by 4u (|v| + b): more than the rounding of
+    # v - b, v + b and of this step itself
+    margin = (np.abs(v) + b) * (4.0 * UNIT_ROUNDOFF)
+    low = np.ceil(np.maximum(v - b - margin, lower))
+    high = np.floor(np.minimum(v + b + margin, upper))
+    bound = np.maximum(np.maximum(high - rounded, rounded - low), 0.0)
+    empty = low > high
+    if empty.any():  # breaks the bound's own premise: the triangle inequality, rounded up
+        bound = np.where(empty, round_up(b + np.abs(rounded - v)), bound)
+    return rounded, bound
+
+
+def _narrow(c: np.ndarray, v: np.ndarray, b: np.ndarray, narrow: type, lower: np.ndarray,
+            upper: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Served value and bound of float cells of a narrower type (see ``serve``): arrays of
+    the clamped values, the stored values, their bounds and the column range (broadcast)."""
+    with np.errstate(over="ignore", invalid="ignore"):
+        served = c.astype(narrow)
+        low = np.maximum(np.nextafter(v - b, -np.inf), lower)
+        high = np.minimum(np.nextafter(v + b, np.inf), upper)
+        first = low.astype(narrow)  # the smallest number of the type at or above low
+        first = np.where(first.astype(np.float64) < low, np.nextafter(first, narrow(np.inf)), first)
+        last = high.astype(narrow)  # the largest at or below high
+        last = np.where(last.astype(np.float64) > high, np.nextafter(last, narrow(-np.inf)), last)
+        r, a, z = served.astype(np.float64), first.astype(np.float64), last.astype(np.float64)
+        within = round_up(np.maximum(np.maximum(z - r, r - a), 0.0))
+        fallback = round_up(b + np.abs(r - v))
+        ok = np.isfinite(r) & np.isfinite(a) & np.isfinite(z) & (a <= z)
+    finite = np.isfinite(r)
+    return np.where(finite, r, c), np.where(ok, within, np.where(finite, fallback, b))

@@ -17,7 +17,8 @@ import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
-from ..errors import ArchiveNotFoundError, CorruptArchiveError, RowOutOfRangeError, UnknownColumnError
+from ..errors import (ArchiveNotFoundError, CorruptArchiveError, InvalidInputError, RowOutOfRangeError,
+                      UnknownColumnError)
 from . import arithmetic, layout
 from .integrity import (RowFileSeal, check_tables, damaged, open_row_file, read_small_table,
                         verified_metadata)
@@ -30,7 +31,8 @@ __all__ = ["ArchiveReader", "Rebuilt"]
 class Rebuilt:
     """A rebuilt block: ``values`` and ``bounds`` (b, q) float64, ``exact`` (b, q) bool,
     ``nulls`` (b, q) bool (source NULLs), for ``positions`` (b,) and ``columns`` (q names),
-    plus ``rows``: the row-file table of those rows (keys, basis, ledger)."""
+    plus ``rows``: the row-file table of those rows (keys, basis, ledger), and ``slack`` (b, q)
+    (the floating-point part of the bounds; only from ``rebuild(serve=False)``)."""
 
     positions: np.ndarray
     columns: list[str]
@@ -39,6 +41,12 @@ class Rebuilt:
     exact: np.ndarray
     nulls: np.ndarray
     rows: pa.Table
+    slack: np.ndarray | None = None
+
+
+def _short(value: Any) -> str:
+    text = repr(value)
+    return text if len(text) <= 200 else text[:200] + " ..."
 
 
 class ArchiveReader:
@@ -111,6 +119,20 @@ class ArchiveReader:
                               if "residual_step" in cols.column_names else np.full(width, np.nan))
         types = {f["name"]: f["type"] for f in m["schema"]}
         self.is_integer = np.array([types[n].startswith(("int", "uint")) for n in self.numeric_columns])
+        # how a served value is typed: 'i' integer, 'f' float32, 'e' float16, 'd' float64
+        self.kind = np.array(["i" if i else {"float": "f", "halffloat": "e"}.get(types[n], "d")
+                              for n, i in zip(self.numeric_columns, self.is_integer)], dtype="<U1")
+        # observed range of each column's finite values (the profile of every row): rebuilt
+        # values are clamped into it (arithmetic.serve)
+        self.lower = (cols.column("min").to_numpy(zero_copy_only=False).astype(np.float64)
+                      if "min" in cols.column_names else np.full(width, -np.inf))
+        self.upper = (cols.column("max").to_numpy(zero_copy_only=False).astype(np.float64)
+                      if "max" in cols.column_names else np.full(width, np.inf))
+        # columns that may hold NaN or infinite cells (unknown counts: assume they may)
+        self.special = np.zeros(width, bool)
+        for name in ("nans", "infinities"):
+            self.special |= (cols.column(name).to_numpy(zero_copy_only=False) > 0
+                             if name in cols.column_names else True)
         anchors = read_small_table(self.path, m, layout.table_file(m, layout.ANCHORS))
         self.anchor_positions = anchors.column(layout.ROW_ID).to_numpy()
         self.anchor_lookup = {int(p): i for i, p in enumerate(self.anchor_positions)}
@@ -186,12 +208,20 @@ class ArchiveReader:
         return names
 
     def resolve_rows(self, rows: Any) -> np.ndarray:
-        """Row positions (int64, shape (b,)) from None, an int, a slice or a sequence of ints."""
+        """Row positions (int64, shape (b,)) from None, an int, a slice, a range or a sequence
+        of ints (negative positions count from the end). A request outside the archive is
+        refused before anything of its size is allocated: a slice or range is checked by its
+        ends, an array by its minimum and maximum (no temporary arrays)."""
         m = self.rows_count
         if rows is None:
             return np.arange(m, dtype=np.int64)
         if isinstance(rows, slice):  # no arange(m): a range of a large archive stays small
             return np.arange(*rows.indices(m), dtype=np.int64)
+        if isinstance(rows, range):
+            if len(rows):
+                self._check_span(min(rows[0], rows[-1]), max(rows[0], rows[-1]))
+            out = np.arange(rows.start, rows.stop, rows.step, dtype=np.int64)
+            return np.where(out < 0, out + m, out) if len(rows) and min(rows[0], rows[-1]) < 0 else out
         array = np.atleast_1d(np.asarray(rows))
         if array.ndim > 1:
             raise RowOutOfRangeError(
@@ -202,18 +232,23 @@ class ArchiveReader:
             return np.zeros(0, dtype=np.int64)
         if not np.issubdtype(array.dtype, np.integer):
             raise RowOutOfRangeError(
-                f"Rows are 0-based integer positions; got {rows!r}. To address rows by key "
+                f"Rows are 0-based integer positions; got {_short(rows)}. To address rows by key "
                 "value, use rankfold.Keys([...])."
             )
         # checked before any cast, so that e.g. a uint64 beyond 2^63 is reported as given
-        bad = array[(array < -m) | (array >= m)]
-        if bad.size:
+        low, high = int(array.min()), int(array.max())
+        self._check_span(low, high)
+        out = array.astype(np.int64, copy=False)
+        return np.where(out < 0, out + m, out) if low < 0 else out
+
+    def _check_span(self, low: int, high: int) -> None:
+        m = self.rows_count
+        bad = low if low < -m else high if high >= m else None
+        if bad is not None:
             raise RowOutOfRangeError(
-                f"Row position {int(bad[0])} is out of range for the archive {self.path} with "
+                f"Row position {bad} is out of range for the archive {self.path} with "
                 f"{m} rows (valid: 0 to {m - 1}, or -{m} to -1 from the end)."
             )
-        out = array.astype(np.int64)
-        return np.where(out < 0, out + m, out)
 
     def locate(self, key_values: Any) -> np.ndarray:
         """Positions of the rows whose key column equals each of ``key_values`` (in order)."""
@@ -230,7 +265,10 @@ class ArchiveReader:
             mask = pc.is_in(keys, value_set=pa.array(wanted, type=keys.type))
             hits = table.filter(mask)
             for k, p in zip(hits.column(self.key).to_pylist(), hits.column(layout.ROW_ID).to_pylist()):
-                found.setdefault(k, p)
+                if found.setdefault(k, p) != p:  # archives written before keys were checked
+                    raise InvalidInputError(
+                        f"The key {self.key} = {k!r} names more than one row of {self.path} "
+                        f"(rows {found[k]} and {p}, at least); address these rows by position.")
         missing = [k for k in wanted if k not in found]
         if missing:
             raise RowOutOfRangeError(
@@ -301,8 +339,12 @@ class ArchiveReader:
                     rows.column(layout.CODE_PATTERN.format(int(j))).to_numpy(zero_copy_only=False))
         return codes
 
-    def rebuild(self, rows: Any = None, columns: Any = None, *, positions: np.ndarray | None = None) -> Rebuilt:
-        """Rebuild ``rows`` x ``columns`` with bounds (see :class:`Rebuilt`)."""
+    def rebuild(self, rows: Any = None, columns: Any = None, *, positions: np.ndarray | None = None,
+                serve: bool = True) -> Rebuilt:
+        """Rebuild ``rows`` x ``columns`` with bounds (see :class:`Rebuilt`): the values served
+        to users (clamped, rounded to the column's type, see ``arithmetic.serve``), or with
+        ``serve=False`` the values as stored (the factors' arithmetic, exact cells applied)
+        together with their floating-point ``slack``."""
         names = self.resolve_columns(columns)
         pos = positions if positions is not None else self.resolve_rows(rows)
         col_idx = np.array([self.column_index[n] for n in names], dtype=np.int64)
@@ -347,12 +389,16 @@ class ArchiveReader:
         # exact cells
         if self.cell_rows.size and b:
             self._apply_cells(pos, col_idx, values, nulls, exact)
-        # an integer column's true value is an integer: within 0.5 of it, rounding finds it
-        whole = self.is_integer[col_idx][None, :] & ~exact & ~nulls & (bounds < 0.5)
-        if whole.any():
-            values[whole] = np.rint(values[whole])
-            exact |= whole
         bounds[exact] = 0.0
+        if not serve:
+            return Rebuilt(pos, names, values, bounds, exact, nulls, table, slack)
+        # served values: clamped into the observed range, integer columns rounded and float32
+        # columns narrowed, each bound for the value handed out (arithmetic.serve). An integer
+        # cell whose bound becomes 0 holds its true value: it counts as exact.
+        approximated = ~exact & ~nulls
+        values, bounds = arithmetic.serve(values, bounds, approximated, self.lower[col_idx],
+                                          self.upper[col_idx], self.kind[col_idx], self.special[col_idx])
+        exact |= approximated & self.is_integer[col_idx][None, :] & (bounds == 0.0)
         return Rebuilt(pos, names, values, bounds, exact, nulls, table)
 
     def _row_file_columns(self, col_idx: np.ndarray) -> list[str]:
