@@ -2,7 +2,7 @@
 rebuild any cell, row, column or table with an error bound that holds on the data as stored.
 
     >>> import rankfold
-    >>> archive = rankfold.compress(table, "panel.rfa", rank=12)      # doctest: +SKIP
+    >>> archive = rankfold.compress(table, "panel.rankfold", rank=12)      # doctest: +SKIP
     >>> archive.cell(17, "pressure_03")                               # doctest: +SKIP
     Cell(value=101.32, bound=0.004)
 

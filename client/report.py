@@ -15,7 +15,7 @@
 Each plot has a table of the numbers beside it. Plots are drawn with matplotlib's Agg canvas
 (no display, no global backend switch) and embedded as base64 PNG data URIs; the numbers are
 also embedded as JSON (``<script id="rankfold-report-data">``). matplotlib is an optional
-dependency: ``pip install "rankfold[report]"``.
+dependency: ``python -m pip install matplotlib`` (or the ``report`` extra).
 
 ``summary(archive)`` returns the description that ``rankfold inspect`` prints.
 """
@@ -108,6 +108,8 @@ def summary(archive: Any) -> dict[str, Any]:
         "raw_float64_bytes": rows * width * 8,
         "files": files,
         "errors": arch.errors,
+        "guarantee": arch.guarantee,
+        "warnings": arch.warnings,
     }
 
 
@@ -372,7 +374,7 @@ def _matplotlib():
     except ImportError:  # pragma: no cover - the test extra installs matplotlib
         raise RankfoldError(
             "The quality report needs matplotlib, which is not installed. Install it with: "
-            "python -m pip install \"rankfold[report]\"."
+            "python -m pip install matplotlib"
         ) from None
     return Figure
 

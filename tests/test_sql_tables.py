@@ -57,7 +57,7 @@ OPTIONS = {"cur": dict(rank=3), "svd": dict(rank=3, method="svd"),
 @pytest.fixture(scope="module")
 def archives(tmp_path_factory) -> dict[str, str]:
     root = tmp_path_factory.mktemp("sqlt")
-    return {k: str(rankfold.compress(_table(), root / f"{k}.rfa", key="id", batch_rows=3000, **o).path)
+    return {k: str(rankfold.compress(_table(), root / f"{k}.rankfold", key="id", batch_rows=3000, **o).path)
             for k, o in OPTIONS.items()}
 
 

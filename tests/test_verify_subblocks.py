@@ -113,8 +113,8 @@ def _overridden(archive: rankfold.Archive) -> np.ndarray:
 @pytest.fixture(params=sorted(OPTIONS))
 def archives(request, tmp_path, monkeypatch):
     options = OPTIONS[request.param]
-    small = _compress(tmp_path, monkeypatch, options, SUB_ROWS, "small.rfa")
-    whole = _compress(tmp_path, monkeypatch, options, 1 << 30, "whole.rfa")
+    small = _compress(tmp_path, monkeypatch, options, SUB_ROWS, "small.rankfold")
+    whole = _compress(tmp_path, monkeypatch, options, 1 << 30, "whole.rankfold")
     return small, whole
 
 
