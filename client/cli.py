@@ -639,7 +639,7 @@ def cli_spelling(message: str) -> str:
     """A library message in the command line's words: ``overwrite=True`` -> ``--overwrite``,
     ``executor='dask'`` -> ``--executor dask``, ``max_abs_error=0.1`` -> ``--max-abs-error 0.1``,
     ``refit_outliers=False`` -> ``--no-refit-outliers``, ``the 'rank' option`` -> ``the --rank
-    option``; install hints that name an extra -> the plain package."""
+    option``, ``'rank'`` -> ``--rank``; install hints that name an extra -> the plain package."""
     import re
 
     known = _option_names()
@@ -655,8 +655,11 @@ def cli_spelling(message: str) -> str:
         return f"{_flag(name)} {value.strip(chr(39))}"
 
     text = re.sub(r"\b([a-z_]+)=('[^']*'|True|False|[0-9][0-9.eE+-]*)", assignment, message)
-    text = re.sub(r"'([a-z_]+)'(?= option)", lambda m: _flag(m.group(1)) if m.group(1) in known
+    text = re.sub(r"(?<!column )(?<!\[)'([a-z_]+)'", lambda m: _flag(m.group(1)) if m.group(1) in known
                   else m.group(0), text)
+    # bare option names with an underscore cannot be mistaken for prose: max_abs_error
+    underscored = "|".join(sorted((n for n in known if "_" in n), key=len, reverse=True))
+    text = re.sub(rf"(?<![\w'./-])({underscored})(?![\w=(])", lambda m: _flag(m.group(1)), text)
     text = text.replace("(--overwrite)", "").replace("pass --overwrite  to", "pass --overwrite to")
     text = re.sub(r"""pip install ['"]rankfold\[dask\]['"]""", 'python -m pip install "dask[distributed]"', text)
     text = re.sub(r"""pip install ['"]rankfold\[report\]['"]""", "python -m pip install matplotlib", text)

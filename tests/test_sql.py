@@ -406,7 +406,7 @@ def test_compress_default_rank_and_struct_options(con, tmp_path):
     manifest = archive.manifest
     assert manifest["key"] == "id" and manifest["method"]["options"]["exact_columns"] == ["c00"]
     # the default is a tolerance: every bound within 0.05 standard deviations (numpy.std, ddof 0)
-    source = con.execute("SELECT * FROM panel").fetch_arrow_table()
+    source = con.execute("SELECT * FROM panel").to_arrow_table()
     truth = np.column_stack([source[n].to_numpy() for n in archive.numeric_columns])
     assert manifest["targets"]["max_std_error"] == 0.05
     bounds = archive.cell_bounds()
