@@ -257,18 +257,18 @@ def describe_guarantee(manifest: dict[str, Any]) -> str:
     """What the archive's targets guarantee for every rebuilt value, as one sentence."""
     targets = manifest.get("targets") or {}
     relative, absolute = targets.get("max_std_error"), targets.get("max_abs_error")
-    bound = "and every value's bound says how far it can be"
+    tail = "; each value's bound tells how close"
     if isinstance(relative, (int, float)):
-        return (f"every rebuilt value is within {relative:g} standard deviations of its column "
-                f"(max_std_error={relative:g}) of the true value, {bound}")
+        return (f"every rebuilt value is within {relative:g} x its column's standard deviation "
+                f"of the true value (max_std_error={relative:g}){tail}")
     if isinstance(relative, dict):
-        return (f"every rebuilt value of the {len(relative)} named columns is within its column's "
-                f"max_std_error standard deviations of the true value, {bound}")
+        return (f"every rebuilt value of the {len(relative)} columns named in max_std_error is within "
+                f"its column's fraction of the column's standard deviation of the true value{tail}")
     if isinstance(absolute, (int, float)):
-        return f"every rebuilt value is within {absolute:g} (max_abs_error) of the true value, {bound}"
+        return f"every rebuilt value is within {absolute:g} of the true value (max_abs_error={absolute:g}){tail}"
     if isinstance(absolute, dict):
-        return (f"every rebuilt value of the {len(absolute)} named columns is within its column's "
-                f"max_abs_error of the true value, {bound}")
+        return (f"every rebuilt value of the {len(absolute)} columns named in max_abs_error is within "
+                f"its column's tolerance of the true value{tail}")
     return ("no tolerance was asked for (a rank or relative-error target only): each value "
             "comes with a bound, but no limit on the bounds was guaranteed")
 

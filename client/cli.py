@@ -94,9 +94,9 @@ def _summary_text(info: dict[str, Any]) -> str:
         f"  column relative RMS     mean {_fmt(e.get('mean_column_relative_rms'))}, worst "
         f"{_fmt(e.get('worst_column_relative_rms'))} ({e.get('worst_column')})",
         f"  max abs error / std     {_fmt(e.get('max_abs_error_over_std'))}",
-        f"guaranteed    {info['guarantee']}",
+        f"guaranteed    {cli_spelling(info['guarantee'])}",
     ]
-    lines += [f"warning       {w}" for w in info.get("warnings", [])]
+    lines += [f"warning       {cli_spelling(w)}" for w in info.get("warnings", [])]
     return "\n".join(lines)
 
 
@@ -229,8 +229,8 @@ def cmd_compress(args: argparse.Namespace) -> int:
     text = (f"compressed {info['shape'][0]} rows x {info['shape'][1]} numeric columns into "
             f"{info['archive']} in {elapsed:.2f} s: rank {info['rank']}, {info['archive_bytes']:,} bytes, "
             f"largest error {_fmt(e.get('max_abs_error_over_std'))} column standard deviations\n"
-            f"guaranteed: {info['guarantee']}\n"
-            + "".join(f"warning: {w}\n" for w in info["warnings"])
+            f"guaranteed: {cli_spelling(info['guarantee'])}\n"
+            + "".join(f"warning: {cli_spelling(w)}\n" for w in info["warnings"])
             + f"details: rankfold inspect {info['archive']}")
     _emit(data, args.json, text)
     return EXIT_OK
@@ -247,7 +247,7 @@ def cmd_append(args: argparse.Namespace) -> int:
             "version": result.manifest.get("version"), "refactor_due": result.refactor_due,
             "guarantee": result.guarantee, "drift": result.manifest.get("drift")}
     text = (f"appended {added} rows to {result.path} (now {result.shape[0]} rows); every new value "
-            f"is verified like the original rows: {result.guarantee}")
+            f"is verified like the original rows: {cli_spelling(result.guarantee)}")
     if result.refactor_due:
         text += ("\nwarning: the appended rows have drifted past the archive's error target; "
                  f"compress the whole table again (rankfold compress ... --overwrite)")

@@ -71,7 +71,7 @@ def test_default_keeps_every_value_within_a_twentieth_of_its_columns_std(loader,
     assert DEFAULT_MAX_STD_ERROR == 0.05 and archive.manifest["targets"]["max_std_error"] == 0.05
     assert np.all(bounds <= 0.05 * std * (1 + 1e-12))
     assert np.all(np.abs(rebuilt - data) <= bounds)
-    assert "within 0.05 standard deviations" in archive.guarantee and archive.warnings == []
+    assert "within 0.05 x its column's standard deviation" in archive.guarantee and archive.warnings == []
 
 
 def test_rank_alone_keeps_no_tolerance_and_warns_when_the_error_is_large(tmp_path):
@@ -224,7 +224,7 @@ def test_cli_compress_default_says_what_was_guaranteed(source, tmp_path, capsys)
     folder, table = source
     code, out, err = run(capsys, "compress", folder / "t.parquet", tmp_path / "d.rankfold", "--key", "id", "--quiet")
     assert code == 0 and err == ""
-    assert "guaranteed: every rebuilt value is within 0.05 standard deviations of its column" in out
+    assert "guaranteed: every rebuilt value is within 0.05 x its column's standard deviation of the true value (--max-std-error 0.05)" in out
     code, out, _ = run(capsys, "compress", folder / "t.parquet", tmp_path / "r.rankfold", "--rank", 1, "--quiet")
     assert "guaranteed: no tolerance was asked for" in out
 
