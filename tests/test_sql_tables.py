@@ -110,7 +110,7 @@ def test_scan_one_value_narrow_and_pushdown(con, archives):
     plan = con.execute(f"EXPLAIN {sql}").fetchall()[0][1]
     assert "Filters: id=4321" in plan.replace(" ", "") or "id = 4321" in plan
     # narrow SQL: only the requested column (and the basis) is read and built
-    text = con.execute(f"SELECT rankfold__scan_sql('{path}', ['v3'], 'row', NULL, 'VARCHAR', "
+    text = con.execute(f"SELECT rankfold_internal_scan_sql('{path}', ['v3'], 'row', NULL, 'VARCHAR', "
                        "'VARCHAR[]', 'VARCHAR', '\"NULL\"')").fetchone()[0]
     assert "AS \"v3\"" in text and "AS \"v4\"" not in text
 
