@@ -26,12 +26,12 @@ import rankfold
 from rankfold.demo import heat_network_readings
 
 METHODS = [
-    ("pivoted_qr + qdeim, optimal U", dict(columns="pivoted_qr", rows="qdeim", link="optimal")),
-    ("leverage + leverage, optimal U", dict(columns="leverage", rows="leverage", link="optimal")),
-    ("length_squared + length_squared, optimal U", dict(columns="length_squared", rows="length_squared", link="optimal")),
-    ("pivoted_qr, CX (C^+ A) (default)", dict(columns="pivoted_qr", link="cx")),
-    ("pivoted_qr + qdeim, skeleton U", dict(columns="pivoted_qr", rows="qdeim", link="skeleton")),
-    ("length_squared, textbook U", dict(columns="length_squared", rows="length_squared", link="textbook")),
+    ("pivoted_qr + qdeim, optimal U", dict(column_method="pivoted_qr", row_method="qdeim", link="optimal")),
+    ("leverage + leverage, optimal U", dict(column_method="leverage", row_method="leverage", link="optimal")),
+    ("length_squared + length_squared, optimal U", dict(column_method="length_squared", row_method="length_squared", link="optimal")),
+    ("pivoted_qr, CX (C^+ A) (default)", dict(column_method="pivoted_qr", link="cx")),
+    ("pivoted_qr + qdeim, skeleton U", dict(column_method="pivoted_qr", row_method="qdeim", link="skeleton")),
+    ("length_squared, textbook U", dict(column_method="length_squared", row_method="length_squared", link="textbook")),
     ("truncated SVD (reference)", dict(method="svd")),
 ]
 

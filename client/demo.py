@@ -145,6 +145,7 @@ def run_demo(out: str = "rankfold-demo", *, rows: int = 20_000, quiet: bool = Fa
         "duckdb_scan_seconds": scan_seconds,
         "errors": e,
         "all_cells_within_bounds": within,
+        "guarantee": archive.guarantee,
         "example": {"row": rows // 2, "column": example_col, "rebuilt": cell.value,
                     "bound": cell.bound, "true": float(truth[rows // 2, numeric.index(example_col)])},
     }
@@ -164,6 +165,7 @@ def run_demo(out: str = "rankfold-demo", *, rows: int = 20_000, quiet: bool = Fa
     ex = report["example"]
     say(f"  one cell         row {ex['row']}, {ex['column']}: rebuilt {ex['rebuilt']:.3f} +- "
         f"{ex['bound']:.3f} (true {ex['true']:.3f})")
+    say(f"  guaranteed       {archive.guarantee}")
     say(f"  bounds           every rebuilt cell within its bound: {'yes' if within else 'NO'}")
     say(f"  archive          {archive.path}  (open it with rankfold.open, or read its Parquet files with DuckDB)")
     say("Caution: archives are lossy. Keep lossless originals where law, contract or safety rules "

@@ -30,12 +30,12 @@ from hypothesis import strategies as st
 import rankfold
 
 CUR_COMBINATIONS = [
-    {"method": "cur", "columns": c, "rows": r, "link": link}
+    {"method": "cur", "column_method": c, "row_method": r, "link": link}
     for c, r, link in itertools.product(("pivoted_qr", "leverage", "length_squared"),
                                         ("qdeim", "leverage", "length_squared"),
                                         ("optimal", "skeleton", "textbook"))
     if not (link == "textbook" and c == "pivoted_qr")  # textbook needs sampled columns
-] + [{"method": "cur", "columns": c, "link": "cx"}  # cx keeps no rows
+] + [{"method": "cur", "column_method": c, "link": "cx"}  # cx keeps no rows
      for c in ("pivoted_qr", "leverage", "length_squared")]
 METHODS = CUR_COMBINATIONS + [{"method": "svd"}]
 TRANSFORMS = ("standardize", "center", "none")

@@ -408,7 +408,7 @@ def test_sampled_sketch_of_a_duckdb_table(tmp_path):
         assert ledger.column("valid")[j].as_py() == finite.size
         np.testing.assert_allclose(ledger.column("mean")[j].as_py(), finite.mean(), rtol=1e-12, atol=1e-15)
     with pytest.raises(InvalidInputError, match="neither a Parquet dataset"):
-        rankfold.compress("SELECT * FROM readings", tmp_path / "q.rankfold", connection=con, sketch_rows=3000)
+        rankfold.compress("SELECT * FROM readings", tmp_path / "q.rankfold", connection=con, rank=3, sketch_rows=3000)
 
 
 def test_a_failing_sample_pass_closes_the_stream_opened_ahead(dataset, tmp_path, monkeypatch):
