@@ -187,17 +187,18 @@ class Archive:
         return pa.table(arrays, names=names)
 
     # -- streaming and appending --------------------------------------------------------------------
-    def iter_batches(self, rows: Any = None, columns: Any = None, *, batch_rows: int = 131_072):
-        """Like :meth:`rebuild`, as a stream of tables of at most ``batch_rows`` rows (``rows``:
-        None, a slice or positions): only the row groups of each batch are read, so a range of a
-        large archive is exported with memory of one batch."""
+    def iter_batches(self, rows: Any = None, columns: Any = None, *, batch_rows: int = 131_072,
+                     bounds: bool = False):
+        """Like :meth:`rebuild` (``bounds=True`` too), as a stream of tables of at most
+        ``batch_rows`` rows (``rows``: None, a slice or positions): only the row groups of each
+        batch are read, so a range of a large archive is exported with memory of one batch."""
         for result in self._reader.iter_rebuild(rows, columns, batch_rows=batch_rows):
             self._log.record("iter_batches", rows=f"{int(result.positions[0])}:{int(result.positions[-1]) + 1}"
                              if result.positions.size else None,
                              columns=None if columns is None else result.columns,
                              cells_rebuilt=int((~result.exact).sum()), cells_exact=int(result.exact.sum()),
                              largest_bound=float(result.bounds.max()) if result.bounds.size else 0.0)
-            yield self._table(result)
+            yield self._table(result, bounds=bounds)
 
     def append(self, source: Any, *, connection: Any = None, batch_rows: int = 131_072,
                progress: Any = None) -> "Archive":

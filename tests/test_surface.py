@@ -191,6 +191,9 @@ def test_rebuild_with_bounds_puts_each_bound_beside_its_column(tmp_path):
         got = out.column(name).to_numpy(zero_copy_only=False).astype(float)
         bound = out.column(f"{name}_bound").to_numpy(zero_copy_only=False).astype(float)
         assert _within(truth, got, bound)
+    streamed = pa.concat_tables(archive.iter_batches(rows=slice(0, 50), columns=["x4", "count"],
+                                                     batch_rows=16, bounds=True))
+    assert streamed.equals(out)
     frame = archive.to_pandas(rows=slice(0, 50), columns=["x4", "count"], bounds=True)
     assert list(frame.columns) == out.schema.names and frame["count_bound"].tolist() == out.column("count_bound").to_pylist()
 
