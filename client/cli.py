@@ -250,7 +250,7 @@ def cmd_append(args: argparse.Namespace) -> int:
             f"is verified like the original rows: {cli_spelling(result.guarantee)}")
     if result.refactor_due:
         text += ("\nwarning: the appended rows have drifted past the archive's error target; "
-                 f"compress the whole table again (rankfold compress ... --overwrite)")
+                 "compress the whole table again (rankfold compress ... --overwrite)")
     _emit(data, args.json, text)
     return EXIT_OK
 

@@ -101,6 +101,7 @@ def run_demo(out: str = "rankfold-demo", *, rows: int = 20_000, quiet: bool = Fa
     import pyarrow.parquet as pq
 
     import rankfold
+    from rankfold.terminal import format_with_bound
 
     say = (lambda *a: None) if quiet else print
     folder = Path(out)
@@ -163,8 +164,9 @@ def run_demo(out: str = "rankfold-demo", *, rows: int = 20_000, quiet: bool = Fa
         f"{e['max_abs_error_over_std']:.2f} column std; relative Frobenius "
         f"{e['relative_frobenius']:.4f} (SVD optimum at this rank {e['optimal_relative_frobenius']:.4f})")
     ex = report["example"]
-    say(f"  one cell         row {ex['row']}, {ex['column']}: rebuilt {ex['rebuilt']:.3f} +- "
-        f"{ex['bound']:.3f} (true {ex['true']:.3f})")
+    shown, bound = format_with_bound(ex["rebuilt"], ex["bound"])  # the bound covers the rounding
+    say(f"  one cell         row {ex['row']}, {ex['column']}: rebuilt {shown} +- {bound} "
+        f"(true {ex['true']!r})")
     say(f"  guaranteed       {archive.guarantee}")
     say(f"  bounds           every rebuilt cell within its bound: {'yes' if within else 'NO'}")
     say(f"  archive          {archive.path}  (open it with rankfold.open, or read its Parquet files with DuckDB)")

@@ -18,7 +18,7 @@ import time
 from typing import Any, TextIO
 
 __all__ = ["ProgressBar", "format_seconds", "render_table", "terminal_width", "format_value",
-           "format_bound"]
+           "format_bound", "format_with_bound"]
 
 _WIDTH = 20
 
@@ -150,6 +150,14 @@ def format_bound(bound: Any, extra: float = 0.0) -> str:
     while up < total:  # the division's rounding went down: one unit more
         up += unit
     return f"{up:.{max(0, -exponent)}f}" if exponent < 0 else f"{up:.0f}"
+
+
+def format_with_bound(value: Any, bound: Any) -> tuple[str, str]:
+    """``(value text, bound text)``: the value to the digits its bound makes meaningful and
+    the bound rounded up to cover that display rounding too (``611.4`` and ``1.3`` for
+    611.4234 and 1.2496)."""
+    step = _display_step(float(bound)) if isinstance(bound, (int, float)) else 0.0
+    return format_value(value, bound), format_bound(bound, step)
 
 
 def _is_bound_name(name: str) -> bool:

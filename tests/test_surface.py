@@ -26,7 +26,7 @@ from hypothesis import strategies as st
 import rankfold
 from rankfold.cli import CLI_SPELLING, build_parser, cli_spelling, main
 from rankfold.portable_view import view_sql
-from rankfold.terminal import _display_step, format_bound, format_value, render_table
+from rankfold.terminal import _display_step, format_bound, format_value, format_with_bound, render_table
 from rankfold.udfs.build.options import DEFAULT_MAX_STD_ERROR, CompressOptions
 
 ROWS, COLS = 300, 10
@@ -366,6 +366,7 @@ def test_printed_bound_covers_the_printed_value(value, bound):
     decimals = len(text.split(".")[1]) if "." in text else 0
     assert 10.0 ** (-decimals) <= bound or math.isclose(10.0 ** (-decimals), bound, rel_tol=1e-9)
     assert decimals == 0 or 10.0 ** (-decimals) > bound / 100  # and not more digits
+    assert format_with_bound(value, bound) == (text, format_bound(bound, _display_step(bound)))
 
 
 def test_cli_query_prints_values_to_the_precision_of_their_bound(small_archive, capsys):

@@ -185,8 +185,8 @@ class CompressOptions:
             raise InvalidInputError(
                 f"sketch_rows={self.sketch_rows} cannot be combined with an error or size target "
                 "(including the default max_std_error) or with refit_outliers: those need every "
-                "row's statistics before the verify pass. Give a rank (rank= alone keeps no "
-                "tolerance), or drop sketch_rows (the sketch then reads every row)."
+                "row's statistics before the verify pass. Give 'rank' (alone it keeps no "
+                "tolerance), or drop 'sketch_rows' (the sketch then reads every row)."
             )
         if self.link == "textbook" and self.column_method == "pivoted_qr":
             raise InvalidInputError(
