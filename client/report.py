@@ -113,6 +113,12 @@ def summary(archive: Any) -> dict[str, Any]:
     }
 
 
+def _option(options: dict[str, Any], name: str) -> Any:
+    """A recorded compress option; archives written before the rename hold the old name."""
+    old = {"column_method": "columns", "row_method": "rows"}.get(name)
+    return options.get(name, options.get(old) if old else None)
+
+
 def _sketch_rows(manifest: dict[str, Any], rows: int) -> dict[str, Any]:
     """Which rows the sketch read (archives written before sketch_rows read every row)."""
     return manifest.get("sketch") or {"rows_read": rows, "of_rows": rows, "sampled": False}
@@ -201,7 +207,7 @@ def column_selection(archive: Any) -> dict[str, Any]:
         usage[cols] = load / load.sum() if load.sum() > 0 else 0.0
     return {
         "rank": rank,
-        "selection": arch.manifest["method"].get("options", {}).get("columns"),
+        "selection": _option(arch.manifest["method"].get("options", {}), "column_method"),
         "columns": [{"name": names[j], "basis": bool(names[j] in basis),
                      "leverage": float(leverage[j]), "leverage_rank": int(leverage_rank[j]),
                      "squared_norm_share": float(norm_share[j]),
@@ -583,7 +589,8 @@ def _html(data: dict[str, Any], images: dict[str, str | None]) -> str:
         ["shape", f"{info['shape'][0]:,} rows x {info['shape'][1]:,} numeric columns"],
         ["kept exactly (not factored)", ", ".join(info["exact_columns"]) or "none"],
         ["method", f"{info['method']}, rank {info['rank']} ({info['rank_reason']}), transform {info['transform']}"],
-        ["selection", f"columns {info['options'].get('columns')}, rows {info['options'].get('rows')}, "
+        ["selection", f"column_method {_option(info['options'], 'column_method')}, row_method "
+                      f"{_option(info['options'], 'row_method')}, "
                       f"link {info['options'].get('link')}, seed {info['seed']}"],
         ["archive size", f"{info['archive_bytes']:,} bytes in {len(info['files'])} files "
                          f"(raw float64 numeric block: {info['raw_float64_bytes']:,} bytes)"],

@@ -403,3 +403,14 @@ def test_library_messages_are_rewritten_in_cli_spelling(small_archive, source, t
         '"dask[distributed]", or use --executor local.')
     assert cli_spelling("refit_outliers=False") == "--no-refit-outliers"
     assert cli_spelling("The source has no column 'key'.") == "The source has no column 'key'."
+
+
+def test_the_report_names_the_selection_methods_new_and_old(small_archive):
+    from rankfold.report import _option, report_data
+
+    path, _ = small_archive
+    data = report_data(path, sample_rows=8)
+    assert data["selection"]["selection"] == "pivoted_qr"
+    # an archive written before the rename recorded the old option names
+    assert _option({"columns": "leverage", "rows": "qdeim"}, "column_method") == "leverage"
+    assert _option({"columns": "leverage", "rows": "qdeim"}, "row_method") == "qdeim"
