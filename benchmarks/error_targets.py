@@ -40,7 +40,7 @@ import numpy as np
 import pyarrow as pa
 
 import rankfold
-from rankfold.demo import fernwald_readings
+from rankfold.demo import heat_network_readings
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 from baselines import column_std, column_values, lossless_bss, quantize_columns, round_significant  # noqa: E402
@@ -96,7 +96,7 @@ def iid_noise(rows: int, cols: int, seed: int = 33) -> pa.Table:
 
 def demo(rows: int, cols: int) -> pa.Table:
     """The demo scenario's numeric sensor columns (``cols`` is ignored: 120 channels)."""
-    table = fernwald_readings(rows)
+    table = heat_network_readings(rows)
     numeric = [f.name for f in table.schema
                if (pa.types.is_floating(f.type) or pa.types.is_integer(f.type)) and f.name != "reading_id"]
     return table.select(numeric)
@@ -166,7 +166,7 @@ def bench(name: str, table: pa.Table, out: Path, tolerances: tuple[float, ...], 
                "c_digits": f"{int(digits.detail.min())}-{int(digits.detail.max())}", "variants": {}}
         wanted = {n: float(v) for n, v in zip(names, tol)}
         for label, options in VARIANTS:
-            path = out / f"{name}-{t:g}-{label}.rfa"
+            path = out / f"{name}-{t:g}-{label}.rankfold"
             result = run_variant(table, path, wanted, options)
             if "archive" in result:
                 result["err_ratio"], result["bound_ratio"] = check_archive(result.pop("archive"), names, truth, tol)

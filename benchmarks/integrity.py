@@ -122,7 +122,7 @@ def main() -> None:
     parser.add_argument("--out", type=Path, default=Path("/tmp/rf_integrity"))
     parser.add_argument("--reuse", action="store_true", help="keep the archive of an earlier run")
     args = parser.parse_args()
-    path = args.out / "bench.rfa"
+    path = args.out / "bench.rankfold"
     t0 = time.perf_counter()
     if not (args.reuse and path.is_dir()):
         shutil.rmtree(args.out, ignore_errors=True)

@@ -23,15 +23,15 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 import rankfold
-from rankfold.demo import fernwald_readings
+from rankfold.demo import heat_network_readings
 
 METHODS = [
-    ("pivoted_qr + qdeim, optimal U", dict(columns="pivoted_qr", rows="qdeim", link="optimal")),
-    ("leverage + leverage, optimal U", dict(columns="leverage", rows="leverage", link="optimal")),
-    ("length_squared + length_squared, optimal U", dict(columns="length_squared", rows="length_squared", link="optimal")),
-    ("pivoted_qr, CX (C^+ A) (default)", dict(columns="pivoted_qr", link="cx")),
-    ("pivoted_qr + qdeim, skeleton U", dict(columns="pivoted_qr", rows="qdeim", link="skeleton")),
-    ("length_squared, textbook U", dict(columns="length_squared", rows="length_squared", link="textbook")),
+    ("pivoted_qr + qdeim, optimal U", dict(column_method="pivoted_qr", row_method="qdeim", link="optimal")),
+    ("leverage + leverage, optimal U", dict(column_method="leverage", row_method="leverage", link="optimal")),
+    ("length_squared + length_squared, optimal U", dict(column_method="length_squared", row_method="length_squared", link="optimal")),
+    ("pivoted_qr, CX (C^+ A) (default)", dict(column_method="pivoted_qr", link="cx")),
+    ("pivoted_qr + qdeim, skeleton U", dict(column_method="pivoted_qr", row_method="qdeim", link="skeleton")),
+    ("length_squared, textbook U", dict(column_method="length_squared", row_method="length_squared", link="textbook")),
     ("truncated SVD (reference)", dict(method="svd")),
 ]
 
@@ -78,7 +78,7 @@ def bench(name: str, table: pa.Table, out: Path, rank: int, extra: dict) -> None
     print("|---|---|---|---|---|---|---|---|")
     optimum = None
     for label, opts in METHODS:
-        path = out / f"{name}.rfa"
+        path = out / f"{name}.rankfold"
         shutil.rmtree(path, ignore_errors=True)
         started = time.perf_counter()
         archive = rankfold.compress(str(source), path, rank=rank, seed=3, **opts, **extra)
@@ -99,7 +99,7 @@ def main() -> None:
     out = Path(args.out)
     out.mkdir(exist_ok=True)
     bench("lowrank_1pct_noise", low_rank_table(args.rows), out, rank=10, extra={})
-    bench("fernwald_demo", fernwald_readings(args.rows), out, rank=12, extra={"key": "reading_id"})
+    bench("heat_network_demo", heat_network_readings(args.rows), out, rank=12, extra={"key": "reading_id"})
 
 
 if __name__ == "__main__":

@@ -114,11 +114,11 @@ def table_ratio(data: Path, out: Path, rows: int, repeats: int) -> None:
     scans, runs, peak = [], [], 0.0
     for _ in range(repeats):
         scans.append(child(database, out / "unused", "table-scan")[0])
-        shutil.rmtree(out / f"t-{rows}.rfa", ignore_errors=True)
-        seconds, rss, result = child(database, out / f"t-{rows}.rfa", "table")
+        shutil.rmtree(out / f"t-{rows}.rankfold", ignore_errors=True)
+        seconds, rss, result = child(database, out / f"t-{rows}.rankfold", "table")
         runs.append(seconds)
         peak = max(peak, rss)
-    shutil.rmtree(out / f"t-{rows}.rfa", ignore_errors=True)
+    shutil.rmtree(out / f"t-{rows}.rankfold", ignore_errors=True)
     database.unlink()
     print(f"  DuckDB table: scan {min(scans):.1f} s, compress {min(runs):.1f} s, ratio "
           f"{min(runs) / min(scans):.2f} (scan {', '.join(f'{v:.1f}' for v in scans)}; compress "
@@ -151,8 +151,8 @@ def main() -> None:
             scans, runs, peak = [], [], 0.0
             for _ in range(args.repeats):  # alternated, so drifts of the machine hit both alike
                 scans.append(child(data, args.out / "unused", "scan")[0])
-                shutil.rmtree(args.out / f"a-{rows}.rfa", ignore_errors=True)
-                seconds, rss, out = child(data, args.out / f"a-{rows}.rfa", "local")
+                shutil.rmtree(args.out / f"a-{rows}.rankfold", ignore_errors=True)
+                seconds, rss, out = child(data, args.out / f"a-{rows}.rankfold", "local")
                 runs.append(seconds)
                 peak = max(peak, rss)
             peaks.append(peak)
@@ -165,20 +165,20 @@ def main() -> None:
             if rows == min(args.rows):
                 import rankfold
 
-                full_seconds, _, full = child(data, args.out / f"f-{rows}.rfa", "local", "all")
-                shutil.rmtree(args.out / f"f-{rows}.rfa", ignore_errors=True)
+                full_seconds, _, full = child(data, args.out / f"f-{rows}.rankfold", "local", "all")
+                shutil.rmtree(args.out / f"f-{rows}.rankfold", ignore_errors=True)
                 print(f"  with a sketch of every row (sketch_rows='all'): {full_seconds:.1f} s, relative "
                       f"Frobenius error {full['relative_frobenius']:.5f} (sampled / full: "
                       f"{out['relative_frobenius'] / full['relative_frobenius']:.4f})", flush=True)
-                dask_seconds, _, _ = child(data, args.out / f"d-{rows}.rfa", "dask")
-                a, b = rankfold.open(args.out / f"a-{rows}.rfa"), rankfold.open(args.out / f"d-{rows}.rfa")
+                dask_seconds, _, _ = child(data, args.out / f"d-{rows}.rankfold", "dask")
+                a, b = rankfold.open(args.out / f"a-{rows}.rankfold"), rankfold.open(args.out / f"d-{rows}.rankfold")
                 same = a.basis_columns == b.basis_columns and a.anchor_rows == b.anchor_rows
                 diff = float(np.nanmax(np.abs(a.to_numpy(rows=slice(0, 200_000)) - b.to_numpy(rows=slice(0, 200_000)))))
                 print(f"  dask LocalCluster (2 workers): {dask_seconds:.1f} s, ratio to in-process "
                       f"{dask_seconds / seconds:.2f}; same basis and anchors: {same}; max value difference "
                       f"(first 200,000 rows) {diff:.2e}", flush=True)
-            shutil.rmtree(args.out / f"a-{rows}.rfa", ignore_errors=True)
-            shutil.rmtree(args.out / f"d-{rows}.rfa", ignore_errors=True)
+            shutil.rmtree(args.out / f"a-{rows}.rankfold", ignore_errors=True)
+            shutil.rmtree(args.out / f"d-{rows}.rankfold", ignore_errors=True)
             if args.duckdb_table:
                 table_ratio(data, args.out, rows, args.repeats)
             if not args.keep:

@@ -79,7 +79,7 @@ def main() -> None:
     con.execute(f"COPY src TO '{original}' (FORMAT parquet, COMPRESSION zstd)")
     print(f"original Parquet zstd: {original.stat().st_size / 1e6:.0f} MB in {time.perf_counter() - t0:.1f} s")
     con.unregister("src")
-    archive_path = out / "table.rfa"
+    archive_path = out / "table.rankfold"
     t0 = time.perf_counter()
     archive = rankfold.compress(table, archive_path, rank=10, n_columns=20, key="id",
                                 exact_columns=("grp",))

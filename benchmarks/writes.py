@@ -27,7 +27,7 @@ def _table(rows: int, cols: int, seed: int) -> pa.Table:
 
 
 def _run(folder: Path, first: pa.Table, second: pa.Table, extra: pa.Table) -> dict[str, float]:
-    path = folder / "bench.rfa"
+    path = folder / "bench.rankfold"
     times = {}
     start = time.perf_counter()
     rankfold.compress(first, path, rank=5)

@@ -2,7 +2,7 @@
 rebuild any cell, row, column or table with an error bound that holds on the data as stored.
 
     >>> import rankfold
-    >>> archive = rankfold.compress(table, "panel.rfa", rank=12)      # doctest: +SKIP
+    >>> archive = rankfold.compress(table, "panel.rankfold")          # doctest: +SKIP
     >>> archive.cell(17, "pressure_03")                               # doctest: +SKIP
     Cell(value=101.32, bound=0.004)
 
@@ -40,17 +40,22 @@ def compress(source: Any, path: str | Path, *, rank: int | None = None, seed: in
         replace an existing archive; other files are never replaced). One write per path at
         a time: another compress or append to it raises ArchiveBusyError. Readers of the
         replaced version keep reading it (README, "Versions, writers and crashes").
-    rank : target rank k (default: the Gavish-Donoho hard threshold on the singular values of
-        the transformed table, capped at a tenth of the numeric columns; targets choose it).
+    rank : target rank k. Default: none, and with no other target either the archive keeps
+        every rebuilt value within ``max_std_error=0.05`` of its column's standard deviation
+        (the rank is chosen for that). ``rank`` alone keeps no tolerance; with a tolerance both
+        are honoured (fixed rank, residual coded to meet the tolerance).
     seed : seed of the one numpy Generator used for every random choice; written to the manifest.
-    **options : see the README's option table. Targets: rel_error (number or {column: number}),
-        max_abs_error (number or {column: number}, in column units: every rebuilt value is
-        guaranteed within it), target_bytes. Method: method ('cur' | 'svd'), columns
-        ('pivoted_qr' | 'leverage' | 'length_squared'), link ('cx' | 'optimal' | 'skeleton' |
-        'textbook'; cx, the least-squares C^+ A, keeps no anchor rows), rows ('qdeim' |
-        'leverage' | 'length_squared'; links other than cx), transform ('standardize' |
-        'center' | 'none'), n_columns (default 2 * rank), n_rows (default 2 * n_columns; links
-        other than cx), replace (sample with replacement). Coding under max_abs_error: residual
+    **options : see the README's option table. Targets: max_std_error (number or {column:
+        number}: every rebuilt value guaranteed within that fraction of its column's standard
+        deviation; default 0.05 when nothing else is asked), max_abs_error (number or {column:
+        number}, in column units: every rebuilt value is guaranteed within it; with
+        max_std_error the smaller applies), rel_error (number or {column: number}),
+        target_bytes. Method: method ('cur' | 'svd'), column_method ('pivoted_qr' | 'leverage'
+        | 'length_squared'; old name ``columns``, deprecated), link ('cx' | 'optimal' |
+        'skeleton' | 'textbook'; cx, the least-squares C^+ A, keeps no anchor rows), row_method
+        ('qdeim' | 'leverage' | 'length_squared'; links other than cx; old name ``rows``),
+        transform ('standardize' | 'center' | 'none'), n_columns (default 2 * rank), n_rows (default 2 * n_columns; links
+        other than cx), replace (sample with replacement). Coding under a tolerance: residual
         ('auto' | 'quantized' | 'corrections'), basis_precision ('exact' | 'tolerance'),
         refit_outliers. Data: key (a column to address rows by), exact_columns (numeric
         columns kept exactly), connection (DuckDB, for table or query sources). Running:
@@ -61,7 +66,9 @@ def compress(source: Any, path: str | Path, *, rank: int | None = None, seed: in
 
     Returns
     -------
-    Archive
+    Archive : ``archive.guarantee`` says in one sentence what was guaranteed, and
+        ``archive.warnings`` lists warnings when values are off by a large part of their
+        column's standard deviation.
     """
     from rankfold.udfs.build.compress import compress as _compress
 

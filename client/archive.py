@@ -9,13 +9,14 @@ from typing import Any
 import numpy as np
 import pyarrow as pa
 
-from rankfold.udfs.errors import InvalidInputError
+from rankfold.udfs.errors import InvalidInputError, RankfoldError
 from rankfold.udfs.store import aggregate as _aggregate
 from rankfold.udfs.store import layout
 from rankfold.udfs.store.reader import ArchiveReader, Rebuilt
 from rankfold.udfs.store.rebuild_log import RebuildLog
 
-__all__ = ["Archive", "Cell", "Keys"]
+__all__ = ["Archive", "Cell", "Keys", "bound_column_names", "describe_guarantee", "error_warnings",
+           "LARGE_ERROR_STD"]
 
 Cell = namedtuple("Cell", ["value", "bound"])
 Cell.__doc__ = """A rebuilt cell: ``value`` (float, or None where the source was NULL) and
@@ -81,6 +82,18 @@ class Archive:
         """The error summary measured when the archive was written."""
         return dict(self.manifest["errors"])
 
+    @property
+    def guarantee(self) -> str:
+        """One plain sentence: what compress guaranteed for every rebuilt value (a tolerance
+        relative to each column's standard deviation, an absolute tolerance, or none)."""
+        return describe_guarantee(self.manifest)
+
+    @property
+    def warnings(self) -> list[str]:
+        """Plain warnings about the archive's error, e.g. values off by a large part of their
+        column's standard deviation (more than ``LARGE_ERROR_STD``); empty when none."""
+        return error_warnings(self.manifest)
+
     def column_ledger(self) -> pa.Table:
         """Per numeric column: profile, transform, mixing and measured error (err_max, err_l2, rel_rms)."""
         return self._reader.columns_table
@@ -124,40 +137,68 @@ class Archive:
         value = None if result.nulls[0, 0] else float(result.values[0, 0])
         return Cell(value, float(result.bounds[0, 0]))
 
-    def rebuild(self, rows: Any = None, columns: Any = None) -> pa.Table:
+    def rebuild(self, rows: Any = None, columns: Any = None, *, bounds: bool = False) -> pa.Table:
         """The table for ``rows``: exact (key and non-numeric) columns plus the requested
         numeric columns rebuilt, in source column order and source types (integer columns
-        rounded to the nearest integer), with NULLs where the source had NULLs."""
-        return self._table(self._rebuild("rebuild", rows, columns))
+        rounded to the nearest integer), with NULLs where the source had NULLs.
 
-    def _table(self, result: Rebuilt) -> pa.Table:
+        ``bounds=True`` puts a float64 column ``<column>_bound`` right after each rebuilt
+        column (see :func:`bound_column_names` for a name the source already uses): per cell,
+        a guaranteed limit on |true value - value as returned| (0 for cells stored exactly,
+        NULL where the value is NULL). For integer columns it covers the rounding: the true
+        value is an integer within ``b`` of the unrounded value, so the rounded one is within
+        ``floor(b + 1/2)``."""
+        return self._table(self._rebuild("rebuild", rows, columns), bounds=bounds)
+
+    def to_pandas(self, rows: Any = None, columns: Any = None, *, bounds: bool = False):
+        """:meth:`rebuild` as a pandas DataFrame (pandas is optional: ``pip install pandas``)."""
+        try:
+            import pandas  # noqa: F401  (pyarrow's to_pandas needs it)
+        except ImportError:
+            raise RankfoldError(
+                "Archive.to_pandas needs pandas, which is not installed. Install it with: "
+                "python -m pip install pandas (or use Archive.rebuild, which returns an Arrow table)."
+            ) from None
+        return self.rebuild(rows, columns, bounds=bounds).to_pandas()
+
+    def _table(self, result: Rebuilt, bounds: bool = False) -> pa.Table:
         wanted = set(result.columns)
         index = {n: t for t, n in enumerate(result.columns)}
+        schema_names = [f["name"] for f in self.manifest["schema"]]
+        bound_name = bound_column_names(result.columns, schema_names) if bounds else {}
         arrays, names = [], []
         for field in self.manifest["schema"]:
             name = field["name"]
             if field["role"] == "exact":
                 arrays.append(result.rows.column(name))
             elif name in wanted:
-                arrays.append(_typed(result.values[:, index[name]], result.nulls[:, index[name]],
-                                     field["type"]))
+                t, null = index[name], result.nulls[:, index[name]]
+                arrays.append(_typed(result.values[:, t], null, field["type"]))
+                if bounds:
+                    names.append(name)
+                    bound = result.bounds[:, t]
+                    if pa.types.is_integer(_arrow_type(field["type"])):
+                        bound = np.floor(bound + 0.5)  # rounding to the integer nearest the value
+                    arrays.append(pa.array(bound, pa.float64(), mask=null))
+                    name = bound_name[name]
             else:
                 continue
             names.append(name)
         return pa.table(arrays, names=names)
 
     # -- streaming and appending --------------------------------------------------------------------
-    def iter_batches(self, rows: Any = None, columns: Any = None, *, batch_rows: int = 131_072):
-        """Like :meth:`rebuild`, as a stream of tables of at most ``batch_rows`` rows (``rows``:
-        None, a slice or positions): only the row groups of each batch are read, so a range of a
-        large archive is exported with memory of one batch."""
+    def iter_batches(self, rows: Any = None, columns: Any = None, *, batch_rows: int = 131_072,
+                     bounds: bool = False):
+        """Like :meth:`rebuild` (``bounds=True`` too), as a stream of tables of at most
+        ``batch_rows`` rows (``rows``: None, a slice or positions): only the row groups of each
+        batch are read, so a range of a large archive is exported with memory of one batch."""
         for result in self._reader.iter_rebuild(rows, columns, batch_rows=batch_rows):
             self._log.record("iter_batches", rows=f"{int(result.positions[0])}:{int(result.positions[-1]) + 1}"
                              if result.positions.size else None,
                              columns=None if columns is None else result.columns,
                              cells_rebuilt=int((~result.exact).sum()), cells_exact=int(result.exact.sum()),
                              largest_bound=float(result.bounds.max()) if result.bounds.size else 0.0)
-            yield self._table(result)
+            yield self._table(result, bounds=bounds)
 
     def append(self, source: Any, *, connection: Any = None, batch_rows: int = 131_072,
                progress: Any = None) -> "Archive":
@@ -212,6 +253,57 @@ class Archive:
         |true - value| from the angle each column's error can turn it by (at most 1 + |value|;
         2 with a NaN value where a column's stored spread cannot be told from its error)."""
         return _aggregate.pairs_table(*_aggregate.correlation(self._reader, columns))
+
+
+# An error larger than this many standard deviations of its column changes what the value says
+# about its row (half the typical spread of the column): the summary warns. Our choice; no source.
+LARGE_ERROR_STD = 0.5
+
+
+def describe_guarantee(manifest: dict[str, Any]) -> str:
+    """What the archive's targets guarantee for every rebuilt value, as one sentence."""
+    targets = manifest.get("targets") or {}
+    relative, absolute = targets.get("max_std_error"), targets.get("max_abs_error")
+    tail = "; each value's bound tells how close"
+    if isinstance(relative, (int, float)):
+        return (f"every rebuilt value is within {relative:g} x its column's standard deviation "
+                f"of the true value (max_std_error={relative:g}){tail}")
+    if isinstance(relative, dict):
+        return (f"every rebuilt value of the {len(relative)} columns named in max_std_error is within "
+                f"its column's fraction of the column's standard deviation of the true value{tail}")
+    if isinstance(absolute, (int, float)):
+        return f"every rebuilt value is within {absolute:g} of the true value (max_abs_error={absolute:g}){tail}"
+    if isinstance(absolute, dict):
+        return (f"every rebuilt value of the {len(absolute)} columns named in max_abs_error is within "
+                f"its column's tolerance of the true value{tail}")
+    return ("no tolerance was asked for (a rank or relative-error target only): each value "
+            "comes with a bound, but no limit on the bounds was guaranteed")
+
+
+def error_warnings(manifest: dict[str, Any]) -> list[str]:
+    """Warnings when the measured error is large compared with its column's spread."""
+    worst = (manifest.get("errors") or {}).get("max_abs_error_over_std")
+    if worst is None or not worst > LARGE_ERROR_STD:
+        return []
+    column = (manifest.get("errors") or {}).get("worst_column")
+    return [f"some rebuilt values are off by up to {worst:.3g} standard deviations of their "
+            f"column (more than {LARGE_ERROR_STD:g}; worst relative RMS in {column}): do not "
+            "read single values of this archive without their bounds, or compress again "
+            "with a tolerance (max_std_error) or a higher rank"]
+
+
+def bound_column_names(columns: list[str], taken: list[str]) -> dict[str, str]:
+    """Name of the bound column of each of ``columns``: ``<column>_bound``, with ``_2``,
+    ``_3``... appended when the table already has a column of that name (``taken``)."""
+    used, out = set(taken), {}
+    for name in columns:
+        candidate, n = f"{name}_bound", 1
+        while candidate in used:
+            n += 1
+            candidate = f"{name}_bound_{n}"
+        used.add(candidate)
+        out[name] = candidate
+    return out
 
 
 def _describe_rows(rows: Any) -> Any:

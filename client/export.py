@@ -17,7 +17,7 @@ import pyarrow as pa
 
 from rankfold.udfs.errors import ArchiveExistsError, InvalidInputError
 
-__all__ = ["write_table", "table_to_csv", "table_to_json", "table_to_text", "OUTPUT_SUFFIXES",
+__all__ = ["write_table", "table_to_csv", "table_to_json", "OUTPUT_SUFFIXES",
            "check_output_path"]
 
 OUTPUT_SUFFIXES = {".parquet": "parquet", ".pq": "parquet", ".csv": "csv"}
@@ -37,8 +37,8 @@ def check_output_path(path: str | Path, *, overwrite: bool, suffixes: tuple[str,
         raise InvalidInputError(f"The {what} {out} is a folder; give a file name.")
     if out.exists() and not overwrite:
         raise ArchiveExistsError(
-            f"The {what} {out} already exists; choose another name or pass --overwrite "
-            "(overwrite=True) to replace it."
+            f"The {what} {out} already exists; choose another name or pass overwrite=True "
+            "to replace it."
         )
     if not out.parent.exists():
         raise InvalidInputError(f"The folder of the {what} {out} does not exist; create it first.")
@@ -87,35 +87,6 @@ def _plain(value: Any) -> Any:
 def table_to_json(table: pa.Table) -> str:
     """A JSON array of row objects (NaN as null, infinities as "inf"/"-inf", times in ISO 8601)."""
     return json.dumps([_plain(row) for row in table.to_pylist()], default=str)
-
-
-def _cell_text(value: Any) -> str:
-    if value is None:
-        return "NULL"
-    if isinstance(value, float):
-        return f"{value:.6g}"
-    return str(value)
-
-
-def table_to_text(table: pa.Table, *, limit: int | None = 40) -> str:
-    """An aligned text table (numbers right-aligned), at most ``limit`` rows, with a footer line."""
-    shown = table if limit is None else table.slice(0, limit)
-    names = table.schema.names
-    cells = [[_cell_text(v) for v in row.values()] for row in shown.to_pylist()]
-    numeric = [pa.types.is_integer(f.type) or pa.types.is_floating(f.type) or pa.types.is_decimal(f.type)
-               for f in table.schema]
-    widths = [max([len(n)] + [len(r[j]) for r in cells]) for j, n in enumerate(names)]
-
-    def fmt(values: list[str]) -> str:
-        return "  ".join(v.rjust(w) if num else v.ljust(w)
-                         for v, w, num in zip(values, widths, numeric)).rstrip()
-
-    lines = [fmt(names), "  ".join("-" * w for w in widths)]
-    lines += [fmt(r) for r in cells]
-    more = table.num_rows - shown.num_rows
-    lines.append(f"({table.num_rows} row{'s' if table.num_rows != 1 else ''}"
-                 + (f"; {more} not shown: use --format csv or --output)" if more else ")"))
-    return "\n".join(lines)
 
 
 def csv_text(table: pa.Table) -> str:

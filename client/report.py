@@ -15,7 +15,7 @@
 Each plot has a table of the numbers beside it. Plots are drawn with matplotlib's Agg canvas
 (no display, no global backend switch) and embedded as base64 PNG data URIs; the numbers are
 also embedded as JSON (``<script id="rankfold-report-data">``). matplotlib is an optional
-dependency: ``pip install "rankfold[report]"``.
+dependency: ``python -m pip install matplotlib`` (or the ``report`` extra).
 
 ``summary(archive)`` returns the description that ``rankfold inspect`` prints.
 """
@@ -107,7 +107,15 @@ def summary(archive: Any) -> dict[str, Any]:
         "raw_float64_bytes": rows * width * 8,
         "files": files,
         "errors": arch.errors,
+        "guarantee": arch.guarantee,
+        "warnings": arch.warnings,
     }
+
+
+def _option(options: dict[str, Any], name: str) -> Any:
+    """A recorded compress option; archives written before the rename hold the old name."""
+    old = {"column_method": "columns", "row_method": "rows"}.get(name)
+    return options.get(name, options.get(old) if old else None)
 
 
 def _sketch_rows(manifest: dict[str, Any], rows: int) -> dict[str, Any]:
@@ -198,7 +206,7 @@ def column_selection(archive: Any) -> dict[str, Any]:
         usage[cols] = load / load.sum() if load.sum() > 0 else 0.0
     return {
         "rank": rank,
-        "selection": arch.manifest["method"].get("options", {}).get("columns"),
+        "selection": _option(arch.manifest["method"].get("options", {}), "column_method"),
         "columns": [{"name": names[j], "basis": bool(names[j] in basis),
                      "leverage": float(leverage[j]), "leverage_rank": int(leverage_rank[j]),
                      "squared_norm_share": float(norm_share[j]),
@@ -371,7 +379,7 @@ def _matplotlib():
     except ImportError:  # pragma: no cover - the test extra installs matplotlib
         raise RankfoldError(
             "The quality report needs matplotlib, which is not installed. Install it with: "
-            "python -m pip install \"rankfold[report]\"."
+            "python -m pip install matplotlib"
         ) from None
     return Figure
 
@@ -580,7 +588,8 @@ def _html(data: dict[str, Any], images: dict[str, str | None]) -> str:
         ["shape", f"{info['shape'][0]:,} rows x {info['shape'][1]:,} numeric columns"],
         ["kept exactly (not factored)", ", ".join(info["exact_columns"]) or "none"],
         ["method", f"{info['method']}, rank {info['rank']} ({info['rank_reason']}), transform {info['transform']}"],
-        ["selection", f"columns {info['options'].get('columns')}, rows {info['options'].get('rows')}, "
+        ["selection", f"column_method {_option(info['options'], 'column_method')}, row_method "
+                      f"{_option(info['options'], 'row_method')}, "
                       f"link {info['options'].get('link')}, seed {info['seed']}"],
         ["archive size", f"{info['archive_bytes']:,} bytes in {len(info['files'])} files "
                          f"(raw float64 numeric block: {info['raw_float64_bytes']:,} bytes)"],

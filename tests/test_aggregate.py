@@ -47,7 +47,7 @@ def _table() -> pa.Table:
 def archive(request, tmp_path_factory):
     options = {"cur": dict(rank=4), "svd": dict(rank=4, method="svd"),
                "quantized": dict(rank=2, max_abs_error=0.05)}[request.param]
-    path = tmp_path_factory.mktemp("agg") / "t.rfa"
+    path = tmp_path_factory.mktemp("agg") / "t.rankfold"
     return rankfold.compress(_table(), path, key="id", batch_rows=2500, **options)
 
 
@@ -206,7 +206,7 @@ def test_property_aggregate_bounds_hold(tmp_path, seed, rows, cols, rank, method
     group = rng.integers(0, 3, rows)
     names = [f"v{j}" for j in range(cols)]
     table = pa.table({"g": pa.array(group), **{n: x[:, j] for j, n in enumerate(names)}})
-    path = tmp_path / f"p{seed}_{rows}_{cols}.rfa"
+    path = tmp_path / f"p{seed}_{rows}_{cols}.rankfold"
     # overwrite: hypothesis may draw the same (seed, rows, cols) again within one tmp_path
     archive = rankfold.compress(table, path, rank=rank, method=method, exact_columns=("g",), overwrite=True,
                                 batch_rows=max(16, rows // 3))

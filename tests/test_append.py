@@ -41,7 +41,7 @@ def test_bounds_hold_for_appended_rows(tmp_path, assert_tight, options):
     values[6, 7] = np.inf
     more = more.set_column(more.schema.get_field_index("c4"), "c4", pa.array(values[:, 4]))
     more = more.set_column(more.schema.get_field_index("c7"), "c7", pa.array(values[:, 7]))
-    archive = rankfold.compress(first, tmp_path / "a.rfa", key="id", seed=2, **options)
+    archive = rankfold.compress(first, tmp_path / "a.rankfold", key="id", seed=2, **options)
     events = []
     grown = archive.append(more, progress=events.append)
     assert grown.shape == (3800, WIDTH)
@@ -66,7 +66,7 @@ def test_bounds_hold_for_appended_rows(tmp_path, assert_tight, options):
 
 
 def test_drift_flags_a_refactor(tmp_path):
-    archive = rankfold.compress(_rows(3000, 1), tmp_path / "a.rfa", rank=3, key="id")
+    archive = rankfold.compress(_rows(3000, 1), tmp_path / "a.rankfold", rank=3, key="id")
     same = archive.append(_rows(500, 2))
     assert not same.refactor_due and same.manifest["drift"]["refactor_due"] is False
     drifted = same.append(_rows(500, 3, drift=0.5))  # new structure the basis cannot explain
@@ -78,7 +78,7 @@ def test_drift_flags_a_refactor(tmp_path):
 
 def test_new_version_is_atomic_and_old_readers_keep_working(tmp_path):
     first = _rows(2000, 1)
-    archive = rankfold.compress(first, tmp_path / "a.rfa", rank=3, key="id")
+    archive = rankfold.compress(first, tmp_path / "a.rankfold", rank=3, key="id")
     before = _digest(archive.path)
     old_values, old_bounds = archive.to_numpy(), archive.cell_bounds()
     grown = archive.append(_rows(700, 2))
@@ -104,7 +104,7 @@ def test_new_version_is_atomic_and_old_readers_keep_working(tmp_path):
 
 
 def test_schema_mismatch_is_refused(tmp_path):
-    archive = rankfold.compress(_rows(500, 1), tmp_path / "a.rfa", rank=3, key="id")
+    archive = rankfold.compress(_rows(500, 1), tmp_path / "a.rankfold", rank=3, key="id")
     before = _digest(archive.path)
     with pytest.raises(rankfold.InvalidInputError, match=r"has the columns .* holds .*missing \['c11'\]"):
         archive.append(_rows(10, 2).drop_columns(["c11"]))

@@ -37,7 +37,7 @@ def _leftovers(folder: Path) -> list[str]:
 
 @pytest.fixture
 def archive(tmp_path):
-    return rankfold.compress(_table(), tmp_path / "ok.rfa", rank=2, key="id")
+    return rankfold.compress(_table(), tmp_path / "ok.rankfold", rank=2, key="id")
 
 
 # -- the hierarchy ------------------------------------------------------------------------------
@@ -64,20 +64,20 @@ def test_every_error_is_a_rankfold_error_and_a_builtin(error, builtin):
 def test_empty_table(tmp_path):
     empty = _table().slice(0, 0)
     with pytest.raises(rankfold.EmptySourceError, match=r"has no rows; there is nothing to compress"):
-        rankfold.compress(empty, tmp_path / "empty.rfa")
-    assert not (tmp_path / "empty.rfa").exists()
+        rankfold.compress(empty, tmp_path / "empty.rankfold")
+    assert not (tmp_path / "empty.rankfold").exists()
 
 
 def test_no_numeric_columns(tmp_path):
     words = pa.table({"a": ["x", "y"], "b": [True, False]})
     with pytest.raises(rankfold.NoNumericColumnsError, match=r"no numeric column to compress \(columns: \['a', 'b'\]\)"):
-        rankfold.compress(words, tmp_path / "words.rfa")
+        rankfold.compress(words, tmp_path / "words.rankfold")
 
 
 def test_only_integers_beyond_two_to_the_53(tmp_path):
     big = pa.table({"a": pa.array([2**60, 3], pa.int64())})
     with pytest.raises(ValueError, match=r"holds integers beyond 2\^53"):
-        rankfold.compress(big, tmp_path / "big.rfa")
+        rankfold.compress(big, tmp_path / "big.rankfold")
 
 
 @pytest.mark.parametrize("bad, message", [
@@ -87,13 +87,13 @@ def test_only_integers_beyond_two_to_the_53(tmp_path):
 ])
 def test_unusable_sources(tmp_path, bad, message):
     with pytest.raises(rankfold.InvalidInputError, match=message):
-        rankfold.compress(bad, tmp_path / "bad.rfa")
+        rankfold.compress(bad, tmp_path / "bad.rankfold")
 
 
 def test_record_batch_reader_is_refused(tmp_path):
     reader = pa.RecordBatchReader.from_batches(_table().schema, _table().to_batches())
     with pytest.raises(ValueError, match=r"A RecordBatchReader can be read only once.*reader\.read_all\(\)"):
-        rankfold.compress(reader, tmp_path / "reader.rfa")
+        rankfold.compress(reader, tmp_path / "reader.rankfold")
 
 
 @pytest.mark.parametrize("name, message", [
@@ -102,50 +102,50 @@ def test_record_batch_reader_is_refused(tmp_path):
 ])
 def test_missing_source_files(tmp_path, name, message):
     with pytest.raises(rankfold.InvalidInputError, match=message):
-        rankfold.compress(str(tmp_path / name), tmp_path / "out.rfa")
+        rankfold.compress(str(tmp_path / name), tmp_path / "out.rankfold")
     assert list(tmp_path.iterdir()) == []
 
 
 def test_table_name_without_connection(tmp_path):
     with pytest.raises(rankfold.InvalidInputError, match=r"pass connection=<the DuckDB connection"):
-        rankfold.compress("panel", tmp_path / "out.rfa")
+        rankfold.compress("panel", tmp_path / "out.rankfold")
 
 
 def test_unknown_table_on_a_connection(tmp_path):
     con = duckdb.connect()
     try:
         with pytest.raises(rankfold.InvalidInputError, match=r"DuckDB cannot read the source 'no_such_table'"):
-            rankfold.compress("no_such_table", tmp_path / "out.rfa", connection=con)
+            rankfold.compress("no_such_table", tmp_path / "out.rankfold", connection=con)
     finally:
         con.close()
 
 
 def test_reserved_and_missing_column_names(tmp_path):
     with pytest.raises(rankfold.InvalidInputError, match=r"reserved by rankfold; rename \['_rf_x'\]"):
-        rankfold.compress(pa.table({"_rf_x": [1.0, 2.0], "y": [1.0, 3.0]}), tmp_path / "r.rfa")
+        rankfold.compress(pa.table({"_rf_x": [1.0, 2.0], "y": [1.0, 3.0]}), tmp_path / "r.rankfold")
     with pytest.raises(rankfold.InvalidInputError, match=r"no column 'site' \(named in key/exact_columns\)"):
-        rankfold.compress(_table(), tmp_path / "k.rfa", key="site")
+        rankfold.compress(_table(), tmp_path / "k.rankfold", key="site")
 
 
 # -- options ------------------------------------------------------------------------------------
 def test_rank_larger_than_the_matrix(tmp_path):
     with pytest.raises(rankfold.RankTooLargeError,
                        match=r"'rank' option of compress must be at most min\(rows, numeric columns\) = 5 .*Got 6"):
-        rankfold.compress(_table(), tmp_path / "r.rfa", rank=6)
+        rankfold.compress(_table(), tmp_path / "r.rankfold", rank=6)
     with pytest.raises(rankfold.RankTooLargeError, match=r"'n_rows' option .* at most the 30 source rows\. Got 31"):
-        rankfold.compress(_table(), tmp_path / "r.rfa", rank=2, n_rows=31, link="optimal")
+        rankfold.compress(_table(), tmp_path / "r.rankfold", rank=2, n_rows=31, link="optimal")
     with pytest.raises(rankfold.RankTooLargeError, match=r"'n_columns' option .* at most the 5 numeric columns\. Got 9"):
-        rankfold.compress(_table(), tmp_path / "r.rfa", rank=2, n_columns=9)
-    assert not (tmp_path / "r.rfa").exists()
+        rankfold.compress(_table(), tmp_path / "r.rankfold", rank=2, n_columns=9)
+    assert not (tmp_path / "r.rankfold").exists()
 
 
 def test_unknown_option_suggests_the_closest(tmp_path):
     with pytest.raises(rankfold.UnknownOptionError, match=r"no option 'overwite'\. Did you mean 'overwrite'\?"):
-        rankfold.compress(_table(), tmp_path / "o.rfa", overwite=True)
+        rankfold.compress(_table(), tmp_path / "o.rankfold", overwite=True)
     with pytest.raises(rankfold.UnknownOptionError, match=r"no option 'ranks'\. Did you mean 'rank'\?"):
-        rankfold.compress(_table(), tmp_path / "o.rfa", ranks=2)
+        rankfold.compress(_table(), tmp_path / "o.rankfold", ranks=2)
     with pytest.raises(TypeError, match=r"no option 'zzz'\. Known options: rank, seed, basis_precision, batch_rows"):
-        rankfold.compress(_table(), tmp_path / "o.rfa", zzz=1)
+        rankfold.compress(_table(), tmp_path / "o.rankfold", zzz=1)
 
 
 @pytest.mark.parametrize("options, error, message", [
@@ -155,8 +155,8 @@ def test_unknown_option_suggests_the_closest(tmp_path):
     ({"seed": -1}, rankfold.InvalidInputError, r"'seed' option of compress must be a non-negative integer\. Got -1"),
     ({"batch_rows": 0}, rankfold.InvalidInputError, r"'batch_rows' option .* positive integer\. Got 0"),
     ({"method": "pca"}, rankfold.UnknownOptionError, r"'method' option of compress must be one of 'cur', 'svd'\. Got 'pca'"),
-    ({"columns": "random"}, rankfold.UnknownOptionError, r"'columns' option .* Got 'random'"),
-    ({"rows": "first", "link": "optimal"}, rankfold.UnknownOptionError, r"'rows' option .* Got 'first'"),
+    ({"column_method": "random"}, rankfold.UnknownOptionError, r"'column_method' option .* Got 'random'"),
+    ({"row_method": "first", "link": "optimal"}, rankfold.UnknownOptionError, r"'row_method' option .* Got 'first'"),
     ({"link": "best"}, rankfold.UnknownOptionError, r"'link' option .* Got 'best'"),
     ({"transform": "log"}, rankfold.UnknownOptionError, r"'transform' option .* 'standardize', 'center', 'none'\. Got 'log'"),
     ({"replace": "yes"}, rankfold.InvalidInputError, r"'replace' option of compress must be True, False or None\. Got 'yes'"),
@@ -165,23 +165,23 @@ def test_unknown_option_suggests_the_closest(tmp_path):
 ])
 def test_bad_option_values(tmp_path, options, error, message):
     with pytest.raises(error, match=message):
-        rankfold.compress(_table(), tmp_path / "v.rfa", **options)
+        rankfold.compress(_table(), tmp_path / "v.rankfold", **options)
     assert list(tmp_path.iterdir()) == []
 
 
 def test_numpy_integers_are_integers(tmp_path):
-    archive = rankfold.compress(_table(), tmp_path / "np.rfa", rank=np.int64(2), seed=np.uint32(9),
+    archive = rankfold.compress(_table(), tmp_path / "np.rankfold", rank=np.int64(2), seed=np.uint32(9),
                                 n_columns=np.int32(3))
     assert archive.manifest["method"]["rank"] == 2
     assert archive.manifest["method"]["seed"] == 9
     assert archive.manifest["method"]["n_columns"] == 3
     with pytest.raises(rankfold.InvalidInputError, match=r"'seed' .* Got np\.True_"):
-        rankfold.compress(_table(), tmp_path / "np2.rfa", seed=np.True_)
+        rankfold.compress(_table(), tmp_path / "np2.rankfold", seed=np.True_)
 
 
 def test_missing_parent_folder(tmp_path):
     with pytest.raises(rankfold.InvalidInputError, match=r"The folder .*nowhere does not exist; create it first"):
-        rankfold.compress(_table(), tmp_path / "nowhere" / "a.rfa")
+        rankfold.compress(_table(), tmp_path / "nowhere" / "a.rankfold")
 
 
 # -- existing targets ---------------------------------------------------------------------------
@@ -231,7 +231,7 @@ def _changing_source() -> tuple[duckdb.DuckDBPyConnection, str]:
 @pytest.mark.parametrize("overwrite", [False, True])
 def test_source_changing_between_passes(tmp_path, archive, overwrite):
     con, query = _changing_source()
-    target = archive.path if overwrite else tmp_path / "new.rfa"
+    target = archive.path if overwrite else tmp_path / "new.rankfold"
     before = _snapshot(archive.path)
     try:
         with pytest.raises(rankfold.SourceChangedError, match=r"differ.* between two passes|gave different rows"):
@@ -239,7 +239,7 @@ def test_source_changing_between_passes(tmp_path, archive, overwrite):
     finally:
         con.close()
     assert _snapshot(archive.path) == before
-    assert not (tmp_path / "new.rfa").exists()
+    assert not (tmp_path / "new.rankfold").exists()
     assert _leftovers(tmp_path) == []
 
 
@@ -251,10 +251,10 @@ def test_a_pass_that_fails_leaves_nothing_behind(tmp_path, archive, monkeypatch,
     monkeypatch.setattr(compress_module, stage, broken)
     before = _snapshot(archive.path)
     with pytest.raises(OSError, match=f"disk full during {stage}"):
-        rankfold.compress(_table(seed=4), tmp_path / "new.rfa", rank=2)
+        rankfold.compress(_table(seed=4), tmp_path / "new.rankfold", rank=2)
     with pytest.raises(OSError, match=f"disk full during {stage}"):
         rankfold.compress(_table(seed=4), archive.path, rank=2, overwrite=True)
-    assert not (tmp_path / "new.rfa").exists()
+    assert not (tmp_path / "new.rankfold").exists()
     assert _snapshot(archive.path) == before
     assert _leftovers(tmp_path) == []
 
@@ -305,17 +305,17 @@ def test_cell_takes_one_column_name(archive):
 
 
 def test_missing_archive(tmp_path):
-    with pytest.raises(rankfold.ArchiveNotFoundError, match=r"No archive at .*nothing\.rfa\. Check the path\."):
-        rankfold.open(tmp_path / "nothing.rfa")
+    with pytest.raises(rankfold.ArchiveNotFoundError, match=r"No archive at .*nothing\.rankfold\. Check the path\."):
+        rankfold.open(tmp_path / "nothing.rankfold")
 
 
 def test_a_folder_that_is_not_an_archive(tmp_path):
     (tmp_path / "plain").mkdir()
     with pytest.raises(rankfold.CorruptArchiveError, match=r"has no manifest\.json: it is not a rankfold archive"):
         rankfold.open(tmp_path / "plain")
-    (tmp_path / "file.rfa").write_text("x")
+    (tmp_path / "file.rankfold").write_text("x")
     with pytest.raises(rankfold.CorruptArchiveError, match=r"is a file, not an archive directory"):
-        rankfold.open(tmp_path / "file.rfa")
+        rankfold.open(tmp_path / "file.rankfold")
 
 
 def test_a_missing_archive_file(archive):
@@ -335,8 +335,8 @@ def test_values_too_large_to_square_are_refused_with_the_column_named(tmp_path):
     x = np.random.default_rng(0).standard_normal((50, 4))  # invented data
     x[:, 2] *= 1e200
     with pytest.raises(rankfold.InvalidInputError, match=r"columns \['x2'\] .* too large to square"):
-        rankfold.compress(x, tmp_path / "big.rfa", rank=1)
-    assert not (tmp_path / "big.rfa").exists()
-    kept = rankfold.compress(pa.table({f"x{j}": x[:, j] for j in range(4)}), tmp_path / "ok.rfa",
+        rankfold.compress(x, tmp_path / "big.rankfold", rank=1)
+    assert not (tmp_path / "big.rankfold").exists()
+    kept = rankfold.compress(pa.table({f"x{j}": x[:, j] for j in range(4)}), tmp_path / "ok.rankfold",
                              rank=1, exact_columns=["x2"])
     assert np.array_equal(kept.rebuild().column("x2").to_numpy(), x[:, 2])

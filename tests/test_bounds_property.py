@@ -31,12 +31,12 @@ import rankfold
 from rankfold.udfs.store.reader import ArchiveReader
 
 CUR_COMBINATIONS = [
-    {"method": "cur", "columns": c, "rows": r, "link": link}
+    {"method": "cur", "column_method": c, "row_method": r, "link": link}
     for c, r, link in itertools.product(("pivoted_qr", "leverage", "length_squared"),
                                         ("qdeim", "leverage", "length_squared"),
                                         ("optimal", "skeleton", "textbook"))
     if not (link == "textbook" and c == "pivoted_qr")  # textbook needs sampled columns
-] + [{"method": "cur", "columns": c, "link": "cx"}  # cx keeps no rows
+] + [{"method": "cur", "column_method": c, "link": "cx"}  # cx keeps no rows
      for c in ("pivoted_qr", "leverage", "length_squared")]
 METHODS = CUR_COMBINATIONS + [{"method": "svd"}]
 TRANSFORMS = ("standardize", "center", "none")
@@ -65,7 +65,7 @@ def cases(draw):
 
 
 def _compress(factory, table: pa.Table, options: dict) -> rankfold.Archive:
-    path = factory.mktemp("bounds") / "table.rfa"
+    path = factory.mktemp("bounds") / "table.rankfold"
     return rankfold.compress(table, path, **options)
 
 
@@ -170,7 +170,7 @@ def _assert_same_rebuild(values, bounds, ref_values, ref_bounds):
 @pytest.mark.parametrize("m, n", [(1, 1), (1, 7), (7, 1), (3, 9), (60, 2)])
 def test_degenerate_shapes_hold_their_bounds(tmp_path, invented_table, table_truth, assert_tight, m, n):
     table = invented_table(m * 100 + n, m, n, "decades", specials=True)
-    archive = rankfold.compress(table, tmp_path / "edge.rfa", rank=1)
+    archive = rankfold.compress(table, tmp_path / "edge.rankfold", rank=1)
     truth, _ = table_truth(table)
     values, bounds = archive.to_numpy(), archive.cell_bounds()
     finite = np.isfinite(truth)
@@ -186,7 +186,7 @@ def test_bound_is_attained_in_every_row(tmp_path):
     rng = np.random.default_rng(7)
     block = rng.normal(size=(200, 3)) @ rng.normal(size=(3, 20)) + 0.01 * rng.normal(size=(200, 20))
     block *= 10.0 ** rng.integers(-3, 4, size=20)  # columns in different units
-    archive = rankfold.compress(block, tmp_path / "tight.rfa", rank=3)
+    archive = rankfold.compress(block, tmp_path / "tight.rankfold", rank=3)
     values, bounds = archive.to_numpy(), archive.cell_bounds()
     error = np.abs(block - values)
     assert np.all(error <= bounds)
@@ -205,7 +205,7 @@ def test_integer_beyond_two_to_the_53_is_not_factored(tmp_path):
     """2^53 + 1 reads as 2^53 in float64: such a column must be kept exactly, not rebuilt."""
     table = pa.table({"big": pa.array([2**53 + 1, 5, 7, 9], pa.int64()),
                       "a": [1.0, 2.0, 3.5, 4.0], "b": [2.0, 1.0, 0.0, -1.5]})
-    archive = rankfold.compress(table, tmp_path / "big.rfa", rank=1)
+    archive = rankfold.compress(table, tmp_path / "big.rankfold", rank=1)
     assert archive.numeric_columns == ["a", "b"]
     assert archive.rebuild().column("big").to_pylist() == [2**53 + 1, 5, 7, 9]
 
@@ -214,7 +214,7 @@ def test_all_null_integer_column_stays_numeric(tmp_path):
     """An all-NULL column has no range; it is still a numeric column, rebuilt as NULLs."""
     table = pa.table({"empty": pa.array([None, None, None], pa.int32()),
                       "a": [1.0, 2.0, 3.5], "b": [2.0, 1.0, 0.0]})
-    archive = rankfold.compress(table, tmp_path / "nulls.rfa", rank=1)
+    archive = rankfold.compress(table, tmp_path / "nulls.rankfold", rank=1)
     assert archive.numeric_columns == ["empty", "a", "b"]
     assert archive.rebuild().column("empty").null_count == 3
     assert np.all(np.isnan(archive.to_numpy(columns="empty")))
@@ -223,8 +223,8 @@ def test_all_null_integer_column_stays_numeric(tmp_path):
 def test_rows_with_zero_weight_give_an_archive_without_anchor_rows(tmp_path):
     """A single standardized row has all-zero weights: sampling picks no anchor row."""
     table = pa.table({f"c{j}": [float(j)] for j in range(5)})
-    archive = rankfold.compress(table, tmp_path / "one.rfa", rank=1, columns="leverage",
-                                rows="leverage", link="textbook")
+    archive = rankfold.compress(table, tmp_path / "one.rankfold", rank=1, column_method="leverage",
+                                row_method="leverage", link="textbook")
     assert np.array_equal(archive.to_numpy(), np.arange(5.0)[None, :])
 
 

@@ -37,7 +37,7 @@ def _matrix(table: pa.Table) -> tuple[np.ndarray, np.ndarray]:
                                      dict(rank=2), dict(rank=2, max_abs_error=0.2)])
 def test_covariance_and_correlation_hold_and_are_usable(tmp_path, options):
     table, x = _source(3, noise=0.03)
-    archive = rankfold.compress(table, tmp_path / "c.rfa", **options)
+    archive = rankfold.compress(table, tmp_path / "c.rankfold", **options)
     cov, cov_bound = _matrix(archive.covariance())
     corr, corr_bound = _matrix(archive.correlation())
     true_cov, true_corr = np.cov(x, rowvar=False), np.corrcoef(x, rowvar=False)
@@ -53,7 +53,7 @@ def test_rank_zero_archive_has_real_values(tmp_path):
     """Rank 0: every value is an offset plus a quantized residual code. The factors' Gram
     matrix is empty, so the old answer was 0 (covariance) or NaN with bound 2 (correlation)."""
     table, x = _source(5)
-    archive = rankfold.compress(table, tmp_path / "z.rfa", max_abs_error=0.1)
+    archive = rankfold.compress(table, tmp_path / "z.rankfold", max_abs_error=0.1)
     assert archive.manifest["method"]["rank"] == 0 and not archive.basis_columns
     cov, cov_bound = _matrix(archive.covariance())
     corr, corr_bound = _matrix(archive.correlation())
@@ -72,7 +72,7 @@ def test_rank_zero_archive_has_real_values(tmp_path):
                                 {"rel_error": 0.1}]))
 def test_bounds_hold_on_any_archive(tmp_path_factory, seed, rows, noise, options):
     table, x = _source(seed, rows, noise)
-    archive = rankfold.compress(table, tmp_path_factory.mktemp("cov") / "p.rfa", **options)
+    archive = rankfold.compress(table, tmp_path_factory.mktemp("cov") / "p.rankfold", **options)
     cov, cov_bound = _matrix(archive.covariance())
     corr, corr_bound = _matrix(archive.correlation())
     assert np.all(np.abs(cov - np.cov(x, rowvar=False)) <= cov_bound)

@@ -12,13 +12,13 @@ import numpy as np
 
 import rankfold
 from rankfold.cli import CAUTION, main
-from rankfold.demo import fernwald_readings, run_demo
+from rankfold.demo import heat_network_readings, run_demo
 
 ROOT = Path(__file__).resolve().parents[1]
 
 
 def test_demo_scenario_is_deterministic_and_wide():
-    a, b = fernwald_readings(500), fernwald_readings(500)
+    a, b = heat_network_readings(500), heat_network_readings(500)
     assert a.equals(b)  # fixed seed: same table every time
     assert a.num_rows == 500 and a.num_columns == 3 + 120
     assert a.column("s01_pump_starts_count").type == "int64"
@@ -39,7 +39,7 @@ def test_run_demo_reports_sizes_errors_and_sound_bounds(tmp_path):
 def _archive(tmp_path) -> Path:
     rng = np.random.default_rng(5)  # invented data
     x = rng.standard_normal((400, 4)) @ rng.standard_normal((4, 16))
-    path = tmp_path / "cli.rfa"
+    path = tmp_path / "cli.rankfold"
     rankfold.compress(x, path, rank=4)
     return path
 
@@ -71,7 +71,7 @@ def test_cli_compress_from_parquet_and_refuses_existing(tmp_path, capsys):
     rng = np.random.default_rng(9)
     src = tmp_path / "src.parquet"
     pq.write_table(pa.table({f"c{j}": rng.standard_normal(300) for j in range(10)}), src)
-    target = tmp_path / "out.rfa"
+    target = tmp_path / "out.rankfold"
     assert main(["compress", str(src), str(target), "--rank", "2", "--json"]) == 0
     assert json.loads(capsys.readouterr().out)["manifest"]["shape"] == [300, 10]
     before = (target / "manifest.json").read_bytes()
@@ -82,9 +82,9 @@ def test_cli_compress_from_parquet_and_refuses_existing(tmp_path, capsys):
 
 
 def test_cli_missing_archive_is_one_line_error(tmp_path, capsys):
-    assert main(["inspect", str(tmp_path / "nope.rfa")]) == 1
+    assert main(["inspect", str(tmp_path / "nope.rankfold")]) == 1
     err = capsys.readouterr().err
-    assert re.fullmatch(r"rankfold: error: No archive at .*nope\.rfa\. Check the path\.\n", err)
+    assert re.fullmatch(r"rankfold: error: No archive at .*nope\.rankfold\. Check the path\.\n", err)
 
 
 def test_cli_help_carries_the_caution():

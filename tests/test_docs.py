@@ -66,10 +66,62 @@ def test_exit_codes_and_the_caution_are_documented():
 def test_the_tour_uses_only_real_commands_and_options():
     tour = README.split("### Tour: the demo scenario end to end", 1)[1].split("```console", 1)[1].split("```", 1)[0]
     commands = [line[2:] for line in tour.splitlines() if line.startswith("$ ")]
-    assert [shlex.split(c)[1] for c in commands] == ["demo", "compress", "inspect", "report", "query", "rebuild"]
+    assert [shlex.split(c)[1] for c in commands] == ["demo", "compress", "inspect", "report", "query",
+                                                     "rebuild", "view"]
     parser = build_parser()
     for command in commands:
         argv = shlex.split(command, comments=True)
         assert argv[0] == "rankfold"
         parser.parse_args(argv[1:])  # exits with code 2 on an unknown command or option
     assert "invented" in README.split("### Tour", 1)[1][:400]
+
+
+# -- the tours run as written, top to bottom, in an empty folder ------------------------------------
+def _blocks(section: str, fence: str) -> list[str]:
+    text = README.split(section, 1)[1].split("\n## ", 1)[0]
+    return [part.split("```", 1)[0] for part in text.split(fence)[1:]]
+
+
+def test_the_python_tour_runs_as_written(tmp_path, monkeypatch):
+    monkeypatch.chdir(tmp_path)
+    (code,) = _blocks("## Python tour", "```python\n")[:1]
+    namespace: dict = {}
+    exec(compile(code, "README.md (Python tour)", "exec"), namespace)
+    archive = namespace["archive"]
+    assert archive.shape == (20_000, 120) and "0.05 x its column's standard deviation" in archive.guarantee
+    assert (tmp_path / "panel.rankfold").is_dir()
+
+
+def test_the_sql_tour_creates_what_it_queries(tmp_path, monkeypatch):
+    monkeypatch.chdir(tmp_path)
+    python, sql = _blocks("## SQL tour (DuckDB)", "```python\n")[0], _blocks("## SQL tour (DuckDB)", "```sql\n")[0]
+    namespace: dict = {}
+    exec(compile(python, "README.md (SQL tour)", "exec"), namespace)
+    con = namespace["con"]
+    results = []
+    for statement in [s for s in sql.split(";") if s.strip()]:
+        body = "\n".join(line for line in statement.splitlines() if not line.strip().startswith("--"))
+        if body.strip():
+            results.append(con.sql(body).fetchall() if body.strip().upper().startswith("SELECT") else con.execute(body))
+    assert results[1] == [(10_000, 8, 2)]  # rows, columns, rank of the archive it created
+    assert len(results) == 6 and all(len(r) > 0 for r in results[1:])
+
+
+def test_the_command_line_tour_runs_as_written(tmp_path, monkeypatch, capsys):
+    import re
+
+    from rankfold.cli import main
+
+    monkeypatch.chdir(tmp_path)
+    tour = README.split("### Tour: the demo scenario end to end", 1)[1].split("```console", 1)[1].split("```", 1)[0]
+    lines = tour.strip("\n").splitlines()
+    starts = [i for i, line in enumerate(lines) if line.startswith("$ ")]
+    for n, i in enumerate(starts):
+        argv = shlex.split(lines[i][2:], comments=True)
+        shown = lines[i + 1:starts[n + 1] if n + 1 < len(starts) else len(lines)]
+        assert main(argv[1:]) == 0, lines[i]
+        printed = capsys.readouterr().out.splitlines()
+        assert len(printed) == len(shown), lines[i]
+        # the same output up to the figures (timings and last digits vary by machine)
+        first = lambda text: re.sub(r"[0-9][0-9.,e+-]*", "#", text)  # noqa: E731
+        assert first(printed[0]) == first(shown[0]) if shown else printed == [], lines[i]

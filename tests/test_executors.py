@@ -47,16 +47,16 @@ def client():
 @pytest.mark.parametrize("options", [
     {"rank": 3},
     {"rank": 3, "max_abs_error": 0.05},
-    {"rank": 3, "rows": "leverage", "columns": "leverage", "link": "optimal"},
-    {"rank": 3, "link": "textbook", "columns": "length_squared", "rows": "length_squared"},
+    {"rank": 3, "row_method": "leverage", "column_method": "leverage", "link": "optimal"},
+    {"rank": 3, "link": "textbook", "column_method": "length_squared", "row_method": "length_squared"},
     {"rank": 3, "method": "svd"},
     {"rank": 3, "sketch_rows": 1500},  # the sketch from a seeded sample of row groups
 ])
 def test_same_seed_same_archive_on_both_executors(dataset, client, tmp_path, options):
     folder, x = dataset
-    local = rankfold.compress(str(folder), tmp_path / "local.rfa", seed=5, **options)
+    local = rankfold.compress(str(folder), tmp_path / "local.rankfold", seed=5, **options)
     events = []
-    dask = rankfold.compress(str(folder), tmp_path / "dask.rfa", seed=5, executor=client,
+    dask = rankfold.compress(str(folder), tmp_path / "dask.rankfold", seed=5, executor=client,
                              progress=events.append, **options)
     assert dask.basis_columns == local.basis_columns
     assert dask.anchor_rows == local.anchor_rows
@@ -86,8 +86,8 @@ def test_dask_reads_in_memory_tables_in_slices(client, tmp_path, monkeypatch):
 
     monkeypatch.setattr(executors, "PARTITION_ROWS", 4 * 1000)  # slices of 1000 rows
     x = _data()
-    local = rankfold.compress(x, tmp_path / "l.rfa", rank=3, batch_rows=1000)
-    dask = rankfold.compress(x, tmp_path / "d.rfa", rank=3, batch_rows=1000, executor=client)
+    local = rankfold.compress(x, tmp_path / "l.rankfold", rank=3, batch_rows=1000)
+    dask = rankfold.compress(x, tmp_path / "d.rankfold", rank=3, batch_rows=1000, executor=client)
     assert dask.basis_columns == local.basis_columns and dask.anchor_rows == local.anchor_rows
     assert len(dask.manifest["row_parts"]) == ROWS // 1000
 
@@ -96,12 +96,12 @@ def test_dask_refuses_a_duckdb_table(client, tmp_path):
     con = duckdb.connect()
     con.execute("CREATE TABLE t AS SELECT range::DOUBLE AS a, range * 2.0 AS b FROM range(10)")
     with pytest.raises(rankfold.InvalidInputError, match=r"executor='dask' reads Parquet .*Export it to Parquet"):
-        rankfold.compress("t", tmp_path / "t.rfa", connection=con, executor=client)
+        rankfold.compress("t", tmp_path / "t.rankfold", connection=con, executor=client)
 
 
 def test_unknown_executor(tmp_path):
     with pytest.raises(rankfold.InvalidInputError, match=r"'executor' option of compress must be 'local', 'dask'"):
-        rankfold.compress(np.ones((5, 3)), tmp_path / "x.rfa", executor="spark")
+        rankfold.compress(np.ones((5, 3)), tmp_path / "x.rankfold", executor="spark")
 
 
 @pytest.mark.parametrize("method, replace", [("leverage", False), ("length_squared", True), ("qdeim", False)])
@@ -197,8 +197,8 @@ def test_compress_uses_only_the_declared_interface(dataset, tmp_path, monkeypatc
         return OnlyTheInterface(executor)
 
     folder, _ = dataset
-    plain = rankfold.compress(str(folder), tmp_path / "plain.rfa", rank=3, sketch_rows=1500)
+    plain = rankfold.compress(str(folder), tmp_path / "plain.rankfold", rank=3, sketch_rows=1500)
     monkeypatch.setattr(compress_module, "make_executor", make)
-    proxied = rankfold.compress(str(folder), tmp_path / "proxied.rfa", rank=3, sketch_rows=1500)
+    proxied = rankfold.compress(str(folder), tmp_path / "proxied.rankfold", rank=3, sketch_rows=1500)
     assert np.array_equal(proxied.to_numpy(), plain.to_numpy(), equal_nan=True)
     assert {"run", "close", "schema", "description", "distributed"} <= used

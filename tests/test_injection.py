@@ -30,7 +30,7 @@ def archive(tmp_path_factory):
     table = pa.table({"id": np.arange(ROWS, dtype=np.int64),
                       "site": np.array(["north", "south", "east"])[np.arange(ROWS) % 3],
                       **{f"x{j}": x[:, j] for j in range(6)}})
-    return rankfold.compress(table, tmp_path_factory.mktemp("inj") / "a.rfa", rank=2, key="id",
+    return rankfold.compress(table, tmp_path_factory.mktemp("inj") / "a.rankfold", rank=2, key="id",
                              exact_columns=("site",))
 
 
@@ -108,15 +108,15 @@ def test_dotted_source_name_is_quoted(tmp_path):
         source = pa.table({f"c{j}": x[:, j] for j in range(4)})  # noqa: F841  (read by name below)
         con.execute("CREATE TABLE plain AS SELECT * FROM source")
         con.execute('CREATE TABLE "my schema"."odd.name" AS SELECT * FROM plain')
-        written = rankfold.compress('"my schema"."odd.name"', tmp_path / "q.rfa", rank=2, connection=con)
+        written = rankfold.compress('"my schema"."odd.name"', tmp_path / "q.rankfold", rank=2, connection=con)
         np.testing.assert_allclose(written.to_numpy(), x, atol=float(written.cell_bounds().max()) + 1e-12)
-        assert rankfold.compress("main.plain", tmp_path / "p.rfa", rank=2, connection=con).shape == (40, 4)
+        assert rankfold.compress("main.plain", tmp_path / "p.rankfold", rank=2, connection=con).shape == (40, 4)
         target = tmp_path / "hit.csv"
         with pytest.raises(InvalidInputError):
-            rankfold.compress(f"main.plain; COPY (SELECT 1) TO '{target}'", tmp_path / "r.rfa",
+            rankfold.compress(f"main.plain; COPY (SELECT 1) TO '{target}'", tmp_path / "r.rankfold",
                               connection=con)
         with pytest.raises(ConditionRefusedError, match="exactly one SELECT"):
-            rankfold.compress(f"SELECT * FROM plain; COPY (SELECT 1) TO '{target}'", tmp_path / "s.rfa",
+            rankfold.compress(f"SELECT * FROM plain; COPY (SELECT 1) TO '{target}'", tmp_path / "s.rankfold",
                               connection=con)
         assert not target.exists()
     finally:
@@ -155,7 +155,7 @@ def test_quantized_basis_column_is_not_a_row_condition_column(tmp_path):
     rng = np.random.default_rng(0)
     x = rng.standard_normal((300, 2)) @ rng.standard_normal((2, 6))
     table = pa.table({"id": np.arange(300), **{f"c{j}": x[:, j] for j in range(6)}})
-    archive = rankfold.compress(table, tmp_path / "q.rfa", max_abs_error=0.1,
+    archive = rankfold.compress(table, tmp_path / "q.rankfold", max_abs_error=0.1,
                                 basis_precision="tolerance", exact_columns=("id",))
     coded = [b["name"] for b in archive.manifest["basis"] if "step" in b]
     assert coded

@@ -51,12 +51,12 @@ def _compress(path: Path, seed: int = 0) -> Path:
 
 @pytest.fixture(scope="module")
 def pristine(tmp_path_factory) -> Path:
-    return _compress(tmp_path_factory.mktemp("integrity") / "base.rfa")
+    return _compress(tmp_path_factory.mktemp("integrity") / "base.rankfold")
 
 
 @pytest.fixture
 def archive(pristine, tmp_path) -> Path:
-    copy = tmp_path / "copy.rfa"
+    copy = tmp_path / "copy.rankfold"
     shutil.copytree(pristine, copy)
     return copy
 
@@ -172,8 +172,8 @@ def _same_size_parquet(data: bytes, size: int) -> bytes:
 
 
 def test_columns_swapped_between_two_same_shape_archives_is_refused(pristine, tmp_path):
-    other = _compress(tmp_path / "other.rfa", seed=1)
-    victim, donor = tmp_path / "victim.rfa", other
+    other = _compress(tmp_path / "other.rankfold", seed=1)
+    victim, donor = tmp_path / "victim.rankfold", other
     shutil.copytree(pristine, victim)
     mine, theirs = (victim / "columns.parquet").read_bytes(), (donor / "columns.parquet").read_bytes()
     if len(theirs) > len(mine):  # swap roles so that the file moved in is the smaller one
@@ -275,9 +275,9 @@ def test_a_manifest_naming_files_outside_the_archive_is_refused(pristine, tmp_pa
 
 
 def test_a_symlink_leaving_the_archive_is_refused(pristine, tmp_path):
-    folder = tmp_path / "linked.rfa"
+    folder = tmp_path / "linked.rankfold"
     shutil.copytree(pristine, folder)
-    other = _compress(tmp_path / "other.rfa", seed=1)
+    other = _compress(tmp_path / "other.rankfold", seed=1)
     (folder / "cells.parquet").unlink()
     (folder / "cells.parquet").symlink_to(other / "cells.parquet")
     with pytest.raises(rankfold.CorruptArchiveError, match="symbolic link that leaves the archive"):
@@ -324,9 +324,9 @@ def test_a_malformed_field_is_one_clear_error_in_python_sql_and_cli(archive, cap
 # -- SQL reads exactly this archive's files ---------------------------------------------------
 @pytest.mark.parametrize("folder", ["a[ab]", "a*", "a?"])
 def test_glob_characters_in_the_archive_path_read_only_that_archive(tmp_path, folder):
-    target = _compress(tmp_path / folder / "t.rfa", seed=0)
+    target = _compress(tmp_path / folder / "t.rankfold", seed=0)
     for sibling, seed in (("aa", 1), ("ab", 2), ("a-x", 3)):  # would match the patterns above
-        _compress(tmp_path / sibling / "t.rfa", seed=seed)
+        _compress(tmp_path / sibling / "t.rankfold", seed=seed)
     con = _con()
     scan = con.execute("SELECT c1, _rf_row FROM rankfold_scan(?) ORDER BY _rf_row", [str(target)]).fetchall()
     assert len(scan) == ROWS
@@ -341,7 +341,7 @@ def test_glob_characters_in_the_archive_path_read_only_that_archive(tmp_path, fo
 
 
 def test_an_append_is_seen_by_the_next_query_in_the_same_process(tmp_path):
-    path = tmp_path / "grow.rfa"
+    path = tmp_path / "grow.rankfold"
     rankfold.compress(_table(0), path, rank=2, key="id", seed=0)
     con = _con()
     p = str(path)

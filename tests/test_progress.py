@@ -11,7 +11,7 @@ import rankfold
 def test_every_pass_reports_rows_in_order(tmp_path):
     events = []
     x = np.random.default_rng(0).standard_normal((1000, 20))  # invented data
-    rankfold.compress(x, tmp_path / "p.rfa", rank=3, batch_rows=300, link="optimal",
+    rankfold.compress(x, tmp_path / "p.rankfold", rank=3, batch_rows=300, link="optimal",
                       progress=events.append)
     stages = [e["stage"] for e in events if e["done"]]
     assert stages == ["profile", "select", "verify"]  # the profile pass also sketches
@@ -26,10 +26,10 @@ def test_svd_and_the_default_cx_link_have_no_select_pass(tmp_path):
     x = np.random.default_rng(1).standard_normal((50, 6))
     for name, options in (("svd", {"method": "svd"}), ("cx", {})):
         events = []
-        rankfold.compress(x, tmp_path / f"{name}.rfa", rank=2, progress=events.append, **options)
+        rankfold.compress(x, tmp_path / f"{name}.rankfold", rank=2, progress=events.append, **options)
         assert [e["stage"] for e in events if e["done"]] == ["profile", "verify"]
 
 
 def test_progress_must_be_callable(tmp_path):
     with pytest.raises(rankfold.InvalidInputError, match="'progress' option of compress must be a callable"):
-        rankfold.compress(np.ones((3, 3)), tmp_path / "x.rfa", progress="bar")
+        rankfold.compress(np.ones((3, 3)), tmp_path / "x.rankfold", progress="bar")

@@ -101,9 +101,9 @@ def test_archive_factor_product_never_beats_eckart_young(tmp_path, table, column
     a, s = table
     norm = np.linalg.norm(a)
     for n_columns in (RANK, None):  # c = k: rank <= k directly; default c = 2k: compare at rank(CM)
-        row_choice = {} if rows is None else {"rows": rows}
+        row_choice = {} if rows is None else {"row_method": rows}
         archive = rankfold.compress(a, tmp_path / f"c{n_columns}", rank=RANK, seed=3,
-                                    transform="none", columns=columns, link=link,
+                                    transform="none", column_method=columns, link=link,
                                     n_columns=n_columns, **row_choice)
         c = len(archive.basis_columns)
         assert c <= (n_columns or 2 * RANK)
@@ -206,8 +206,8 @@ def test_textbook_link_is_far_from_the_optimum(tmp_path, table):
     # clearly worse than the optimal link on the same columns and rows, or the two links are
     # no longer distinct.
     a, s = table
-    archive = rankfold.compress(a, tmp_path / "tb", rank=RANK, columns="length_squared",
-                                rows="length_squared", link="textbook", transform="none")
+    archive = rankfold.compress(a, tmp_path / "tb", rank=RANK, column_method="length_squared",
+                                row_method="length_squared", link="textbook", transform="none")
     textbook = np.linalg.norm(a - factor_product(archive))
     optimal = np.linalg.norm(a - cur(a, RANK, columns="length_squared", rows="length_squared",
                                      link="optimal", rng=np.random.default_rng(0)).approximation(a))
@@ -222,7 +222,7 @@ def test_combination_list_covers_every_option(tmp_path):
     assert set(cur_module.LINKS) == {"optimal", "skeleton", "textbook", "cx"}
     with pytest.raises(rankfold.InvalidInputError):
         rankfold.compress(low_rank_plus_noise(0), tmp_path / "refused", rank=RANK,
-                          columns="pivoted_qr", link="textbook")
-    for rows in ({"rows": "qdeim"}, {"n_rows": 4}):  # rows asked for with the cx link: refused
+                          column_method="pivoted_qr", link="textbook")
+    for rows in ({"row_method": "qdeim"}, {"n_rows": 4}):  # rows asked for with the cx link: refused
         with pytest.raises(rankfold.InvalidInputError, match="'cx' link .* keeps no anchor rows"):
             rankfold.compress(low_rank_plus_noise(0), tmp_path / "no-rows", rank=RANK, **rows)

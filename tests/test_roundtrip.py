@@ -73,7 +73,7 @@ def _assert_within_bounds(archive: rankfold.Archive, table: pa.Table) -> None:
 # -- column types -------------------------------------------------------------------------------
 def test_every_column_type_round_trips(tmp_path, assert_tight):
     table = _every_type_table()
-    archive = rankfold.compress(table, tmp_path / "types.rfa", rank=2, key="site")
+    archive = rankfold.compress(table, tmp_path / "types.rankfold", rank=2, key="site")
     rebuilt = archive.rebuild()
     assert rebuilt.schema.names == table.schema.names
     for field in table.schema:
@@ -99,14 +99,14 @@ def test_every_column_type_round_trips(tmp_path, assert_tight):
 def test_full_rank_rebuilds_integers_exactly(tmp_path):
     """With every column a basis column the numeric block is stored exactly."""
     table = _every_type_table(seed=5).select([f"n_{t}" for t in INTEGER_TYPES])
-    archive = rankfold.compress(table, tmp_path / "exact.rfa", rank=len(INTEGER_TYPES))
+    archive = rankfold.compress(table, tmp_path / "exact.rankfold", rank=len(INTEGER_TYPES))
     assert archive.rebuild().equals(table)
     assert np.all(archive.cell_bounds() == 0.0)
 
 
 def test_exact_columns_option_keeps_a_numeric_column_exactly(tmp_path):
     table = _every_type_table().select(["site", "n_int32", "n_uint16", "f32", "f64"])
-    archive = rankfold.compress(table, tmp_path / "keep.rfa", rank=1, exact_columns=["f64"])
+    archive = rankfold.compress(table, tmp_path / "keep.rankfold", rank=1, exact_columns=["f64"])
     assert archive.numeric_columns == ["n_int32", "n_uint16", "f32"]
     assert archive.rebuild().column("f64").equals(table.column("f64"))
 
@@ -114,8 +114,8 @@ def test_exact_columns_option_keeps_a_numeric_column_exactly(tmp_path):
 def test_rebuild_twice_writes_the_same_table(tmp_path):
     """Write, read, write again from the rebuilt table: the second archive rebuilds the same."""
     table = _every_type_table().drop_columns(["huge"])
-    first = rankfold.compress(table, tmp_path / "one.rfa", rank=3, key="site").rebuild()
-    second = rankfold.compress(first, tmp_path / "two.rfa", rank=3, key="site").rebuild()
+    first = rankfold.compress(table, tmp_path / "one.rankfold", rank=3, key="site").rebuild()
+    second = rankfold.compress(first, tmp_path / "two.rankfold", rank=3, key="site").rebuild()
     assert second.schema == first.schema
     for name in ("site", "flag", "label", "day", "at", "price"):
         assert second.column(name).equals(first.column(name))
@@ -164,9 +164,9 @@ def test_every_source_kind_gives_the_same_archive(tmp_path, duck, kind):
         duck.from_arrow(table).create("panel")
         source = "panel" if kind == "duckdb_table" else "SELECT * FROM panel ORDER BY id"
         options["connection"] = duck
-    archive = rankfold.compress(source, tmp_path / "kind.rfa", rank=2, **options)
+    archive = rankfold.compress(source, tmp_path / "kind.rankfold", rank=2, **options)
     assert archive.shape == (40, 6)
-    reference = rankfold.compress(table, tmp_path / "reference.rfa", rank=2, exact_columns=["id"])
+    reference = rankfold.compress(table, tmp_path / "reference.rankfold", rank=2, exact_columns=["id"])
     expected_values = reference.to_numpy()
     values = archive.to_numpy()
     # same numbers in, same archive out (CSV text reads back to the same doubles)
@@ -180,7 +180,7 @@ def test_every_source_kind_gives_the_same_archive(tmp_path, duck, kind):
 # -- keys ---------------------------------------------------------------------------------------
 def test_key_lookup(tmp_path):
     table = _every_type_table()
-    archive = rankfold.compress(table, tmp_path / "keyed.rfa", rank=2, key="site")
+    archive = rankfold.compress(table, tmp_path / "keyed.rankfold", rank=2, key="site")
     assert archive.manifest["key"] == "site"
     by_key = archive.to_numpy(rows=rankfold.Keys(["S-007", "S-002", "S-007"]))
     assert np.array_equal(by_key, archive.to_numpy(rows=[7, 2, 7]), equal_nan=True)
@@ -193,14 +193,14 @@ def test_key_lookup(tmp_path):
 
 
 def test_keys_need_a_key_column(tmp_path):
-    archive = rankfold.compress(_float_table(), tmp_path / "plain.rfa", rank=2)
+    archive = rankfold.compress(_float_table(), tmp_path / "plain.rankfold", rank=2)
     with pytest.raises(IndexError, match="has no key column; it was compressed without key="):
         archive.to_numpy(rows=rankfold.Keys([1]))
 
 
 # -- manifest -----------------------------------------------------------------------------------
 def test_manifest_records_format_and_checksums(tmp_path):
-    path = tmp_path / "manifest.rfa"
+    path = tmp_path / "manifest.rankfold"
     archive = rankfold.compress(_float_table(), path, rank=2, seed=42)
     manifest = json.loads((path / "manifest.json").read_text())
     assert manifest["format"] == "rankfold-archive"
@@ -220,7 +220,7 @@ def test_manifest_records_format_and_checksums(tmp_path):
 
 
 def test_checksums_detect_a_tampered_file(tmp_path):
-    path = tmp_path / "tamper.rfa"
+    path = tmp_path / "tamper.rankfold"
     rankfold.compress(_float_table(), path, rank=2)
     victim = path / "rows-00000.parquet"
     data = bytearray(victim.read_bytes())
@@ -232,7 +232,7 @@ def test_checksums_detect_a_tampered_file(tmp_path):
 
 
 def test_a_truncated_file_is_refused_without_checksums(tmp_path):
-    path = tmp_path / "short.rfa"
+    path = tmp_path / "short.rankfold"
     rankfold.compress(_float_table(), path, rank=2)
     victim = path / "anchors.parquet"
     victim.write_bytes(victim.read_bytes()[:-10])
@@ -250,20 +250,20 @@ def _archive_claiming_format(path, version: str):
 
 
 def test_unknown_major_version_is_refused_naming_both_versions(tmp_path):
-    path = _archive_claiming_format(tmp_path / "future.rfa", "7.2")
+    path = _archive_claiming_format(tmp_path / "future.rankfold", "7.2")
     with pytest.raises(rankfold.UnsupportedVersionError, match=r"format 7\.2 .*reads format 1\.x"):
         rankfold.open(path)
     assert issubclass(rankfold.UnsupportedVersionError, rankfold.CorruptArchiveError)
 
 
 def test_a_newer_minor_version_opens(tmp_path):
-    path = _archive_claiming_format(tmp_path / "minor.rfa", "1.9")
+    path = _archive_claiming_format(tmp_path / "minor.rankfold", "1.9")
     assert rankfold.open(path).shape == (40, 7)
 
 
 # -- rebuild log --------------------------------------------------------------------------------
 def test_rebuild_log_has_one_record_per_request(tmp_path, caplog):
-    path = tmp_path / "logged.rfa"
+    path = tmp_path / "logged.rankfold"
     rankfold.compress(_every_type_table(), path, rank=2, key="site")
     log_path = tmp_path / "rebuilds.jsonl"
     archive = rankfold.open(path, log_path=log_path)

@@ -41,7 +41,7 @@ def test_an_error_on_the_writer_thread_reaches_the_caller(tmp_path):
 
 
 def test_abort_removes_the_temporary_directory_even_after_a_writer_error(tmp_path):
-    target = tmp_path / "a.rfa"
+    target = tmp_path / "a.rankfold"
     writer = ArchiveWriter(target, overwrite=False)
     writer.write_rows(_table(0, 10), 0)
     writer.write_rows(pa.table({layout.ROW_ID: np.arange(10, 20), "x": np.array(["a"] * 10)}), 10)

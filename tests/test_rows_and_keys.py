@@ -28,23 +28,23 @@ def _table(keys) -> pa.Table:
 
 @pytest.fixture(scope="module")
 def archive(tmp_path_factory):
-    return rankfold.compress(_table(np.arange(ROWS)), tmp_path_factory.mktemp("rows") / "a.rfa",
+    return rankfold.compress(_table(np.arange(ROWS)), tmp_path_factory.mktemp("rows") / "a.rankfold",
                              rank=2, key="station")
 
 
 def test_non_unique_key_is_refused_at_compress(tmp_path):
     keys = np.arange(ROWS) % 14  # 212 or 215 rows per key value, as in the issue
     with pytest.raises(InvalidInputError, match=r"key column 'station' .* is not unique: \d+ is in 21\d rows"):
-        rankfold.compress(_table(keys), tmp_path / "dup.rfa", rank=2, key="station")
-    assert not (tmp_path / "dup.rfa").exists()
+        rankfold.compress(_table(keys), tmp_path / "dup.rankfold", rank=2, key="station")
+    assert not (tmp_path / "dup.rankfold").exists()
     # kept as an exact column, the same table compresses; rows are chosen by condition
-    kept = rankfold.compress(_table(keys), tmp_path / "ok.rfa", rank=2, exact_columns=("station",))
+    kept = rankfold.compress(_table(keys), tmp_path / "ok.rankfold", rank=2, exact_columns=("station",))
     assert kept.aggregate(["x0"], "count", where="station = 3").column("x0").to_pylist() == [
         int((keys == 3).sum())]
 
 
 def test_append_that_repeats_a_key_is_refused(archive, tmp_path):
-    copy = rankfold.compress(_table(np.arange(ROWS)), tmp_path / "c.rfa", rank=2, key="station")
+    copy = rankfold.compress(_table(np.arange(ROWS)), tmp_path / "c.rankfold", rank=2, key="station")
     with pytest.raises(InvalidInputError, match="is not unique: 2999 is in 2 rows"):
         copy.append(_table(np.arange(2999, 3010)))
     assert rankfold.open(copy.path).shape == (ROWS, 5)  # nothing was committed

@@ -56,7 +56,7 @@ def test_compress_under_a_memory_cap_below_the_table_size(tmp_path):
                                row_group_size=65_536)
     assert ROWS * WIDTH * 8 > 1.5 * 300 * 2**20  # the values alone exceed the cap by half
     env = dict(os.environ, MALLOC_ARENA_MAX="1", OPENBLAS_NUM_THREADS="1", OMP_NUM_THREADS="1")
-    out = tmp_path / "big.rfa"
+    out = tmp_path / "big.rankfold"
     done = subprocess.run([sys.executable, "-c", CHILD, str(data), str(out)], env=env,
                           capture_output=True, text=True, timeout=300)
     assert done.returncode == 0 and "compressed" in done.stdout, done.stderr[-2000:]

@@ -134,7 +134,7 @@ def dataset(tmp_path_factory):
 
 def test_sampled_sketch_keeps_bounds_and_records_every_rows_statistics(dataset, tmp_path):
     folder, table = dataset
-    archive = rankfold.compress(str(folder), tmp_path / "s.rfa", rank=3, sketch_rows=3000, seed=4)
+    archive = rankfold.compress(str(folder), tmp_path / "s.rankfold", rank=3, sketch_rows=3000, seed=4)
     sketch = archive.manifest["sketch"]
     assert sketch["sampled"] and 3000 <= sketch["rows_read"] < 30_000
     assert sketch["of_rows"] == 30_000 and sketch["row_groups_read"] < sketch["of_row_groups"]
@@ -169,8 +169,8 @@ def test_sampled_sketch_is_as_good_as_the_full_one_on_a_uniform_table(dataset, t
     error stays within 1% of the full sketch's, and within 1.3x the SVD optimum of rank 3
     (Eckart-Young: numpy.linalg.svd of the standardized table)."""
     folder, table = dataset
-    sampled = rankfold.compress(str(folder), tmp_path / "s.rfa", rank=3, sketch_rows=3000, seed=4)
-    full = rankfold.compress(str(folder), tmp_path / "f.rfa", rank=3, sketch_rows="all", seed=4)
+    sampled = rankfold.compress(str(folder), tmp_path / "s.rankfold", rank=3, sketch_rows=3000, seed=4)
+    full = rankfold.compress(str(folder), tmp_path / "f.rankfold", rank=3, sketch_rows="all", seed=4)
     assert not full.manifest["sketch"]["sampled"]
     a, b = sampled.errors["relative_frobenius"], full.errors["relative_frobenius"]
     assert a <= 1.01 * b  # measured 1.0012 (seed 4)
@@ -184,13 +184,13 @@ def test_sampled_sketch_is_as_good_as_the_full_one_on_a_uniform_table(dataset, t
 
 
 @pytest.mark.parametrize("options", [
-    {"link": "optimal", "rows": "leverage", "columns": "leverage"},  # anchor rows: a full select pass
+    {"link": "optimal", "row_method": "leverage", "column_method": "leverage"},  # anchor rows: a full select pass
     {"method": "svd"},
     {"transform": "none"},
 ])
 def test_sampled_sketch_with_other_methods_keeps_its_bounds(dataset, tmp_path, options):
     folder, table = dataset
-    archive = rankfold.compress(str(folder), tmp_path / "m.rfa", rank=3, sketch_rows=3000, seed=6,
+    archive = rankfold.compress(str(folder), tmp_path / "m.rankfold", rank=3, sketch_rows=3000, seed=6,
                                 **options)
     assert archive.manifest["sketch"]["sampled"]
     _assert_bounds_hold(archive, _truth(archive, table))
@@ -202,9 +202,9 @@ def test_sampled_sketch_with_other_methods_keeps_its_bounds(dataset, tmp_path, o
 
 def test_same_seed_same_sample_and_archive(dataset, tmp_path):
     folder, _ = dataset
-    one = rankfold.compress(str(folder), tmp_path / "1.rfa", rank=3, sketch_rows=3000, seed=9)
-    two = rankfold.compress(str(folder), tmp_path / "2.rfa", rank=3, sketch_rows=3000, seed=9)
-    other = rankfold.compress(str(folder), tmp_path / "3.rfa", rank=3, sketch_rows=3000, seed=10)
+    one = rankfold.compress(str(folder), tmp_path / "1.rankfold", rank=3, sketch_rows=3000, seed=9)
+    two = rankfold.compress(str(folder), tmp_path / "2.rankfold", rank=3, sketch_rows=3000, seed=9)
+    other = rankfold.compress(str(folder), tmp_path / "3.rankfold", rank=3, sketch_rows=3000, seed=10)
     assert one.manifest["sketch"] == two.manifest["sketch"]
     assert one.manifest["sketch"]["first_rows"] != other.manifest["sketch"]["first_rows"]
     assert one.basis_columns == two.basis_columns
@@ -213,7 +213,7 @@ def test_same_seed_same_sample_and_archive(dataset, tmp_path):
 
 def test_auto_reads_every_row_of_a_small_table(dataset, tmp_path):
     folder, _ = dataset
-    archive = rankfold.compress(str(folder), tmp_path / "a.rfa", rank=3)
+    archive = rankfold.compress(str(folder), tmp_path / "a.rankfold", rank=3)
     assert archive.manifest["sketch"] == {"rows_read": 30_000, "of_rows": 30_000, "sampled": False}
 
 
@@ -229,7 +229,7 @@ def test_rare_rows_outside_the_sample_are_still_bounded(tmp_path):
     rng = np.random.default_rng(12)  # off the rank-2 shape: a third direction, in 200 rows only
     x[rare] += 50.0 * np.outer(rng.standard_normal(200), rng.standard_normal(10))
     folder = _write(tmp_path / "d", _floats(x), files=1)
-    archive = rankfold.compress(str(folder), tmp_path / "r.rfa", rank=2, sketch_rows=wanted, seed=seed)
+    archive = rankfold.compress(str(folder), tmp_path / "r.rankfold", rank=2, sketch_rows=wanted, seed=seed)
     assert rare.start not in archive.manifest["sketch"]["first_rows"]  # the sample missed them
     _assert_bounds_hold(archive, x)
     error = np.abs(archive.to_numpy() - x)
@@ -253,7 +253,7 @@ def test_bounds_hold_whatever_the_sample(tmp_path_factory, rows, width, group, f
     if nulls:
         columns["v00"] = pa.array(x[:, 0], mask=rng.random(rows) < 0.1)
     folder = _write(tmp_path_factory.mktemp("prop") / "d", columns, files=2, group_rows=group)
-    archive = rankfold.compress(str(folder), folder.parent / "p.rfa", rank=1, sketch_rows=wanted,
+    archive = rankfold.compress(str(folder), folder.parent / "p.rankfold", rank=1, sketch_rows=wanted,
                                 seed=seed)
     _assert_bounds_hold(archive, _truth(archive, pa.table(columns)))
     sketch = archive.manifest["sketch"]
@@ -275,7 +275,7 @@ def test_integer_beyond_two_to_the_53_outside_the_sample_is_kept_exactly(tmp_pat
     big[skipped[-1] * GROUP_ROWS + 3] = 2**60 + 1
     columns = _floats(x) | {"big": pa.array(big)}
     folder = _write(tmp_path / "d", columns, files=1)
-    archive = rankfold.compress(str(folder), tmp_path / "b.rfa", rank=2, sketch_rows=1000)
+    archive = rankfold.compress(str(folder), tmp_path / "b.rankfold", rank=2, sketch_rows=1000)
     assert "big" not in archive.numeric_columns
     assert not archive.manifest["sketch"]["sampled"]
     assert archive.rebuild().column("big").to_numpy().tolist() == big.tolist()
@@ -287,7 +287,7 @@ def test_values_too_large_to_square_outside_the_sample_are_refused_and_keep_the_
     skipped = sorted(set(range(20)) - {g.index for g in choose_row_groups(groups, 1000, 0)})
     x[skipped[0] * GROUP_ROWS, 3] = 1e300
     folder = _write(tmp_path / "d", _floats(x), files=1)
-    target = tmp_path / "keep.rfa"
+    target = tmp_path / "keep.rankfold"
     old = rankfold.compress(np.ones((5, 2)), target)
     before = json.loads((target / "manifest.json").read_text())
     with pytest.raises(InvalidInputError, match="too large to square"):
@@ -307,8 +307,8 @@ def test_rows_counted_by_the_footers_must_be_the_rows_read(dataset, tmp_path, mo
 
     monkeypatch.setattr(executors.LocalExecutor, "row_groups", one_group_short)
     with pytest.raises(SourceChangedError, match="held 29500 rows"):
-        rankfold.compress(str(folder), tmp_path / "c.rfa", rank=3, sketch_rows=3000)
-    assert not (tmp_path / "c.rfa").exists()
+        rankfold.compress(str(folder), tmp_path / "c.rankfold", rank=3, sketch_rows=3000)
+    assert not (tmp_path / "c.rankfold").exists()
 
 
 @pytest.mark.parametrize("value, message", [
@@ -317,22 +317,25 @@ def test_rows_counted_by_the_footers_must_be_the_rows_read(dataset, tmp_path, mo
 ])
 def test_bad_sketch_rows_are_refused(tmp_path, value, message):
     with pytest.raises(InvalidInputError, match=message):
-        rankfold.compress(np.ones((4, 2)), tmp_path / "x.rfa", sketch_rows=value)
+        rankfold.compress(np.ones((4, 2)), tmp_path / "x.rankfold", sketch_rows=value)
 
 
 def test_sketch_rows_needs_a_parquet_source_and_no_targets(dataset, tmp_path):
     folder, _ = dataset
     with pytest.raises(InvalidInputError, match="neither a Parquet dataset"):
-        rankfold.compress(np.ones((40, 3)), tmp_path / "x.rfa", sketch_rows=10)
+        rankfold.compress(np.ones((40, 3)), tmp_path / "x.rankfold", rank=1, sketch_rows=10)
     with pytest.raises(InvalidInputError, match="error or size target"):
-        rankfold.compress(str(folder), tmp_path / "y.rfa", rel_error=0.1, sketch_rows=3000)
+        rankfold.compress(str(folder), tmp_path / "y.rankfold", rel_error=0.1, sketch_rows=3000)
+    # with neither rank nor target, the default tolerance (max_std_error) needs every row too
+    with pytest.raises(InvalidInputError, match="default max_std_error"):
+        rankfold.compress(str(folder), tmp_path / "z.rankfold", sketch_rows=3000)
 
 
 def test_command_line_takes_sketch_rows_and_inspect_says_what_the_sketch_read(dataset, tmp_path, capsys):
     from rankfold.cli import main
 
     folder, _ = dataset
-    target = tmp_path / "cli.rfa"
+    target = tmp_path / "cli.rankfold"
     assert main(["compress", str(folder), str(target), "--rank", "3", "--sketch-rows", "3000",
                  "--quiet"]) == 0
     sketch = rankfold.open(target).manifest["sketch"]
@@ -342,7 +345,7 @@ def test_command_line_takes_sketch_rows_and_inspect_says_what_the_sketch_read(da
     assert (f"sketch        read {sketch['rows_read']:,} of 30,000 rows (a seeded sample of "
             f"{sketch['row_groups_read']} of {sketch['of_row_groups']} row groups)") in out
     with pytest.raises(SystemExit):
-        main(["compress", str(folder), str(tmp_path / "bad.rfa"), "--sketch-rows", "many"])
+        main(["compress", str(folder), str(tmp_path / "bad.rankfold"), "--sketch-rows", "many"])
     assert "expected 'auto', 'all' or a number of rows" in capsys.readouterr().err
 
 
@@ -350,7 +353,7 @@ def test_sampled_archive_passes_verify_against_its_source_and_takes_appended_row
     """The independent check (rankfold.verify re-reads the source and compares every cell
     with its bound) passes, and appended rows are verified with the sampled factors."""
     folder, table = dataset
-    archive = rankfold.compress(str(folder), tmp_path / "v.rfa", rank=3, sketch_rows=3000, seed=2)
+    archive = rankfold.compress(str(folder), tmp_path / "v.rankfold", rank=3, sketch_rows=3000, seed=2)
     report = rankfold.verify(archive.path, str(folder))
     assert report["ok"], report["problems"]
     assert report["source"]["cells_checked"] == 30_000 * len(archive.numeric_columns)
@@ -394,8 +397,8 @@ def test_sampled_sketch_of_a_duckdb_table(tmp_path):
     columns["v03"] = pa.array(x[:, 3], mask=rng.random(30_000) < 0.05)
     con = _database(tmp_path / "t.duckdb", columns, delete_every=11)
     kept = con.sql("SELECT * FROM readings").to_arrow_table()
-    one = rankfold.compress("readings", tmp_path / "1.rfa", connection=con, rank=2, sketch_rows=3000, seed=3)
-    two = rankfold.compress("readings", tmp_path / "2.rfa", connection=con, rank=2, sketch_rows=3000, seed=3)
+    one = rankfold.compress("readings", tmp_path / "1.rankfold", connection=con, rank=2, sketch_rows=3000, seed=3)
+    two = rankfold.compress("readings", tmp_path / "2.rankfold", connection=con, rank=2, sketch_rows=3000, seed=3)
     sketch = one.manifest["sketch"]
     assert sketch["sampled"] and 3000 <= sketch["rows_read"] < kept.num_rows == sketch["of_rows"]
     assert sketch == two.manifest["sketch"] and one.basis_columns == two.basis_columns
@@ -408,7 +411,7 @@ def test_sampled_sketch_of_a_duckdb_table(tmp_path):
         assert ledger.column("valid")[j].as_py() == finite.size
         np.testing.assert_allclose(ledger.column("mean")[j].as_py(), finite.mean(), rtol=1e-12, atol=1e-15)
     with pytest.raises(InvalidInputError, match="neither a Parquet dataset"):
-        rankfold.compress("SELECT * FROM readings", tmp_path / "q.rfa", connection=con, sketch_rows=3000)
+        rankfold.compress("SELECT * FROM readings", tmp_path / "q.rankfold", connection=con, rank=3, sketch_rows=3000)
 
 
 def test_a_failing_sample_pass_closes_the_stream_opened_ahead(dataset, tmp_path, monkeypatch):
@@ -425,6 +428,6 @@ def test_a_failing_sample_pass_closes_the_stream_opened_ahead(dataset, tmp_path,
 
     monkeypatch.setattr(build, "_profile_task", broken)
     with pytest.raises(InvalidInputError, match="inside the sample pass"):
-        rankfold.compress(str(folder), tmp_path / "f.rfa", rank=3, sketch_rows=3000)
+        rankfold.compress(str(folder), tmp_path / "f.rankfold", rank=3, sketch_rows=3000)
     assert not [t for t in threading.enumerate() if t.name == "rankfold-read-ahead"]
-    assert not (tmp_path / "f.rfa").exists()
+    assert not (tmp_path / "f.rankfold").exists()

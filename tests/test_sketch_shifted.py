@@ -98,7 +98,7 @@ def test_compress_reports_the_spectrum_of_the_standardized_table(tmp_path):
     # The archive's singular values come from the one-pass sketch; numpy.linalg.svd of the
     # standardized table (NaN at the column mean) is the reference.
     x = _invented(3, rows=2000, width=7, missing=0.0)
-    archive = rankfold.compress(x, tmp_path / "s.rfa", rank=2)
+    archive = rankfold.compress(x, tmp_path / "s.rankfold", rank=2)
     z = (x - x.mean(axis=0)) / x.std(axis=0)
     s = np.linalg.svd(z, compute_uv=False)
     stored = np.asarray(archive.manifest["spectrum"])

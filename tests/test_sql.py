@@ -57,7 +57,7 @@ def _table() -> pa.Table:
 
 @pytest.fixture(scope="module")
 def archive(tmp_path_factory) -> str:
-    path = tmp_path_factory.mktemp("sql") / "panel.rfa"
+    path = tmp_path_factory.mktemp("sql") / "panel.rankfold"
     rankfold.compress(_table(), path, rank=8, key="id")
     return str(path)
 
@@ -271,7 +271,7 @@ def test_cell_mixed_nulls_in_inputs(con, archive):
 
 
 def test_cells_of_two_archives_in_one_vector(con, archive, tmp_path):
-    other = tmp_path / "other.rfa"
+    other = tmp_path / "other.rankfold"
     rankfold.compress(_table(), other, rank=3, key="id")
     con.register("req", pa.table({"p": [archive, str(other)] * 3000, "i": np.arange(6000) % ROWS}))
     out = fetch(con, f"SELECT p, i AS row, 'c20' AS col, {cell_sql('p', 'cell', 'i', lit('c20'))} FROM req")
@@ -396,9 +396,18 @@ def test_compress_table_then_rebuild(con, tmp_path):
 def test_compress_default_rank_and_struct_options(con, tmp_path):
     info = con.execute(f"SELECT rankfold_compress('SELECT * FROM panel', '{tmp_path}/b', "
                        "options := {'key': 'id', 'exact_columns': ['c00']})").fetchone()[0]
-    assert info["columns"] == COLS - 1 and 1 <= info["rank"] <= COLS // 4
-    manifest = rankfold.open(info["path"]).manifest
+    assert info["columns"] == COLS - 1
+    archive = rankfold.open(info["path"])
+    manifest = archive.manifest
     assert manifest["key"] == "id" and manifest["method"]["options"]["exact_columns"] == ["c00"]
+    # the default is a tolerance: every bound within 0.05 standard deviations (numpy.std, ddof 0)
+    cols = [int(n[1:]) for n in archive.numeric_columns]
+    truth = np.where(NULLS, np.nan, X)[:, cols]
+    assert manifest["targets"]["max_std_error"] == 0.05
+    bounds = archive.cell_bounds()
+    assert np.all(bounds <= 0.05 * STD[cols] * (1 + 1e-12))  # STD: numpy.nanstd of the source
+    finite = np.isfinite(truth)
+    assert np.all(np.abs(archive.to_numpy() - truth)[finite] <= bounds[finite])
 
 
 def test_compress_null_source_or_path_gives_null(con, tmp_path):
@@ -487,7 +496,7 @@ def test_row_groups_and_parts_match_the_stock_reader(con, tmp_path, monkeypatch)
 
     # 700-row batches give 700-row groups; a new rows file after each 1,500 rows
     monkeypatch.setattr(commit.ArchiveWriter.__init__, "__defaults__", (1500,))
-    path = tmp_path / "groups.rfa"
+    path = tmp_path / "groups.rankfold"
     rankfold.compress(_table(), path, rank=8, key="id", batch_rows=700)
     stock, cached = ArchiveReader(path), _ScanReader(path, _GroupCache(budget=200_000))
     assert len(stock.parts) >= 3 and all(len(p[3]) > 2 for p in stock.parts)

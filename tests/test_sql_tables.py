@@ -56,7 +56,7 @@ OPTIONS = {"cur": dict(rank=3), "svd": dict(rank=3, method="svd"),
 @pytest.fixture(scope="module")
 def archives(tmp_path_factory) -> dict[str, str]:
     root = tmp_path_factory.mktemp("sqlt")
-    return {k: str(rankfold.compress(_table(), root / f"{k}.rfa", key="id", batch_rows=3000, **o).path)
+    return {k: str(rankfold.compress(_table(), root / f"{k}.rankfold", key="id", batch_rows=3000, **o).path)
             for k, o in OPTIONS.items()}
 
 
@@ -110,7 +110,7 @@ def test_scan_one_value_narrow_and_pushdown(con, archives):
     plan = con.execute(f"EXPLAIN {sql}").fetchall()[0][1]
     assert "Filters: id=4321" in plan.replace(" ", "") or "id = 4321" in plan
     # narrow SQL: only the requested column (and the basis) is read and built
-    text = con.execute(f"SELECT rankfold__scan_sql('{path}', ['v3'], 'row', NULL, 'VARCHAR', "
+    text = con.execute(f"SELECT rankfold_internal_scan_sql('{path}', ['v3'], 'row', NULL, 'VARCHAR', "
                        "'VARCHAR[]', 'VARCHAR', '\"NULL\"')").fetchone()[0]
     assert "AS \"v3\"" in text and "AS \"v4\"" not in text
 

@@ -81,7 +81,7 @@ def tolerance_cases(draw, invent, truth_of):
 @given(data=st.data())
 def test_every_cell_within_the_tolerance(tmp_path_factory, invented_table, table_truth, assert_tight, data):
     table, options = data.draw(tolerance_cases(invented_table, table_truth), label="case")
-    archive = rankfold.compress(table, tmp_path_factory.mktemp("t") / "a.rfa", **options)
+    archive = rankfold.compress(table, tmp_path_factory.mktemp("t") / "a.rankfold", **options)
     truth, nulls = table_truth(table)
     tol = options["max_abs_error"]
     tolerance = (np.array([tol[n] for n in table.column_names]) if isinstance(tol, dict)
@@ -104,7 +104,7 @@ def test_integer_columns_are_lossless_below_one_half(tmp_path, table_truth):
     rng = np.random.default_rng(3)
     base = rng.standard_normal((2000, 3)) @ rng.standard_normal((3, 12)) * 40
     table = pa.table({f"n{j}": pa.array(np.rint(base[:, j]).astype(np.int32)) for j in range(12)})
-    archive = rankfold.compress(table, tmp_path / "i.rfa", max_abs_error=0.49)
+    archive = rankfold.compress(table, tmp_path / "i.rankfold", max_abs_error=0.49)
     assert archive.rebuild().equals(table)
     truth, _ = table_truth(table)
     np.testing.assert_array_equal(archive.to_numpy(), truth)
@@ -115,7 +115,7 @@ def test_spiky_low_rank_table_meets_the_tolerance_and_stores_spikes(tmp_path):
     x = _low_rank(spikes=30)
     tol = 0.01 * x.std(axis=0)
     names = [f"x{j}" for j in range(x.shape[1])]
-    archive = rankfold.compress(x, tmp_path / "s.rfa", max_abs_error=dict(zip(names, tol)))
+    archive = rankfold.compress(x, tmp_path / "s.rankfold", max_abs_error=dict(zip(names, tol)))
     _check_within(archive, x, tol[None, :])
     assert archive.manifest["achieved"]["max_abs_error"] <= tol.max()
 
@@ -130,7 +130,7 @@ def _quantized_baseline_bytes(x: np.ndarray, tol: np.ndarray) -> int:
 def test_iid_noise_falls_back_to_no_low_rank_part(tmp_path):
     x = np.random.default_rng(11).standard_normal((50000, 30))  # no low-rank structure
     tol = np.full(30, 0.01)
-    archive = rankfold.compress(x, tmp_path / "n.rfa", max_abs_error=0.01)
+    archive = rankfold.compress(x, tmp_path / "n.rankfold", max_abs_error=0.01)
     _check_within(archive, x, tol[None, :])
     assert archive.manifest["method"]["n_columns"] == 0  # the low-rank part does not pay
     size = sum(f["bytes"] for f in archive.manifest["files"])
@@ -143,7 +143,7 @@ def test_low_rank_beats_per_column_quantization(tmp_path):
     names = [f"x{j}" for j in range(x.shape[1])]
     baseline = _quantized_baseline_bytes(x, tol)
     for options in ({"method": "svd"}, {"basis_precision": "tolerance"}):
-        archive = rankfold.compress(x, tmp_path / f"{len(options)}{list(options)[0]}.rfa",
+        archive = rankfold.compress(x, tmp_path / f"{len(options)}{list(options)[0]}.rankfold",
                                     max_abs_error=dict(zip(names, tol)), **options)
         _check_within(archive, x, tol[None, :])
         size = sum(f["bytes"] for f in archive.manifest["files"])
@@ -165,7 +165,7 @@ def _relative_error(archive, x: np.ndarray) -> tuple[float, np.ndarray]:
 @pytest.mark.parametrize("target", [0.05, 0.012])
 def test_rel_error_is_met_and_recorded(tmp_path, target):
     x = _low_rank(noise=0.01)
-    archive = rankfold.compress(x, tmp_path / "r.rfa", rel_error=target)
+    archive = rankfold.compress(x, tmp_path / "r.rankfold", rel_error=target)
     whole, _ = _relative_error(archive, x)  # numpy.linalg.norm as the reference
     assert whole <= target
     assert archive.manifest["targets"]["rel_error"] == target
@@ -174,26 +174,26 @@ def test_rel_error_is_met_and_recorded(tmp_path, target):
 
 def test_rel_error_per_column(tmp_path):
     x = _low_rank(noise=0.02)
-    archive = rankfold.compress(x, tmp_path / "p.rfa", rel_error={"x3": 0.03, "x17": 0.05})
+    archive = rankfold.compress(x, tmp_path / "p.rankfold", rel_error={"x3": 0.03, "x17": 0.05})
     _, per_column = _relative_error(archive, x)
     assert per_column[3] <= 0.03 and per_column[17] <= 0.05
 
 
 def test_target_bytes_is_met_or_refused(tmp_path):
     x = _low_rank(m=5000, n=40)
-    archive = rankfold.compress(x, tmp_path / "b.rfa", target_bytes=400_000)
+    archive = rankfold.compress(x, tmp_path / "b.rankfold", target_bytes=400_000)
     size = sum(f["bytes"] for f in archive.manifest["files"])
     assert size <= 400_000
     assert archive.manifest["method"]["kind"] in ("cur", "svd")
     with pytest.raises(rankfold.InvalidInputError, match="target_bytes=1000 is below the smallest archive"):
-        rankfold.compress(x, tmp_path / "tiny.rfa", target_bytes=1000)
-    assert not (tmp_path / "tiny.rfa").exists()
+        rankfold.compress(x, tmp_path / "tiny.rankfold", target_bytes=1000)
+    assert not (tmp_path / "tiny.rankfold").exists()
 
 
 @pytest.mark.parametrize("options, message", [
     ({"rel_error": 0.1, "rank": 3}, "either 'rank' or 'rel_error'"),
     ({"target_bytes": 10**6, "max_abs_error": 0.1}, "'target_bytes' alone"),
-    ({"basis_precision": "tolerance"}, "needs max_abs_error"),
+    ({"basis_precision": "tolerance", "rank": 3}, "needs max_abs_error or max_std_error"),
     ({"max_abs_error": -1.0}, "'max_abs_error' option of compress must be a positive number"),
     ({"max_abs_error": {"nope": 0.1}}, "names columns that are not numeric columns"),
     ({"rel_error": 0.0}, "'rel_error' option of compress must be a positive number"),
@@ -201,8 +201,8 @@ def test_target_bytes_is_met_or_refused(tmp_path):
 ])
 def test_bad_targets_are_refused(tmp_path, options, message):
     with pytest.raises(rankfold.InvalidInputError, match=message):
-        rankfold.compress(_low_rank(m=50, n=6), tmp_path / "bad.rfa", **options)
-    assert not (tmp_path / "bad.rfa").exists()
+        rankfold.compress(_low_rank(m=50, n=6), tmp_path / "bad.rankfold", **options)
+    assert not (tmp_path / "bad.rankfold").exists()
 
 
 def test_refit_without_outliers_lowers_the_error_of_the_other_cells(tmp_path):
@@ -219,7 +219,7 @@ def test_refit_without_outliers_lowers_the_error_of_the_other_cells(tmp_path):
     names = [f"x{j}" for j in range(60)]
     figures = {}
     for refit in (False, True):
-        archive = rankfold.compress(x, tmp_path / f"{refit}.rfa", rank=6, refit_outliers=refit,
+        archive = rankfold.compress(x, tmp_path / f"{refit}.rankfold", rank=6, refit_outliers=refit,
                                     max_abs_error=dict(zip(names, tol)), residual="corrections")
         _check_within(archive, x, tol[None, :])
         figures[refit] = (archive.errors["mean_column_relative_rms"], archive.manifest["achieved"]["corrections"])
@@ -252,8 +252,8 @@ def test_signed_codes_from_development_builds_are_refused(tmp_path):
     from rankfold.udfs.store.manifest import file_entry, write_manifest
 
     x = _low_rank(m=500, n=12)
-    archive = rankfold.compress(x, tmp_path / "z.rfa", max_abs_error=0.001 * x.std(axis=0).min())
-    part = tmp_path / "z.rfa" / archive.manifest["row_parts"][0]["name"]
+    archive = rankfold.compress(x, tmp_path / "z.rankfold", max_abs_error=0.001 * x.std(axis=0).min())
+    part = tmp_path / "z.rankfold" / archive.manifest["row_parts"][0]["name"]
     table = pq.read_table(part)
     codes = [n for n in table.column_names if n.startswith("_rf_q_")]
     assert codes  # the archive does code residuals
@@ -264,4 +264,4 @@ def test_signed_codes_from_development_builds_are_refused(tmp_path):
     manifest["files"] = [file_entry(part.parent, f["name"]) for f in manifest["files"]]
     write_manifest(part.parent, manifest)
     with pytest.raises(rankfold.CorruptArchiveError, match="signed integers .* compress the source again"):
-        rankfold.open(tmp_path / "z.rfa")
+        rankfold.open(tmp_path / "z.rankfold")

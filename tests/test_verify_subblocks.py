@@ -38,7 +38,7 @@ SCALE = 10.0 ** np.array([-2, -1, 0, 1, 2, 0, 1, -1, 2, -2])  # column units ove
 TOLERANCE = {f"c{j}": 0.02 * SCALE[j] for j in range(WIDTH)}
 
 OPTIONS = {
-    "cur_with_anchor_rows": {"rank": RANK, "link": "optimal", "rows": "qdeim"},
+    "cur_with_anchor_rows": {"rank": RANK, "link": "optimal", "row_method": "qdeim"},
     "cur_without_anchor_rows": {"rank": RANK},
     "svd_scores": {"rank": RANK, "method": "svd"},
     "tolerance_with_codes": {"rank": RANK, "max_abs_error": TOLERANCE},
@@ -114,8 +114,8 @@ def _overridden(archive: rankfold.Archive) -> np.ndarray:
 @pytest.fixture(params=sorted(OPTIONS))
 def archives(request, tmp_path, monkeypatch):
     options = OPTIONS[request.param]
-    small = _compress(tmp_path, monkeypatch, options, SUB_ROWS, "small.rfa")
-    whole = _compress(tmp_path, monkeypatch, options, 1 << 30, "whole.rfa")
+    small = _compress(tmp_path, monkeypatch, options, SUB_ROWS, "small.rankfold")
+    whole = _compress(tmp_path, monkeypatch, options, 1 << 30, "whole.rankfold")
     return small, whole
 
 

@@ -72,7 +72,7 @@ def test_foreign_folder_with_a_manifest_is_never_replaced(tmp_path):
 
 
 def test_user_files_inside_an_archive_block_overwrite(tmp_path):
-    path = tmp_path / "a.rfa"
+    path = tmp_path / "a.rankfold"
     rankfold.compress(_table(1, 50), path, rank=2)
     (path / "my-notes.txt").write_text("keep me")
     before = _snapshot(tmp_path)
@@ -92,14 +92,14 @@ def test_user_files_inside_an_archive_block_overwrite(tmp_path):
         mp.setattr(commit_module.ArchiveWriter, "_close_part", drop_file)
         with pytest.raises(rankfold.ArchiveExistsError, match=r"also holds late.csv"):
             rankfold.compress(_table(2, 50), path, rank=2, overwrite=True)
-    before["a.rfa/late.csv"] = hashlib.sha256(b"1,2,3").hexdigest()
+    before["a.rankfold/late.csv"] = hashlib.sha256(b"1,2,3").hexdigest()
     assert _snapshot(tmp_path) == before
     assert _beside(tmp_path) == []
 
 
 @pytest.mark.parametrize("overwrite", [False, True])
 def test_folder_created_at_the_target_during_a_compress_survives(tmp_path, overwrite):
-    target = tmp_path / "new.rfa"
+    target = tmp_path / "new.rankfold"
     real = commit_module.ArchiveWriter._close_part
 
     def someone_creates_it(self):
@@ -117,9 +117,9 @@ def test_folder_created_at_the_target_during_a_compress_survives(tmp_path, overw
 
 
 def test_writes_through_a_symbolic_link_go_to_the_archive_it_names(tmp_path):
-    real = tmp_path / "real.rfa"
+    real = tmp_path / "real.rankfold"
     rankfold.compress(_table(1, 300), real, rank=2)
-    link = tmp_path / "link.rfa"
+    link = tmp_path / "link.rankfold"
     link.symlink_to(real)
     assert rankfold.open(link).append(_table(3, 20)).shape == (320, WIDTH)
     rankfold.compress(_table(2, 290), link, rank=2, overwrite=True)
@@ -159,16 +159,16 @@ def test_rename_onto_a_path_that_appeared_fails(tmp_path, monkeypatch, syscall):
 
 # -- one writer per path ---------------------------------------------------------------------------
 def test_a_held_lock_refuses_every_other_writer(tmp_path):
-    path = tmp_path / "a.rfa"
+    path = tmp_path / "a.rankfold"
     archive = rankfold.compress(_table(1, 60), path, rank=2)
     with versions.WriteLock(path):
         with pytest.raises(rankfold.ArchiveBusyError, match=rf"process {os.getpid()} on host"):
             rankfold.compress(_table(2, 60), path, rank=2, overwrite=True)
         with pytest.raises(rankfold.ArchiveBusyError, match="Another rankfold write"):
             archive.append(_table(3, 10))
-    with versions.WriteLock(tmp_path / "new.rfa"):  # an absent path is locked as well
+    with versions.WriteLock(tmp_path / "new.rankfold"):  # an absent path is locked as well
         with pytest.raises(rankfold.ArchiveBusyError):
-            rankfold.compress(_table(2, 60), tmp_path / "new.rfa", rank=2)
+            rankfold.compress(_table(2, 60), tmp_path / "new.rankfold", rank=2)
     with versions.WriteLock(path):
         with pytest.raises(rankfold.ArchiveBusyError):
             versions.sweep(path)
@@ -177,7 +177,7 @@ def test_a_held_lock_refuses_every_other_writer(tmp_path):
 
 
 def test_a_dead_owners_lock_is_taken_over_and_logged(tmp_path, caplog):
-    path = tmp_path / "a.rfa"
+    path = tmp_path / "a.rankfold"
     rankfold.compress(_table(1, 60), path, rank=2)
     child = subprocess.run([sys.executable, "-c", "import os; print(os.getpid())"],
                            capture_output=True, text=True, check=True)
@@ -226,7 +226,7 @@ def _go(children: list[subprocess.Popen]) -> None:
 def test_racing_writers_one_wins(tmp_path):
     """Two compresses to one absent path, started together: exactly one succeeds; the
     others fail with ArchiveBusyError or ArchiveExistsError, never a second success."""
-    path = tmp_path / "race.rfa"
+    path = tmp_path / "race.rankfold"
     body = """
     seed = int(sys.argv[2])
     source = table(seed, 400 + seed)
@@ -249,7 +249,7 @@ def test_racing_writers_one_wins(tmp_path):
 
 
 def test_overwrite_racing_append_leaves_one_consistent_version(tmp_path):
-    path = tmp_path / "a.rfa"
+    path = tmp_path / "a.rankfold"
     rankfold.compress(_table(1, 300), path, rank=2)
     overwrite = """
     source = table(2, 250)
@@ -288,7 +288,7 @@ def test_overwrite_racing_append_leaves_one_consistent_version(tmp_path):
 
 # -- readers see one version ------------------------------------------------------------------------
 def test_an_open_archive_keeps_reading_its_version(tmp_path):
-    path = tmp_path / "a.rfa"
+    path = tmp_path / "a.rankfold"
     first = _table(1, 300)
     held = rankfold.compress(first, path, rank=2)
     rankfold.compress(_table(2, 300), path, rank=2, overwrite=True)
@@ -298,7 +298,7 @@ def test_an_open_archive_keeps_reading_its_version(tmp_path):
     assert _within(rankfold.open(path).to_numpy(), rankfold.open(path).cell_bounds(), _truth(_table(4, 300)))
     # once swept, the held version fails clearly instead of reading another version's files
     removed = versions.sweep(path, grace=0)
-    assert "a.rfa/rows-00000.parquet" in removed
+    assert "a.rankfold/rows-00000.parquet" in removed
     with pytest.raises(rankfold.ArchiveNotFoundError, match="is gone: a later write superseded"):
         held.to_numpy()
     assert rankfold.open(path, checksums=True).shape == (300, WIDTH)
@@ -309,7 +309,7 @@ def _versions_loop_child(path: Path, seconds: float) -> subprocess.Popen:
     sources = [table(1, 300), table(2, 290)]
     print("ready", flush=True); sys.stdin.readline()
     end, k = time.time() + {seconds}, 0
-    while time.time() < end:
+    while time.time() < end or k < 4:  # at least an append and overwrites, on a slow machine too
         k += 1
         if k % 3 == 0:
             rankfold.open(path).append(table(3, 20))
@@ -333,7 +333,7 @@ def _expected(rows: int) -> np.ndarray | None:
 def test_fresh_readers_racing_overwrites_and_appends(tmp_path):
     """Python readers opened again and again while another process overwrites and appends:
     every read is one whole version (within its bounds of that version's source)."""
-    path = tmp_path / "a.rfa"
+    path = tmp_path / "a.rankfold"
     rankfold.compress(_table(1, 300), path, rank=2)
     writer = _versions_loop_child(path, 2.0)
     _ready([writer])
@@ -352,7 +352,7 @@ def test_fresh_readers_racing_overwrites_and_appends(tmp_path):
 
 def test_sql_readers_racing_overwrites_and_appends(tmp_path):
     """The same with SQL: rankfold_scan and rankfold_cell_with_bound in DuckDB queries."""
-    path = tmp_path / "a.rfa"
+    path = tmp_path / "a.rankfold"
     rankfold.compress(_table(1, 300), path, rank=2)
     con = duckdb.connect()
     udfs.register(con)
@@ -394,7 +394,7 @@ def test_kill_9_at_random_points_leaves_the_previous_version(tmp_path, kind):
     rng = np.random.default_rng(13 if kind == "compress" else 14)
     children, paths = [], []
     for k in range(3):
-        path = tmp_path / f"a{k}.rfa"
+        path = tmp_path / f"a{k}.rankfold"
         rankfold.compress(_table(1, 300), path, rank=2)
         if kind == "compress":
             body = """
@@ -446,7 +446,7 @@ def test_kill_9_at_random_points_leaves_the_previous_version(tmp_path, kind):
 def test_a_write_stopped_before_its_commit_leaves_the_old_version(tmp_path):
     """Stopped between moving its files in and replacing the manifest: the old version stays,
     and the next write (or sweep) removes the uncommitted files."""
-    path = tmp_path / "a.rfa"
+    path = tmp_path / "a.rankfold"
     rankfold.compress(_table(1, 300), path, rank=2)
     before = set(os.listdir(path))
 
@@ -468,7 +468,7 @@ def test_a_write_stopped_before_its_commit_leaves_the_old_version(tmp_path):
 
 # -- housekeeping ------------------------------------------------------------------------------------------
 def test_sweep_keeps_young_versions_and_removes_old_ones(tmp_path):
-    path = tmp_path / "a.rfa"
+    path = tmp_path / "a.rankfold"
     rankfold.compress(_table(1, 100), path, rank=2)
     rankfold.compress(_table(2, 100), path, rank=2, overwrite=True)
     assert versions.sweep(path) == []  # within the grace period: kept for readers
@@ -494,16 +494,16 @@ def test_sweep_command_and_spools_of_ended_processes(tmp_path, capsys):
     assert sweep_spools(tmp_path) == [str(dead_spool)]
     assert live_spool.is_dir() and not dead_spool.exists()
 
-    path = tmp_path / "a.rfa"
+    path = tmp_path / "a.rankfold"
     rankfold.compress(_table(1, 100), path, rank=2)
     rankfold.compress(_table(2, 100), path, rank=2, overwrite=True)
-    (tmp_path / ".a.rfa.rankfold-tmp-0123456789ab").mkdir()  # as a killed write leaves it
+    (tmp_path / ".a.rankfold.rankfold-tmp-0123456789ab").mkdir()  # as a killed write leaves it
     assert main(["sweep", str(path), "--grace", "0", "--json"]) == 0
     report = json.loads(capsys.readouterr().out)
-    assert ".a.rfa.rankfold-tmp-0123456789ab" in report["removed"]
-    assert "a.rfa/rows-00000.parquet" in report["removed"]
+    assert ".a.rankfold.rankfold-tmp-0123456789ab" in report["removed"]
+    assert "a.rankfold/rows-00000.parquet" in report["removed"]
     assert _beside(tmp_path) == []
-    assert main(["sweep", str(tmp_path / "missing.rfa")]) == 1
+    assert main(["sweep", str(tmp_path / "missing.rankfold")]) == 1
 
 
 def test_sql_result_spool_is_named_after_its_process(tmp_path):
@@ -539,7 +539,7 @@ def test_a_process_dying_at_each_step_of_the_commit(tmp_path):
     children, cases = [], []
     for kind in ("overwrite", "append"):
         for point, patch in _CRASH_POINTS.items():
-            path = tmp_path / f"{kind}-{point}.rfa"
+            path = tmp_path / f"{kind}-{point}.rankfold"
             rankfold.compress(_table(1, 300), path, rank=2)
             write = ("rankfold.compress(table(2, 290), path, rank=2, overwrite=True)" if kind == "overwrite"
                      else "rankfold.open(path).append(table(3, 20))")

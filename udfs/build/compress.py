@@ -280,18 +280,18 @@ def _sizes(opts: CompressOptions, rows: int, width: int, spectrum) -> tuple[int,
     # estimators; repeats are merged, so the archive keeps at most n distinct columns.
     iid = opts.sample_with_replacement
     c = opts.n_columns if opts.n_columns is not None else min(2 * rank, width)
-    if c > width and not (iid and opts.columns != "pivoted_qr"):
+    if c > width and not (iid and opts.column_method != "pivoted_qr"):
         raise RankTooLargeError(
             f"The 'n_columns' option of compress must be at most the {width} numeric columns. Got {c} instead."
         )
-    if c < rank and opts.columns == "pivoted_qr":
+    if c < rank and opts.column_method == "pivoted_qr":
         raise RankTooLargeError(
             f"The 'n_columns' option of compress must be at least the rank ({rank}). Got {c} instead."
         )
     if opts.link == "cx":  # C^+ A uses no rows: no anchor rows are kept
         return rank, c, 0, why
     r = opts.n_rows if opts.n_rows is not None else min(2 * min(c, width), rows)
-    if r > rows and not (iid and opts.rows != "qdeim"):
+    if r > rows and not (iid and opts.row_method != "qdeim"):
         raise RankTooLargeError(
             f"The 'n_rows' option of compress must be at most the {rows} source rows. Got {r} instead."
         )
@@ -350,7 +350,7 @@ def _compress(src, target: Path, opts: CompressOptions) -> Path:
             moments.gram *= rows / max(int(fingerprint.rows), 1)
     _check_squares(np.diag(moments.gram), profile, numeric, src.description)
     sketch = sketch_of(moments)
-    goal = _Goal.from_options(opts, numeric)
+    goal = _Goal.from_options(opts, numeric, profile.std)
     goal.serving(src.schema, numeric, profile)
     build = _first_build(opts, goal, rows, width, sketch, profile, transform, sample, numeric, passthrough)
     for attempt in range(_MAX_ATTEMPTS):
@@ -412,6 +412,8 @@ class _Goal:
     max_abs_error: np.ndarray | None
     max_abs_error_per_column: bool
     target_bytes: int | None
+    max_std_error: np.ndarray | None = None
+    max_std_error_per_column: bool = False
     margin: np.ndarray | None = None  # how far serving may move a value (see ``serving``)
     integer: np.ndarray | None = None
 
@@ -449,11 +451,23 @@ class _Goal:
         return np.where(self.integer, np.where(t >= 0.5, t - 0.5, t), floats)
 
     @classmethod
-    def from_options(cls, opts: CompressOptions, names: list[str]) -> "_Goal":
+    def from_options(cls, opts: CompressOptions, names: list[str],
+                     std: np.ndarray | None = None) -> "_Goal":
+        """``max_abs_error`` here is the per-column tolerance in column units: the user's
+        max_abs_error, and max_std_error * std_j (std over the column's valid values), the
+        smaller where both are given. A column whose std is 0 (constant) gets tolerance 0:
+        any cell the factors miss is stored exactly."""
+        absolute = targets.per_column(opts.max_abs_error, names, "max_abs_error")
+        relative = targets.per_column(opts.max_std_error, names, "max_std_error")
+        if relative is not None:
+            spread = np.where(np.isfinite(std), std, 0.0) if std is not None else np.zeros(len(names))
+            with np.errstate(invalid="ignore"):  # inf * 0 for unnamed constant columns
+                from_std = np.where(np.isfinite(relative), relative * spread, np.inf)
+            absolute = from_std if absolute is None else np.minimum(absolute, from_std)
         return cls(targets.per_column(opts.rel_error, names, "rel_error"),
-                   isinstance(opts.rel_error, dict),
-                   targets.per_column(opts.max_abs_error, names, "max_abs_error"),
-                   isinstance(opts.max_abs_error, dict), opts.target_bytes)
+                   isinstance(opts.rel_error, dict), absolute,
+                   isinstance(opts.max_abs_error, dict) or relative is not None, opts.target_bytes,
+                   relative, isinstance(opts.max_std_error, dict))
 
     def recorded(self, names: list[str]) -> dict[str, Any]:
         def listed(values, per_column):
@@ -464,6 +478,7 @@ class _Goal:
             return float(values[0])
         return {"rel_error": listed(self.rel_error, self.rel_error_per_column),
                 "max_abs_error": listed(self.max_abs_error, self.max_abs_error_per_column),
+                "max_std_error": listed(self.max_std_error, self.max_std_error_per_column),
                 "target_bytes": self.target_bytes}
 
     def verdict(self, written: "_Written", transform: Transform, sketch) -> str | None:
@@ -694,12 +709,12 @@ def _fit_cur(opts, build, sketch, screen, transform, passes, stage, numeric, row
     The ``cx`` link (C^+ Z) uses no rows: it keeps no anchor rows and spends no pass on them."""
     replace = opts.sample_with_replacement
     rank = max(1, build.rank)
-    choice = _cur.choose_columns(opts.columns, sketch.r, sketch.spectrum, rank, build.n_columns,
+    choice = _cur.choose_columns(opts.column_method, sketch.r, sketch.spectrum, rank, build.n_columns,
                                  rng, replace=replace)
     if opts.link == "cx":
         anchors = _no_anchors(len(numeric))
     else:
-        anchors = passes.anchors(stage, numeric, rows, screen, sketch, opts.rows, rank, build.n_rows,
+        anchors = passes.anchors(stage, numeric, rows, screen, sketch, opts.row_method, rank, build.n_rows,
                                  opts.seed, replace, draw)
     columns, m_transformed = _cur.build_mixing(opts.link, choice, sketch.r, screen.apply(anchors.values))
     return _link.mixing_for_columns(columns, m_transformed, transform), anchors, m_transformed

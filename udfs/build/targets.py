@@ -153,7 +153,8 @@ def _coding_cost(sigma: np.ndarray, tolerance: np.ndarray, rows: int, residual: 
     """Per-column bytes and residual steps for residual sigma (raw units) at ``tolerance``."""
     step = 2.0 * tolerance
     finite = np.isfinite(tolerance)
-    with np.errstate(divide="ignore", invalid="ignore"):
+    # over: a huge tolerance over a tiny residual is +inf, whose tail share is 0 as it should be
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
         ratio = np.where(finite, sigma / np.where(finite, step, 1.0), 0.0)
         share = np.where(finite & (sigma > 0),
                          2.0 * ndtr(-np.where(sigma > 0, tolerance / np.maximum(sigma, 1e-300), np.inf)), 0.0)

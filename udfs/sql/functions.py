@@ -264,7 +264,7 @@ def _cell_udfs(prefix: str, log_path) -> dict[str, Callable]:
         def udf(*args):
             return _relabel(function, body, *args)
 
-        udf.__name__ = f"{prefix}__{verb}"
+        udf.__name__ = _internal(prefix, verb)
         return udf
 
     def value(values, bounds, source_null, missing):
@@ -572,10 +572,24 @@ def _table_macro(con, prefix: str, verb: str) -> None:
     values = ", ".join(a.udf_expr() for a in args)
     types = ", ".join(f"typeof({a.name})" for a in args)
     con.execute(f"CREATE OR REPLACE TEMP MACRO {prefix}_{verb}({params}) AS TABLE "
-                f"FROM query({prefix}__{verb}_sql({values}, {types}))")
+                f"FROM query({_internal(prefix, verb + '_sql')}({values}, {types}))")
 
 
 # -- registration ------------------------------------------------------------------------------
+def _internal(prefix: str, verb: str) -> str:
+    """Name of the Python UDF behind the public macro ``<prefix>_<verb>``: it says it is
+    internal in the function catalogue (DuckDB lists Python UDF parameters as col0..colN;
+    the public macros carry the real parameter names and a comment)."""
+    return f"{prefix}_internal_{verb}"
+
+
+def _describe(con, prefix: str, verb: str, table: bool) -> None:
+    """The one-line description of FUNCTIONS as the macro's comment in the catalogue."""
+    signature, text = FUNCTIONS[verb]
+    comment = f"rankfold: {prefix}_{signature} -> {text}".replace("'", "''")
+    con.execute(f"COMMENT ON MACRO {'TABLE ' if table else ''}{prefix}_{verb} IS '{comment}'")
+
+
 def _macro(con, prefix: str, verb: str, args: list[_Arg]) -> None:
     params = ", ".join(a.macro_param() for a in args)
     values = ", ".join(a.udf_expr() for a in args)
@@ -583,7 +597,7 @@ def _macro(con, prefix: str, verb: str, args: list[_Arg]) -> None:
     # TEMP: not written into a database file (UDFs are not persisted, so a stored macro
     # would fail after reopening), and nothing is left behind in read-only databases.
     con.execute(f"CREATE OR REPLACE TEMP MACRO {prefix}_{verb}({params}) AS "
-                f"{prefix}__{verb}({values}, {types})")
+                f"{_internal(prefix, verb)}({values}, {types})")
 
 
 def _udf(con, name: str, fn: Callable, params: list[str], returns: str, **kwargs: Any) -> None:
@@ -622,20 +636,22 @@ def register(con: duckdb.DuckDBPyConnection, *, prefix: str = "rankfold",
             f"'rankfold'. Got {prefix!r} instead.")
     types = lambda args: ["VARCHAR"] * len(args)  # noqa: E731  (typeof() strings)
     for verb, (fn, returns) in _cell_udfs(prefix, log_path).items():
-        _udf(con, f"{prefix}__{verb}", fn, [a.udf_type() for a in _CELL_ARGS] + types(_CELL_ARGS),
+        _udf(con, _internal(prefix, verb), fn, [a.udf_type() for a in _CELL_ARGS] + types(_CELL_ARGS),
              returns, type="arrow")
         _macro(con, prefix, verb, _CELL_ARGS)
-    _udf(con, f"{prefix}__row", _row_udf(prefix, log_path),
+    _udf(con, _internal(prefix, "row"), _row_udf(prefix, log_path),
          [a.udf_type() for a in _ROW_ARGS] + types(_ROW_ARGS), f"{_ROW_STRUCT}[]", type="arrow")
     _macro(con, prefix, "row", _ROW_ARGS)
-    _udf(con, f"{prefix}__info", _info_udf(prefix), ["VARCHAR"] + types(_INFO_ARGS), _INFO_TYPE)
+    _udf(con, _internal(prefix, "info"), _info_udf(prefix), ["VARCHAR"] + types(_INFO_ARGS), _INFO_TYPE)
     _macro(con, prefix, "info", _INFO_ARGS)
-    _udf(con, f"{prefix}__compress", _compress_udf(prefix, con),
+    _udf(con, _internal(prefix, "compress"), _compress_udf(prefix, con),
          [a.udf_type() for a in _COMPRESS_ARGS] + types(_COMPRESS_ARGS), _INFO_TYPE,
          side_effects=True)
     _macro(con, prefix, "compress", _COMPRESS_ARGS)
     for verb, args in _TABLE_ARGS.items():
-        _udf(con, f"{prefix}__{verb}_sql", _table_udf(prefix, verb, con),
+        _udf(con, _internal(prefix, f"{verb}_sql"), _table_udf(prefix, verb, con),
              [a.udf_type() for a in args] + types(args), "VARCHAR")
         _table_macro(con, prefix, verb)
+    for verb in FUNCTIONS:
+        _describe(con, prefix, verb, table=verb in _TABLE_ARGS)
     return [f"{prefix}_{verb}" for verb in FUNCTIONS]
