@@ -20,6 +20,7 @@ from typing import Any
 import duckdb
 import numpy as np
 import pyarrow as pa
+import pyarrow.parquet as pq
 
 from ..errors import InvalidInputError
 
@@ -165,6 +166,23 @@ class ReadAhead:
             self._worker.join()
 
 
+# Beyond this many columns, Parquet files are read through pyarrow by row group (their schema
+# too): DuckDB took 38 s to scan 200 x 100,000 Parquet values that pyarrow read in 4 s, and
+# 40 s to bind the schema of 200 x 40,000 values that pyarrow read in 3 s.
+WIDE_PARQUET_COLUMNS = 2048
+
+
+def _wide_parquet_schema(files: list[str] | None) -> pa.Schema | None:
+    """The Arrow schema of the first Parquet file when it has more than
+    ``WIDE_PARQUET_COLUMNS`` columns (such a source is read through pyarrow), else None."""
+    if not files:
+        return None
+    schema = pq.read_schema(files[0])
+    if len(schema) <= WIDE_PARQUET_COLUMNS:
+        return None
+    return schema.remove_metadata()
+
+
 def _schema_of(connection: duckdb.DuckDBPyConnection, relation: str) -> pa.Schema:
     return connection.sql(f"SELECT * FROM {relation} LIMIT 0").to_arrow_table().schema
 
@@ -233,10 +251,10 @@ def _open_text_source(text: str, connection: duckdb.DuckDBPyConnection | None) -
                 raise InvalidInputError(f"No Parquet file at {text}. Check the path.")
             relation = f"read_parquet({quote_literal(target)})"
         try:
-            schema = _schema_of(con, relation)
             files = None if lowered.endswith(_CSV_SUFFIXES) else [
                 row[0] for row in con.sql("SELECT file FROM glob(?) ORDER BY file",
                                           params=[target]).fetchall()]
+            schema = _wide_parquet_schema(files) or _schema_of(con, relation)
         except duckdb.Error as exc:
             con.close()
             raise InvalidInputError(f"DuckDB cannot read {text}: {exc}") from None
