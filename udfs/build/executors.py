@@ -38,13 +38,16 @@ from . import sources as _sources
 from .sources import Source, block_from_batch, open_source
 
 __all__ = ["Partition", "LocalExecutor", "DaskExecutor", "make_executor", "one_blas_thread",
+           "release_arrow_memory",
            "PARTITION_ROWS"]
 
 # Rows per partition of the distributed executor (row groups are never split).
 PARTITION_ROWS = 1 << 20
-# Cells per block (128 MB of float64): batches hold at most this many cells, so a block stays
-# bounded however wide the table is (at 100 columns the batch_rows option decides).
-BLOCK_CELLS = 1 << 24
+# Cells per block (32 MB of float64): batches hold at most this many cells (41,943 rows at
+# 100 columns), so a block, and each Arrow batch in flight, stays bounded however wide the
+# table is. Each batch is held up to four times (DuckDB's result, the read-ahead slot, the
+# batch being converted, the float64 block): at 131,072 x 100 that was 0.4 GB.
+BLOCK_CELLS = 1 << 22
 
 
 def block_rows(batch_rows: int, width: int) -> int:
@@ -93,11 +96,28 @@ class Partition:
             if len(wanted) > _sources.WIDE_PARQUET_COLUMNS:
                 batches = wide_parquet_batches(reader, self.row_groups, wanted.names, batch_rows)
             else:
-                batches = reader.iter_batches(batch_size=batch_rows, row_groups=self.row_groups,
-                                              columns=wanted.names)
+                batches = _row_group_batches(reader, self.row_groups, wanted.names, batch_rows)
             for batch in batches:
                 if batch.num_rows:
                     yield batch if batch.schema.equals(wanted) else batch.cast(wanted)
+
+
+# Largest row group read whole (cells): 128 MB of float64.
+GROUP_CELLS = 1 << 24
+
+
+def _row_group_batches(reader: pq.ParquetFile, row_groups: list[int] | None, names: list[str],
+                       batch_rows: int) -> Iterator[pa.RecordBatch]:
+    """Batches of a Parquet file, one row group read whole at a time (sliced into batches),
+    or through pyarrow's batch reader for row groups beyond ``GROUP_CELLS`` cells. Reading two
+    125,000 x 100 row groups peaked at 0.27 GB of RSS this way against 0.53 GB through the
+    batch reader (which keeps more of each row group's buffers in flight)."""
+    meta = reader.metadata
+    for g in row_groups if row_groups is not None else range(meta.num_row_groups):
+        if meta.row_group(g).num_rows * len(names) > GROUP_CELLS:
+            yield from reader.iter_batches(batch_size=batch_rows, row_groups=[g], columns=names)
+        else:
+            yield from reader.read_row_group(g, columns=names).to_batches(max_chunksize=batch_rows)
 
 
 # Columns per read of a wide row group, and the largest row group read that way (cells).
@@ -168,6 +188,13 @@ def partition_blocks(partition: Partition, names: list[str], extra: list[str], b
 def _columns(names: list[str], extra: list[str]) -> list[str]:
     """The columns a pass reads: ``extra`` then the numeric ``names``, each once."""
     return list(dict.fromkeys(list(extra) + list(names)))
+
+
+def release_arrow_memory() -> None:
+    """Hand the memory that Arrow's allocator keeps after a pass back to the system. Without
+    it, the 0.5 GB that pyarrow held after reading the sketch's sample of 1e6 x 100 Parquet
+    values stayed in the process through the verify pass (peak RSS 1.40 GB against 1.10 GB)."""
+    pa.default_memory_pool().release_unused()
 
 
 def one_blas_thread():
@@ -255,6 +282,7 @@ class LocalExecutor:
         finally:
             if stream is not None:  # a task that stopped early, or never read it
                 stream.close()
+            release_arrow_memory()
         report.finish()
         return out
 
