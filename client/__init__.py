@@ -63,10 +63,15 @@ def compress(source: Any, path: str | Path, *, rank: int | None = None, seed: in
     """
     from rankfold.udfs.build.compress import compress as _compress
 
-    return Archive(_compress(source, path, rank=rank, seed=seed, **options))
+    return Archive(_compress(source, path, rank=rank, seed=seed, **options),
+                   storage_options=options.get("storage_options"))
 
 
-def open(path: str | Path, *, log_path: str | Path | None = None, checksums: bool = False) -> Archive:  # noqa: A001
+def open(path: str | Path, *, log_path: str | Path | None = None, checksums: bool = False,  # noqa: A001
+         storage_options: dict | None = None) -> Archive:
     """Open the archive at ``path``. ``log_path`` appends rebuild records as JSON Lines;
-    ``checksums=True`` verifies every file's SHA-256 (sizes are always checked)."""
-    return Archive(path, log_path=log_path, checksums=checksums)
+    ``checksums=True`` verifies every file's SHA-256 (sizes are always checked). ``path`` may
+    be an fsspec URL (``s3://bucket/prefix``): the archive is then read from a private local
+    copy, with ``storage_options`` (fsspec options: credentials, endpoint) or the store's
+    environment variables."""
+    return Archive(path, log_path=log_path, checksums=checksums, storage_options=storage_options)

@@ -16,6 +16,8 @@ from __future__ import annotations
 import copy
 import datetime as _dt
 import math
+import shutil
+import tempfile
 import uuid
 from dataclasses import dataclass
 from pathlib import Path
@@ -29,7 +31,7 @@ from ..errors import (EmptySourceError, InvalidInputError, NoNumericColumnsError
                       RankTooLargeError, SourceChangedError)
 from ..factor import cur as _cur
 from ..factor.svd import gavish_donoho_rank
-from ..store import layout
+from ..store import layout, remote
 from ..store.aggregate import BlockSums
 from ..store.arithmetic import round_up, trim_mantissa
 from . import link as _link
@@ -161,13 +163,20 @@ class _Passes:
 
 
 def compress(source: Any, path: str | Path, *, rank: int | None = None, seed: int = 0,
-             **options: Any) -> Path:
-    """Compress ``source`` into an archive directory at ``path``; returns the path.
+             **options: Any) -> Path | str:
+    """Compress ``source`` into an archive directory at ``path`` (or at an fsspec URL such as
+    ``s3://bucket/prefix``); returns the path (the URL).
 
     See ``rankfold.compress`` for the user-facing documentation.
     """
     opts = CompressOptions.from_call(rank, seed, options)
+    if remote.is_url(path):  # object storage: built in a local staging directory, then published
+        return _compress_to_store(source, str(path), opts)
     target = prepare_target(path, opts.overwrite)
+    return _compress_at(source, target, opts)
+
+
+def _compress_at(source: Any, target: Path, opts: CompressOptions) -> Path:
     executor = make_executor(opts.executor, source, opts.connection, opts.batch_rows, opts.progress,
                              opts.storage_options)
     try:
@@ -177,6 +186,20 @@ def compress(source: Any, path: str | Path, *, rank: int | None = None, seed: in
             return _compress(executor, target, _all_rows(opts))
     finally:
         executor.close()
+
+
+def _compress_to_store(source: Any, url: str, opts: CompressOptions) -> str:
+    """Compress into a private local staging directory, then upload it to ``url`` with the
+    manifest last (``store.remote``: the manifest is the commit point on a store). The Dask
+    executor's workers write their row files into the staging directory too, so they must
+    share the client's disk (a LocalCluster does)."""
+    store = remote.RemoteTarget(url, opts.storage_options, opts.overwrite)  # checked before any work
+    staging = Path(tempfile.mkdtemp(prefix="rankfold-stage-"))
+    try:
+        built = _compress_at(source, prepare_target(staging / "archive", False), opts)
+        return store.publish(built)
+    finally:
+        shutil.rmtree(staging, ignore_errors=True)  # our own staging directory, made above
 
 
 class _SampleMissed(Exception):

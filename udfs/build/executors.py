@@ -263,7 +263,9 @@ class LocalExecutor:
         out = []
         batch_rows = block_rows(self.batch_rows, len(names))
         if partitions is None and self._wide_parquet(names):
-            partitions = group_partitions(parquet_row_groups(self.source.parquet_files), self.schema, None)
+            options = self.source.storage_options
+            partitions = group_partitions(parquet_row_groups(self.source.parquet_files, storage_options=options),
+                                          self.schema, options)
         if total is not None and total >= batch_rows:
             # full batches will come: size the buffer for them now, so that a first, shorter
             # batch (a Parquet row group) does not leave a buffer that the next one outgrows
@@ -292,7 +294,7 @@ class LocalExecutor:
         or when some file lacks a numeric column."""
         files = self.source.parquet_files
         if files:
-            return parquet_row_groups(files, numeric)
+            return parquet_row_groups(files, numeric, self.source.storage_options)
         return table_row_groups(self.source.connection, self.source.relation, self.schema.names)
 
     def sample_partitions(self, groups: list[RowGroup]) -> list[Partition]:
@@ -301,7 +303,7 @@ class LocalExecutor:
         if groups and groups[0].path is None:
             return [Partition(0, groups[0].first_row, sum(g.rows for g in groups), self.schema,
                               source=self.source, where=rowid_filter(groups))]
-        return group_partitions(groups, self.schema, None)
+        return group_partitions(groups, self.schema, self.source.storage_options)
 
     def close(self) -> None:
         self._close_ahead()
@@ -448,12 +450,7 @@ def make_executor(executor: Any, source: Any, connection, batch_rows: int, progr
                   storage_options: dict | None = None):
     """The executor for ``compress(..., executor=...)``."""
     if executor is None or (isinstance(executor, str) and executor == "local"):
-        if isinstance(source, str) and is_url(source):
-            raise InvalidInputError(
-                f"The in-process executor reads local paths through DuckDB; {source!r} is a URL. "
-                "Use executor='dask' (reads any fsspec URL), or copy the data locally."
-            )
-        src = open_source(source, connection)
+        src = open_source(source, connection, storage_options)
         return LocalExecutor(src, batch_rows, progress)
     is_client = type(executor).__name__ == "Client" and type(executor).__module__.startswith("distributed")
     if not (is_client or executor == "dask" or (isinstance(executor, str)

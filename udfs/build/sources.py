@@ -54,6 +54,7 @@ class Source:
     description: str
     owns_connection: bool = False
     parquet_files: list[str] | None = None
+    storage_options: dict | None = None  # fsspec options of URL sources (credentials, endpoint)
 
     def stream(self, columns: list[str], batch_rows: int, where: str | None = None) -> "ReadAhead":
         """Start streaming ``columns`` (all when empty) in source order, ``batch_rows`` rows
@@ -220,8 +221,10 @@ def _numpy_table(array: np.ndarray) -> pa.Table:
     return pa.table({f"x{j}": np.ascontiguousarray(array[:, j]) for j in range(array.shape[1])})
 
 
-def open_source(source: Any, connection: duckdb.DuckDBPyConnection | None = None) -> Source:
-    """Resolve ``source`` to a streamable :class:`Source`."""
+def open_source(source: Any, connection: duckdb.DuckDBPyConnection | None = None,
+                storage_options: dict | None = None) -> Source:
+    """Resolve ``source`` to a streamable :class:`Source` (Parquet at an fsspec URL, e.g.
+    ``s3://bucket/data/``, with ``storage_options``)."""
     if isinstance(source, np.ndarray):
         return _from_arrow(_numpy_table(source), f"numpy array {source.shape}")
     if isinstance(source, pa.RecordBatch):
@@ -235,6 +238,8 @@ def open_source(source: Any, connection: duckdb.DuckDBPyConnection | None = None
         )
     if type(source).__module__.split(".")[0] == "pandas" and hasattr(source, "columns"):
         return _from_arrow(pa.Table.from_pandas(source, preserve_index=False), "pandas DataFrame")
+    if isinstance(source, str) and "://" in source and not source.startswith("file://"):
+        return _open_remote_parquet(source, storage_options)
     if isinstance(source, (str, Path)):
         return _open_text_source(str(source), connection)
     raise InvalidInputError(
@@ -242,6 +247,35 @@ def open_source(source: Any, connection: duckdb.DuckDBPyConnection | None = None
         "a pyarrow Table, a pandas DataFrame, a Parquet or CSV path, or a table name or SELECT "
         "statement with connection=<duckdb connection>."
     )
+
+
+def _open_remote_parquet(url: str, storage_options: dict | None) -> Source:
+    """Parquet files at an fsspec URL (a file, a prefix or a glob), read by DuckDB through the
+    fsspec file system registered on the source's own connection (DuckDB's httpfs extension
+    would need a download, which rankfold does not do)."""
+    from ..store import remote
+
+    fs, root = remote.filesystem(url, storage_options)
+    protocol = url.split("://", 1)[0]
+    if any(ch in root for ch in "*?["):
+        found = fs.glob(root)
+    elif fs.isdir(root):
+        found = [p for p in fs.find(root) if p.lower().endswith(_PARQUET_SUFFIXES)]
+    else:
+        found = [root] if fs.exists(root) else []
+    if not found:
+        raise InvalidInputError(f"No Parquet file at {url}. Check the URL and the credentials.")
+    files = [f"{protocol}://{p}" for p in sorted(found)]
+    con = _source_connection()
+    con.register_filesystem(fs)
+    relation = "read_parquet([" + ", ".join(quote_literal(f) for f in files) + "])"
+    try:
+        schema = _schema_of(con, relation)
+    except duckdb.Error as exc:
+        con.close()
+        raise InvalidInputError(f"DuckDB cannot read {url}: {exc}") from None
+    return Source(con, relation, schema, url, owns_connection=True, parquet_files=files,
+                  storage_options=storage_options)
 
 
 def _open_text_source(text: str, connection: duckdb.DuckDBPyConnection | None) -> Source:
