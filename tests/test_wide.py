@@ -139,3 +139,24 @@ def test_row_gram_of_a_zero_table():
     assert f.shape == (3, 2500)
     np.testing.assert_array_equal(spectrum.values, 0.0)
     np.testing.assert_array_equal(spectrum.right, 0.0)
+
+
+def test_wide_path_on_dask_gives_the_local_archive(tmp_path, monkeypatch):
+    """Partitions of a wide Parquet source read by column groups on Dask workers; their row
+    sketches merge to the rows a single stream keeps (keys per global row)."""
+    distributed = pytest.importorskip("distributed")
+    monkeypatch.setattr(profile, "WIDE_COLUMNS", 100)
+    monkeypatch.setattr(sources, "WIDE_PARQUET_COLUMNS", 100)
+    monkeypatch.setattr(executors, "COLUMN_GROUP", 64)
+    x = _wide(6, 90, 300)
+    folder = tmp_path / "src"
+    folder.mkdir()
+    for k, part in enumerate(np.array_split(x, 3)):
+        pq.write_table(pa.table({f"c{j:03d}": part[:, j] for j in range(300)}), folder / f"p{k}.parquet")
+    local = rankfold.compress(str(folder), tmp_path / "l.rfa", rank=3)
+    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=False,
+                                  dashboard_address=None) as cluster, distributed.Client(cluster) as client:
+        spread = rankfold.compress(str(folder), tmp_path / "d.rfa", rank=3, executor=client)
+    assert spread.basis_columns == local.basis_columns
+    np.testing.assert_allclose(spread.to_numpy(), local.to_numpy(), rtol=0, atol=1e-9)
+    assert np.all(np.abs(spread.to_numpy() - x) <= spread.cell_bounds())

@@ -152,6 +152,21 @@ def wide_parquet_batches(reader: pq.ParquetFile, row_groups: list[int] | None, n
         yield from table.to_batches(max_chunksize=batch_rows)
 
 
+@dataclass
+class _Chain:
+    """The whole source as one partition made of consecutive ``parts`` (the in-process
+    executor reading a wide Parquet source through pyarrow: its tasks expect one partition)."""
+
+    parts: list[Partition]
+    index: int = 0
+    first_row: int = 0
+    rows: int | None = None
+
+    def batches(self, columns: list[str], batch_rows: int, stream=None) -> Iterator[pa.RecordBatch]:
+        for part in self.parts:
+            yield from part.batches(columns, batch_rows)
+
+
 class BlockBuffer:
     """The float64 buffer that a partition's blocks are converted into, kept from one pass to
     the next (the in-process executor keeps one for all its passes)."""
@@ -264,8 +279,8 @@ class LocalExecutor:
         batch_rows = block_rows(self.batch_rows, len(names))
         if partitions is None and self._wide_parquet(names):
             options = self.source.storage_options
-            partitions = group_partitions(parquet_row_groups(self.source.parquet_files, storage_options=options),
-                                          self.schema, options)
+            partitions = [_Chain(group_partitions(
+                parquet_row_groups(self.source.parquet_files, storage_options=options), self.schema, options))]
         if total is not None and total >= batch_rows:
             # full batches will come: size the buffer for them now, so that a first, shorter
             # batch (a Parquet row group) does not leave a buffer that the next one outgrows
