@@ -19,6 +19,8 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 import rankfold
 from rankfold.udfs.build import executors, profile, sources
@@ -160,3 +162,21 @@ def test_wide_path_on_dask_gives_the_local_archive(tmp_path, monkeypatch):
     assert spread.basis_columns == local.basis_columns
     np.testing.assert_allclose(spread.to_numpy(), local.to_numpy(), rtol=0, atol=1e-9)
     assert np.all(np.abs(spread.to_numpy() - x) <= spread.cell_bounds())
+
+
+@settings(max_examples=6, deadline=None)
+@given(rows=st.integers(3, 40), width=st.integers(30, 80), rank=st.integers(1, 3),
+       missing=st.sampled_from([0.0, 0.05]), seed=st.integers(0, 2**16))
+def test_wide_path_bounds_hold_on_random_tables(tmp_path_factory, rows, width, rank, missing, seed):
+    """Hypothesis tries shapes, ranks and missing cells on the wide path (thresholds lowered
+    so that small tables take it); every finite cell must lie within its reported bound."""
+    x = _wide(seed, rows, width, rank=min(rank, rows), noise=0.1)
+    x[np.random.default_rng(seed).random(x.shape) < missing] = np.nan
+    with pytest.MonkeyPatch.context() as patch:
+        patch.setattr(profile, "WIDE_COLUMNS", 10)
+        patch.setattr(profile, "WIDE_SKETCH_CELLS", 1)  # sampled beyond 256 rows: never here
+        archive = rankfold.compress(x, tmp_path_factory.mktemp("h") / "a.rfa", rank=min(rank, rows))
+    rebuilt, bounds = archive.to_numpy(), archive.cell_bounds()
+    finite = np.isfinite(x)
+    assert np.all(np.abs(rebuilt[finite] - x[finite]) <= bounds[finite])
+    assert np.array_equal(np.isnan(rebuilt), np.isnan(x))  # missing cells come back missing
