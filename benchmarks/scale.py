@@ -15,8 +15,8 @@ ratio to one DuckDB scan, and in-process vs Dask LocalCluster. A script, not a t
     the same compress with a sketch of every row (sketch_rows='all');
 (e) with --duckdb-table, the same data loaded into a table of a DuckDB file database, and the
     ratio of compressing that table to one scan of it (scan and compress alternated); the
-    compress opens the database with memory_limit=500MB and one thread (the caller's
-    connection bounds DuckDB's buffer pool);
+    compress opens the database with memory_limit (--table-memory-limit, default 250MB) and
+    one thread (the caller's connection bounds DuckDB's buffer pool);
 (f) with --memory-only, just the peak RSS of one compress per size: rank 8, an error target
     (max_abs_error=0.05: every row sketched, a refit pass, residual codes) and, with
     --duckdb-table, the table; targets: under 1 GB, growth under 1.2x.
@@ -106,7 +106,7 @@ def generate(folder: Path, rows: int, width: int) -> None:
                        folder / f"part-{k:05d}.parquet", row_group_size=125_000)
 
 
-TABLE_MEMORY_LIMIT = "500MB"
+TABLE_MEMORY_LIMIT = "250MB"
 
 
 def child(source: Path, target: Path, executor: str, sketch_rows: str = "auto") -> tuple[float, float, dict]:
@@ -182,6 +182,7 @@ def memory_only(args) -> None:
 
 
 def main() -> None:
+    global TABLE_MEMORY_LIMIT  # the child's table connection reads it
     parser = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     parser.add_argument("--rows", type=int, nargs="+", default=[1_000_000, 4_000_000, 16_000_000])
     parser.add_argument("--width", type=int, default=100)
@@ -189,12 +190,15 @@ def main() -> None:
     parser.add_argument("--keep", action="store_true", help="keep the generated data")
     parser.add_argument("--duckdb-table", action="store_true",
                         help="also compress the data as a table of a DuckDB file database")
+    parser.add_argument("--table-memory-limit", default=TABLE_MEMORY_LIMIT,
+                        help="DuckDB memory_limit of the table's connection (default %(default)s)")
     parser.add_argument("--memory-only", action="store_true",
                         help="one compress per size (rank 8, an error target, and with --duckdb-table "
                              "the table), peak RSS only: no scans, no Dask, no full-sketch run")
     parser.add_argument("--repeats", type=int, default=2,
                         help="scan and compress runs per size, alternated (the best of each is compared)")
     args = parser.parse_args()
+    TABLE_MEMORY_LIMIT = args.table_memory_limit
     args.out.mkdir(parents=True, exist_ok=True)
     if args.memory_only:
         return memory_only(args)

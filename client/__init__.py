@@ -37,7 +37,9 @@ def compress(source: Any, path: str | Path, *, rank: int | None = None, seed: in
     source : 2-D numpy array, pyarrow Table, pandas DataFrame, Parquet/CSV path, or a table
         name or SELECT statement together with ``connection=``.
     path : the archive directory to create. It must not exist (or pass ``overwrite=True`` to
-        replace an existing archive; other files are never replaced).
+        replace an existing archive; other files are never replaced). It may be an fsspec
+        URL (``s3://bucket/prefix``, with ``storage_options`` or the store's environment
+        variables): built locally, then uploaded with the manifest last; never replaced there.
     rank : target rank k (default: the Gavish-Donoho hard threshold on the singular values of
         the transformed table, capped at a tenth of the numeric columns; targets choose it).
     seed : seed of the one numpy Generator used for every random choice; written to the manifest.
