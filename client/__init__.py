@@ -39,7 +39,10 @@ def compress(source: Any, path: str | Path, *, rank: int | None = None, seed: in
     path : the archive directory to create. It must not exist (or pass ``overwrite=True`` to
         replace an existing archive; other files are never replaced). One write per path at
         a time: another compress or append to it raises ArchiveBusyError. Readers of the
-        replaced version keep reading it (README, "Versions, writers and crashes").
+        replaced version keep reading it (README, "Versions, writers and crashes"). It may
+        be an fsspec URL (``s3://bucket/prefix``, with ``storage_options`` or the store's
+        environment variables): built locally, then uploaded with the manifest last; never
+        replaced there.
     rank : target rank k. Default: none, and with no other target either the archive keeps
         every rebuilt value within ``max_std_error=0.05`` of its column's standard deviation
         (the rank is chosen for that). ``rank`` alone keeps no tolerance; with a tolerance both
@@ -72,10 +75,15 @@ def compress(source: Any, path: str | Path, *, rank: int | None = None, seed: in
     """
     from rankfold.udfs.build.compress import compress as _compress
 
-    return Archive(_compress(source, path, rank=rank, seed=seed, **options))
+    return Archive(_compress(source, path, rank=rank, seed=seed, **options),
+                   storage_options=options.get("storage_options"))
 
 
-def open(path: str | Path, *, log_path: str | Path | None = None, checksums: bool = False) -> Archive:  # noqa: A001
+def open(path: str | Path, *, log_path: str | Path | None = None, checksums: bool = False,  # noqa: A001
+         storage_options: dict | None = None) -> Archive:
     """Open the archive at ``path``. ``log_path`` appends rebuild records as JSON Lines;
-    ``checksums=True`` verifies every file's SHA-256 (sizes are always checked)."""
-    return Archive(path, log_path=log_path, checksums=checksums)
+    ``checksums=True`` verifies every file's SHA-256 (sizes are always checked). ``path`` may
+    be an fsspec URL (``s3://bucket/prefix``): the archive is then read from a private local
+    copy, with ``storage_options`` (fsspec options: credentials, endpoint) or the store's
+    environment variables."""
+    return Archive(path, log_path=log_path, checksums=checksums, storage_options=storage_options)

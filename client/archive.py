@@ -11,7 +11,7 @@ import pyarrow as pa
 
 from rankfold.udfs.errors import InvalidInputError, RankfoldError
 from rankfold.udfs.store import aggregate as _aggregate
-from rankfold.udfs.store import layout
+from rankfold.udfs.store import layout, remote
 from rankfold.udfs.store.reader import ArchiveReader, Rebuilt
 from rankfold.udfs.store.rebuild_log import RebuildLog
 
@@ -42,7 +42,12 @@ class Archive:
     rebuild log (logger ``rankfold.rebuild``; also to ``log_path`` as JSON Lines if given).
     """
 
-    def __init__(self, path: str | Path, *, log_path: str | Path | None = None, checksums: bool = False):
+    def __init__(self, path: str | Path, *, log_path: str | Path | None = None, checksums: bool = False,
+                 storage_options: dict | None = None):
+        self.url = None
+        if remote.is_url(path):  # object storage: read from a private local copy (store.remote)
+            self._copy = remote.fetch(str(path), storage_options)
+            self.url, path = str(path), self._copy.path
         self._reader = ArchiveReader(path, checksums=checksums)
         self.path = self._reader.path
         self._log = RebuildLog(self.manifest["archive_id"], str(self.path), log_path)

@@ -16,6 +16,8 @@ from __future__ import annotations
 import copy
 import datetime as _dt
 import math
+import shutil
+import tempfile
 import uuid
 from dataclasses import dataclass
 from pathlib import Path
@@ -29,18 +31,19 @@ from ..errors import (EmptySourceError, InvalidInputError, NoNumericColumnsError
                       RankTooLargeError, SourceChangedError)
 from ..factor import cur as _cur
 from ..factor.svd import gavish_donoho_rank
-from ..store import layout, versions
+from ..store import layout, remote, versions
 from ..store.aggregate import BlockSums
 from ..store.arithmetic import round_up, trim_mantissa
 from . import link as _link
-from ..factor.sketch import GramSketch, ShiftedGram
+from ..factor.sketch import GramSketch, RowSketch
 from .commit import CELLS_SCHEMA, ArchiveWriter, RowPartWriter, concat_parquet, prepare_target
 from .executors import make_executor
 from .keys import check_unique_key
 from .options import (AUTO_SKETCH_ROWS, AUTO_SKETCH_ROWS_PER_COLUMN, DEFAULT_RANK_CAP_DIVISOR,
                       CompressOptions)
 from .row_groups import RowGroup, choose_row_groups
-from .profile import SUB_BLOCK_ROWS, ColumnProfile, Fingerprint, Transform, profile_rows
+from .profile import (SUB_BLOCK_ROWS, ColumnProfile, Fingerprint, Transform, new_sketch,
+                      profile_rows)
 from .select import AnchorRows, anchor_partial, merge_anchor_partials, sketch_of
 from .refit import KAPPA, OutlierScreen
 from .verify import Coding, VerifyResult, verify_pass
@@ -62,7 +65,7 @@ def _profile_task(blocks, part, width: int, keep_sample: bool):
     """Column statistics, the fingerprint and the co-moments (the sketch) of one partition."""
     profile = ColumnProfile.empty(width)
     fingerprint = Fingerprint()
-    gram = ShiftedGram(width)
+    gram = new_sketch(width)
     sample: dict[str, float] = {}
     for first, batch, block, mask in blocks:
         profile, gram = profile_rows(first, block, mask, profile, fingerprint, gram)
@@ -76,10 +79,17 @@ def _sketch_task(blocks, part, screen, width: int):
     screen = copy.copy(screen)
     if isinstance(screen, OutlierScreen):
         screen.replaced = screen.rows_left_out = 0
-    gram = GramSketch(width)
-    for _, _, block, _ in blocks:
-        for lo in range(0, block.shape[0], SUB_BLOCK_ROWS):  # cache-sized temporaries
-            gram.update(screen.apply(block[lo:lo + SUB_BLOCK_ROWS]))
+    gram = new_sketch(width)
+    if isinstance(gram, RowSketch):  # a wide table: the screened rows themselves
+        from .select import row_uniforms
+
+        for first, _, block, _ in blocks:
+            gram.add(first, screen.apply(block), row_uniforms(0, 7, first + np.arange(block.shape[0])))
+    else:
+        gram = GramSketch(width)
+        for _, _, block, _ in blocks:
+            for lo in range(0, block.shape[0], SUB_BLOCK_ROWS):  # cache-sized temporaries
+                gram.update(screen.apply(block[lo:lo + SUB_BLOCK_ROWS]))
     counts = (screen.replaced, screen.rows_left_out) if isinstance(screen, OutlierScreen) else (0, 0)
     return gram, counts
 
@@ -118,7 +128,8 @@ class _Passes:
     def profile(self, numeric: list[str], keep_sample: bool, groups: list[RowGroup] | None = None):
         """Statistics, fingerprint, a sample of encoded sizes and the co-moments: of every
         row, or of the given row groups only."""
-        extra = [n for n in self.ex.schema.names if n not in numeric] if keep_sample else []
+        kept = set(numeric)
+        extra = [n for n in self.ex.schema.names if n not in kept] if keep_sample else []
         if groups is None:
             parts = self.ex.run("profile", _profile_task, numeric, extra, None,
                                 (len(numeric), keep_sample))
@@ -127,7 +138,7 @@ class _Passes:
                                 sum(g.rows for g in groups), (len(numeric), keep_sample),
                                 partitions=self.ex.sample_partitions(groups))
         profile, fingerprint, sample = ColumnProfile.empty(len(numeric)), Fingerprint(), {}
-        gram = ShiftedGram(len(numeric))
+        gram = new_sketch(len(numeric))
         for p, f, s, g in parts:
             profile, fingerprint, gram = profile.merge(p), fingerprint.merge(f), gram.merge(g)
             sample = sample or s
@@ -135,12 +146,15 @@ class _Passes:
 
     def sketch(self, stage: str, numeric: list[str], rows: int, screen):
         parts = self.ex.run(stage, _sketch_task, numeric, (), rows, (screen, len(numeric)))
-        gram = GramSketch(len(numeric))
-        for g, (replaced, left_out) in parts:
+        gram = parts[0][0]
+        for g, _ in parts[1:]:
             gram = gram.merge(g)
-            if isinstance(screen, OutlierScreen):
+        if isinstance(screen, OutlierScreen):
+            for _, (replaced, left_out) in parts:
                 screen.replaced += replaced
                 screen.rows_left_out += left_out
+        if isinstance(gram, RowSketch):  # rows already transformed and screened
+            return sketch_of(gram.gram(np.zeros(gram.width), np.ones(gram.width)))
         return sketch_of(gram)
 
     def anchors(self, stage, numeric, rows, screen, sketch, method, rank, count, seed, replace, draw):
@@ -150,13 +164,20 @@ class _Passes:
 
 
 def compress(source: Any, path: str | Path, *, rank: int | None = None, seed: int = 0,
-             **options: Any) -> Path:
-    """Compress ``source`` into an archive directory at ``path``; returns the path.
+             **options: Any) -> Path | str:
+    """Compress ``source`` into an archive directory at ``path`` (or at an fsspec URL such as
+    ``s3://bucket/prefix``); returns the path (the URL).
 
     See ``rankfold.compress`` for the user-facing documentation.
     """
     opts = CompressOptions.from_call(rank, seed, options)
+    if remote.is_url(path):  # object storage: built in a local staging directory, then published
+        return _compress_to_store(source, str(path), opts)
     target = prepare_target(path, opts.overwrite)
+    return _compress_at(source, target, opts)
+
+
+def _compress_at(source: Any, target: Path, opts: CompressOptions) -> Path:
     with versions.WriteLock(target):  # one writer per path; leftovers of crashed writes go
         versions.recover(target)
         executor = make_executor(opts.executor, source, opts.connection, opts.batch_rows,
@@ -168,6 +189,20 @@ def compress(source: Any, path: str | Path, *, rank: int | None = None, seed: in
                 return _compress(executor, target, _all_rows(opts))
         finally:
             executor.close()
+
+
+def _compress_to_store(source: Any, url: str, opts: CompressOptions) -> str:
+    """Compress into a private local staging directory, then upload it to ``url`` with the
+    manifest last (``store.remote``: the manifest is the commit point on a store). The Dask
+    executor's workers write their row files into the staging directory too, so they must
+    share the client's disk (a LocalCluster does)."""
+    store = remote.RemoteTarget(url, opts.storage_options, opts.overwrite)  # checked before any work
+    staging = Path(tempfile.mkdtemp(prefix="rankfold-stage-"))
+    try:
+        built = _compress_at(source, prepare_target(staging / "archive", False), opts)
+        return store.publish(built)
+    finally:
+        shutil.rmtree(staging, ignore_errors=True)  # our own staging directory, made above
 
 
 class _SampleMissed(Exception):
@@ -255,7 +290,8 @@ def _plan_columns(schema: pa.Schema, opts: CompressOptions) -> tuple[list[str], 
             )
     exact = set(opts.exact_columns) | ({opts.key} if opts.key else set())
     numeric = [f.name for f in schema if _is_numeric(f.type) and f.name not in exact]
-    passthrough = [n for n in names if n not in numeric]
+    factored = set(numeric)  # a set: wide tables have 10^5 columns
+    passthrough = [n for n in names if n not in factored]
     return numeric, passthrough
 
 
@@ -334,7 +370,8 @@ def _compress(src, target: Path, opts: CompressOptions) -> Path:
         fingerprint = fingerprint.select(keep)
         gram = gram.select(keep)
         numeric = [numeric[j] for j in keep]
-        passthrough = [n for n in src.schema.names if n not in numeric]
+        factored = set(numeric)
+        passthrough = [n for n in src.schema.names if n not in factored]
         if not numeric:
             raise NoNumericColumnsError(
                 f"Every numeric column of {src.description} holds integers beyond 2^53, which "
@@ -347,9 +384,11 @@ def _compress(src, target: Path, opts: CompressOptions) -> Path:
     with np.errstate(over="ignore", invalid="ignore"):
         moments = gram.gram(transform.shift, transform.scale)
         if read.sampled:
-            moments.gram *= rows / max(int(fingerprint.rows), 1)
-    _check_squares(np.diag(moments.gram), profile, numeric, src.description)
+            moments.rescale(rows / max(int(fingerprint.rows), 1))
+    del gram  # a wide table's kept rows: not needed past this point
+    _check_squares(moments.diagonal(), profile, numeric, src.description)
     sketch = sketch_of(moments)
+    del moments
     goal = _Goal.from_options(opts, numeric, profile.std)
     goal.serving(src.schema, numeric, profile)
     build = _first_build(opts, goal, rows, width, sketch, profile, transform, sample, numeric, passthrough)

@@ -24,7 +24,7 @@ import numpy as np
 
 from ..factor import cur as _cur
 from ..factor import selection
-from ..factor.sketch import GramSketch, Spectrum
+from ..factor.sketch import GramSketch, RowGram, Spectrum
 from .profile import Transform
 
 __all__ = ["Sketch", "sketch_of", "AnchorRows", "AnchorPartial",
@@ -33,14 +33,18 @@ __all__ = ["Sketch", "sketch_of", "AnchorRows", "AnchorPartial",
 
 @dataclass
 class Sketch:
-    """An n x n factor F with F^T F = Z^T Z of the transformed table Z, and its spectrum."""
+    """A factor F (p x n, p = n, or p = min(m, n) for a wide table) with F^T F = Z^T Z of
+    the transformed table Z, and its spectrum."""
 
     r: np.ndarray
     spectrum: Spectrum
 
 
-def sketch_of(gram: GramSketch) -> Sketch:
-    """The sketch of an accumulated (possibly merged) Gram matrix."""
+def sketch_of(gram: GramSketch | RowGram) -> Sketch:
+    """The sketch of an accumulated (possibly merged) Gram matrix, or of the rows of a wide
+    table (``RowGram``: through the m x m side, no n x n matrix)."""
+    if isinstance(gram, RowGram):
+        return Sketch(*gram.factor_and_spectrum())
     values, right = gram.eigen()
     return Sketch(values[:, None] * right.T, Spectrum(values, right))
 

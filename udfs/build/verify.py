@@ -267,9 +267,10 @@ SUB_BLOCK_CELLS = 1 << 19
 
 def sub_block_rows(width: int) -> int:
     """Rows per sub-block at ``width`` numeric columns: about ``SUB_BLOCK_CELLS`` cells, as a
-    power of two in [256, layout.ROW_GROUP_ROWS] (it divides a full row group evenly)."""
+    power of two in [16, layout.ROW_GROUP_ROWS] (it divides a full row group evenly; 16 rows
+    keep the four work arrays at 10 MB each even at 100,000 columns)."""
     rows = SUB_BLOCK_CELLS // max(width, 1)
-    return int(min(max(1 << max(rows.bit_length() - 1, 0), 256), layout.ROW_GROUP_ROWS))
+    return int(min(max(1 << max(rows.bit_length() - 1, 0), 16), layout.ROW_GROUP_ROWS))
 
 
 @dataclass

@@ -29,8 +29,17 @@ def cx_mixing(sketch_r: np.ndarray, columns: np.ndarray) -> np.ndarray:
     Since Z = Q R with orthonormal Q, C = Q R[:, J] and C^+ Z = R[:, J]^+ R: no pass over Z.
     This is the least-squares column (CX) fit; anchor rows play no part.
     """
-    m, *_ = scipy.linalg.lstsq(sketch_r[:, columns], sketch_r, lapack_driver="gelsd")
+    basis = sketch_r[:, columns]
+    if sketch_r.shape[1] > _MANY_COLUMNS:
+        # the same minimum-norm least-squares solution through the pseudo-inverse of the
+        # small p x c basis: gelsd with 10^4-10^5 right-hand sides took seconds
+        return np.linalg.pinv(basis) @ sketch_r
+    m, *_ = scipy.linalg.lstsq(basis, sketch_r, lapack_driver="gelsd")
     return m
+
+
+# Columns beyond which cx_mixing solves through the pseudo-inverse of the basis.
+_MANY_COLUMNS = 2048
 
 
 def row_projector(anchor_rows: np.ndarray) -> np.ndarray:

@@ -32,7 +32,7 @@ import numpy as np
 import pyarrow as pa
 
 from ..errors import ArchiveNotFoundError
-from ..store import layout
+from ..store import layout, remote
 from ..store.reader import ArchiveReader
 
 __all__ = ["ReaderCache"]
@@ -141,6 +141,8 @@ class ReaderCache:
         self._lock = threading.Lock()
 
     def get(self, path: str) -> ArchiveReader:
+        if remote.is_url(path):
+            return self._get_remote(path)
         key = os.path.abspath(os.path.expanduser(path))
         signature = _signature(Path(key))
         with self._lock:
@@ -150,6 +152,22 @@ class ReaderCache:
         reader = _ScanReader(key)  # raises ArchiveNotFoundError / CorruptArchiveError
         with self._lock:
             self._readers[key] = (_signature(Path(key)), reader)
+        return reader
+
+    def _get_remote(self, url: str) -> ArchiveReader:
+        """A reader of an archive on object storage, from a private local copy fetched once
+        per process (credentials from the store's environment variables, e.g. AWS_*).
+        rankfold never replaces an archive on a store (``store.remote``), so the copy stays
+        valid while the archive exists."""
+        with self._lock:
+            cached = self._readers.get(url)
+        if cached is not None:
+            return cached[1]
+        copy = remote.fetch(url)
+        reader = _ScanReader(str(copy.path))
+        reader.local_copy = copy  # the copy lives as long as the reader
+        with self._lock:
+            self._readers[url] = (("url",), reader)
         return reader
 
     def clear(self) -> None:
