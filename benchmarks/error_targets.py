@@ -43,6 +43,7 @@ import rankfold
 from rankfold.demo import heat_network_readings
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
+from archive_runs import check_archive, run_variant  # noqa: E402
 from baselines import column_std, column_values, lossless_bss, quantize_columns, round_significant  # noqa: E402
 
 VARIANTS = [
@@ -108,32 +109,7 @@ TABLES = {"demo": demo, "lowrank_spikes": lowrank_spikes, "rank40_noise5": rank4
 
 # -- measuring one archive -------------------------------------------------------------------------
 
-def archive_bytes(archive: rankfold.Archive) -> int:
-    return sum(int(f["bytes"]) for f in archive.manifest["files"])
-
-
-def check_archive(archive: rankfold.Archive, names: list[str], truth: np.ndarray, tol: np.ndarray
-                  ) -> tuple[float, float]:
-    """(max over cells of |true - rebuilt| / tolerance, max of bound / tolerance)."""
-    rebuilt = archive.to_numpy(columns=names)
-    bounds = archive.cell_bounds(columns=names)
-    both_missing = np.isnan(truth) & np.isnan(rebuilt)
-    err = np.where(both_missing, 0.0, np.abs(truth - rebuilt))
-    err = np.where(np.isnan(err), np.inf, err)                 # NULL on one side only: a failure
-    return float((err / tol).max()), float((bounds / tol).max())
-
-
-def run_variant(table: pa.Table, path: Path, tolerances: dict[str, float], options: dict) -> dict:
-    shutil.rmtree(path, ignore_errors=True)
-    started = time.perf_counter()
-    try:
-        archive = rankfold.compress(table, path, max_abs_error=tolerances, seed=0, **options)
-    except Exception as exc:  # report and go on: one failing variant must not hide the others
-        return {"error": f"{type(exc).__name__}: {str(exc).splitlines()[0][:160]}"}
-    seconds = time.perf_counter() - started
-    method = archive.manifest.get("method", {})
-    return {"archive": archive, "bytes": archive_bytes(archive), "seconds": seconds,
-            "kind": method.get("kind", "?"), "rank": method.get("rank", "?")}
+# (archive_runs: run_variant, check_archive, archive_bytes)
 
 
 # -- the run ---------------------------------------------------------------------------------------

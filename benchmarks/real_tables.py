@@ -46,6 +46,7 @@ import pyarrow.parquet as pq
 import rankfold
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
+from archive_runs import check_archive, run_variant  # noqa: E402
 from baselines import (  # noqa: E402
     ZSTD_LEVEL, _smallest, _smallest_int, column_std, column_values, lossless_bss, quantize_column,
     quantize_columns,
@@ -171,29 +172,13 @@ def float32_bytes(table: pa.Table) -> int:
 
 # -- rankfold --------------------------------------------------------------------------------------
 
-def archive_bytes(path: Path) -> int:
-    """Every byte a user keeps: all files under the archive folder."""
-    return sum(f.stat().st_size for f in path.rglob("*") if f.is_file())
-
-
 def run_rankfold(table: pa.Table, path: Path, tol: np.ndarray, truth: np.ndarray, options: dict) -> dict:
-    shutil.rmtree(path, ignore_errors=True)
-    tolerances = {name: float(t) for name, t in zip(table.column_names, tol)}
-    started = time.perf_counter()
-    try:
-        archive = rankfold.compress(table, path, max_abs_error=tolerances, seed=0, **options)
-    except Exception as exc:  # report and go on: one failing variant must not hide the others
-        return {"error": f"{type(exc).__name__}: {str(exc).splitlines()[0][:140]}"}
-    seconds = time.perf_counter() - started
-    rebuilt = archive.to_numpy(columns=table.column_names)
-    bounds = archive.cell_bounds(columns=table.column_names)
-    both_missing = np.isnan(truth) & np.isnan(rebuilt)
-    err = np.where(both_missing, 0.0, np.abs(truth - rebuilt))
-    err = np.where(np.isnan(err), np.inf, err)
-    method = archive.manifest.get("method", {})
-    return {"bytes": archive_bytes(path), "seconds": seconds, "rank": method.get("rank", "?"),
-            "ok": bool(np.all(err <= tol) and np.all(np.nan_to_num(bounds, nan=0.0) <= tol)),
-            "err_ratio": float(np.max(err / tol)), "bound_ratio": float(np.nanmax(bounds / tol))}
+    result = run_variant(table, path, {n: float(t) for n, t in zip(table.column_names, tol)}, options)
+    if "archive" in result:
+        result["err_ratio"], result["bound_ratio"] = check_archive(result.pop("archive"), table.column_names,
+                                                                   truth, tol)
+        result["ok"] = result["err_ratio"] <= 1.0 and result["bound_ratio"] <= 1.0
+    return result
 
 
 # -- the run ---------------------------------------------------------------------------------------
