@@ -78,7 +78,7 @@ def verified_metadata(path: Path, entry: dict[str, Any]) -> pq.FileMetaData:
     if hashlib.sha256(tail).hexdigest() != entry["footer_sha256"]:
         raise damaged(path, "has a Parquet footer that does not match its digest in the manifest")
     try:
-        return pq.read_metadata(pa.BufferReader(b"PAR1" + tail))
+        return pq.read_metadata(pa.BufferReader(_arrow_owned(b"PAR1" + tail)))
     except (OSError, pa.ArrowException) as exc:
         raise damaged(path, f"has a Parquet footer that cannot be read ({exc})") from None
 
@@ -135,6 +135,17 @@ def _entry(manifest: dict[str, Any], name: str) -> dict[str, Any]:
     raise damaged(Path(name), "is used but not listed in the manifest")
 
 
+def _arrow_owned(data: bytes) -> pa.Buffer:
+    """``data`` copied into memory that Arrow owns. A buffer that wraps a Python object must
+    take the GIL when Arrow frees it, and pyarrow may free it on one of its own threads; at
+    interpreter exit that thread cannot take the GIL and the process aborts ("terminate called
+    without an active exception", seen about once in 30 runs under load with
+    ``pq.read_table(pa.BufferReader(bytes))``, whose dataset fragment outlived the call)."""
+    buffer = pa.allocate_buffer(len(data))
+    pa.FixedSizeBufferWriter(buffer).write(data)
+    return buffer
+
+
 def read_small_table(directory: Path, manifest: dict[str, Any], name: str) -> pa.Table:
     """Read the small table file ``name`` whole, check its SHA-256 against the manifest, and
     parse the very bytes that were hashed (no window for a swap between check and read)."""
@@ -142,12 +153,15 @@ def read_small_table(directory: Path, manifest: dict[str, Any], name: str) -> pa
     path = directory / name
     try:
         data = path.read_bytes()
+    except FileNotFoundError:
+        raise  # a file of the version that is gone: the reader says so (ArchiveNotFoundError)
     except OSError as exc:
         raise damaged(path, f"cannot be read ({exc.strerror})") from None
     if hashlib.sha256(data).hexdigest() != entry["sha256"]:
         raise damaged(path, "does not match its SHA-256 in the manifest")
     try:
-        return pq.read_table(pa.BufferReader(data), page_checksum_verification=PAGE_CHECKSUMS)
+        return pq.ParquetFile(pa.BufferReader(_arrow_owned(data)),
+                              page_checksum_verification=PAGE_CHECKSUMS).read()
     except (OSError, pa.ArrowException) as exc:
         raise damaged(path, f"is not readable Parquet ({exc})") from None
 
