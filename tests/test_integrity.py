@@ -553,3 +553,12 @@ def test_an_archive_without_row_group_digests_is_checked_whole(grouped, grouped_
     _flip(path, (start + stop) // 2 + 8, 1)
     with pytest.raises(duckdb.Error, match="CorruptArchiveError"):
         con.execute(lookup, [str(grouped_copy)]).fetchall()
+
+
+def test_a_resealed_manifest_without_a_key_column_digest_is_refused_in_sql(grouped_copy):
+    manifest = read_manifest(grouped_copy)
+    entry = next(f for f in manifest["files"] if f["name"] == "rows-00000.parquet")
+    del entry["column_sha256"]["id"]
+    write_manifest(grouped_copy, manifest)
+    with pytest.raises(duckdb.Error, match="gives no column_sha256 for 'id'"):
+        _con().execute("SELECT c1 FROM rankfold_scan(?) WHERE id = 250", [str(grouped_copy)]).fetchall()

@@ -252,6 +252,7 @@ class RowFileSeal:
         self._groups: dict[str, list] = {}
         self._group_first: list[tuple[int, str, np.ndarray]] = []
         self._rows_of: dict[str, int] = {}
+        self._columns: dict[str, list[str]] = {}
         self._by_name = {entry["name"]: entry for entry in self.entries}
         self.by_groups = metadata is not None and all(
             self._plan(_entry(manifest, p["name"]), p, metadata.get(p["name"])) for p in parts)
@@ -265,6 +266,7 @@ class RowFileSeal:
         if spans is None or len(spans) != len(entry["group_sha256"]):
             return False
         self._groups[part["name"]] = spans
+        self._columns[part["name"]] = [metadata.schema.column(j).path for j in range(metadata.num_columns)]
         self._rows_of[part["name"]] = int(part["rows"])
         counts = [metadata.row_group(g).num_rows for g in range(metadata.num_row_groups)]
         first = part["first_row"] + np.cumsum([0] + counts[:-1], dtype=np.int64)
@@ -288,13 +290,17 @@ class RowFileSeal:
                 self._check_whole(entry)
                 continue
             path, signature = self._stat(entry)
-            wanted = [c for c in columns if c in entry["column_sha256"]]
+            wanted = [c for c in columns if c in self._columns[entry["name"]]]
+            missing = [c for c in wanted if c not in entry["column_sha256"]]
+            if missing:
+                raise damaged(self.directory / layout.MANIFEST,
+                              f"gives no column_sha256 for {missing[0]!r} of {entry['name']}")
             key = (entry["name"], "columns", tuple(wanted))
             with self._lock:
                 if self._checked.get(key) == signature:
                     continue
             spans = self._groups[entry["name"]]
-            names = list(entry["column_sha256"])
+            names = self._columns[entry["name"]]  # schema order, as the spans' chunks
             for column in wanted:
                 j = names.index(column)
                 digest = _hash_ranges(path, [chunks[j] for _, _, chunks in spans])
