@@ -562,3 +562,14 @@ def test_a_resealed_manifest_without_a_key_column_digest_is_refused_in_sql(group
     write_manifest(grouped_copy, manifest)
     with pytest.raises(duckdb.Error, match="gives no column_sha256 for 'id'"):
         _con().execute("SELECT c1 FROM rankfold_scan(?) WHERE id = 250", [str(grouped_copy)]).fetchall()
+
+
+def test_two_prefixes_in_one_process_each_get_their_own_row_group_check(grouped):
+    # the SQL of a scan names the prefixed check function: a cached statement made for one
+    # prefix must not be served to a database where only the other is registered
+    first, second = duckdb.connect(), duckdb.connect()
+    register(first, prefix="rfa")
+    register(second, prefix="rfb")
+    query = "SELECT count(*) FROM {}_scan(?) WHERE id < 150"
+    assert first.execute(query.format("rfa"), [str(grouped)]).fetchone() == (150,)
+    assert second.execute(query.format("rfb"), [str(grouped)]).fetchone() == (150,)

@@ -530,7 +530,7 @@ def _table_udf(prefix: str, verb: str, con) -> Callable:
             reader.verify_for_scan()
         else:
             reader.verify_row_files()
-        key = (verb, str(reader.path), reader.version,
+        key = (prefix, verb, str(reader.path), reader.version,  # the SQL names prefixed UDFs
                tuple((k, tuple(v) if isinstance(v, list) else v) for k, v in params.items()))
         return _RESULTS.get(key, lambda: make(reader, params))
 
