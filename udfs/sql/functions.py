@@ -580,9 +580,15 @@ def _sealed_udf(prefix: str) -> Callable:
     function = f"{prefix}_scan"
 
     def body(tokens: pa.Array, rows: pa.Array) -> pa.Array:
-        for token in pc.unique(tokens.drop_null()).to_pylist():
-            mine = pc.filter(rows, pc.equal(tokens, token)).drop_null()
-            seal_for_token(token).check_rows(mine.to_numpy(zero_copy_only=False).astype(np.int64))
+        first = tokens[0].as_py() if len(tokens) else None
+        if first is not None and tokens.null_count == 0 and pc.all(pc.equal(tokens, first)).as_py():
+            groups = [(first, rows)]  # the usual call: one scan, one archive version
+        else:
+            groups = [(t, pc.filter(rows, pc.equal(tokens, t)))
+                      for t in pc.unique(tokens.drop_null()).to_pylist()]
+        for token, mine in groups:
+            positions = mine.drop_null().to_numpy(zero_copy_only=False).astype(np.int64, copy=False)
+            seal_for_token(token).check_rows(positions)
         return pa.array(np.ones(len(rows), dtype=bool))
 
     def udf(*args):

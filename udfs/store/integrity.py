@@ -321,7 +321,14 @@ class RowFileSeal:
         differs or a position is outside the archive."""
         if rows.size == 0:
             return
+        low, high = int(rows.min()), int(rows.max())
         for first_row, name, first in self._group_first:
+            if high < first_row or low >= first_row + self._rows_of[name]:
+                continue
+            g_low, g_high = np.searchsorted(first, [low, high], side="right") - 1
+            if g_low == g_high and low >= first_row and high < first_row + self._rows_of[name]:
+                self._check_group(name, int(g_low))  # the usual call: rows of one row group
+                continue
             top = first_row + self._rows_of[name]
             inside = rows[(rows >= first_row) & (rows < top)]
             if inside.size == 0:
@@ -329,7 +336,7 @@ class RowFileSeal:
             for g in np.unique(np.searchsorted(first, inside, side="right") - 1).tolist():
                 self._check_group(name, g)
         total = sum(self._rows_of.values())
-        if int(rows.min()) < 0 or int(rows.max()) >= total:
+        if low < 0 or high >= total:
             raise damaged(self.directory, f"serves a row position outside 0..{total - 1}")
 
     def _check_group(self, name: str, g: int) -> None:
