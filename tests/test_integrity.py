@@ -578,3 +578,24 @@ def test_two_prefixes_in_one_process_each_get_their_own_row_group_check(grouped)
     query = "SELECT count(*) FROM {}_scan(?) WHERE id < 150"
     assert first.execute(query.format("rfa"), [str(grouped)]).fetchone() == (150,)
     assert second.execute(query.format("rfb"), [str(grouped)]).fetchone() == (150,)
+
+
+def test_row_groups_of_an_appended_part_are_checked_by_their_own_digests(grouped_copy, monkeypatch):
+    more = _table(5).set_column(0, "id", pa.array(np.arange(ROWS, 2 * ROWS, dtype=np.int64)))
+    rankfold.open(grouped_copy).append(more, batch_rows=GROUP_ROWS)
+    parts = read_manifest(grouped_copy)["row_parts"]
+    assert len(parts) == 2
+    new = grouped_copy / parts[1]["name"]
+    seen = _watch_hashes(monkeypatch)
+    con = _con()
+    lookup = "SELECT c1 FROM rankfold_scan(?) WHERE id = ?"
+    arch = rankfold.open(grouped_copy)
+    assert con.execute(lookup, [str(grouped_copy), ROWS + 150]).fetchone()[0] == pytest.approx(
+        arch.cell(ROWS + 150, "c1").value, rel=1e-12)
+    assert seen["groups"] == [1] and not {p["name"] for p in parts} & set(seen["whole"])
+    start, stop = _chunk(new, 1, "c2")
+    _flip(new, (start + stop) // 2 + 8, 6)
+    with pytest.raises(duckdb.Error, match=f"CorruptArchiveError.*{parts[1]['name']} has a row group \\(1\\)"):
+        con.execute(lookup, [str(grouped_copy), ROWS + 150]).fetchall()
+    assert con.execute(lookup, [str(grouped_copy), 150]).fetchone()[0] == pytest.approx(
+        arch.cell(150, "c1").value, rel=1e-12)
