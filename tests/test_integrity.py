@@ -599,3 +599,15 @@ def test_row_groups_of_an_appended_part_are_checked_by_their_own_digests(grouped
         con.execute(lookup, [str(grouped_copy), ROWS + 150]).fetchall()
     assert con.execute(lookup, [str(grouped_copy), 150]).fetchone()[0] == pytest.approx(
         arch.cell(150, "c1").value, rel=1e-12)
+
+
+def test_a_footer_edited_after_open_is_refused_by_the_next_scan(grouped_copy):
+    con = _con()
+    p = str(grouped_copy)
+    lookup = "SELECT c1 FROM rankfold_scan(?) WHERE id = 250"
+    con.execute(lookup, [p]).fetchall()  # opened, checked and cached
+    path = grouped_copy / "rows-00000.parquet"
+    footer = int.from_bytes(path.read_bytes()[-8:-4], "little")
+    _flip(path, path.stat().st_size - 8 - footer // 2, 0)  # same size, new mtime
+    with pytest.raises(duckdb.Error, match="CorruptArchiveError.*Parquet footer"):
+        con.execute(lookup, [p]).fetchall()

@@ -299,6 +299,9 @@ class RowFileSeal:
             with self._lock:
                 if self._checked.get(key) == signature:
                     continue
+            # DuckDB reads the footer again (row groups, offsets, statistics for pruning)
+            if footer_sha256(path) != entry["footer_sha256"]:
+                raise damaged(path, "has a Parquet footer that does not match its digest in the manifest")
             spans = self._groups[entry["name"]]
             names = self._columns[entry["name"]]  # schema order, as the spans' chunks
             for column in wanted:
