@@ -54,7 +54,7 @@ import pyarrow.parquet as pq
 
 from ..errors import CorruptArchiveError
 from . import layout
-from .manifest_schema import check_plain_name, files_used, sealed_by_groups
+from .manifest_schema import DIGEST_FIELD, check_plain_name, files_used, sealed_by_groups
 
 __all__ = ["PAGE_CHECKSUMS", "WRITE_OPTIONS", "footer_sha256", "verified_metadata", "check_listed_files",
            "read_small_table",
@@ -254,10 +254,19 @@ class RowFileSeal:
         self._rows_of: dict[str, int] = {}
         self._columns: dict[str, list[str]] = {}
         self._by_name = {entry["name"]: entry for entry in self.entries}
-        self.by_groups = metadata is not None and all(
-            self._plan(_entry(manifest, p["name"]), p, metadata.get(p["name"])) for p in parts)
+        self._parts, self._metadata, self._by_groups = parts, metadata, None
         self.token = hashlib.sha256(
-            f"{Path(directory).resolve()}\0{manifest.get('manifest_sha256', '')}".encode()).hexdigest()[:32]
+            f"{Path(directory).resolve()}\0{manifest.get(DIGEST_FIELD, '')}".encode()).hexdigest()[:32]
+
+    @property
+    def by_groups(self) -> bool:
+        """Whether every row file can be checked by row group (planned on first use: opening
+        an archive in Python does not pay for it)."""
+        with self._lock:
+            if self._by_groups is None:
+                self._by_groups = self._metadata is not None and all(
+                    self._plan(self._by_name[p["name"]], p, self._metadata.get(p["name"])) for p in self._parts)
+            return self._by_groups
 
     def _plan(self, entry: dict[str, Any], part: dict[str, Any], metadata) -> bool:
         if metadata is None or not sealed_by_groups(entry):
