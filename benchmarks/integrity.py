@@ -5,7 +5,8 @@ Invented data (fixed seed): ROWS x COLS float64 of rank-8 structure plus 1% nois
 ``id`` key, compressed with rankfold.compress(rank=8). "Without" switches off, for the time of
 one measurement only, exactly what the integrity work added: the manifest digest and schema,
 the footer and small-table SHA-256, the cross-checks against the files, Parquet page checksum
-verification, and the whole-file SHA-256 of the row files before DuckDB reads them.
+verification, and the SHA-256 checks of what DuckDB reads (small tables and key-column
+chunks before the query, each row group as it is read; or whole row files).
 
 Read paths:
   open                 rankfold.open(path)
@@ -14,12 +15,21 @@ Read paths:
   python full scan     rankfold.open(path).to_numpy()  (every row and column)
   python point lookup  archive.cell(row, 'c7') on an open archive, a new row each time
   sql full scan cold   first query of a process: CREATE TEMP TABLE AS SELECT * FROM
-                       rankfold_scan(path) (materialized inside DuckDB; with the
-                       row files' whole SHA-256, then cached for the archive version)
-  sql full scan warm   the same query again (the hash is cached; only a stat per file)
+                       rankfold_scan(path) (materialized inside DuckDB; every row group
+                       checked as DuckDB reads it, then cached for the archive version)
+  ... whole files      the same, checking the whole row files' SHA-256 instead of each row
+                       group as DuckDB reads it
+  sql full scan warm   the same query again (checks cached; a stat per file and row group)
   sql point lookup     SELECT rankfold_cell(path, row, 'c7'), reader cached
+  sql first lookup     first query of a process: SELECT c7 FROM rankfold_scan(path) WHERE
+                       id = K (archive opened, SQL made, key-column chunks and the one row
+                       group read checked by SHA-256)
+  ... whole files      the same, checking the whole row files' SHA-256 instead (how SQL
+                       checked before row-group digests, and still checks archives without them)
 
     python benchmarks/integrity.py --rows 1000000 --cols 100 --out /tmp/rf_integrity
+    (--reuse keeps the archive of an earlier run; it must have been written by this version
+    of rankfold to carry row-group digests)
 """
 
 from __future__ import annotations
@@ -61,7 +71,7 @@ def checks_off():
     """The read path as it was before the integrity checks: sizes only, plain reads."""
     saved = (integrity.PAGE_CHECKSUMS, manifest.check_listed_files, manifest.validate,
              manifest.manifest_digest, reader.read_small_table, reader.check_tables,
-             integrity.RowFileSeal.check, reader.verified_metadata)
+             integrity.RowFileSeal.check, reader.verified_metadata, reader.ArchiveReader.verify_for_scan)
 
     def sizes_only(directory, m):
         for entry in m["files"]:
@@ -76,12 +86,29 @@ def checks_off():
     reader.check_tables = lambda r: None
     integrity.RowFileSeal.check = lambda self: None
     reader.verified_metadata = lambda path, entry: pq.read_metadata(path)
+    reader.ArchiveReader.verify_for_scan = lambda self: False  # plain read_parquet, no row-group check
     try:
         yield
     finally:
         (integrity.PAGE_CHECKSUMS, manifest.check_listed_files, manifest.validate,
          manifest.manifest_digest, reader.read_small_table, reader.check_tables,
-         integrity.RowFileSeal.check, reader.verified_metadata) = saved
+         integrity.RowFileSeal.check, reader.verified_metadata, reader.ArchiveReader.verify_for_scan) = saved
+
+
+@contextlib.contextmanager
+def whole_files():
+    """The SQL scan with the whole-file SHA-256 check instead of the row-group checks."""
+    saved = reader.ArchiveReader.verify_for_scan
+
+    def whole(self):
+        self.seal.check()
+        return False
+
+    reader.ArchiveReader.verify_for_scan = whole
+    try:
+        yield
+    finally:
+        reader.ArchiveReader.verify_for_scan = saved
 
 
 def fresh_sql():
@@ -96,15 +123,17 @@ def _cpu() -> float:
     return usage.ru_utime + usage.ru_stime
 
 
-def measure(label, fn, repeat, results):
-    """Best of ``repeat`` runs with and without the checks, alternated: wall and CPU time."""
+def measure(label, fn, repeat, results, checks=contextlib.nullcontext, setup=None):
+    """Best of ``repeat`` runs with (``checks()``) and without the checks, alternated: wall
+    and CPU time (of ``fn(setup())`` when ``setup`` is given, not timing ``setup()``)."""
     on, off = [], []
     for _ in range(repeat):
         for mode, times in (("on", on), ("off", off)):
-            ctx = checks_off() if mode == "off" else contextlib.nullcontext()
+            ctx = checks_off() if mode == "off" else checks()
             with ctx:
+                prepared = setup() if setup else None
                 w0, c0 = time.perf_counter(), _cpu()
-                fn()
+                fn(prepared) if setup else fn()
                 times.append((time.perf_counter() - w0, _cpu() - c0))
     wall = (min(t[0] for t in on), min(t[0] for t in off))
     cpu = (min(t[1] for t in on), min(t[1] for t in off))
@@ -164,6 +193,7 @@ def main() -> None:
         con.execute(scan, [str(path)])
 
     measure("sql full scan cold", sql_cold, args.repeat, results)
+    measure("... whole files", sql_cold, args.repeat, results, checks=whole_files)
     sql_warm()
     measure("sql full scan warm", sql_warm, args.repeat, results)
 
@@ -173,6 +203,25 @@ def main() -> None:
 
     sql_lookups()
     measure(f"sql point lookup x{args.lookups}", sql_lookups, args.repeat, results)
+
+    def new_process():
+        """A connection with the functions registered, and the state of a new process: no
+        reader, no SQL text, no check done yet (not timed)."""
+        fresh_sql()
+        first = duckdb.connect()
+        register(first)
+        return first
+
+    def sql_first_lookup(first):
+        key = int(rng.integers(0, args.rows))
+        got = first.execute("SELECT c7 FROM rankfold_scan(?) WHERE id = ?", [str(path), key]).fetchall()
+        first.close()
+        assert len(got) == 1
+
+    # more runs: one lookup is tens of milliseconds, and the machine is shared
+    measure("sql first lookup", sql_first_lookup, 3 * args.repeat, results, setup=new_process)
+    measure("... whole files", sql_first_lookup, 3 * args.repeat, results, checks=whole_files,
+            setup=new_process)
     print("\npath | wall with / without s | ratio | cpu with / without s | ratio")
     for label, wall, cpu in results:
         print(f"{label} | {wall[0]:.4f} / {wall[1]:.4f} | {wall[0] / wall[1]:.3f} | "

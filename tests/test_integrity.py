@@ -411,3 +411,203 @@ def test_a_file_damaged_between_two_queries_is_refused_by_the_second(archive):
     _flip(name, name.stat().st_size // 2, 2)  # same size, new mtime: hashed again
     with pytest.raises(duckdb.Error, match="CorruptArchiveError"):
         con.execute(query, [p]).fetchone()
+
+
+# -- SQL checks the row groups a query reads (point lookups without hashing whole files) ------
+GROUP_ROWS = 100  # compress(batch_rows=100): 4 row groups of 100 rows
+
+
+@pytest.fixture(scope="module")
+def grouped(tmp_path_factory) -> Path:
+    path = tmp_path_factory.mktemp("grouped") / "base.rankfold"
+    rankfold.compress(_table(0), path, rank=2, key="id", link="optimal", seed=0, batch_rows=GROUP_ROWS)
+    return path
+
+
+@pytest.fixture
+def grouped_copy(grouped, tmp_path) -> Path:
+    copy = tmp_path / "grouped.rankfold"
+    shutil.copytree(grouped, copy)
+    return copy
+
+
+def _chunk(path: Path, group: int, column: str) -> tuple[int, int]:
+    """Byte range of one column chunk, from pyarrow's metadata (Parquet format spec: the
+    chunk starts at its dictionary page if any, else its first data page)."""
+    meta = pa.parquet.read_metadata(path)
+    names = [meta.schema.column(j).path for j in range(meta.num_columns)]
+    chunk = meta.row_group(group).column(names.index(column))
+    start = chunk.data_page_offset
+    if chunk.has_dictionary_page and chunk.dictionary_page_offset:
+        start = min(start, chunk.dictionary_page_offset)
+    return start, start + chunk.total_compressed_size
+
+
+def _watch_hashes(monkeypatch) -> dict:
+    """Record which row groups SQL checks, and whether any row file is hashed whole."""
+    from rankfold.udfs.store import integrity
+
+    seen = {"groups": [], "whole": []}
+    check_group, whole = integrity.RowFileSeal._check_group, integrity._sha256_file
+
+    def spy_group(self, name, g):
+        seen["groups"].append(g)
+        return check_group(self, name, g)
+
+    def spy_whole(path, *args):
+        seen["whole"].append(Path(path).name)
+        return whole(path, *args)
+
+    monkeypatch.setattr(integrity.RowFileSeal, "_check_group", spy_group)
+    monkeypatch.setattr(integrity, "_sha256_file", spy_whole)
+    return seen
+
+
+def test_row_files_carry_the_sha256_of_each_row_group_and_column(grouped):
+    # reference: hashlib.sha256 (FIPS 180-4) over byte ranges taken from pyarrow's metadata
+    entry = next(f for f in read_manifest(grouped)["files"] if f["name"] == "rows-00000.parquet")
+    path = grouped / "rows-00000.parquet"
+    data = path.read_bytes()
+    meta = pa.parquet.read_metadata(path)
+    assert len(entry["group_sha256"]) == meta.num_row_groups == ROWS // GROUP_ROWS
+    for g, digest in enumerate(entry["group_sha256"]):
+        spans = [_chunk(path, g, name) for name in entry["column_sha256"]]
+        start, stop = min(s for s, _ in spans), max(e for _, e in spans)
+        assert hashlib.sha256(data[start:stop]).hexdigest() == digest
+    for name, digest in entry["column_sha256"].items():
+        joined = b"".join(data[slice(*_chunk(path, g, name))] for g in range(meta.num_row_groups))
+        assert hashlib.sha256(joined).hexdigest() == digest
+
+
+def test_a_sql_point_lookup_checks_the_key_columns_and_one_row_group(grouped, monkeypatch):
+    seen = _watch_hashes(monkeypatch)
+    con = _con()
+    got = con.execute("SELECT c1, c0 FROM rankfold_scan(?) WHERE id = 250", [str(grouped)]).fetchall()
+    arch = rankfold.open(grouped)
+    # the Python reader's values (c0 stored as is; c1 rebuilt, up to floating-point rounding)
+    assert got[0][1] == arch.cell(250, "c0").value and len(got) == 1
+    assert got[0][0] == pytest.approx(arch.cell(250, "c1").value, rel=1e-12)
+    assert seen["groups"] == [250 // GROUP_ROWS]
+    assert "rows-00000.parquet" not in seen["whole"]
+    # a filter on a basis column (served as stored) is not pushed below the check: every
+    # row group is checked before any row is compared
+    seen["groups"].clear()
+    for where in ["c0 = ?", "c1 > ?"]:  # a basis column, a rebuilt one
+        seen["groups"].clear()
+        con.execute(f"SELECT count(*) FROM rankfold_scan(?) WHERE {where}",
+                    [str(grouped), arch.cell(5, "c0").value]).fetchall()
+        assert sorted(set(seen["groups"])) == list(range(ROWS // GROUP_ROWS)), where
+
+
+@pytest.mark.parametrize("column", ["c0", "_rf_err_max"])
+def test_a_flipped_byte_in_the_row_group_a_lookup_reads_is_refused_in_sql_and_python(grouped_copy, column):
+    path = grouped_copy / "rows-00000.parquet"
+    start, stop = _chunk(path, 2, column)
+    _flip(path, (start + stop) // 2 + 8, 4)  # inside the data page of row group 2 (rows 200-299)
+    con = _con()
+    with pytest.raises(duckdb.Error, match="CorruptArchiveError.*row group \\(2\\)"):
+        con.execute("SELECT c1 FROM rankfold_scan(?) WHERE id = 250", [str(grouped_copy)]).fetchall()
+    with pytest.raises(rankfold.CorruptArchiveError):  # pyarrow: the page's CRC-32
+        rankfold.open(grouped_copy).cell(250, "c1")
+
+
+def test_a_flipped_byte_elsewhere_is_refused_by_the_next_query_that_reads_it(grouped, grouped_copy):
+    path = grouped_copy / "rows-00000.parquet"
+    start, stop = _chunk(path, 0, "c2")
+    _flip(path, (start + stop) // 2 + 8, 1)  # row group 0 (rows 0-99)
+    con = _con()
+    p = str(grouped_copy)
+    lookup = "SELECT * FROM rankfold_scan(?) WHERE id = ?"
+    truth = con.execute(lookup, [str(grouped), 250]).fetchall()
+    assert con.execute(lookup, [p, 250]).fetchall() == truth  # group 2 is intact
+    for sql, args in [(lookup, [p, 42]), ("SELECT sum(c4) FROM rankfold_scan(?)", [p]),
+                      ("SELECT * FROM rankfold_scan(?) ORDER BY id LIMIT 3", [p]),
+                      ("SELECT c1 FROM rankfold_scan(?) WHERE c1 > 0", [p]),
+                      ("SELECT count(*) FROM rankfold_scan(?, predicate := 'id < 10')", [p])]:
+        with pytest.raises(duckdb.Error, match="CorruptArchiveError"):
+            con.execute(sql, args).fetchall()
+
+
+@pytest.mark.parametrize("column", ["id", "site", "_rf_row"])
+def test_a_flipped_byte_in_a_key_column_is_refused_before_any_row_is_filtered(grouped_copy, column):
+    # DuckDB filters key columns inside the Parquet scan, before the row-group check: their
+    # chunks in every row group are checked before the query (a damaged key could otherwise
+    # make a row vanish from WHERE id = K)
+    path = grouped_copy / "rows-00000.parquet"
+    start, stop = _chunk(path, 0, column)
+    _flip(path, stop - 3, 2)
+    with pytest.raises(duckdb.Error, match=f"CorruptArchiveError.*{column!r} column chunks"):
+        _con().execute("SELECT c1 FROM rankfold_scan(?) WHERE id = 250", [str(grouped_copy)]).fetchall()
+
+
+def test_an_archive_without_row_group_digests_is_checked_whole(grouped, grouped_copy, monkeypatch):
+    # older archives: their row files' entries have no group_sha256 / column_sha256
+    manifest = read_manifest(grouped_copy)
+    for entry in manifest["files"]:
+        entry.pop("group_sha256", None)
+        entry.pop("column_sha256", None)
+    write_manifest(grouped_copy, manifest)
+    assert not rankfold.open(grouped_copy)._reader.seal.by_groups
+    seen = _watch_hashes(monkeypatch)
+    con = _con()
+    lookup = "SELECT * FROM rankfold_scan(?) WHERE id = 250"
+    assert con.execute(lookup, [str(grouped_copy)]).fetchall() == con.execute(lookup, [str(grouped)]).fetchall()
+    assert "rows-00000.parquet" in seen["whole"]
+    path = grouped_copy / "rows-00000.parquet"
+    start, stop = _chunk(path, 0, "c2")
+    _flip(path, (start + stop) // 2 + 8, 1)
+    with pytest.raises(duckdb.Error, match="CorruptArchiveError"):
+        con.execute(lookup, [str(grouped_copy)]).fetchall()
+
+
+def test_a_resealed_manifest_without_a_key_column_digest_is_refused_in_sql(grouped_copy):
+    manifest = read_manifest(grouped_copy)
+    entry = next(f for f in manifest["files"] if f["name"] == "rows-00000.parquet")
+    del entry["column_sha256"]["id"]
+    write_manifest(grouped_copy, manifest)
+    with pytest.raises(duckdb.Error, match="gives no column_sha256 for 'id'"):
+        _con().execute("SELECT c1 FROM rankfold_scan(?) WHERE id = 250", [str(grouped_copy)]).fetchall()
+
+
+def test_two_prefixes_in_one_process_each_get_their_own_row_group_check(grouped):
+    # the SQL of a scan names the prefixed check function: a cached statement made for one
+    # prefix must not be served to a database where only the other is registered
+    first, second = duckdb.connect(), duckdb.connect()
+    register(first, prefix="rfa")
+    register(second, prefix="rfb")
+    query = "SELECT count(*) FROM {}_scan(?) WHERE id < 150"
+    assert first.execute(query.format("rfa"), [str(grouped)]).fetchone() == (150,)
+    assert second.execute(query.format("rfb"), [str(grouped)]).fetchone() == (150,)
+
+
+def test_row_groups_of_an_appended_part_are_checked_by_their_own_digests(grouped_copy, monkeypatch):
+    more = _table(5).set_column(0, "id", pa.array(np.arange(ROWS, 2 * ROWS, dtype=np.int64)))
+    rankfold.open(grouped_copy).append(more, batch_rows=GROUP_ROWS)
+    parts = read_manifest(grouped_copy)["row_parts"]
+    assert len(parts) == 2
+    new = grouped_copy / parts[1]["name"]
+    seen = _watch_hashes(monkeypatch)
+    con = _con()
+    lookup = "SELECT c1 FROM rankfold_scan(?) WHERE id = ?"
+    arch = rankfold.open(grouped_copy)
+    assert con.execute(lookup, [str(grouped_copy), ROWS + 150]).fetchone()[0] == pytest.approx(
+        arch.cell(ROWS + 150, "c1").value, rel=1e-12)
+    assert seen["groups"] == [1] and not {p["name"] for p in parts} & set(seen["whole"])
+    start, stop = _chunk(new, 1, "c2")
+    _flip(new, (start + stop) // 2 + 8, 6)
+    with pytest.raises(duckdb.Error, match=f"CorruptArchiveError.*{parts[1]['name']} has a row group \\(1\\)"):
+        con.execute(lookup, [str(grouped_copy), ROWS + 150]).fetchall()
+    assert con.execute(lookup, [str(grouped_copy), 150]).fetchone()[0] == pytest.approx(
+        arch.cell(150, "c1").value, rel=1e-12)
+
+
+def test_a_footer_edited_after_open_is_refused_by_the_next_scan(grouped_copy):
+    con = _con()
+    p = str(grouped_copy)
+    lookup = "SELECT c1 FROM rankfold_scan(?) WHERE id = 250"
+    con.execute(lookup, [p]).fetchall()  # opened, checked and cached
+    path = grouped_copy / "rows-00000.parquet"
+    footer = int.from_bytes(path.read_bytes()[-8:-4], "little")
+    _flip(path, path.stat().st_size - 8 - footer // 2, 0)  # same size, new mtime
+    with pytest.raises(duckdb.Error, match="CorruptArchiveError.*Parquet footer"):
+        con.execute(lookup, [p]).fetchall()

@@ -29,6 +29,7 @@ import pyarrow.compute as pc
 from ..build.compress import compress as _compress
 from ..errors import ArchiveExistsError, InvalidInputError, RankfoldError
 from ..store import layout
+from ..store.integrity import seal_for_token
 from ..store.reader import ArchiveReader
 from ..store.rebuild_log import RebuildLog
 from . import tables as _tables
@@ -524,19 +525,25 @@ def _table_udf(prefix: str, verb: str, con) -> Callable:
         reader = _reader(params["path"])
         # every query: the files DuckDB will read are unchanged since their SHA-256 was checked
         # (a stat per file; a changed file is hashed again), even when the SQL text is cached
-        reader.verify_row_files()
-        key = (verb, str(reader.path), reader.version,
+        # (the scan checks the row files by row group as DuckDB reads them: rows_source_sql)
+        if verb == "scan":
+            reader.verify_for_scan()
+        else:
+            reader.verify_row_files()
+        key = (prefix, verb, str(reader.path), reader.version,  # the SQL names prefixed UDFs
                tuple((k, tuple(v) if isinstance(v, list) else v) for k, v in params.items()))
         return _RESULTS.get(key, lambda: make(reader, params))
 
     def make(reader: ArchiveReader, p: dict[str, Any]) -> str:
         if verb == "scan":
             need("bounds", p["bounds"])
+            sealed = _internal(prefix, "sealed")
             if p["predicate"] is None:
-                return _tables.scan_sql(reader, p["columns"], p["bounds"])
+                return _tables.scan_sql(reader, p["columns"], p["bounds"], sealed=sealed)
             cursor = con.cursor()
             try:
-                return _tables.scan_sql(reader, p["columns"], p["bounds"], p["predicate"], cursor)
+                return _tables.scan_sql(reader, p["columns"], p["bounds"], p["predicate"], cursor,
+                                        sealed=sealed)
             finally:
                 cursor.close()
         if verb == "column_errors":
@@ -562,6 +569,30 @@ def _table_udf(prefix: str, verb: str, con) -> Callable:
 
     def udf(*values):
         return _relabel(function, body, *values)
+
+    return udf
+
+
+def _sealed_udf(prefix: str) -> Callable:
+    """``<prefix>_internal_sealed(token, _rf_row)``: true for every row, after checking the
+    SHA-256 of the row groups holding these rows (``integrity.RowFileSeal.check_rows``); a
+    damaged group raises CorruptArchiveError before any of its rows passes the filter."""
+    function = f"{prefix}_scan"
+
+    def body(tokens: pa.Array, rows: pa.Array) -> pa.Array:
+        first = tokens[0].as_py() if len(tokens) else None
+        if first is not None and tokens.null_count == 0 and pc.all(pc.equal(tokens, first)).as_py():
+            groups = [(first, rows)]  # the usual call: one scan, one archive version
+        else:
+            groups = [(t, pc.filter(rows, pc.equal(tokens, t)))
+                      for t in pc.unique(tokens.drop_null()).to_pylist()]
+        for token, mine in groups:
+            positions = mine.drop_null().to_numpy(zero_copy_only=False).astype(np.int64, copy=False)
+            seal_for_token(token).check_rows(positions)
+        return pa.array(np.ones(len(rows), dtype=bool))
+
+    def udf(*args):
+        return _relabel(function, body, *args)
 
     return udf
 
@@ -648,6 +679,8 @@ def register(con: duckdb.DuckDBPyConnection, *, prefix: str = "rankfold",
          [a.udf_type() for a in _COMPRESS_ARGS] + types(_COMPRESS_ARGS), _INFO_TYPE,
          side_effects=True)
     _macro(con, prefix, "compress", _COMPRESS_ARGS)
+    _udf(con, _internal(prefix, "sealed"), _sealed_udf(prefix), ["VARCHAR", "BIGINT"], "BOOLEAN",
+         type="arrow", side_effects=True)
     for verb, args in _TABLE_ARGS.items():
         _udf(con, _internal(prefix, f"{verb}_sql"), _table_udf(prefix, verb, con),
              [a.udf_type() for a in args] + types(args), "VARCHAR")

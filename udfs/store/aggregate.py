@@ -32,7 +32,7 @@ import pyarrow as pa
 
 from ..errors import InvalidInputError, UnknownColumnError
 from . import arithmetic, layout
-from .integrity import read_parquet_sql, read_small_table
+from .integrity import read_parquet_sql, read_small_table, sealed_rows_sql
 from .sql_text import checked_condition, quote_identifier, sql_literal
 
 __all__ = ["BLOCKS", "BlockSums", "aggregate", "covariance", "correlation", "FUNCS",
@@ -230,11 +230,19 @@ def _blocks(reader) -> _Blocks | None:
 
 
 # -- SQL pieces shared with the scan ----------------------------------------------------------
-def rows_source_sql(reader) -> str:
+def rows_source_sql(reader, sealed: str | None = None) -> str:
     """``read_parquet`` of exactly this archive version's row files (names from the manifest,
-    never a glob), after checking their SHA-256: DuckDB does not verify page checksums."""
+    never a glob), after checking their SHA-256: DuckDB does not verify page checksums.
+
+    ``sealed``: the name of the SQL function that checks row groups as DuckDB reads them
+    (``integrity.sealed_rows_sql``; registered by ``sql.register``). With it, and row files
+    that carry row-group digests, only the key columns are checked before the query
+    (``ArchiveReader.verify_for_scan``); otherwise the whole files."""
+    paths = [reader.path / p[2] for p in reader.parts]
+    if sealed is not None and reader.verify_for_scan():
+        return sealed_rows_sql(paths, sealed, reader.seal.token)
     reader.verify_row_files()
-    return read_parquet_sql([reader.path / p[2] for p in reader.parts])
+    return read_parquet_sql(paths)
 
 
 def basis_sql(reader, t: int) -> str:
@@ -328,7 +336,9 @@ def check_where(reader, con, where: Any) -> str | None:
     keys = ", ".join(quote_identifier(n) for n in sorted(allowed))
     try:
         condition = checked_condition(where, sorted(allowed), what="row condition (where/predicate)", con=con)
-        con.execute(f"DESCRIBE SELECT * FROM (SELECT {keys} FROM {rows_source_sql(reader)}) "
+        # DESCRIBE binds only (reads footers, no data page): no SHA-256 needed for it
+        files = read_parquet_sql([reader.path / p[2] for p in reader.parts])
+        con.execute(f"DESCRIBE SELECT * FROM (SELECT {keys} FROM {files}) "
                     f"WHERE {condition}").fetchall()
     except duckdb.Error as exc:
         first = str(exc).splitlines()[0]

@@ -17,9 +17,20 @@ Every check uses what the formats already carry, plus SHA-256 (FIPS 180-4) from 
   row file, every one of its 69,442 single-bit flips was either refused or left the values
   read unchanged (flips in page-header fields pyarrow does not use).
 * **DuckDB does not verify page checksums** (measured with DuckDB 2.0.1: a flipped bit in a
-  data page was served). SQL that reads the row files through DuckDB therefore first checks
-  their whole-file SHA-256 against the manifest, once per archive version and process
-  (:class:`RowFileSeal`), re-hashing when a file's size, mtime or inode changes.
+  data page was served). SQL that reads the row files through DuckDB therefore checks them
+  against SHA-256 digests from the manifest (:class:`RowFileSeal`), in one of two ways:
+
+  - *by row group* (``rankfold_scan``, row files written with :func:`part_digests`): before
+    the query, the column chunks of ``_rf_row`` and the key columns, over every row group
+    (the only columns DuckDB may filter on before the check, see ``tables.scan_sql``); while
+    the query runs, each row group before any of its rows passes on
+    (:meth:`RowFileSeal.check_rows`, called by a SQL filter). A point lookup hashes the key
+    columns and one row group, not the whole file.
+  - *whole files* (every other SQL path, and row files without row-group digests): the
+    whole-file SHA-256 of every row file and small table before the query.
+
+  Either way a check is done once per archive version and process, and again when a file's
+  size, mtime or inode changes.
 
 What this does not stop: someone who rewrites a file *and* the manifest with recomputed
 digests. Digests detect damage and edits, not forgery; that would need a signature.
@@ -33,6 +44,7 @@ import os
 import stat
 import struct
 import threading
+from collections import OrderedDict
 from pathlib import Path
 from typing import Any
 
@@ -42,11 +54,12 @@ import pyarrow.parquet as pq
 
 from ..errors import CorruptArchiveError
 from . import layout
-from .manifest_schema import check_plain_name, files_used
+from .manifest_schema import DIGEST_FIELD, check_plain_name, files_used, sealed_by_groups
 
 __all__ = ["PAGE_CHECKSUMS", "WRITE_OPTIONS", "footer_sha256", "verified_metadata", "check_listed_files",
            "read_small_table",
-           "open_row_file", "check_tables", "RowFileSeal", "read_parquet_sql", "damaged"]
+           "open_row_file", "check_tables", "RowFileSeal", "read_parquet_sql", "damaged",
+           "part_digests", "row_group_spans", "sealed_rows_sql", "seal_for_token"]
 
 # Parquet write options that every archive file is written with (page CRC-32 checksums).
 WRITE_OPTIONS = {"write_page_checksum": True}
@@ -229,32 +242,266 @@ def check_tables(reader) -> None:
 
 
 class RowFileSeal:
-    """Whole-file SHA-256 of every file an archive's SQL reads (row files and small tables),
-    checked once before DuckDB reads them (DuckDB does not verify Parquet page checksums) and
-    again only when a file's (size, mtime, inode) changes."""
+    """SHA-256 checks of every file an archive's SQL reads (row files and small tables) for
+    readers that do not verify Parquet page checksums, such as DuckDB. Each check is done once
+    and again only when a file's (size, mtime, inode) changes.
 
-    def __init__(self, directory: Path, manifest: dict[str, Any]):
+    * :meth:`check`: whole files, every row file and small table.
+    * :meth:`check_before_scan` then :meth:`check_rows`: small tables whole, the row files'
+      ``columns`` (their column chunks in every row group) before the query, and each row group
+      when rows of it are read (``by_groups``: only for row files whose manifest entry has
+      row-group digests, :func:`part_digests`, matching their verified footers).
+
+    ``metadata``: the row files' footers as verified on open (``verified_metadata``)."""
+
+    def __init__(self, directory: Path, manifest: dict[str, Any],
+                 metadata: dict[str, pq.FileMetaData] | None = None):
         self.directory = directory
         self.entries = [_entry(manifest, name) for name in files_used(manifest)]
-        self._checked: dict[str, tuple] = {}
+        self._checked: dict[Any, tuple] = {}
         self._lock = threading.Lock()
+        parts = manifest["row_parts"]
+        self._row_files = {p["name"] for p in parts}
+        # per row part: (name, first row of each of its row groups, absolute) and byte ranges
+        self._groups: dict[str, list] = {}
+        self._group_first: list[tuple[int, str, np.ndarray]] = []
+        self._rows_of: dict[str, int] = {}
+        self._columns: dict[str, list[str]] = {}
+        self._by_name = {entry["name"]: entry for entry in self.entries}
+        self._parts, self._metadata, self._by_groups = parts, metadata, None
+        self.token = hashlib.sha256(
+            f"{Path(directory).resolve()}\0{manifest.get(DIGEST_FIELD, '')}".encode()).hexdigest()[:32]
+
+    @property
+    def by_groups(self) -> bool:
+        """Whether every row file can be checked by row group (planned on first use: opening
+        an archive in Python does not pay for it)."""
+        with self._lock:
+            if self._by_groups is None:
+                self._by_groups = self._metadata is not None and all(
+                    self._plan(self._by_name[p["name"]], p, self._metadata.get(p["name"])) for p in self._parts)
+            return self._by_groups
+
+    def _plan(self, entry: dict[str, Any], part: dict[str, Any], metadata) -> bool:
+        if metadata is None or not sealed_by_groups(entry):
+            return False
+        spans = row_group_spans(metadata, entry["bytes"])
+        if spans is None or len(spans) != len(entry["group_sha256"]):
+            return False
+        self._groups[part["name"]] = spans
+        self._columns[part["name"]] = [metadata.schema.column(j).path for j in range(metadata.num_columns)]
+        self._rows_of[part["name"]] = int(part["rows"])
+        counts = [metadata.row_group(g).num_rows for g in range(metadata.num_row_groups)]
+        first = part["first_row"] + np.cumsum([0] + counts[:-1], dtype=np.int64)
+        self._group_first.append((part["first_row"], part["name"], first))
+        return True
 
     def check(self) -> None:
+        """Whole-file SHA-256 of every file SQL reads."""
         for entry in self.entries:
-            path = self.directory / entry["name"]
-            try:
-                info = path.stat()
-            except OSError:
-                raise CorruptArchiveError(f"{self.directory} is missing {entry['name']}; the archive "
-                                          "is damaged.") from None
-            signature = (info.st_size, info.st_mtime_ns, info.st_ino)
+            self._check_whole(entry)
+
+    def check_before_scan(self, columns: list[str]) -> None:
+        """Before a query that reads the row files through :func:`sealed_rows_sql`: the small
+        tables whole, and in every row file the column chunks of ``columns`` (those DuckDB may
+        filter on before :meth:`check_rows` sees a row); registers this seal for
+        :func:`seal_for_token`."""
+        if not self.by_groups:
+            raise ValueError("check_before_scan needs row-group digests (by_groups)")
+        for entry in self.entries:
+            if entry["name"] not in self._row_files:
+                self._check_whole(entry)
+                continue
+            path, signature = self._stat(entry)
+            wanted = [c for c in columns if c in self._columns[entry["name"]]]
+            missing = [c for c in wanted if c not in entry["column_sha256"]]
+            if missing:
+                raise damaged(self.directory / layout.MANIFEST,
+                              f"gives no column_sha256 for {missing[0]!r} of {entry['name']}")
+            key = (entry["name"], "columns", tuple(wanted))
             with self._lock:
-                if self._checked.get(entry["name"]) == signature:
+                if self._checked.get(key) == signature:
                     continue
-            if info.st_size != entry["bytes"] or _sha256_file(path) != entry["sha256"]:
-                raise damaged(path, "does not match its SHA-256 in the manifest")
+            # DuckDB reads the footer again (row groups, offsets, statistics for pruning)
+            if footer_sha256(path) != entry["footer_sha256"]:
+                raise damaged(path, "has a Parquet footer that does not match its digest in the manifest")
+            spans = self._groups[entry["name"]]
+            names = self._columns[entry["name"]]  # schema order, as the spans' chunks
+            for column in wanted:
+                j = names.index(column)
+                digest = _hash_ranges(path, [chunks[j] for _, _, chunks in spans])
+                if digest != entry["column_sha256"][column]:
+                    raise damaged(path, f"has {column!r} column chunks that do not match their SHA-256 "
+                                        "in the manifest")
             with self._lock:
-                self._checked[entry["name"]] = signature
+                self._checked[key] = signature
+        with _SEALS_LOCK:
+            _SEALS[self.token] = self
+            _SEALS.move_to_end(self.token)
+            while len(_SEALS) > _SEALS_KEPT:
+                _SEALS.popitem(last=False)
+
+    def check_rows(self, rows: np.ndarray) -> None:
+        """Check the row groups holding the rows at positions ``rows`` (int64, any order)
+        against their SHA-256 in the manifest; raises :class:`CorruptArchiveError` if one
+        differs or a position is outside the archive."""
+        if rows.size == 0:
+            return
+        low, high = int(rows.min()), int(rows.max())
+        for first_row, name, first in self._group_first:
+            if high < first_row or low >= first_row + self._rows_of[name]:
+                continue
+            g_low, g_high = np.searchsorted(first, [low, high], side="right") - 1
+            if g_low == g_high and low >= first_row and high < first_row + self._rows_of[name]:
+                self._check_group(name, int(g_low))  # the usual call: rows of one row group
+                continue
+            top = first_row + self._rows_of[name]
+            inside = rows[(rows >= first_row) & (rows < top)]
+            if inside.size == 0:
+                continue
+            for g in np.unique(np.searchsorted(first, inside, side="right") - 1).tolist():
+                self._check_group(name, g)
+        total = sum(self._rows_of.values())
+        if low < 0 or high >= total:
+            raise damaged(self.directory, f"serves a row position outside 0..{total - 1}")
+
+    def _check_group(self, name: str, g: int) -> None:
+        entry = self._by_name[name]
+        path, signature = self._stat(entry)
+        key = (name, "group", g)
+        with self._lock:
+            if self._checked.get(key) == signature:
+                return
+        start, stop, _ = self._groups[name][g]
+        if _hash_ranges(path, [(start, stop)]) != entry["group_sha256"][g]:
+            raise damaged(path, f"has a row group ({g}) that does not match its SHA-256 in the manifest")
+        with self._lock:
+            self._checked[key] = signature
+
+    def _stat(self, entry: dict[str, Any]) -> tuple[Path, tuple]:
+        path = self.directory / entry["name"]
+        try:
+            info = path.stat()
+        except OSError:
+            raise CorruptArchiveError(f"{self.directory} is missing {entry['name']}; the archive "
+                                      "is damaged.") from None
+        if info.st_size != entry["bytes"]:
+            raise damaged(path, "does not have the size recorded in the manifest")
+        return path, (info.st_size, info.st_mtime_ns, info.st_ino)
+
+    def _check_whole(self, entry: dict[str, Any]) -> None:
+        path, signature = self._stat(entry)
+        with self._lock:
+            if self._checked.get(entry["name"]) == signature:
+                return
+        if _sha256_file(path) != entry["sha256"]:
+            raise damaged(path, "does not match its SHA-256 in the manifest")
+        with self._lock:
+            self._checked[entry["name"]] = signature
+
+
+# The seals that SQL filters may name (by token), most recently used last: a query's SQL is
+# made and its seal registered just before DuckDB runs it.
+_SEALS: OrderedDict[str, RowFileSeal] = OrderedDict()
+_SEALS_LOCK = threading.Lock()
+_SEALS_KEPT = 256
+
+
+def seal_for_token(token: str) -> RowFileSeal:
+    with _SEALS_LOCK:
+        seal = _SEALS.get(token)
+    if seal is None:
+        raise CorruptArchiveError(
+            f"No checked archive version is registered under {token!r}: the query's SQL names an "
+            "archive version this process has not checked. Run the query again.")
+    return seal
+
+
+def sealed_rows_sql(paths: list[Path], function: str, token: str) -> str:
+    """The rows of these row files, each passing the SQL function ``function(token, _rf_row)``
+    (a Python UDF with side effects that calls :meth:`RowFileSeal.check_rows` and returns
+    true) before anything above reads it. DuckDB keeps a filter with side effects below every
+    filter it cannot push into the Parquet scan (measured with DuckDB 2.0.1); filters it pushes
+    into the scan (a column compared with constants) run before it, which is why
+    :meth:`RowFileSeal.check_before_scan` checks the columns they may name."""
+    literal = "'" + token.replace("'", "''") + "'"
+    return (f"(SELECT * FROM {read_parquet_sql(paths)} "
+            f"WHERE {function}({literal}, {layout.ROW_ID}))")
+
+
+def _hash_ranges(path: Path, ranges: list[tuple[int, int]], chunk: int = 1 << 22) -> str:
+    """SHA-256 of the bytes of ``path`` in the given [start, stop) ranges, concatenated."""
+    digest = hashlib.sha256()
+    with open(path, "rb", buffering=0) as handle:
+        buffer = bytearray(chunk)
+        view = memoryview(buffer)
+        for start, stop in ranges:
+            handle.seek(start)
+            left = stop - start
+            while left > 0:
+                got = handle.readinto(view[:min(chunk, left)])
+                if not got:
+                    raise damaged(path, "is shorter than its Parquet footer says")
+                digest.update(view[:got])
+                left -= got
+    return digest.hexdigest()
+
+
+# -- row-group digests, written with the archive ---------------------------------------------------
+def _chunk_span(column) -> tuple[int, int]:
+    """Byte range [start, stop) of one column chunk: from its dictionary page (when it has
+    one) or its first data page, ``total_compressed_size`` bytes (Parquet format spec)."""
+    start = column.data_page_offset
+    dictionary = column.dictionary_page_offset
+    if column.has_dictionary_page and dictionary is not None and 0 < dictionary < start:
+        start = dictionary
+    return start, start + column.total_compressed_size
+
+
+def row_group_spans(metadata: pq.FileMetaData, size: int) -> list[tuple[int, int, list]] | None:
+    """Per row group of a Parquet file of ``size`` bytes: its byte range (start, stop) and its
+    column chunks' ranges (schema order), when the column chunks tile the file from the leading
+    magic to the footer with no gap or overlap, so that every byte outside the footer belongs to
+    exactly one row group and one column chunk. None otherwise (e.g. a page index or bloom
+    filter between the row groups and the footer): such a file is checked whole."""
+    expected = 4  # b"PAR1"
+    groups = []
+    for g in range(metadata.num_row_groups):
+        group = metadata.row_group(g)
+        chunks = [_chunk_span(group.column(j)) for j in range(group.num_columns)]
+        start = expected
+        for lo, hi in sorted(chunks):
+            if lo != expected or hi < lo:
+                return None
+            expected = hi
+        groups.append((start, expected, chunks))
+    if expected != size - metadata.serialized_size - _FOOTER_TAIL:
+        return None
+    return groups
+
+
+def part_digests(path: Path) -> dict[str, Any]:
+    """Digests of the row file ``path`` for its manifest entry: ``group_sha256``, the SHA-256
+    of each row group's byte range, and ``column_sha256``, per column the SHA-256 of its column
+    chunks in row-group order. Empty when the row groups do not tile the file
+    (:func:`row_group_spans`): SQL then checks the file whole."""
+    metadata = pq.read_metadata(path)
+    spans = row_group_spans(metadata, path.stat().st_size)
+    names = [metadata.schema.column(j).path for j in range(metadata.num_columns)]
+    if spans is None or len(set(names)) != len(names):
+        return {}
+    columns = [hashlib.sha256() for _ in names]
+    groups = []
+    with open(path, "rb") as handle:
+        for _, _, chunks in spans:  # one column chunk in memory at a time
+            group = hashlib.sha256()
+            for j in sorted(range(len(chunks)), key=lambda j: chunks[j][0]):
+                handle.seek(chunks[j][0])
+                piece = handle.read(chunks[j][1] - chunks[j][0])
+                group.update(piece)
+                columns[j].update(piece)
+            groups.append(group.hexdigest())
+    return {"group_sha256": groups, "column_sha256": {n: d.hexdigest() for n, d in zip(names, columns)}}
 
 
 def _sha256_file(path: Path, chunk: int = 1 << 22) -> str:

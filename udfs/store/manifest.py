@@ -19,7 +19,7 @@ from typing import Any
 
 from ..errors import CorruptArchiveError, UnsupportedVersionError
 from . import layout
-from .integrity import check_listed_files, footer_sha256
+from .integrity import check_listed_files, footer_sha256, part_digests
 from .manifest_schema import DIGEST_FIELD, older_format_rules, validate
 
 __all__ = ["sha256_of", "file_entry", "write_manifest", "read_manifest", "check_files",
@@ -39,11 +39,15 @@ def sha256_of(path: Path, chunk: int = 1 << 20) -> str:
 
 def file_entry(directory: Path, name: str) -> dict[str, Any]:
     """The manifest's record of one file: name, size, SHA-256, and for Parquet files the
-    SHA-256 of the footer (checked on every open, where hashing a whole row file is not)."""
+    SHA-256 of the footer (checked on every open, where hashing a whole row file is not);
+    for row files also the SHA-256 of each row group and of each column's chunks
+    (``integrity.part_digests``: SQL checks only what a query reads)."""
     path = directory / name
     entry = {"name": name, "bytes": path.stat().st_size, "sha256": sha256_of(path)}
     if name.endswith(".parquet"):
         entry["footer_sha256"] = footer_sha256(path)
+    if name.startswith(layout.ROWS_PATTERN.split("{")[0]) and name.endswith(".parquet"):
+        entry.update(part_digests(path))
     return entry
 
 

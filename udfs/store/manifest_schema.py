@@ -27,7 +27,7 @@ from ..errors import CorruptArchiveError
 from . import layout
 
 __all__ = ["MANIFEST_SCHEMA", "DIGEST_FIELD", "MAX_ROWS", "MAX_COLUMNS", "validate",
-           "check_plain_name", "older_format_rules", "files_used"]
+           "check_plain_name", "older_format_rules", "sealed_by_groups", "files_used"]
 
 DIGEST_FIELD = "manifest_sha256"
 # Row positions must be exact in float64 and in JSON readers of every language (2^53 - 1,
@@ -199,7 +199,11 @@ MANIFEST_SCHEMA = Record(
         "row_parts": Seq(Record({"name": FileName(), "first_row": Int(), "rows": Int(1, MAX_ROWS)}),
                          min_len=1, max_len=10_000_000),
         "files": Seq(Record({"name": FileName(), "bytes": Int(0, MAX_FILE_BYTES), "sha256": Digest()},
-                            {"footer_sha256": Digest()}), min_len=1, max_len=10_000_000),
+                            {"footer_sha256": Digest(),
+                             # row files: per row group and per column (integrity.part_digests)
+                             "group_sha256": Seq(Digest(), max_len=MAX_ROWS),
+                             "column_sha256": Mapping(Digest())}),
+                     min_len=1, max_len=10_000_000),
         "errors": Record({}),
         DIGEST_FIELD: Digest(),
     },
@@ -246,6 +250,10 @@ def older_format_rules(manifest: dict[str, Any], path: Any) -> None:
     Format 1.0 archives written before manifests carried their own digest
     (``manifest_sha256``) and the Parquet footer digests of their row files are refused:
     without them an edited manifest cannot be told from a true one. Refuse with what to do.
+
+    Row files listed without row-group digests (``group_sha256`` and ``column_sha256``,
+    written since the SQL scan checks by row group) are read as before: SQL checks their
+    whole-file SHA-256 (:func:`sealed_by_groups` says which way a file is checked).
     """
     if DIGEST_FIELD not in manifest:
         raise CorruptArchiveError(
@@ -253,6 +261,13 @@ def older_format_rules(manifest: dict[str, Any], path: Any) -> None:
             "carried their own digest, or the entry was removed. It cannot be checked for edits; "
             "compress the source again."
         )
+
+
+def sealed_by_groups(entry: dict[str, Any]) -> bool:
+    """Whether the row file of this ``files`` entry carries row-group digests, so SQL may
+    check it by row group; without them (older archives, see :func:`older_format_rules`)
+    SQL checks the whole file."""
+    return "group_sha256" in entry and "column_sha256" in entry
 
 
 def validate(manifest: dict[str, Any], path: Any) -> None:

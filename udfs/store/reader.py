@@ -63,7 +63,6 @@ class ArchiveReader:
             raise CorruptArchiveError(f"{self.path} is a file, not an archive directory.")
         self.manifest = read_manifest(self.path)
         check_files(self.path, self.manifest, checksums=checksums)
-        self.seal = RowFileSeal(self.path, self.manifest)
         try:
             with self.version_files():
                 self._load()
@@ -72,6 +71,7 @@ class ArchiveReader:
             raise
         except (OSError, pa.ArrowException, KeyError, TypeError, ValueError, IndexError) as exc:
             raise CorruptArchiveError(f"{self.path} could not be read ({exc}); the archive is damaged.") from None
+        self.seal = RowFileSeal(self.path, self.manifest, self._metadata)
 
     @property
     def version(self) -> str:
@@ -84,6 +84,18 @@ class ArchiveReader:
         until a file's size, mtime or inode changes). For readers that do not check Parquet
         page checksums, such as DuckDB."""
         self.seal.check()
+
+    def verify_for_scan(self) -> bool:
+        """Before SQL reads the row files through ``integrity.sealed_rows_sql`` (row groups
+        checked as DuckDB reads them): check the small tables whole and the column chunks of
+        ``_rf_row`` and the key columns, which DuckDB may filter on before the row-group check
+        (cached like :meth:`verify_row_files`). Returns False, after checking the whole files,
+        for an archive whose row files carry no row-group digests (older archives)."""
+        if self.seal.by_groups:
+            self.seal.check_before_scan([layout.ROW_ID] + list(self.manifest.get("exact_columns", [])))
+            return True
+        self.seal.check()
+        return False
 
     def row_file(self, name: str) -> pq.ParquetFile:
         """A row file of this archive, opened with Parquet page checksum verification and the
