@@ -54,6 +54,7 @@ import pyarrow.parquet as pq
 
 from ..errors import CorruptArchiveError
 from . import layout
+from .sql_text import sql_literal
 from .manifest_schema import DIGEST_FIELD, check_plain_name, files_used, sealed_by_groups
 
 __all__ = ["PAGE_CHECKSUMS", "WRITE_OPTIONS", "footer_sha256", "verified_metadata", "check_listed_files",
@@ -424,9 +425,8 @@ def sealed_rows_sql(paths: list[Path], function: str, token: str) -> str:
     filter it cannot push into the Parquet scan (measured with DuckDB 2.0.1); filters it pushes
     into the scan (a column compared with constants) run before it, which is why
     :meth:`RowFileSeal.check_before_scan` checks the columns they may name."""
-    literal = "'" + token.replace("'", "''") + "'"
     return (f"(SELECT * FROM {read_parquet_sql(paths)} "
-            f"WHERE {function}({literal}, {layout.ROW_ID}))")
+            f"WHERE {function}({sql_literal(token)}, {layout.ROW_ID}))")
 
 
 def _hash_ranges(path: Path, ranges: list[tuple[int, int]], chunk: int = 1 << 22) -> str:
@@ -522,8 +522,5 @@ def read_parquet_sql(paths: list[Path]) -> str:
     file name it is given (``*``, ``?``, ``[...]``), so each absolute path is escaped
     (``glob.escape``: a metacharacter becomes a one-character class) and matches only itself:
     an archive under a folder named ``a[ab]`` must not read ``aa`` or ``ab``."""
-    literals = []
-    for p in paths:
-        text = glob.escape(str(Path(p).resolve()))
-        literals.append("'" + text.replace("'", "''") + "'")
+    literals = [sql_literal(glob.escape(str(Path(p).resolve()))) for p in paths]
     return f"read_parquet([{', '.join(literals)}])"
