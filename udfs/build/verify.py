@@ -107,6 +107,7 @@ class ExactCells:
     spilled: int = 0
     written: bool = False
     _writer: Any = field(default=None, repr=False)
+    _file: Any = field(default=None, repr=False)
 
     def _buffered(self) -> int:
         return int(sum(r.size for r in self.rows))
@@ -115,8 +116,10 @@ class ExactCells:
         if not self.rows:
             return
         table = self.table()
-        if self._writer is None:
-            self._writer = pq.ParquetWriter(self.spill_to, table.schema, compression="zstd")
+        if self._writer is None:  # spill_to: a path, or a callable opening a file object
+            where = self.spill_to() if callable(self.spill_to) else self.spill_to
+            self._file = None if isinstance(where, (str, Path)) else where
+            self._writer = pq.ParquetWriter(where, table.schema, compression="zstd")
         self._writer.write_table(table)
         self.spilled += table.num_rows
         self.written = True
@@ -130,6 +133,9 @@ class ExactCells:
             if self._writer is not None:
                 self._writer.close()
                 self._writer = None
+            if self._file is not None:  # pyarrow leaves a file object it was given open
+                self._file.close()
+                self._file = None
         return self
 
     def add(self, first: int, cells: np.ndarray, block: np.ndarray, mask: np.ndarray | None,
