@@ -12,6 +12,8 @@ from __future__ import annotations
 import io
 import json
 import logging
+import os
+import pickle
 
 import numpy as np
 import pyarrow as pa
@@ -147,11 +149,12 @@ def test_source_on_the_store_with_the_local_executor(store, tmp_path):
 
 
 def test_dask_compress_writes_to_the_store(store):
+    """Workers in processes of their own (what they send back must pickle: no open upload)."""
     distributed = pytest.importorskip("distributed")
     x = _table(4, rows=2000, width=8)
     source = _upload_parquet(store, x, "source-dask", files=3)
     url = f"s3://{BUCKET}/dask.rfa"
-    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=False,
+    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
                                   dashboard_address=None) as cluster, distributed.Client(cluster) as client:
         archive = rankfold.compress(source, url, rank=3, executor=client, storage_options=store["options"])
     assert store["fs"].exists(f"{BUCKET}/dask.rfa/manifest.json")
@@ -226,7 +229,7 @@ def test_dask_partitions_go_straight_to_the_store(store, tmp_path, monkeypatch):
     finally:
         client.close()
         cluster.close()
-    local_files = [str(t) for t in targets if isinstance(t, (str, bytes, __import__("os").PathLike))]
+    local_files = [str(t) for t in targets if isinstance(t, (str, bytes, os.PathLike))]
     streamed = [t for t in targets if isinstance(t, remote.StagedUpload)]
     assert not [f for f in local_files if f.rsplit("/", 1)[-1].startswith(("rows-", ".part-", ".cells-"))]
     assert sorted(u.path.rsplit("/", 1)[1] for u in streamed) == [
@@ -267,6 +270,7 @@ def test_staged_upload_measures_what_file_entry_measures(store, tmp_path, monkey
         store["fs"].get_file(staging.path("f.parquet"), str(tmp_path / "f.parquet"))
         expected = file_entry(tmp_path, "f.parquet")
         assert upload.record == {k: expected[k] for k in ("bytes", "sha256", "footer_sha256")}
+        assert pickle.loads(pickle.dumps(upload)).record == upload.record  # sent back by workers
 
 
 def _staged_and_final_objects(store, prefix: str) -> list[str]:

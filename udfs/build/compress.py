@@ -143,6 +143,7 @@ def _verify_task(blocks, part, temp, part_rows, names, passthrough, mixing, anch
     if on_store:
         records = {handle.path.rsplit("/", 1)[1]: handle.record for handle in uploads}
         parts = [dict(p, record=records[p["name"]]) for p in parts]
+        result.cells.spill_to = None  # the opener holds the uploads: not sent back to the client
     return result, parts, sums.records
 
 

@@ -95,7 +95,8 @@ SPILL_CELLS = 1 << 18
 class ExactCells:
     """Cells stored exactly outside basis columns and anchor rows.
 
-    With ``spill_to`` (a file path), cells go to that Parquet file every ``SPILL_CELLS``
+    With ``spill_to`` (a file path, or a callable that opens a binary file object, such as
+    an upload to object storage), cells go to that Parquet file every ``SPILL_CELLS``
     cells and at ``finish()``, so memory does not grow with the number of such cells."""
 
     rows: list[np.ndarray] = field(default_factory=list)

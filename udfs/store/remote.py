@@ -250,9 +250,10 @@ class StagedUpload:
             return
         self.closed = True
         self._file.close()
+        self._file = None  # a closed upload keeps only its figures (and pickles)
         footer = self._footer_sha256() if self.path.endswith(".parquet") else None
         self.record = {"bytes": self.size, "sha256": self._sha.hexdigest(), "footer_sha256": footer}
-        self._tail = bytearray()
+        self._sha, self._tail = None, bytearray()
 
     def discard(self) -> None:
         if not self.closed:
@@ -260,7 +261,7 @@ class StagedUpload:
             discard = getattr(self._file, "discard", None)
             if discard is not None:
                 discard()
-            self._tail = bytearray()
+            self._file, self._sha, self._tail = None, None, bytearray()
 
     def _footer_sha256(self) -> str:
         tail = bytes(self._tail)
