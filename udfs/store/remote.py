@@ -16,7 +16,9 @@ archive between a local directory and a store, through fsspec file systems:
 What a store guarantees here (no atomic rename on object storage): the manifest is the only
 pointer to an archive. A reader that finds no manifest finds no archive; a compress that
 fails before its last upload leaves data files without a manifest, which nothing reads (and
-which compress refuses to write over: remove the prefix, or choose another). An existing
+which compress refuses to write over: remove the prefix, or choose another). A Dask compress
+(``build/store_writer.py``) removes, on a failure it sees, the objects it wrote (checked to
+be still its own); one killed outright leaves them, as above. An existing
 archive is never replaced on a store (``overwrite=True`` is refused there): without an
 atomic rename, replacing it would expose a mix of old and new files. A fetched file whose
 size differs from the manifest's entry is refused (and with ``checksums=True`` the reader
