@@ -66,8 +66,15 @@ elif executor == "table":
     # the caller bounds DuckDB's buffer pool on its own connection (memory_limit, threads)
     con = duckdb.connect(source, read_only=True,
                          config={"memory_limit": sys.argv[5], "threads": 1})
+    cap = sys.argv[6] if len(sys.argv) > 6 else "none"
     t = time.perf_counter()
-    archive = rankfold.compress("readings", target, connection=con, rank=8, sketch_rows=sketch_rows)
+    if cap != "none":  # the caller lowers the instance-wide limit around the call only
+        con.execute("SET memory_limit = ?", [cap])
+    try:
+        archive = rankfold.compress("readings", target, connection=con, rank=8, sketch_rows=sketch_rows)
+    finally:
+        if cap != "none":
+            con.execute("SET memory_limit = ?", [sys.argv[5]])
     out["seconds"] = time.perf_counter() - t
     out["relative_frobenius"] = archive.errors["relative_frobenius"]
     out["sketch_rows_read"] = archive.manifest["sketch"]["rows_read"]
@@ -107,12 +114,13 @@ def generate(folder: Path, rows: int, width: int) -> None:
 
 
 TABLE_MEMORY_LIMIT = "250MB"
+TABLE_CAP = "none"  # --table-cap: memory_limit set on the open connection around compress only
 
 
 def child(source: Path, target: Path, executor: str, sketch_rows: str = "auto") -> tuple[float, float, dict]:
     """(seconds, peak RSS in MB, everything the child printed) of one run in a fresh subprocess."""
     done = subprocess.run([sys.executable, "-c", CHILD, str(source), str(target), executor, sketch_rows,
-                           TABLE_MEMORY_LIMIT], capture_output=True, text=True, check=True)
+                           TABLE_MEMORY_LIMIT, TABLE_CAP], capture_output=True, text=True, check=True)
     out = json.loads(done.stdout.strip().splitlines()[-1])
     return out["seconds"], out["peak_rss_mb"], out
 
@@ -148,7 +156,8 @@ def memory_only(args) -> None:
     kinds = ["local", "target"] + (["table"] if args.duckdb_table else [])
     peaks: dict[str, list[float]] = {k: [] for k in kinds}
     print(f"{'rows':>10} " + " ".join(f"{k + ' MB':>12} {k + ' s':>9}" for k in kinds)
-          + f"   (table: DuckDB file database, memory_limit {TABLE_MEMORY_LIMIT}, 1 thread)")
+          + f"   (table: DuckDB file database, memory_limit {TABLE_MEMORY_LIMIT}, 1 thread"
+          + (f"; {TABLE_CAP} set around compress)" if TABLE_CAP != "none" else ")"))
     for rows in sorted(args.rows):
         data = args.out / f"data-{rows}"
         generate(data, rows, args.width)
@@ -182,7 +191,7 @@ def memory_only(args) -> None:
 
 
 def main() -> None:
-    global TABLE_MEMORY_LIMIT  # the child's table connection reads it
+    global TABLE_MEMORY_LIMIT, TABLE_CAP  # the child's table connection reads them
     parser = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     parser.add_argument("--rows", type=int, nargs="+", default=[1_000_000, 4_000_000, 16_000_000])
     parser.add_argument("--width", type=int, default=100)
@@ -192,6 +201,9 @@ def main() -> None:
                         help="also compress the data as a table of a DuckDB file database")
     parser.add_argument("--table-memory-limit", default=TABLE_MEMORY_LIMIT,
                         help="DuckDB memory_limit of the table's connection (default %(default)s)")
+    parser.add_argument("--table-cap", default=TABLE_CAP,
+                        help="memory_limit the caller sets on the open table connection just around "
+                             "compress, restored after (default %(default)s: none)")
     parser.add_argument("--memory-only", action="store_true",
                         help="one compress per size (rank 8, an error target, and with --duckdb-table "
                              "the table), peak RSS only: no scans, no Dask, no full-sketch run")
@@ -199,6 +211,7 @@ def main() -> None:
                         help="scan and compress runs per size, alternated (the best of each is compared)")
     args = parser.parse_args()
     TABLE_MEMORY_LIMIT = args.table_memory_limit
+    TABLE_CAP = args.table_cap
     args.out.mkdir(parents=True, exist_ok=True)
     if args.memory_only:
         return memory_only(args)

@@ -96,8 +96,14 @@ class RowPartWriter:
 
     _PENDING = 2
 
-    def __init__(self, directory: Path, part_rows: int = PART_ROWS, name_of=None):
-        self.directory = Path(directory)
+    def __init__(self, directory: Path | None, part_rows: int = PART_ROWS, name_of=None,
+                 open_file=None):
+        """``open_file(name)``, when given, returns the binary file object each file is
+        written to (a ``remote.StagedUpload``: row files streamed to object storage), closed
+        here after its last row group; ``directory`` is then unused."""
+        self.directory = Path(directory) if directory is not None else None
+        self.open_file = open_file
+        self._file = None
         self.part_rows = part_rows
         self.name_of = name_of or layout.ROWS_PATTERN.format
         self.parts: list[dict[str, Any]] = []
@@ -128,8 +134,12 @@ class RowPartWriter:
         if new_file is not None:
             self._close_file()
             dictionary, encodings = self._encodings
+            if self.open_file is not None:
+                where = self._file = self.open_file(new_file)
+            else:
+                where = self.directory / new_file
             self._writer = pq.ParquetWriter(
-                self.directory / new_file, table.schema, compression="zstd",
+                where, table.schema, compression="zstd",
                 compression_level=ZSTD_LEVEL, use_dictionary=dictionary,
                 column_encoding=encodings or None, **WRITE_OPTIONS)
         self._writer.write_table(table, row_group_size=layout.ROW_GROUP_ROWS)
@@ -138,6 +148,9 @@ class RowPartWriter:
         if self._writer is not None:
             self._writer.close()
             self._writer = None
+        if self._file is not None:  # pyarrow leaves a file object it was given open
+            self._file.close()
+            self._file = None
 
     def _choose_encodings(self, table: pa.Table) -> tuple[list[str], dict[str, str]]:
         dictionary, encodings = [], {layout.ROW_ID: "DELTA_BINARY_PACKED"}  # consecutive ids
@@ -172,15 +185,19 @@ CELLS_SCHEMA = pa.schema([(layout.ROW_ID, pa.int64()), (layout.COLUMN_ID, pa.int
 
 
 def concat_parquet(directory: Path, sources: list[str], target: str, schema: pa.Schema,
-                   *, remove: bool = True, extra: list[pa.Table] = ()) -> None:
+                   *, remove: bool = True, extra: list[pa.Table] = (), open_source=None) -> None:
     """Stream the Parquet files ``sources`` (in order), then the tables ``extra``, into one
-    file ``target`` (memory: one row group at a time); the sources are removed after."""
+    file ``target`` (memory: one row group at a time); the sources are removed after.
+    ``open_source(name)``, when given, opens a source elsewhere (a staged object on a
+    store: ``remote.Staging.open_parquet``; pass ``remove=False``, the staging is removed
+    as a whole)."""
     with pq.ParquetWriter(directory / target, schema, compression="zstd",
                           compression_level=ZSTD_LEVEL, **WRITE_OPTIONS) as out:
         for name in sources:
-            handle = pq.ParquetFile(directory / name)
-            for g in range(handle.metadata.num_row_groups):
-                out.write_table(handle.read_row_group(g).cast(schema))
+            with (open_source(name) if open_source is not None else open(directory / name, "rb")) as raw:
+                handle = pq.ParquetFile(raw)
+                for g in range(handle.metadata.num_row_groups):
+                    out.write_table(handle.read_row_group(g).cast(schema))
         for table in extra:
             out.write_table(table.cast(schema))
         if not sources and not extra:
@@ -225,6 +242,22 @@ class ArchiveWriter:
     def close_rows(self) -> None:
         """Finish the row files (call before their sizes are read)."""
         self._rows.close()
+
+    @property
+    def worker_target(self) -> Path:
+        """Where the verify pass's partitions write their files: this temporary directory."""
+        return self.temp
+
+    def row_files(self) -> tuple[list[str], Any]:
+        """Paths of the row files written so far, and their file system (None: local)."""
+        return [str(self.temp / p["name"]) for p in self.parts], None
+
+    def size_of(self, name: str) -> int:
+        return (self.temp / name).stat().st_size
+
+    def concat_cells(self, sources: list[str], extra: list[pa.Table]) -> None:
+        """``cells.parquet``: the partitions' exact-cell files in order, then ``extra``."""
+        concat_parquet(self.temp, sources, layout.CELLS, CELLS_SCHEMA, extra=extra)
 
     # -- small tables ------------------------------------------------------------------------
     def write_table(self, name: str, table: pa.Table, *, factor_columns: list[str] = ()) -> None:

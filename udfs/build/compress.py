@@ -36,7 +36,7 @@ from ..store.aggregate import BlockSums
 from ..store.arithmetic import round_up, trim_mantissa
 from . import link as _link
 from ..factor.sketch import GramSketch, RowSketch
-from .commit import CELLS_SCHEMA, ArchiveWriter, RowPartWriter, concat_parquet, prepare_target
+from .commit import ArchiveWriter, RowPartWriter, prepare_target
 from .executors import make_executor
 from .keys import check_unique_key
 from .options import (AUTO_SKETCH_ROWS, AUTO_SKETCH_ROWS_PER_COLUMN, DEFAULT_RANK_CAP_DIVISOR,
@@ -103,20 +103,48 @@ def _verify_task(blocks, part, temp, part_rows, names, passthrough, mixing, anch
                  score_right, scale, coding, distributed, profile_columns, writer=None):
     """Verify one partition: row files (its own names when distributed), exact cells in a
     file of its own, the ledger and the per row-group sums (and with ``profile_columns``,
-    the column statistics)."""
+    the column statistics).
+
+    ``temp`` is a local directory, or a ``remote.Staging`` prefix on a store: then every
+    file is streamed there (``remote.StagedUpload``) and each row part carries the
+    ``record`` (size, SHA-256, footer SHA-256) its upload measured."""
+    cells_name = f".cells-{part.index:05d}.parquet"
+    uploads: list[remote.StagedUpload] = []
+
+    def upload(name: str) -> remote.StagedUpload:
+        uploads.append(temp.open(name))
+        return uploads[-1]
+
+    on_store = isinstance(temp, remote.Staging)
     if writer is None:
-        writer = RowPartWriter(Path(temp), part_rows,
-                               lambda k: f".part-{part.index:05d}-{k:04d}.parquet")
+        name_of = lambda k: f".part-{part.index:05d}-{k:04d}.parquet"  # noqa: E731
+        writer = (RowPartWriter(None, part_rows, name_of, open_file=upload) if on_store
+                  else RowPartWriter(Path(temp), part_rows, name_of))
     sums = BlockSums(len(names), mixing.weights.shape[0], mixing.fill)
-    result = verify_pass(blocks, names, passthrough, mixing, anchors, transform, score_right,
-                         writer, scale, coding, block_sums=sums,
-                         cells_file=Path(temp) / f".cells-{part.index:05d}.parquet",
-                         profile_columns=profile_columns)
-    if distributed:
-        writer.close()
-    else:
-        writer.close_rows()  # the files are complete before their sizes are read
-    return result, (list(writer.parts) if distributed else None), sums.records
+    try:
+        result = verify_pass(blocks, names, passthrough, mixing, anchors, transform, score_right,
+                             writer, scale, coding, block_sums=sums,
+                             cells_file=(lambda: upload(cells_name)) if on_store else Path(temp) / cells_name,
+                             profile_columns=profile_columns)
+        if distributed:
+            writer.close()
+        else:
+            writer.close_rows()  # the files are complete before their sizes are read
+    except BaseException:
+        if on_store:  # abandon unfinished uploads (the client removes finished ones)
+            try:
+                writer.close()
+            except Exception:  # noqa: BLE001 - the error being handled is the one to report
+                pass
+            for handle in uploads:
+                handle.discard()
+        raise
+    parts = list(writer.parts) if distributed else None
+    if on_store:
+        records = {handle.path.rsplit("/", 1)[1]: handle.record for handle in uploads}
+        parts = [dict(p, record=records[p["name"]]) for p in parts]
+        result.cells.spill_to = None  # the opener holds the uploads: not sent back to the client
+    return result, parts, sums.records
 
 
 class _Passes:
@@ -171,7 +199,7 @@ def compress(source: Any, path: str | Path, *, rank: int | None = None, seed: in
     See ``rankfold.compress`` for the user-facing documentation.
     """
     opts = CompressOptions.from_call(rank, seed, options)
-    if remote.is_url(path):  # object storage: built in a local staging directory, then published
+    if remote.is_url(path):  # object storage (see _compress_to_store)
         return _compress_to_store(source, str(path), opts)
     target = prepare_target(path, opts.overwrite)
     return _compress_at(source, target, opts)
@@ -183,20 +211,42 @@ def _compress_at(source: Any, target: Path, opts: CompressOptions) -> Path:
         executor = make_executor(opts.executor, source, opts.connection, opts.batch_rows,
                                  opts.progress, opts.storage_options)
         try:
-            try:
-                return _compress(executor, target, opts)
-            except _SampleMissed:  # rare: the sample hid what the sketch must see; read every row
-                return _compress(executor, target, _all_rows(opts))
+            return _compress_with(executor, lambda: ArchiveWriter(target, opts.overwrite), opts)
         finally:
             executor.close()
 
 
+def _compress_with(executor, new_writer, opts: CompressOptions):
+    """``_compress``, and once more reading every row when the sketch's sample missed."""
+    try:
+        return _compress(executor, new_writer, opts)
+    except _SampleMissed:  # rare: the sample hid what the sketch must see; read every row
+        return _compress(executor, new_writer, _all_rows(opts))
+
+
+def _is_local_executor(executor: Any) -> bool:
+    return executor is None or (isinstance(executor, str) and executor == "local")
+
+
 def _compress_to_store(source: Any, url: str, opts: CompressOptions) -> str:
-    """Compress into a private local staging directory, then upload it to ``url`` with the
-    manifest last (``store.remote``: the manifest is the commit point on a store). The Dask
-    executor's workers write their row files into the staging directory too, so they must
-    share the client's disk (a LocalCluster does)."""
+    """Compress to a store URL; the manifest, uploaded last, is the commit point.
+
+    * Distributed executors (Dask): the workers stream their row files and exact-cell files
+      straight to a private staging prefix on the store; the client moves them into place,
+      uploads the small tables and the manifest last (``store_writer.StoreArchiveWriter``).
+      The workers need the store, not the client's disk.
+    * In process: the archive is built in a private local staging directory (the local
+      commit protocol), then uploaded, data files first, manifest last."""
     store = remote.RemoteTarget(url, opts.storage_options, opts.overwrite)  # checked before any work
+    if not _is_local_executor(opts.executor):
+        from .store_writer import StoreArchiveWriter
+
+        executor = make_executor(opts.executor, source, opts.connection, opts.batch_rows,
+                                 opts.progress, opts.storage_options)
+        try:
+            return _compress_with(executor, lambda: StoreArchiveWriter(store), opts)
+        finally:
+            executor.close()
     staging = Path(tempfile.mkdtemp(prefix="rankfold-stage-"))
     try:
         built = _compress_at(source, prepare_target(staging / "archive", False), opts)
@@ -346,7 +396,9 @@ class _Build:
     reason: str
 
 
-def _compress(src, target: Path, opts: CompressOptions) -> Path:
+def _compress(src, new_writer, opts: CompressOptions) -> Path | str:
+    """Every pass and attempt of one compress; ``new_writer()`` gives each attempt its
+    writer (``ArchiveWriter`` or ``StoreArchiveWriter``)."""
     numeric, passthrough = _plan_columns(src.schema, opts)
     if not numeric:
         raise NoNumericColumnsError(
@@ -393,7 +445,7 @@ def _compress(src, target: Path, opts: CompressOptions) -> Path:
     goal.serving(src.schema, numeric, profile)
     build = _first_build(opts, goal, rows, width, sketch, profile, transform, sample, numeric, passthrough)
     for attempt in range(_MAX_ATTEMPTS):
-        written = _write(src, target, opts, numeric, passthrough, rows, profile, fingerprint,
+        written = _write(src, new_writer, opts, numeric, passthrough, rows, profile, fingerprint,
                          transform, sketch, build, passes, read)
         verdict = goal.verdict(written, transform, sketch)
         if verdict is None or attempt == _MAX_ATTEMPTS - 1 or build.n_columns >= width:
@@ -613,12 +665,12 @@ class _Written:
 
     def __init__(self, writer, result, manifest, files):
         self.writer, self.result, self.manifest, self.files = writer, result, manifest, files
-        self.bytes = sum((writer.temp / f).stat().st_size for f in files)
+        self.bytes = sum(writer.size_of(f) for f in files)
 
     def abort(self) -> None:
         self.writer.abort()
 
-    def commit(self, goal: _Goal, attempts: int) -> Path:
+    def commit(self, goal: _Goal, attempts: int) -> Path | str:
         self.manifest["targets"] = goal.recorded(self.manifest["numeric_columns"])
         self.manifest["achieved"] = {
             "bytes": None,  # filled from the file list below
@@ -635,7 +687,7 @@ class _Written:
         return path
 
 
-def _write(src, target, opts, numeric, passthrough, rows, profile, fingerprint, transform,
+def _write(src, new_writer, opts, numeric, passthrough, rows, profile, fingerprint, transform,
            sketch, build: _Build, passes: _Passes, read: _SketchRows) -> _Written:
     """One attempt: fit from the sketch, then the verify pass writes it to a temporary
     directory. ``profile`` is the profile pass's (of a sample when ``read.sampled``: then
@@ -676,14 +728,14 @@ def _write(src, target, opts, numeric, passthrough, rows, profile, fingerprint, 
     coding = _coding(plan, mixing, build)
     if coding is not None and np.isfinite(coding.tolerance).any():
         mixing = _trim_factors(mixing, coding.tolerance, profile)
-    writer = ArchiveWriter(target, opts.overwrite)
+    writer = new_writer()
     sums = BlockSums(width, mixing.weights.shape[0], mixing.fill)
     scale = ledger_scale(profile)  # units of the row ledger (of the sample's spread, if sampled)
     try:
         distributed = passes.ex.distributed
         parts = passes.ex.run(
             "verify", _verify_task, numeric, passthrough, rows,
-            (writer.temp, writer.part_rows, numeric, passthrough, mixing, anchors, transform,
+            (writer.worker_target, writer.part_rows, numeric, passthrough, mixing, anchors, transform,
              score_right, scale, coding, distributed, read.sampled)
             + (() if distributed else (writer,)))
         result = VerifyResult.merge([p[0] for p in parts], width)
@@ -693,8 +745,8 @@ def _write(src, target, opts, numeric, passthrough, rows, profile, fingerprint, 
             sums.records.extend(p[2])
         cell_files = [f".cells-{k:05d}.parquet" for k, p in enumerate(parts) if p[0].cells.written]
         if opts.key:
-            check_unique_key([writer.temp / part["name"] for part in writer.parts], opts.key,
-                             src.description)
+            files, filesystem = writer.row_files()
+            check_unique_key(files, opts.key, src.description, filesystem=filesystem)
         if read.sampled:
             profile = _whole_table_profile(src, numeric, rows, result)
         elif not result.fingerprint.matches(fingerprint):
@@ -868,8 +920,7 @@ def _write_small_tables(writer, schema, numeric, profile, scale, transform, mixi
         anchor_cols[name] = pa.array(anchors.values[:, j], pa.float64(), mask=anchors.nulls[:, j])
     writer.write_table(layout.ANCHORS, pa.table(anchor_cols))
     # the partitions' exact cells, streamed into one file in row order
-    concat_parquet(writer.temp, list(cell_files), layout.CELLS, CELLS_SCHEMA,
-                   extra=[result.cells.table()] if result.cells.rows else [])
+    writer.concat_cells(list(cell_files), [result.cells.table()] if result.cells.rows else [])
     return [layout.COLUMNS, layout.ANCHORS, layout.CELLS]
 
 

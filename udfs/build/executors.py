@@ -402,6 +402,13 @@ class DaskExecutor(Executor):
                 i = index[future.key]
                 results[i] = future.result()
                 report.advance(partitions[i].rows or 0)
+        except Exception:
+            # let every task settle before the caller cleans up: a task still running could
+            # write a file (e.g. to a store's staging prefix) after its files were removed
+            from distributed import wait
+
+            wait(futures)
+            raise
         except BaseException:
             for future in futures:
                 future.cancel()

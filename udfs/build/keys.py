@@ -19,12 +19,13 @@ from ..store.sql_text import quote_identifier
 __all__ = ["check_unique_key"]
 
 
-def check_unique_key(files: list[Path], key: str, description: str) -> None:
+def check_unique_key(files: list[Path], key: str, description: str, *, filesystem=None) -> None:
     """Raise InvalidInputError naming a repeated value when ``key`` is not unique over the
-    Parquet ``files`` (NULL keys are not counted: they name no row)."""
+    Parquet ``files`` (NULL keys are not counted: they name no row); ``filesystem``: an
+    fsspec or pyarrow file system holding them (None: local files)."""
     if not files:
         return
-    dataset = ds.dataset([str(f) for f in files], format="parquet")
+    dataset = ds.dataset([str(f) for f in files], format="parquet", filesystem=filesystem)
     con = duckdb.connect()
     try:
         con.register("rankfold_key_rows", dataset)

@@ -95,7 +95,8 @@ SPILL_CELLS = 1 << 18
 class ExactCells:
     """Cells stored exactly outside basis columns and anchor rows.
 
-    With ``spill_to`` (a file path), cells go to that Parquet file every ``SPILL_CELLS``
+    With ``spill_to`` (a file path, or a callable that opens a binary file object, such as
+    an upload to object storage), cells go to that Parquet file every ``SPILL_CELLS``
     cells and at ``finish()``, so memory does not grow with the number of such cells."""
 
     rows: list[np.ndarray] = field(default_factory=list)
@@ -107,6 +108,7 @@ class ExactCells:
     spilled: int = 0
     written: bool = False
     _writer: Any = field(default=None, repr=False)
+    _file: Any = field(default=None, repr=False)
 
     def _buffered(self) -> int:
         return int(sum(r.size for r in self.rows))
@@ -115,8 +117,10 @@ class ExactCells:
         if not self.rows:
             return
         table = self.table()
-        if self._writer is None:
-            self._writer = pq.ParquetWriter(self.spill_to, table.schema, compression="zstd")
+        if self._writer is None:  # spill_to: a path, or a callable opening a file object
+            where = self.spill_to() if callable(self.spill_to) else self.spill_to
+            self._file = None if isinstance(where, (str, Path)) else where
+            self._writer = pq.ParquetWriter(where, table.schema, compression="zstd")
         self._writer.write_table(table)
         self.spilled += table.num_rows
         self.written = True
@@ -130,6 +134,9 @@ class ExactCells:
             if self._writer is not None:
                 self._writer.close()
                 self._writer = None
+            if self._file is not None:  # pyarrow leaves a file object it was given open
+                self._file.close()
+                self._file = None
         return self
 
     def add(self, first: int, cells: np.ndarray, block: np.ndarray, mask: np.ndarray | None,

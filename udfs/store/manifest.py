@@ -22,7 +22,7 @@ from . import layout
 from .integrity import check_listed_files, footer_sha256, part_digests
 from .manifest_schema import DIGEST_FIELD, older_format_rules, validate
 
-__all__ = ["sha256_of", "file_entry", "write_manifest", "read_manifest", "check_files",
+__all__ = ["sha256_of", "file_entry", "entry_of", "write_manifest", "read_manifest", "check_files",
            "manifest_digest", "DIGEST_FIELD"]
 
 REQUIRED_KEYS = ("format", "format_version", "writer", "archive_id", "shape", "schema",
@@ -43,11 +43,21 @@ def file_entry(directory: Path, name: str) -> dict[str, Any]:
     for row files also the SHA-256 of each row group and of each column's chunks
     (``integrity.part_digests``: SQL checks only what a query reads)."""
     path = directory / name
-    entry = {"name": name, "bytes": path.stat().st_size, "sha256": sha256_of(path)}
-    if name.endswith(".parquet"):
-        entry["footer_sha256"] = footer_sha256(path)
+    entry = entry_of(name, path.stat().st_size, sha256_of(path),
+                     footer_sha256(path) if name.endswith(".parquet") else None)
     if name.startswith(layout.ROWS_PATTERN.split("{")[0]) and name.endswith(".parquet"):
         entry.update(part_digests(path))
+    return entry
+
+
+def entry_of(name: str, size: int, sha256: str, footer: str | None = None) -> dict[str, Any]:
+    """The manifest's record of one file from figures measured elsewhere (a file streamed to
+    object storage, hashed as it was written: ``remote.StagedUpload``); ``footer`` is the
+    SHA-256 of a Parquet file's footer (``integrity.footer_sha256``), None for other files.
+    Such a row file has no per-row-group digests: SQL checks it whole (``older_format_rules``)."""
+    entry = {"name": name, "bytes": int(size), "sha256": sha256}
+    if footer is not None:
+        entry["footer_sha256"] = footer
     return entry
 
 
