@@ -31,16 +31,15 @@ from typing import Any
 
 import numpy as np
 import pyarrow as pa
-import pyarrow.parquet as pq
 
 from ..errors import ArchiveNotFoundError, EmptySourceError, InvalidInputError
 from ..store import layout, versions
 from ..store.aggregate import BLOCKS, BlockSums
 from ..store.arithmetic import round_up
-from ..store.integrity import WRITE_OPTIONS, read_small_table
+from ..store.integrity import read_small_table
 from ..store.manifest import file_entry, write_manifest
 from ..store.reader import ArchiveReader
-from .commit import CELLS_SCHEMA, PART_ROWS, ZSTD_LEVEL, RowPartWriter, concat_parquet
+from .commit import CELLS_SCHEMA, PART_ROWS, RowPartWriter, concat_parquet, write_small_table
 from .executors import one_blas_thread
 from .keys import check_unique_key
 from .link import Mixing
@@ -86,13 +85,6 @@ def _coding(reader: ArchiveReader) -> Coding:
         float32 = first in schema.names and schema.field(first).type == pa.float32()
     return Coding(reader.tolerance.copy(), reader.residual_step.copy(), reader.basis_step.copy(),
                   float32_scores=float32)
-
-
-def _write_small(directory: Path, name: str, table: pa.Table, factor_columns=()) -> None:
-    encodings = {c: "BYTE_STREAM_SPLIT" for c in factor_columns}
-    dictionary = [f.name for f in table.schema if f.name not in encodings]
-    pq.write_table(table, directory / name, compression="zstd", compression_level=ZSTD_LEVEL,
-                   use_dictionary=dictionary, column_encoding=encodings or None, **WRITE_OPTIONS)
 
 
 def _stream(src, names, passthrough, batch_rows, first_row, transform, state, report):
@@ -210,7 +202,7 @@ def _write_version(reader: ArchiveReader, src, batch_rows, progress, temp: Path)
     if old_blocks in listed:
         blocks_name = versions.versioned_name(f"blocks.v{version}.parquet", token)
         blocks = pa.concat_tables([read_small_table(directory, manifest, old_blocks), sums.table()])
-        _write_small(temp, blocks_name, blocks)
+        write_small_table(temp / blocks_name, blocks)
         tables[BLOCKS] = blocks_name
         new_files.append(blocks_name)
     # columns: merged ledger and statistics
@@ -236,7 +228,7 @@ def _write_version(reader: ArchiveReader, src, batch_rows, progress, temp: Path)
         i = columns.schema.get_field_index(name)
         columns = columns.set_column(i, name, pa.array(values, columns.schema.field(name).type))
     columns_name = versions.versioned_name(f"columns.v{version}.parquet", token)
-    _write_small(temp, columns_name, columns, factor_columns=["shift", "scale", "offset"])
+    write_small_table(temp / columns_name, columns, factor_columns=["shift", "scale", "offset"])
     tables[layout.COLUMNS] = columns_name
     new_files.append(columns_name)
     # the manifest of the new version

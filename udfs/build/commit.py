@@ -24,7 +24,7 @@ from ..store.integrity import WRITE_OPTIONS
 from ..store.manifest import file_entry, write_manifest
 
 __all__ = ["prepare_target", "ArchiveWriter", "RowPartWriter", "PART_ROWS", "concat_parquet",
-           "CELLS_SCHEMA"]
+           "CELLS_SCHEMA", "write_small_table"]
 
 ZSTD_LEVEL = 3
 
@@ -207,6 +207,16 @@ def concat_parquet(directory: Path, sources: list[str], target: str, schema: pa.
             (directory / name).unlink()
 
 
+def write_small_table(path: Path, table: pa.Table, factor_columns=()) -> None:
+    """Write a small table of an archive (columns, anchors, blocks) to ``path``: zstd, page
+    checksums; ``factor_columns`` are full-precision floats stored with BYTE_STREAM_SPLIT and
+    no dictionary (measured -8% size for such data), the other columns with a dictionary."""
+    encodings = {c: "BYTE_STREAM_SPLIT" for c in factor_columns}
+    dictionary = [f.name for f in table.schema if f.name not in encodings] if encodings else True
+    pq.write_table(table, path, compression="zstd", compression_level=ZSTD_LEVEL,
+                   use_dictionary=dictionary, column_encoding=encodings or None, **WRITE_OPTIONS)
+
+
 class ArchiveWriter:
     """Writes one archive into a temporary directory; ``commit`` moves it into place."""
 
@@ -261,13 +271,8 @@ class ArchiveWriter:
 
     # -- small tables ------------------------------------------------------------------------
     def write_table(self, name: str, table: pa.Table, *, factor_columns: list[str] = ()) -> None:
-        """Write a small table; ``factor_columns`` are full-precision floats stored with
-        BYTE_STREAM_SPLIT and no dictionary (measured -8% size for such data)."""
-        encodings = {c: "BYTE_STREAM_SPLIT" for c in factor_columns}
-        dictionary = [f.name for f in table.schema if f.name not in encodings] if encodings else True
-        pq.write_table(table, self.temp / name, compression="zstd",
-                       compression_level=ZSTD_LEVEL, use_dictionary=dictionary,
-                       column_encoding=encodings or None, **WRITE_OPTIONS)
+        """Write a small table (see :func:`write_small_table`)."""
+        write_small_table(self.temp / name, table, factor_columns)
 
     # -- finish ----------------------------------------------------------------------------
     def commit(self, manifest: dict[str, Any], file_names: list[str]) -> Path:

@@ -32,14 +32,12 @@ from pathlib import Path
 from typing import Any
 
 import pyarrow as pa
-import pyarrow.parquet as pq
 
 from ..errors import ArchiveExistsError
 from ..store import layout
-from ..store.integrity import WRITE_OPTIONS
 from ..store.manifest import entry_of, file_entry, write_manifest
 from ..store.remote import RemoteTarget, Staging
-from .commit import CELLS_SCHEMA, PART_ROWS, ZSTD_LEVEL, concat_parquet
+from .commit import CELLS_SCHEMA, PART_ROWS, concat_parquet, write_small_table
 
 __all__ = ["StoreArchiveWriter"]
 
@@ -98,12 +96,8 @@ class StoreArchiveWriter:
                        open_source=self.staging.open_parquet)
 
     def write_table(self, name: str, table: pa.Table, *, factor_columns: list[str] = ()) -> None:
-        """A small table, as ``ArchiveWriter.write_table`` writes it."""
-        encodings = {c: "BYTE_STREAM_SPLIT" for c in factor_columns}
-        dictionary = [f.name for f in table.schema if f.name not in encodings] if encodings else True
-        pq.write_table(table, self.temp / name, compression="zstd",
-                       compression_level=ZSTD_LEVEL, use_dictionary=dictionary,
-                       column_encoding=encodings or None, **WRITE_OPTIONS)
+        """A small table, as ``ArchiveWriter.write_table`` writes it (``write_small_table``)."""
+        write_small_table(self.temp / name, table, factor_columns)
 
     def commit(self, manifest: dict[str, Any], file_names: list[str]) -> str:
         """Move the row files into place, upload the small tables, then the manifest (the
