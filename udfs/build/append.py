@@ -243,7 +243,8 @@ def _write_version(reader: ArchiveReader, src, batch_rows, progress, temp: Path)
                             state["z_norm2"])
     new["drift"] = _drift(manifest, result, transform, state["z_norm2"], width)
     new["files"] = [f for f in manifest["files"] if f["name"] not in replaced] + [
-        file_entry(temp, name) for name in new_files]
+        file_entry(temp, name, [layout.ROW_ID] + list(manifest.get("exact_columns", [])))
+        for name in new_files]
     write_manifest(temp, new)
     versions.publish_in_place(directory, temp, new_files, expect=manifest)  # commit: one rename
     return directory

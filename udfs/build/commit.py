@@ -307,7 +307,8 @@ class ArchiveWriter:
             tables.update({name: new for name, new in renamed.items() if new not in parts})
             manifest["tables"] = tables
             names = [renamed[name] for name in names]
-        manifest["files"] = [file_entry(self.temp, name) for name in names]
+        keyed = [layout.ROW_ID] + list(manifest.get("exact_columns", []))
+        manifest["files"] = [file_entry(self.temp, name, keyed) for name in names]
         write_manifest(self.temp, manifest)
         if in_place:
             versions.publish_in_place(self.target, self.temp, names, expect=None)

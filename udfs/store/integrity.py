@@ -480,17 +480,19 @@ def row_group_spans(metadata: pq.FileMetaData, size: int) -> list[tuple[int, int
     return groups
 
 
-def part_digests(path: Path) -> dict[str, Any]:
+def part_digests(path: Path, columns: list[str] | None = None) -> dict[str, Any]:
     """Digests of the row file ``path`` for its manifest entry: ``group_sha256``, the SHA-256
-    of each row group's byte range, and ``column_sha256``, per column the SHA-256 of its column
-    chunks in row-group order. Empty when the row groups do not tile the file
+    of each row group's byte range, and ``column_sha256``, for each of ``columns`` (default:
+    every column; writers pass ``_rf_row`` and the exact columns, the only ones SQL checks
+    before a scan, which keeps 64 bytes per other column out of the manifest) the SHA-256 of
+    its column chunks in row-group order. Empty when the row groups do not tile the file
     (:func:`row_group_spans`): SQL then checks the file whole."""
     metadata = pq.read_metadata(path)
     spans = row_group_spans(metadata, path.stat().st_size)
     names = [metadata.schema.column(j).path for j in range(metadata.num_columns)]
     if spans is None or len(set(names)) != len(names):
         return {}
-    columns = [hashlib.sha256() for _ in names]
+    digests = [hashlib.sha256() for _ in names]
     groups = []
     with open(path, "rb") as handle:
         for _, _, chunks in spans:  # one column chunk in memory at a time
@@ -499,9 +501,11 @@ def part_digests(path: Path) -> dict[str, Any]:
                 handle.seek(chunks[j][0])
                 piece = handle.read(chunks[j][1] - chunks[j][0])
                 group.update(piece)
-                columns[j].update(piece)
+                digests[j].update(piece)
             groups.append(group.hexdigest())
-    return {"group_sha256": groups, "column_sha256": {n: d.hexdigest() for n, d in zip(names, columns)}}
+    keyed = set(names if columns is None else columns)
+    return {"group_sha256": groups,
+            "column_sha256": {n: d.hexdigest() for n, d in zip(names, digests) if n in keyed}}
 
 
 def _sha256_file(path: Path, chunk: int = 1 << 22) -> str:

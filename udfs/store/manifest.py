@@ -37,16 +37,17 @@ def sha256_of(path: Path, chunk: int = 1 << 20) -> str:
     return digest.hexdigest()
 
 
-def file_entry(directory: Path, name: str) -> dict[str, Any]:
+def file_entry(directory: Path, name: str, keyed: list[str] | None = None) -> dict[str, Any]:
     """The manifest's record of one file: name, size, SHA-256, and for Parquet files the
     SHA-256 of the footer (checked on every open, where hashing a whole row file is not);
-    for row files also the SHA-256 of each row group and of each column's chunks
-    (``integrity.part_digests``: SQL checks only what a query reads)."""
+    for row files also the SHA-256 of each row group and of the chunks of the columns
+    ``keyed`` (``_rf_row`` and the exact columns: ``integrity.part_digests``; SQL checks only
+    what a query reads)."""
     path = directory / name
     entry = entry_of(name, path.stat().st_size, sha256_of(path),
                      footer_sha256(path) if name.endswith(".parquet") else None)
     if name.startswith(layout.ROWS_PATTERN.split("{")[0]) and name.endswith(".parquet"):
-        entry.update(part_digests(path))
+        entry.update(part_digests(path, keyed))
     return entry
 
 
