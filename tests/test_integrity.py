@@ -203,9 +203,9 @@ def _swap_names(path: Path) -> None:
 
 
 EDITS = {
-    "column type": lambda p: _edit_text(p, '"type": "double"', '"type": "float"'),
+    "column type": lambda p: _edit_text(p, '"type":"double"', '"type":"float"'),
     "two names swapped": _swap_names,
-    "shape": lambda p: _edit_text(p, f"  {ROWS},\n", f"  {ROWS - 1},\n"),
+    "shape": lambda p: _edit_text(p, f'"shape": [{ROWS},', f'"shape": [{ROWS - 1},'),
 }
 
 
@@ -242,7 +242,9 @@ def test_the_digest_is_sha256_of_the_canonical_manifest(pristine):
     canonical = json.dumps(body, sort_keys=True, separators=(",", ":"), ensure_ascii=True)
     assert manifest["manifest_sha256"] == hashlib.sha256(canonical.encode()).hexdigest()  # hashlib
     assert manifest_digest(manifest) == manifest["manifest_sha256"]
-    assert (pristine / "manifest.json").read_text().startswith('{\n "manifest_sha256": ')
+    text = (pristine / "manifest.json").read_text()
+    assert text.startswith('{\n"manifest_sha256": ')  # the digest first, then one line per field
+    assert text.count("\n") == len(manifest) + 1
 
 
 # -- crafted manifests that reach outside the archive ----------------------------------------
