@@ -244,7 +244,7 @@ def test_the_digest_is_sha256_of_the_canonical_manifest(pristine):
     assert manifest_digest(manifest) == manifest["manifest_sha256"]
     text = (pristine / "manifest.json").read_text()
     assert text.startswith('{\n"manifest_sha256": ')  # the digest first, then one line per field
-    assert text.count("\n") == len(manifest) + 1
+    assert text.count("\n") == len(manifest) + 2  # "{", a line per field, "}"
 
 
 # -- crafted manifests that reach outside the archive ----------------------------------------
