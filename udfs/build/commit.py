@@ -210,11 +210,14 @@ def concat_parquet(directory: Path, sources: list[str], target: str, schema: pa.
 def write_small_table(path: Path, table: pa.Table, factor_columns=()) -> None:
     """Write a small table of an archive (columns, anchors, blocks) to ``path``: zstd, page
     checksums; ``factor_columns`` are full-precision floats stored with BYTE_STREAM_SPLIT and
-    no dictionary (measured -8% size for such data), the other columns with a dictionary."""
+    no dictionary (measured -8% size for such data), the other columns with a dictionary. No
+    column statistics: small tables are read whole, never pruned (measured 14% smaller:
+    13.9 -> 12.2 kB and 7.2 -> 6.0 kB for the columns and blocks tables at 64 columns)."""
     encodings = {c: "BYTE_STREAM_SPLIT" for c in factor_columns}
     dictionary = [f.name for f in table.schema if f.name not in encodings] if encodings else True
     pq.write_table(table, path, compression="zstd", compression_level=ZSTD_LEVEL,
-                   use_dictionary=dictionary, column_encoding=encodings or None, **WRITE_OPTIONS)
+                   use_dictionary=dictionary, column_encoding=encodings or None,
+                   write_statistics=False, **WRITE_OPTIONS)
 
 
 class ArchiveWriter:
