@@ -20,8 +20,8 @@ ROOT = Path(__file__).resolve().parents[1]
 # name -> (file, anchor, replacement, tests that must fail)
 MUTATIONS = {
     "cell bound loose by 1000x": (
-        "udfs/store/reader.py", "        bounds[exact] = 0.0\n        return Rebuilt(",
-        "        bounds = bounds * 1000.0\n        bounds[exact] = 0.0\n        return Rebuilt(",
+        "udfs/store/reader.py", "        bounds[exact] = 0.0\n        if not serve:",
+        "        bounds = bounds * 1000.0\n        bounds[exact] = 0.0\n        if not serve:",
         ["tests/test_bounds_property.py"]),
     "column ledger loose by 1000x": (
         "udfs/store/reader.py", '        self.err_max_col = cols.column("err_max").to_numpy()',
@@ -37,20 +37,21 @@ MUTATIONS = {
         "        return pa.array(bounds * 1000.0, pa.float64(), mask=missing)",
         ["tests/test_sql.py"]),
     "SQL scan bound loose by 1000x": (
-        "udfs/sql/tables.py", '        outer_val, outer_bound = f"({lin})", f"({raw})"',
-        '        outer_val, outer_bound = f"({lin})", f"({raw} * 1000.0)"',
+        "udfs/sql/tables.py", '        middle += [f"{lin} AS __v{s}", f"{raw} AS __e{s}"]',
+        '        middle += [f"{lin} AS __v{s}", f"({raw}) * 1000.0 AS __e{s}"]',
         ["tests/test_sql_tables.py"]),
     "aggregate bound loose by 1000x": (
         "udfs/store/aggregate.py", "    bound = np.where(null, 0.0, bound)\n",
         "    bound = np.where(null, 0.0, bound * 1000.0)\n",
         ["tests/test_aggregate.py"]),
     "covariance bound loose by 1000x": (
-        "udfs/store/aggregate.py", "    return names, cov, bound, fp, delta",
-        "    return names, cov, bound * 1000.0, fp, delta",
+        "udfs/store/aggregate.py",
+        "    names, cov, bound, _, _ = _covariance(reader, columns)\n    return names, cov, bound\n",
+        "    names, cov, bound, _, _ = _covariance(reader, columns)\n    return names, cov, bound * 1000.0\n",
         ["tests/test_aggregate.py"]),
     "correlation bound of 2.0": (
         "udfs/store/aggregate.py",
-        "        bound = np.where(np.isfinite(bound), np.minimum(bound, 2.0), 2.0)",
+        "        bound = np.where(np.isfinite(bound) & ~bad[:, None] & ~bad[None, :], np.minimum(bound, 2.0), 2.0)",
         "        bound = np.full_like(bound, 2.0)",
         ["tests/test_aggregate.py", "tests/test_sql_tables.py"]),
     "values off by half a standard deviation": (
@@ -59,9 +60,9 @@ MUTATIONS = {
         "        b, q = values.shape\n",
         ["tests/test_roundtrip.py", "tests/test_bounds_property.py"]),
     "SQL scan values off by half a standard deviation": (
-        "udfs/sql/tables.py", '        outer_val, outer_bound = f"({lin})", f"({raw})"',
-        "        outer_val, outer_bound = (f\"({lin} + {0.5 * reader.columns_table.column('std')[j].as_py()!r})\", "
-        'f"({raw})")',
+        "udfs/sql/tables.py", '        middle += [f"{lin} AS __v{s}", f"{raw} AS __e{s}"]',
+        "        middle += [f\"({lin}) + {0.5 * reader.columns_table.column('std')[j].as_py()!r} AS __v{s}\", "
+        'f"{raw} AS __e{s}"]',
         ["tests/test_sql_tables.py"]),
     "silent rebuild log": (
         "udfs/store/rebuild_log.py", "        text = json.dumps(entry, default=str)\n",
