@@ -673,7 +673,7 @@ class _Written:
     def commit(self, goal: _Goal, attempts: int) -> Path | str:
         self.manifest["targets"] = goal.recorded(self.manifest["numeric_columns"])
         self.manifest["achieved"] = {
-            "bytes": None,  # filled from the file list below
+            "bytes": int(self.bytes),  # the data files; manifest.json comes on top
             "relative_frobenius": self.manifest["errors"]["relative_frobenius"],
             "max_abs_error": self.manifest["errors"]["max_abs_error"],
             "corrections": self.result.corrections,
