@@ -450,7 +450,7 @@ def _watch_hashes(monkeypatch) -> dict:
     from rankfold.udfs.store import integrity
 
     seen = {"groups": [], "whole": []}
-    check_group, whole = integrity.RowFileSeal._check_group, integrity._sha256_file
+    check_group, whole = integrity.RowFileSeal._check_group, integrity.sha256_of
 
     def spy_group(self, name, g):
         seen["groups"].append(g)
@@ -461,7 +461,7 @@ def _watch_hashes(monkeypatch) -> dict:
         return whole(path, *args)
 
     monkeypatch.setattr(integrity.RowFileSeal, "_check_group", spy_group)
-    monkeypatch.setattr(integrity, "_sha256_file", spy_whole)
+    monkeypatch.setattr(integrity, "sha256_of", spy_whole)
     return seen
 
 

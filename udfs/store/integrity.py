@@ -60,7 +60,7 @@ from .manifest_schema import DIGEST_FIELD, check_plain_name, files_used, sealed_
 __all__ = ["PAGE_CHECKSUMS", "WRITE_OPTIONS", "footer_sha256", "verified_metadata", "check_listed_files",
            "read_small_table",
            "open_row_file", "check_tables", "RowFileSeal", "read_parquet_sql", "damaged",
-           "part_digests", "row_group_spans", "sealed_rows_sql", "seal_for_token"]
+           "part_digests", "row_group_spans", "sealed_rows_sql", "seal_for_token", "sha256_of"]
 
 # Parquet write options that every archive file is written with (page CRC-32 checksums).
 WRITE_OPTIONS = {"write_page_checksum": True}
@@ -395,7 +395,7 @@ class RowFileSeal:
         with self._lock:
             if self._checked.get(entry["name"]) == signature:
                 return
-        if _sha256_file(path) != entry["sha256"]:
+        if sha256_of(path) != entry["sha256"]:
             raise damaged(path, "does not match its SHA-256 in the manifest")
         with self._lock:
             self._checked[entry["name"]] = signature
@@ -508,7 +508,9 @@ def part_digests(path: Path, columns: list[str] | None = None) -> dict[str, Any]
             "column_sha256": {n: d.hexdigest() for n, d in zip(names, digests) if n in keyed}}
 
 
-def _sha256_file(path: Path, chunk: int = 1 << 22) -> str:
+def sha256_of(path: Path, chunk: int = 1 << 22) -> str:
+    """The SHA-256 of the whole file ``path`` (hex), read in ``chunk``-byte pieces into one
+    reused buffer: the one whole-file digest of the archive code (manifest entries, checks)."""
     digest = hashlib.sha256()
     with open(path, "rb", buffering=0) as handle:
         buffer = bytearray(chunk)

@@ -19,7 +19,7 @@ from typing import Any
 
 from ..errors import CorruptArchiveError, UnsupportedVersionError
 from . import layout
-from .integrity import check_listed_files, footer_sha256, part_digests
+from .integrity import check_listed_files, footer_sha256, part_digests, sha256_of
 from .manifest_schema import DIGEST_FIELD, older_format_rules, validate
 
 __all__ = ["sha256_of", "file_entry", "entry_of", "write_manifest", "read_manifest", "check_files",
@@ -27,14 +27,6 @@ __all__ = ["sha256_of", "file_entry", "entry_of", "write_manifest", "read_manife
 
 REQUIRED_KEYS = ("format", "format_version", "writer", "archive_id", "shape", "schema",
                  "numeric_columns", "method", "basis", "anchors", "files", "errors")
-
-
-def sha256_of(path: Path, chunk: int = 1 << 20) -> str:
-    digest = hashlib.sha256()
-    with open(path, "rb") as handle:
-        for block in iter(lambda: handle.read(chunk), b""):
-            digest.update(block)
-    return digest.hexdigest()
 
 
 def file_entry(directory: Path, name: str, keyed: list[str] | None = None) -> dict[str, Any]:
