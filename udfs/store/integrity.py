@@ -60,7 +60,8 @@ from .manifest_schema import DIGEST_FIELD, check_plain_name, files_used, sealed_
 __all__ = ["PAGE_CHECKSUMS", "WRITE_OPTIONS", "footer_sha256", "verified_metadata", "check_listed_files",
            "read_small_table",
            "open_row_file", "check_tables", "RowFileSeal", "read_parquet_sql", "damaged",
-           "part_digests", "row_group_spans", "sealed_rows_sql", "seal_for_token", "sha256_of"]
+           "part_digests", "row_group_spans", "sealed_rows_sql", "seal_for_token", "sha256_of",
+           "footer_length", "FOOTER_TRAILER_BYTES"]
 
 # Parquet write options that every archive file is written with (page CRC-32 checksums).
 WRITE_OPTIONS = {"write_page_checksum": True}
@@ -68,7 +69,7 @@ WRITE_OPTIONS = {"write_page_checksum": True}
 # benchmark turns this off, to measure what the check costs.
 PAGE_CHECKSUMS = True
 
-_FOOTER_TAIL = 8  # 4-byte little-endian footer length + b"PAR1" (Parquet format spec)
+FOOTER_TRAILER_BYTES = 8  # 4-byte little-endian footer length + b"PAR1" (Parquet format spec)
 
 
 def damaged(path: Path, what: str) -> CorruptArchiveError:
@@ -97,19 +98,29 @@ def verified_metadata(path: Path, entry: dict[str, Any]) -> pq.FileMetaData:
         raise damaged(path, f"has a Parquet footer that cannot be read ({exc})") from None
 
 
+def footer_length(trailer: bytes, size: int) -> int | None:
+    """The length of a Parquet file's footer metadata from its last 8 bytes ``trailer``
+    (4-byte little-endian length, then ``PAR1``; Parquet format specification) and the
+    file's ``size`` in bytes; None when they are not a Parquet footer. The footer as
+    :func:`footer_sha256` hashes it is the last ``length + 8`` bytes."""
+    if size < 12 or len(trailer) != FOOTER_TRAILER_BYTES or trailer[4:] != b"PAR1":
+        return None
+    length = struct.unpack("<I", trailer[:4])[0]
+    return length if length + 12 <= size else None
+
+
 def _footer(path: Path) -> bytes:
     with open(path, "rb") as handle:
         handle.seek(0, os.SEEK_END)
         size = handle.tell()
         if size < 12:
             raise damaged(path, "is too short to be a Parquet file")
-        handle.seek(size - _FOOTER_TAIL)
-        tail = handle.read(_FOOTER_TAIL)
-        length = struct.unpack("<I", tail[:4])[0]
-        if tail[4:] != b"PAR1" or length + 12 > size:
+        handle.seek(size - FOOTER_TRAILER_BYTES)
+        length = footer_length(handle.read(FOOTER_TRAILER_BYTES), size)
+        if length is None:
             raise damaged(path, "does not end with a Parquet footer")
-        handle.seek(size - _FOOTER_TAIL - length)
-        return handle.read(length + _FOOTER_TAIL)
+        handle.seek(size - FOOTER_TRAILER_BYTES - length)
+        return handle.read(length + FOOTER_TRAILER_BYTES)
 
 
 def check_listed_files(directory: Path, manifest: dict[str, Any]) -> None:
@@ -475,7 +486,7 @@ def row_group_spans(metadata: pq.FileMetaData, size: int) -> list[tuple[int, int
                 return None
             expected = hi
         groups.append((start, expected, chunks))
-    if expected != size - metadata.serialized_size - _FOOTER_TAIL:
+    if expected != size - metadata.serialized_size - FOOTER_TRAILER_BYTES:
         return None
     return groups
 

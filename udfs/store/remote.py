@@ -35,7 +35,6 @@ import hashlib
 import json
 import re
 import shutil
-import struct
 import tempfile
 import uuid
 import weakref
@@ -44,6 +43,7 @@ from typing import Any
 
 from ..errors import ArchiveExistsError, ArchiveNotFoundError, CorruptArchiveError, InvalidInputError
 from . import layout
+from .integrity import FOOTER_TRAILER_BYTES, footer_length
 
 __all__ = ["is_url", "filesystem", "RemoteTarget", "Staging", "StagedUpload", "fetch", "LocalCopy"]
 
@@ -168,7 +168,6 @@ STAGING_PREFIX = ".rankfold-staging-"
 STAGED_NAME = re.compile(r"\.(part-\d{5}-\d{4}|cells-\d{5})\.parquet")
 # Bytes of the stream kept to read the Parquet footer from (larger footers are read back).
 _TAIL_BYTES = 1 << 20
-_FOOTER_TAIL = 8  # 4-byte little-endian footer length + b"PAR1" (Parquet format spec)
 
 
 class Staging:
@@ -267,15 +266,13 @@ class StagedUpload:
 
     def _footer_sha256(self) -> str:
         tail = bytes(self._tail)
-        if len(tail) < 12 or tail[-4:] != b"PAR1":
+        length = footer_length(tail[-FOOTER_TRAILER_BYTES:], self.size)
+        if length is None:
             raise CorruptArchiveError(f"{self.path} does not end with a Parquet footer.")
-        length = struct.unpack("<I", tail[-8:-4])[0]
-        if length + _FOOTER_TAIL + 4 > self.size:
-            raise CorruptArchiveError(f"{self.path} does not end with a Parquet footer.")
-        if length + _FOOTER_TAIL <= len(tail):
-            footer = tail[-(length + _FOOTER_TAIL):]
+        if length + FOOTER_TRAILER_BYTES <= len(tail):
+            footer = tail[-(length + FOOTER_TRAILER_BYTES):]
         else:  # a footer beyond the kept tail: read it back
-            footer = self.fs.cat_file(self.path, start=self.size - length - _FOOTER_TAIL,
+            footer = self.fs.cat_file(self.path, start=self.size - length - FOOTER_TRAILER_BYTES,
                                       end=self.size)
         return hashlib.sha256(footer).hexdigest()
 
