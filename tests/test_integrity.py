@@ -465,6 +465,20 @@ def _watch_hashes(monkeypatch) -> dict:
     return seen
 
 
+def test_sql_column_errors_hash_the_columns_table_alone(grouped_copy, monkeypatch):
+    """rankfold_column_errors reads columns.parquet and no row file: it checks that table and
+    no other (hashing every row file first would be work on the wrong files); a damaged
+    columns table is still refused."""
+    seen = _watch_hashes(monkeypatch)
+    con = _con()
+    rows = con.execute("SELECT count(*) FROM rankfold_column_errors(?)", [str(grouped_copy)]).fetchone()
+    assert rows == (COLS,)
+    assert seen["whole"] == ["columns.parquet"] and seen["groups"] == []
+    _flip(grouped_copy / "columns.parquet", (grouped_copy / "columns.parquet").stat().st_size // 2, 2)
+    with pytest.raises(duckdb.Error, match="CorruptArchiveError"):
+        con.execute("SELECT count(*) FROM rankfold_column_errors(?)", [str(grouped_copy)]).fetchall()
+
+
 def test_row_files_carry_the_sha256_of_each_row_group_and_column(grouped):
     # reference: hashlib.sha256 (FIPS 180-4) over byte ranges taken from pyarrow's metadata
     entry = next(f for f in read_manifest(grouped)["files"] if f["name"] == "rows-00000.parquet")

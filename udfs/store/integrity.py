@@ -308,10 +308,11 @@ class RowFileSeal:
         self._group_first.append((part["first_row"], part["name"], first))
         return True
 
-    def check(self) -> None:
-        """Whole-file SHA-256 of every file SQL reads."""
+    def check(self, names: list[str] | None = None) -> None:
+        """Whole-file SHA-256 of every file SQL reads (or of the files ``names`` only)."""
         for entry in self.entries:
-            self._check_whole(entry)
+            if names is None or entry["name"] in names:
+                self._check_whole(entry)
 
     def check_before_scan(self, columns: list[str]) -> None:
         """Before a query that reads the row files through :func:`sealed_rows_sql`: the small

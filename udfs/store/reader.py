@@ -85,6 +85,11 @@ class ArchiveReader:
         page checksums, such as DuckDB."""
         self.seal.check()
 
+    def verify_table(self, table: str) -> None:
+        """Check the whole SHA-256 of the small table ``table`` (``layout.COLUMNS``, ...) alone,
+        for SQL that reads that table and no row file (cached like :meth:`verify_row_files`)."""
+        self.seal.check([layout.table_file(self.manifest, table)])
+
     def verify_for_scan(self) -> bool:
         """Before SQL reads the row files through ``integrity.sealed_rows_sql`` (row groups
         checked as DuckDB reads them): check the small tables whole and the column chunks of
