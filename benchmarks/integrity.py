@@ -71,7 +71,7 @@ def checks_off():
     """The read path as it was before the integrity checks: sizes only, plain reads."""
     saved = (integrity.PAGE_CHECKSUMS, manifest.check_listed_files, manifest.validate,
              manifest.manifest_digest, reader.read_small_table, reader.check_tables,
-             integrity.RowFileSeal.check, reader.verified_metadata, reader.ArchiveReader.verify_for_scan)
+             integrity.RowFileSeal.check, reader.verified_metadata, reader.ArchiveReader.check_for_scan)
 
     def sizes_only(directory, m):
         for entry in m["files"]:
@@ -86,29 +86,29 @@ def checks_off():
     reader.check_tables = lambda r: None
     integrity.RowFileSeal.check = lambda self: None
     reader.verified_metadata = lambda path, entry: pq.read_metadata(path)
-    reader.ArchiveReader.verify_for_scan = lambda self: False  # plain read_parquet, no row-group check
+    reader.ArchiveReader.check_for_scan = lambda self: False  # plain read_parquet, no row-group check
     try:
         yield
     finally:
         (integrity.PAGE_CHECKSUMS, manifest.check_listed_files, manifest.validate,
          manifest.manifest_digest, reader.read_small_table, reader.check_tables,
-         integrity.RowFileSeal.check, reader.verified_metadata, reader.ArchiveReader.verify_for_scan) = saved
+         integrity.RowFileSeal.check, reader.verified_metadata, reader.ArchiveReader.check_for_scan) = saved
 
 
 @contextlib.contextmanager
 def whole_files():
     """The SQL scan with the whole-file SHA-256 check instead of the row-group checks."""
-    saved = reader.ArchiveReader.verify_for_scan
+    saved = reader.ArchiveReader.check_for_scan
 
     def whole(self):
         self.seal.check()
         return False
 
-    reader.ArchiveReader.verify_for_scan = whole
+    reader.ArchiveReader.check_for_scan = whole
     try:
         yield
     finally:
-        reader.ArchiveReader.verify_for_scan = saved
+        reader.ArchiveReader.check_for_scan = saved
 
 
 def fresh_sql():
@@ -170,7 +170,7 @@ def main() -> None:
     # whole-file SHA-256 that the first SQL query of an archive version pays
     measure("row files decode", lambda: [rankfold.open(path)._reader.row_file(n).read() for n in names],
             args.repeat, results)
-    measure("open + SHA-256 for SQL", lambda: rankfold.open(path)._reader.verify_row_files(),
+    measure("open + SHA-256 for SQL", lambda: rankfold.open(path)._reader.check_row_files(),
             args.repeat, results)
     measure("python full scan", lambda: rankfold.open(path).to_numpy(), args.repeat, results)
     arch = rankfold.open(path)

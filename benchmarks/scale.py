@@ -44,7 +44,7 @@ CHILD = r"""
 import json, sys, time
 import duckdb, numpy as np
 import rankfold
-import rankfold.udfs.build.compress  # imported before the clock starts, like duckdb for the scan
+import rankfold.udfs.passes.compress  # imported before the clock starts, like duckdb for the scan
 source, target, executor = sys.argv[1], sys.argv[2], sys.argv[3]
 sketch_rows = sys.argv[4] if len(sys.argv) > 4 else "auto"
 out = {}

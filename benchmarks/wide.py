@@ -28,7 +28,7 @@ CHILD = r"""
 import json, sys, time
 import numpy as np, pyarrow.parquet as pq
 import rankfold
-import rankfold.udfs.build.compress  # imported before the clock starts
+import rankfold.udfs.passes.compress  # imported before the clock starts
 source, target = sys.argv[1], sys.argv[2]
 t = time.perf_counter()
 archive = rankfold.compress(source, target, rank=8)

@@ -73,7 +73,7 @@ def compress(source: Any, path: str | Path, *, rank: int | None = None, seed: in
         ``archive.warnings`` lists warnings when values are off by a large part of their
         column's standard deviation.
     """
-    from rankfold.udfs.build.compress import compress as _compress
+    from rankfold.udfs.passes.compress import compress as _compress
 
     return Archive(_compress(source, path, rank=rank, seed=seed, **options),
                    storage_options=options.get("storage_options"))

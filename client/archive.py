@@ -212,7 +212,7 @@ class Archive:
         matrix and verified like the original rows, so every bound holds for them too. Writes
         a new archive version atomically (this object keeps reading the old one) and returns
         it opened; see :attr:`refactor_due` for when the error has drifted past the target."""
-        from rankfold.udfs.build.append import append as _append
+        from rankfold.udfs.passes.append import append as _append
 
         path = _append(self.path, source, expected_id=self.manifest["archive_id"],
                        expected_version=int(self.manifest.get("version", 0)),

@@ -665,7 +665,7 @@ def _flag(name: str) -> str:
 def _option_names() -> set[str]:
     from dataclasses import fields
 
-    from rankfold.udfs.build.options import CompressOptions
+    from rankfold.udfs.passes.options import CompressOptions
 
     return {f.name for f in fields(CompressOptions)} | {"overwrite", "bounds", "checksums"}
 

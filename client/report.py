@@ -243,8 +243,8 @@ def _row_ledger(arch: Archive) -> np.ndarray:
 def _source_rows(source: Any, connection: Any, names: list[str], positions: np.ndarray,
                  rows: int, progress: Callable | None) -> np.ndarray:
     """Source values (float64, NaN for NULL) of ``positions`` for the numeric ``names``."""
-    from rankfold.udfs.build.progress import Progress
-    from rankfold.udfs.build.sources import block_from_batch, open_source
+    from rankfold.udfs.passes.progress import Progress
+    from rankfold.udfs.passes.sources import block_from_batch, open_source
 
     src = open_source(source, connection)
     out = np.full((positions.size, len(names)), np.nan)

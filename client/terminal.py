@@ -1,6 +1,6 @@
 """A one-line progress bar for long passes, drawn on a terminal stream.
 
-It takes the dicts of ``rankfold.udfs.build.progress`` (``stage``, ``rows_done``,
+It takes the dicts of ``rankfold.udfs.passes.progress`` (``stage``, ``rows_done``,
 ``rows_total``, ``rows_per_second``, ``seconds``, ``done``) and redraws one line in place::
 
     verify   [##########..........]  52%  1,048,576 / 2,000,000 rows  812,345 rows/s  0:01 left

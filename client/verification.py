@@ -23,8 +23,8 @@ from typing import Any, Callable
 import numpy as np
 import pyarrow as pa
 
-from rankfold.udfs.build.progress import Progress
-from rankfold.udfs.build.sources import block_from_batch, open_source
+from rankfold.udfs.passes.progress import Progress
+from rankfold.udfs.passes.sources import block_from_batch, open_source
 from rankfold.udfs.errors import ArchiveNotFoundError, CorruptArchiveError
 from rankfold.udfs.store.manifest import read_manifest, sha256_of
 from rankfold.udfs.store.reader import ArchiveReader

@@ -143,7 +143,7 @@ def table_truth():
 # A bound is min(s_j * rowmax_i, colmax_j) + slack_ij, where colmax_j is the column's largest
 # measured |error| rounded up (4u and one ulp), rowmax_i the row's largest |error| / s_j
 # (s_j: the column's ledger_scale) rounded up to 8 mantissa bits (2^-7 relative; 4 bits, 2^-3,
-# when every column has a tolerance: verify.verify_pass, ledger_bits), and
+# when every column has a tolerance: verify.encode_pass, ledger_bits), and
 # slack_ij = 2 gamma_{c+3} S_ij the floating-point slack (Higham 2002, eq. 3.4-3.5). So against
 # the errors of the values as stored (below):
 #   column: max_i bound_ij <= max_i |e_ij| + ALLOWANCE scale_j

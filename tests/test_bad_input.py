@@ -16,7 +16,7 @@ import pyarrow as pa
 import pytest
 
 import rankfold
-from rankfold.udfs.build import compress as compress_module
+from rankfold.udfs.passes import compress as compress_module
 
 
 def _table(seed: int = 1, m: int = 30, n: int = 5) -> pa.Table:
@@ -243,7 +243,7 @@ def test_source_changing_between_passes(tmp_path, archive, overwrite):
     assert _leftovers(tmp_path) == []
 
 
-@pytest.mark.parametrize("stage", ["verify_pass", "_write_small_tables", "_manifest"])
+@pytest.mark.parametrize("stage", ["encode_pass", "_write_small_tables", "_manifest"])
 def test_a_pass_that_fails_leaves_nothing_behind(tmp_path, archive, monkeypatch, stage):
     def broken(*args, **kwargs):
         raise OSError(f"disk full during {stage}")

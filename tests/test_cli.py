@@ -183,9 +183,9 @@ class _Terminal(io.StringIO):
 
 
 def test_progress_bar_line_format():
-    line = ProgressBar.line({"stage": "verify", "rows_done": 500, "rows_total": 2000,
+    line = ProgressBar.line({"stage": "encode", "rows_done": 500, "rows_total": 2000,
                              "rows_per_second": 100.0, "seconds": 5.0, "done": False})
-    assert line == "verify     [#####...............]  25%  500 / 2,000 rows  100 rows/s  0:15 left"
+    assert line == "encode     [#####...............]  25%  500 / 2,000 rows  100 rows/s  0:15 left"
     line = ProgressBar.line({"stage": "profile", "rows_done": 1234567, "rows_total": None,
                              "rows_per_second": 2e6, "seconds": 3725.0, "done": True})
     assert line == "profile    1,234,567 rows  2,000,000 rows/s  done in 1:02:05"
@@ -208,7 +208,7 @@ def test_compress_shows_progress_on_a_terminal_unless_quiet(files, tmp_path, cap
     monkeypatch.setattr(sys, "stderr", tty)
     assert main(["compress", str(files["source"]), str(tmp_path / "p.rankfold"), "--rank", str(RANK)]) == 0
     drawn = tty.getvalue()
-    for stage in ("profile", "verify"):  # the default cx link needs no select pass
+    for stage in ("profile", "encode"):  # the default cx link needs no select pass
         assert f"\r{stage}" in drawn
     assert "rows/s" in drawn and f"{ROWS} / {ROWS} rows" in drawn
     quiet = _Terminal()

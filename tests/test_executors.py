@@ -14,7 +14,7 @@ import pytest
 from distributed import Client, LocalCluster
 
 import rankfold
-from rankfold.udfs.build import select
+from rankfold.udfs.passes import select
 
 ROWS, WIDTH = 6000, 16
 
@@ -75,14 +75,14 @@ def test_same_seed_same_archive_on_both_executors(dataset, client, tmp_path, opt
     sketch = dask.manifest["sketch"]
     assert sketch == local.manifest["sketch"]
     first = "sketch-sample" if sketch["sampled"] else "profile"
-    assert {e["stage"] for e in finished} >= {first, "verify"}
+    assert {e["stage"] for e in finished} >= {first, "encode"}
     assert all(e["rows_done"] == (sketch["rows_read"] if e["stage"] == first else ROWS)
                for e in finished)
     assert sketch["sampled"] == ("sketch_rows" in options)
 
 
 def test_dask_reads_in_memory_tables_in_slices(client, tmp_path, monkeypatch):
-    from rankfold.udfs.build import executors
+    from rankfold.udfs.passes import executors
 
     monkeypatch.setattr(executors, "PARTITION_ROWS", 4 * 1000)  # slices of 1000 rows
     x = _data()
@@ -109,7 +109,7 @@ def test_row_choice_does_not_depend_on_partitioning(method, replace):
     # the merge of per-partition choices equals the choice over one stream
     rng = np.random.default_rng(3)
     z = rng.standard_normal((3000, 8)) @ np.diag([5, 4, 3, 1, 1, 0.5, 0.5, 0.1])
-    from rankfold.udfs.build.profile import Transform
+    from rankfold.udfs.passes.profile import Transform
     from rankfold.udfs.factor.sketch import GramSketch
 
     transform = Transform("none", np.zeros(8), np.ones(8))
@@ -132,7 +132,7 @@ def test_passes_run_with_one_blas_thread_and_restore_the_setting(tmp_path):
     # threadpoolctl.threadpool_info reports every loaded BLAS library and its thread count
     from threadpoolctl import threadpool_info
 
-    from rankfold.udfs.build.executors import one_blas_thread
+    from rankfold.udfs.passes.executors import one_blas_thread
 
     before = [(i["filepath"], i["num_threads"]) for i in threadpool_info() if i["user_api"] == "blas"]
     with one_blas_thread():
@@ -143,8 +143,8 @@ def test_passes_run_with_one_blas_thread_and_restore_the_setting(tmp_path):
 
 def test_anchor_scan_left_rows_without_a_transformed_copy_match_the_transformed_product():
     # U_k = Z V_k S_k^-1 (numpy product on the transformed block) against the one-product form
-    from rankfold.udfs.build import select
-    from rankfold.udfs.build.profile import Transform
+    from rankfold.udfs.passes import select
+    from rankfold.udfs.passes.profile import Transform
     from rankfold.udfs.factor import cur
     from rankfold.udfs.factor.sketch import GramSketch
 
@@ -166,7 +166,7 @@ INTERFACE = {"schema", "description", "distributed", "run", "row_groups", "sampl
 
 
 def test_both_executors_implement_the_one_declared_interface():
-    from rankfold.udfs.build import executors
+    from rankfold.udfs.passes import executors
 
     assert executors.Executor.__abstractmethods__ == INTERFACE - {"schema", "description", "distributed"}
     assert set(executors.Executor.__annotations__) == {"schema", "description", "distributed"}
@@ -176,8 +176,8 @@ def test_both_executors_implement_the_one_declared_interface():
 
 def test_compress_uses_only_the_declared_interface(dataset, tmp_path, monkeypatch):
     """A compress whose executor answers only the interface's members gives the same archive."""
-    from rankfold.udfs.build import compress as compress_module
-    from rankfold.udfs.build import executors
+    from rankfold.udfs.passes import compress as compress_module
+    from rankfold.udfs.passes import executors
 
     used: set[str] = set()
 

@@ -5,7 +5,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from rankfold.udfs.build.profile import Fingerprint, _row_weights  # private: the weights have no public path
+from rankfold.udfs.passes.profile import Fingerprint, _row_weights  # private: the weights have no public path
 
 
 def _table(seed: int = 0) -> np.ndarray:

@@ -289,7 +289,7 @@ def test_a_failed_dask_compress_leaves_nothing_on_the_store(store, monkeypatch):
     """A worker that fails after its files reached the staging prefix, and a copy that fails
     while the client assembles: no manifest, no staged object and no copied object is left,
     and the prefix takes a new compress."""
-    from rankfold.udfs.build import compress as compress_module
+    from rankfold.udfs.passes import compress as compress_module
 
     x = _table(7, rows=1800, width=6)
     source = _upload_parquet(store, x, "source-failing", files=3)
@@ -301,7 +301,7 @@ def test_a_failed_dask_compress_leaves_nothing_on_the_store(store, monkeypatch):
         staged.append(name)
         return real_open(self, name)
 
-    real_task = compress_module._verify_task
+    real_task = compress_module._encode_task
 
     def failing_task(blocks, part, *args):
         out = real_task(blocks, part, *args)  # its files are on the store now
@@ -322,7 +322,7 @@ def test_a_failed_dask_compress_leaves_nothing_on_the_store(store, monkeypatch):
     try:
         monkeypatch.setattr(remote.Staging, "open", counting_open)
         with monkeypatch.context() as patch:
-            patch.setattr(compress_module, "_verify_task", failing_task)
+            patch.setattr(compress_module, "_encode_task", failing_task)
             with pytest.raises(OSError, match="worker lost"):
                 rankfold.compress(source, url, rank=2, executor=client, storage_options=store["options"])
         assert staged  # files did reach the staging prefix

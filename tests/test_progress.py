@@ -14,7 +14,7 @@ def test_every_pass_reports_rows_in_order(tmp_path):
     rankfold.compress(x, tmp_path / "p.rankfold", rank=3, batch_rows=300, link="optimal",
                       progress=events.append)
     stages = [e["stage"] for e in events if e["done"]]
-    assert stages == ["profile", "select", "verify"]  # the profile pass also sketches
+    assert stages == ["profile", "select", "encode"]  # the profile pass also sketches
     for stage in stages:
         mine = [e for e in events if e["stage"] == stage]
         assert [e["rows_done"] for e in mine] == [300, 600, 900, 1000, 1000]
@@ -27,7 +27,7 @@ def test_svd_and_the_default_cx_link_have_no_select_pass(tmp_path):
     for name, options in (("svd", {"method": "svd"}), ("cx", {})):
         events = []
         rankfold.compress(x, tmp_path / f"{name}.rankfold", rank=2, progress=events.append, **options)
-        assert [e["stage"] for e in events if e["done"]] == ["profile", "verify"]
+        assert [e["stage"] for e in events if e["done"]] == ["profile", "encode"]
 
 
 def test_progress_must_be_callable(tmp_path):

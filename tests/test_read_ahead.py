@@ -9,7 +9,7 @@ import numpy as np
 import pyarrow as pa
 import pytest
 
-from rankfold.udfs.build.sources import ReadAhead
+from rankfold.udfs.passes.sources import ReadAhead
 
 
 def _reader(batches: int, rows: int = 50) -> pa.RecordBatchReader:

@@ -8,7 +8,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 
-from rankfold.udfs.build.commit import ArchiveWriter, RowPartWriter
+from rankfold.udfs.passes.commit import ArchiveWriter, RowPartWriter
 from rankfold.udfs.store import layout
 
 

@@ -1,7 +1,7 @@
 """The sketch from a seeded sample of Parquet row groups (``sketch_rows``).
 
 What must hold whatever the sample: every bound holds against the source on every row (the
-verify pass reads them all), the column statistics the archive records are those of every
+encode pass reads them all), the column statistics the archive records are those of every
 row (checked against numpy), the same seed gives the same archive on both executors, and a
 source the sample misrepresents (rare rows of another shape, an integer beyond 2^53, values
 too large to square) is either still bounded honestly or handled as with a full sketch.
@@ -23,7 +23,7 @@ from hypothesis import strategies as st
 from scipy import stats
 
 import rankfold
-from rankfold.udfs.build.row_groups import (RowGroup, choose_row_groups, parquet_row_groups,
+from rankfold.udfs.passes.row_groups import (RowGroup, choose_row_groups, parquet_row_groups,
                                             table_row_groups)
 from rankfold.udfs.errors import InvalidInputError, SourceChangedError
 from rankfold.udfs.store.reader import ArchiveReader
@@ -266,7 +266,7 @@ def test_bounds_hold_whatever_the_sample(tmp_path_factory, rows, width, group, f
 
 
 def test_integer_beyond_two_to_the_53_outside_the_sample_is_kept_exactly(tmp_path):
-    """The sample cannot see it; the verify pass does, and compress starts again with a
+    """The sample cannot see it; the encode pass does, and compress starts again with a
     sketch of every row, which keeps the column exactly (as without sampling)."""
     x = _low_rank(13, 10_000, 6)
     groups = [RowGroup("", k, k * GROUP_ROWS, GROUP_ROWS) for k in range(20)]
@@ -297,7 +297,7 @@ def test_values_too_large_to_square_outside_the_sample_are_refused_and_keep_the_
 
 
 def test_rows_counted_by_the_footers_must_be_the_rows_read(dataset, tmp_path, monkeypatch):
-    from rankfold.udfs.build import executors
+    from rankfold.udfs.passes import executors
 
     folder, _ = dataset
     real = executors.LocalExecutor.row_groups
@@ -415,11 +415,11 @@ def test_sampled_sketch_of_a_duckdb_table(tmp_path):
 
 
 def test_a_failing_sample_pass_closes_the_stream_opened_ahead(dataset, tmp_path, monkeypatch):
-    """The verify pass's DuckDB stream is opened before the sample is read; when compress
-    stops on an error before the verify pass, that stream and its thread are closed too."""
+    """The encode pass's DuckDB stream is opened before the sample is read; when compress
+    stops on an error before the encode pass, that stream and its thread are closed too."""
     import threading
 
-    from rankfold.udfs.build import compress as build
+    from rankfold.udfs.passes import compress as build
 
     folder, _ = dataset
 

@@ -17,7 +17,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 import rankfold
-from rankfold.udfs.build.profile import ColumnProfile, Fingerprint, Transform, profile_rows
+from rankfold.udfs.passes.profile import ColumnProfile, Fingerprint, Transform, profile_rows
 from rankfold.udfs.factor.sketch import GramSketch, ShiftedGram
 
 

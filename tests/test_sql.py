@@ -490,7 +490,7 @@ def test_one_log_record_per_request_and_path(archive, tmp_path, caplog):
 
 # -- reading rows from many row groups and files -----------------------------------------------
 def test_row_groups_and_parts_match_the_stock_reader(con, tmp_path, monkeypatch):
-    from rankfold.udfs.build import commit
+    from rankfold.udfs.passes import commit
     from rankfold.udfs.sql.readers import _GroupCache, _ScanReader  # private: the cache has no public handle
     from rankfold.udfs.store.reader import ArchiveReader
 

@@ -27,7 +27,7 @@ import rankfold
 from rankfold.cli import CLI_SPELLING, build_parser, cli_spelling, main
 from rankfold.portable_view import view_sql
 from rankfold.terminal import _display_step, format_bound, format_value, format_with_bound, render_table
-from rankfold.udfs.build.options import DEFAULT_MAX_STD_ERROR, CompressOptions
+from rankfold.udfs.passes.options import DEFAULT_MAX_STD_ERROR, CompressOptions
 
 ROWS, COLS = 300, 10
 

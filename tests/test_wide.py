@@ -23,9 +23,9 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 import rankfold
-from rankfold.udfs.build import executors, profile, sources
-from rankfold.udfs.build.profile import ColumnProfile, Fingerprint, Transform, new_sketch, profile_rows
-from rankfold.udfs.build.select import sketch_of
+from rankfold.udfs.passes import executors, profile, sources
+from rankfold.udfs.passes.profile import ColumnProfile, Fingerprint, Transform, new_sketch, profile_rows
+from rankfold.udfs.passes.select import sketch_of
 from rankfold.udfs.factor.sketch import RowGram, RowSketch
 
 

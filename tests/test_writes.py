@@ -28,7 +28,7 @@ import pytest
 
 import rankfold
 from rankfold import udfs
-from rankfold.udfs.build import commit as commit_module
+from rankfold.udfs.passes import commit as commit_module
 from rankfold.udfs.sql.tables import sweep_spools
 from rankfold.udfs.store import versions
 

@@ -156,7 +156,7 @@ def cur(
     Defaults: c = 2k columns and, for the links that keep rows, r = 2c rows (clipped to the
     table; given counts are clipped too unless ``replace`` draws i.i.d. samples, which may
     repeat); ``cx`` keeps no rows. Used as a reference in
-    tests and for small tables; archives are built by ``rankfold.udfs.build``.
+    tests and for small tables; archives are built by ``rankfold.udfs.passes``.
     """
     a = np.asarray(a, dtype=np.float64)
     m, n = a.shape

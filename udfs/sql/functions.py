@@ -26,7 +26,7 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
-from ..build.compress import compress as _compress
+from ..passes.compress import compress as _compress
 from ..errors import ArchiveExistsError, InvalidInputError, RankfoldError
 from ..store import layout
 from ..store.integrity import seal_for_token
@@ -530,11 +530,11 @@ def _table_udf(prefix: str, verb: str, con) -> Callable:
         # from checked reads and handed to DuckDB as our own spooled table: nothing to check
         # again for them.
         if verb == "scan":
-            reader.verify_for_scan()
+            reader.check_for_scan()
         elif verb == "column_errors":
-            reader.verify_table(layout.COLUMNS)
+            reader.check_table(layout.COLUMNS)
         elif verb == "row_errors":
-            reader.verify_row_files()
+            reader.check_row_files()
         key = (prefix, verb, str(reader.path), reader.version,  # the SQL names prefixed UDFs
                tuple((k, tuple(v) if isinstance(v, list) else v) for k, v in params.items()))
         return _RESULTS.get(key, lambda: make(reader, params))

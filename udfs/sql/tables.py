@@ -267,7 +267,7 @@ def column_errors_sql(reader: ArchiveReader) -> str:
               "err_max", "err_l2", "err_sum", "err_cells", "rel_rms", "tolerance", "residual_step"]
     have = set(reader.columns_table.column_names)
     cols = ", ".join(n for n in wanted if n in have)
-    reader.verify_table(layout.COLUMNS)  # DuckDB reads the columns table again: unchanged?
+    reader.check_table(layout.COLUMNS)  # DuckDB reads the columns table again: unchanged?
     return f"SELECT {cols} FROM {read_parquet_sql([reader.path / layout.table_file(reader.manifest, layout.COLUMNS)])}"
 
 

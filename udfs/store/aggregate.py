@@ -14,7 +14,7 @@ row groups cut by the range's ends.
 
 Hard bound of a sum (design.md section 5), over the N_a approximated cells of column j in S:
 |sum e| <= min(ledger_scale_j * sum_S rowmax_i, N_a colmax_j, sqrt(N_a) err_l2_j), plus a
-floating-point term 4 gamma_{|S| + 2c + 16} M_j that covers the verify pass's own rounding of
+floating-point term 4 gamma_{|S| + 2c + 16} M_j that covers the encode pass's own rounding of
 each xhat (Higham eq. 3.4-3.5, as in ``arithmetic.slack``) and every summation here, where M_j
 is the same sum taken over absolute values. A mean divides by the count of non-NULL cells.
 The estimate sqrt(N_a) * rms_j (rms_j = err_l2_j / sqrt(err_cells_j)) is labelled as such: it is
@@ -72,7 +72,7 @@ def _override_terms(x: np.ndarray, x_hat: np.ndarray, null: np.ndarray | None):
 
 
 class BlockSums:
-    """Per row-group sums gathered by the verify pass (one record per Parquet row group of the
+    """Per row-group sums gathered by the encode pass (one record per Parquet row group of the
     row files: each verify batch is cut at ``layout.ROW_GROUP_ROWS`` like the writer cuts it).
 
     Per block: first_row, rows, rowmax_sum (sum of the stored row figures), and as lists:
@@ -83,7 +83,7 @@ class BlockSums:
     true value minus xhat, NULL cells counting -xhat), ov_abs (n: sum of |x| + |xhat| there),
     ov_sq (n: sum of (x - xhat)^2 over the non-NULL ones).
 
-    ``add`` makes the records of one block of rows; the verify pass instead takes the sums of
+    ``add`` makes the records of one block of rows; the encode pass instead takes the sums of
     its sub-blocks with ``partial`` and appends one record per row group with ``add_partials``.
     """
 
@@ -237,11 +237,11 @@ def rows_source_sql(reader, sealed: str | None = None) -> str:
     ``sealed``: the name of the SQL function that checks row groups as DuckDB reads them
     (``integrity.sealed_rows_sql``; registered by ``sql.register``). With it, and row files
     that carry row-group digests, only the key columns are checked before the query
-    (``ArchiveReader.verify_for_scan``); otherwise the whole files."""
+    (``ArchiveReader.check_for_scan``); otherwise the whole files."""
     paths = [reader.path / p[2] for p in reader.parts]
-    if sealed is not None and reader.verify_for_scan():
+    if sealed is not None and reader.check_for_scan():
         return sealed_rows_sql(paths, sealed, reader.seal.token)
-    reader.verify_row_files()
+    reader.check_row_files()
     return read_parquet_sql(paths)
 
 
@@ -734,7 +734,7 @@ def _stored_covariance(reader, names: list[str], col_idx: np.ndarray, *,
     0, quantized codings, many exact cells.
 
     x = v + e with v the stored value as rebuilt here: e is 0 on exact cells, and on the
-    others at most the verify pass's error (its column norm is ``err_l2``, an upper limit)
+    others at most the encode pass's error (its column norm is ``err_l2``, an upper limit)
     plus this rebuild's floating-point slack, so ||P e_j|| <= d_j = err_l2_j + ||slack_j||.
     The co-moments are summed about the profile's means (Chan et al.: shifting keeps the
     cancellation small); their floating-point error is at most 8 gamma_{m+16}

@@ -1,5 +1,5 @@
 """Rebuild arithmetic and its floating-point slack: the single place where a rebuilt value
-and its bound are computed, used by the verify pass and by every reader.
+and its bound are computed, used by the encode pass and by every reader.
 
 A numeric column j is rebuilt from the c basis values of its row as
 
@@ -10,7 +10,7 @@ where f replaces a missing (NULL) or non-finite basis value by that basis column
 Floating-point slack. Any evaluation order of a sum of c + 1 terms satisfies
 |fl(s) - s| <= gamma_{c+1} * sum |terms| with gamma_n = n u / (1 - n u), u = 2^-53
 (Higham, "Accuracy and Stability of Numerical Algorithms", 2nd ed., 2002, eq. 3.4-3.5).
-The verify pass and a later rebuild (another block shape, a SQL expression, another engine)
+The encode pass and a later rebuild (another block shape, a SQL expression, another engine)
 may sum in different orders, so they differ by at most
 2 gamma_{c+1} S_ij with S_ij = |offset_j| + sum_k |w_kj| |f(x_ik)|. ``slack`` returns
 2 gamma_{c+2} fl(S_ij): S_ij is a sum of non-negative terms, so its computed value is at least
@@ -127,7 +127,7 @@ def quantize(values: np.ndarray, step: float | np.ndarray) -> np.ndarray:
     """Nearest integer codes of values / step as float64 (non-finite values give NaN).
 
     With code q, q * step is within step / 2 of the value (up to the rounding of the
-    product, which the verify pass measures)."""
+    product, which the encode pass measures)."""
     with np.errstate(over="ignore", invalid="ignore"):
         return np.rint(values / step)
 

@@ -79,22 +79,22 @@ class ArchiveReader:
         overwrite gives a new one). Caches of answers are keyed by it."""
         return self.manifest[DIGEST_FIELD]
 
-    def verify_row_files(self) -> None:
+    def check_row_files(self) -> None:
         """Check the whole SHA-256 of every file SQL reads: row files and small tables (cached
         until a file's size, mtime or inode changes). For readers that do not check Parquet
         page checksums, such as DuckDB."""
         self.seal.check()
 
-    def verify_table(self, table: str) -> None:
+    def check_table(self, table: str) -> None:
         """Check the whole SHA-256 of the small table ``table`` (``layout.COLUMNS``, ...) alone,
-        for SQL that reads that table and no row file (cached like :meth:`verify_row_files`)."""
+        for SQL that reads that table and no row file (cached like :meth:`check_row_files`)."""
         self.seal.check([layout.table_file(self.manifest, table)])
 
-    def verify_for_scan(self) -> bool:
+    def check_for_scan(self) -> bool:
         """Before SQL reads the row files through ``integrity.sealed_rows_sql`` (row groups
         checked as DuckDB reads them): check the small tables whole and the column chunks of
         ``_rf_row`` and the key columns, which DuckDB may filter on before the row-group check
-        (cached like :meth:`verify_row_files`). Returns False, after checking the whole files,
+        (cached like :meth:`check_row_files`). Returns False, after checking the whole files,
         for an archive whose row files carry no row-group digests (older archives)."""
         if self.seal.by_groups:
             self.seal.check_before_scan([layout.ROW_ID] + list(self.manifest.get("exact_columns", [])))
@@ -380,7 +380,7 @@ class ArchiveReader:
         row_max = table.column(layout.ROW_ERR_MAX).to_numpy()
         by_row = arithmetic.round_up(row_max[:, None] * self.ledger_scale[col_idx][None, :])
         bounds = np.minimum(by_row, self.err_max_col[col_idx][None, :]) + slack
-        # the verify pass stored every cell whose error plus slack exceeded the tolerance
+        # the encode pass stored every cell whose error plus slack exceeded the tolerance
         bounds = np.minimum(bounds, self.tolerance[col_idx][None, :])
         b, q = values.shape
         exact = np.zeros((b, q), bool)

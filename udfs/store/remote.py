@@ -164,7 +164,7 @@ class RemoteTarget:
 
 
 STAGING_PREFIX = ".rankfold-staging-"
-# Names a compress stages (``compress._verify_task``): partition row files and cell files.
+# Names a compress stages (``compress._encode_task``): partition row files and cell files.
 STAGED_NAME = re.compile(r"\.(part-\d{5}-\d{4}|cells-\d{5})\.parquet")
 # Bytes of the stream kept to read the Parquet footer from (larger footers are read back).
 _TAIL_BYTES = 1 << 20

@@ -185,7 +185,7 @@ class CompressOptions:
             raise InvalidInputError(
                 f"sketch_rows={self.sketch_rows} cannot be combined with an error or size target "
                 "(including the default max_std_error) or with refit_outliers: those need every "
-                "row's statistics before the verify pass. Give 'rank' (alone it keeps no "
+                "row's statistics before the encode pass. Give 'rank' (alone it keeps no "
                 "tolerance), or drop 'sketch_rows' (the sketch then reads every row)."
             )
         if self.link == "textbook" and self.column_method == "pivoted_qr":
@@ -213,7 +213,7 @@ class CompressOptions:
     def may_sample_sketch(self) -> bool:
         """The sketch may come from a sample of row groups: no error or size target and no
         refit, which need the full column statistics (or a second look at every row) before
-        the verify pass."""
+        the encode pass."""
         return self.sketch_rows != "all" and not self.has_targets and not self.refits
 
     @property

@@ -1,7 +1,7 @@
 """Compress a source into an archive. By default two passes over the rows: profile (column
 statistics and the sketch), then verify (rebuild, measure, write); in between, columns are
 chosen and linked from the sketch alone. For a large Parquet source the profile pass reads
-only a seeded sample of row groups (``sketch_rows``), and the verify pass, the one pass that
+only a seeded sample of row groups (``sketch_rows``), and the encode pass, the one pass that
 reads every row, gathers the column statistics as well; every error is still measured on
 every row. Links that keep anchor rows add a select pass; a
 refit without outliers adds a sketch pass (and, for those links, a second select). Commit last.
@@ -46,7 +46,7 @@ from .profile import (SUB_BLOCK_ROWS, ColumnProfile, Fingerprint, Transform, new
                       profile_rows)
 from .select import AnchorRows, anchor_partial, merge_anchor_partials, sketch_of
 from .refit import KAPPA, OutlierScreen
-from .verify import Coding, VerifyResult, verify_pass
+from .encode import Coding, EncodeResult, encode_pass
 from . import targets
 
 __all__ = ["compress"]
@@ -99,7 +99,7 @@ def _anchor_task(blocks, part, screen, sketch, method, rank, count, seed, replac
                           rank, count, seed, replace=replace, draw=draw)
 
 
-def _verify_task(blocks, part, temp, part_rows, names, passthrough, mixing, anchors, transform,
+def _encode_task(blocks, part, temp, part_rows, names, passthrough, mixing, anchors, transform,
                  score_right, scale, coding, distributed, profile_columns, writer=None):
     """Verify one partition: row files (its own names when distributed), exact cells in a
     file of its own, the ledger and the per row-group sums (and with ``profile_columns``,
@@ -122,7 +122,7 @@ def _verify_task(blocks, part, temp, part_rows, names, passthrough, mixing, anch
                   else RowPartWriter(Path(temp), part_rows, name_of))
     sums = BlockSums(len(names), mixing.weights.shape[0], mixing.fill)
     try:
-        result = verify_pass(blocks, names, passthrough, mixing, anchors, transform, score_right,
+        result = encode_pass(blocks, names, passthrough, mixing, anchors, transform, score_right,
                              writer, scale, coding, block_sums=sums,
                              cells_file=(lambda: upload(cells_name)) if on_store else Path(temp) / cells_name,
                              profile_columns=profile_columns)
@@ -256,7 +256,7 @@ def _compress_to_store(source: Any, url: str, opts: CompressOptions) -> str:
 
 
 class _SampleMissed(Exception):
-    """The verify pass found, outside the sketch's sample, an integer column beyond 2^53,
+    """The encode pass found, outside the sketch's sample, an integer column beyond 2^53,
     which must be kept exactly: compress again with a sketch of every row."""
 
 
@@ -408,7 +408,7 @@ def _compress(src, new_writer, opts: CompressOptions) -> Path | str:
     passes = _Passes(src, opts)
     read = _sketch_rows(src, opts, numeric)
     if read.sampled and (opts.method == "svd" or opts.link == "cx"):
-        # the next full pass is the verify pass: DuckDB starts on it while the sample is read
+        # the next full pass is the encode pass: DuckDB starts on it while the sample is read
         src.open_ahead(numeric, passthrough)
     profile, fingerprint, sample, gram = passes.profile(numeric, keep_sample=opts.has_targets,
                                                         groups=read.groups)
@@ -689,9 +689,9 @@ class _Written:
 
 def _write(src, new_writer, opts, numeric, passthrough, rows, profile, fingerprint, transform,
            sketch, build: _Build, passes: _Passes, read: _SketchRows) -> _Written:
-    """One attempt: fit from the sketch, then the verify pass writes it to a temporary
+    """One attempt: fit from the sketch, then the encode pass writes it to a temporary
     directory. ``profile`` is the profile pass's (of a sample when ``read.sampled``: then
-    the verify pass gathers the statistics of every row, which the archive records)."""
+    the encode pass gathers the statistics of every row, which the archive records)."""
     width = len(numeric)
     rng = np.random.default_rng(opts.seed)
     plan = build.coding_plan
@@ -734,11 +734,11 @@ def _write(src, new_writer, opts, numeric, passthrough, rows, profile, fingerpri
     try:
         distributed = passes.ex.distributed
         parts = passes.ex.run(
-            "verify", _verify_task, numeric, passthrough, rows,
+            "encode", _encode_task, numeric, passthrough, rows,
             (writer.worker_target, writer.part_rows, numeric, passthrough, mixing, anchors, transform,
              score_right, scale, coding, distributed, read.sampled)
             + (() if distributed else (writer,)))
-        result = VerifyResult.merge([p[0] for p in parts], width)
+        result = EncodeResult.merge([p[0] for p in parts], width)
         if distributed:
             writer.adopt_parts([part for p in parts for part in p[1]])
         for p in parts:
@@ -751,7 +751,7 @@ def _write(src, new_writer, opts, numeric, passthrough, rows, profile, fingerpri
             profile = _whole_table_profile(src, numeric, rows, result)
         elif not result.fingerprint.matches(fingerprint):
             raise SourceChangedError(
-                f"The source {src.description} gave different rows in the profile and verify "
+                f"The source {src.description} gave different rows in the profile and encode "
                 f"passes ({fingerprint.rows} then {result.rows} rows, or the same count with "
                 "other values or order). Compress a stable snapshot, or add an ORDER BY."
             )
@@ -773,13 +773,13 @@ def _write(src, new_writer, opts, numeric, passthrough, rows, profile, fingerpri
         raise
 
 
-def _whole_table_profile(src, numeric: list[str], rows: int, result: VerifyResult) -> ColumnProfile:
-    """The statistics of every row, gathered by the verify pass when the sketch read a
+def _whole_table_profile(src, numeric: list[str], rows: int, result: EncodeResult) -> ColumnProfile:
+    """The statistics of every row, gathered by the encode pass when the sketch read a
     sample; checks what the profile pass would have checked on them."""
     if result.rows != rows:
         raise SourceChangedError(
             f"Before the passes, {src.description} held {rows} rows (counted from its Parquet "
-            f"footers or its table's row ids), but the verify pass read {result.rows}. The source "
+            f"footers or its table's row ids), but the encode pass read {result.rows}. The source "
             "changed during compress: compress a stable snapshot."
         )
     if _beyond_float64(src.schema, numeric, result.profile):
@@ -812,7 +812,7 @@ def _fit_cur(opts, build, sketch, screen, transform, passes, stage, numeric, row
 
 
 def _coding(plan, mixing, build) -> Coding | None:
-    """The verify pass's coding for a plan (None: plain factors, no tolerance)."""
+    """The encode pass's coding for a plan (None: plain factors, no tolerance)."""
     if plan is None:
         return None
     c = mixing.weights.shape[0]
@@ -852,7 +852,7 @@ def _coding(plan, mixing, build) -> Coding | None:
 def _trim_factors(mixing: _link.Mixing, tolerance: np.ndarray, profile: ColumnProfile) -> _link.Mixing:
     """Trim the mantissas of offsets and weights so that their rounding moves no rebuilt value
     by more than 5% of its column's tolerance: |dw| <= |w| 2^-bits, so a value moves at most
-    2^-bits (|offset_j| + sum_k |w_kj| max|x_k|). The verify pass measures with the trimmed
+    2^-bits (|offset_j| + sum_k |w_kj| max|x_k|). The encode pass measures with the trimmed
     factors, so bounds hold whatever the trimming did."""
     c = mixing.weights.shape[0]
     if mixing.basis_columns is not None and mixing.basis_columns.size == c:
@@ -986,7 +986,7 @@ def _basis_entries(basis_names, mixing, coding) -> list[dict[str, Any]]:
 
 
 def _manifest(src, opts, numeric, passthrough, rows, build, spectrum, profile, transform,
-              mixing, anchors, result: VerifyResult, basis_names, parts, coding) -> dict:
+              mixing, anchors, result: EncodeResult, basis_names, parts, coding) -> dict:
     roles = {n: "numeric" for n in numeric} | {n: "exact" for n in passthrough}
     return {
         "format": layout.FORMAT_NAME,

@@ -1,7 +1,7 @@
 """Commit to object storage for a distributed compress: the partitions' files never touch
 the client's disk.
 
-The verify pass's partitions (Dask tasks) stream their row files and exact-cell files
+The encode pass's partitions (Dask tasks) stream their row files and exact-cell files
 straight to a private staging prefix inside the target (``remote.Staging``, a random token
 under ``.rankfold-staging-``), measuring size, SHA-256 and the Parquet footer's SHA-256 as
 the bytes go out (``remote.StagedUpload``). The client then assembles the archive:
@@ -57,7 +57,7 @@ class StoreArchiveWriter:
 
     @property
     def worker_target(self) -> Staging:
-        """Where the verify pass's partitions write their files: the staging prefix."""
+        """Where the encode pass's partitions write their files: the staging prefix."""
         return self.staging
 
     @property

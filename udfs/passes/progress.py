@@ -2,12 +2,12 @@
 
 A callback given as ``progress=`` receives one dict per row block and one when a pass ends::
 
-    {"stage": "verify", "rows_done": 262144, "rows_total": 1000000 or None,
+    {"stage": "encode", "rows_done": 262144, "rows_total": 1000000 or None,
      "rows_per_second": 812345.6, "seconds": 0.32, "done": False}
 
 Stages, in order: ``profile`` (column statistics and the sketch, one pass), ``select``
 (only for links that keep anchor rows), ``refit`` and ``refit-select`` (only when refitting
-without outliers), ``verify``. ``rows_total`` is None during the profile pass, which is where
+without outliers), ``encode``. ``rows_total`` is None during the profile pass, which is where
 the row count is learned.
 """
 

@@ -141,7 +141,7 @@ def _race_keys(seed: int, draw: int, slots: int, positions: np.ndarray, weights:
 
 class AnchorScan:
     """Map step of the anchor choice, fed one raw block at a time (``add``), so that it can
-    run on its own pass or ride along another one (the verify pass, when the link does not
+    run on its own pass or ride along another one (the encode pass, when the link does not
     depend on the anchor rows). ``partial()`` gives what ``merge_anchor_partials`` merges.
 
     ``screen`` is the transform the rows are read through (a ``Transform`` or an outlier

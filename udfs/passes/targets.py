@@ -15,7 +15,7 @@ column for every number of basis columns c, and from it the bytes each choice co
 * Cells whose residual exceeds t can instead be stored one by one (about 14 bytes each
   after compression, measured on cells.parquet); the expected share is 2 Phi(-t / sigma).
 
-The verify pass then measures what was actually achieved; the bound never rests on the model.
+The encode pass then measures what was actually achieved; the bound never rests on the model.
 """
 
 from __future__ import annotations

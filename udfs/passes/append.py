@@ -1,9 +1,9 @@
 """Append rows to an archive without refactoring it.
 
 The new rows are rebuilt from their own basis values (CUR) or scores (SVD, from the stored
-right factor) with the archive's mixing matrix, and go through the verify pass unchanged:
+right factor) with the archive's mixing matrix, and go through the encode pass unchanged:
 residual measured on the factors as stored, residual codes and corrections under the
-archive's tolerance, exact cells, row ledger. The verify-pass guarantee (``verify.py``)
+archive's tolerance, exact cells, row ledger. The encode-pass guarantee (``encode.py``)
 therefore holds for appended rows exactly as for the original ones. The column ledger is
 merged (max, hypot, sums), as are the column statistics; the transform and the ledger scale
 stay those of the archive, which the rebuild formula depends on.
@@ -47,7 +47,7 @@ from .profile import ColumnProfile, Transform, profile_block
 from .progress import Progress
 from .select import AnchorRows
 from .sources import block_from_batch, open_source
-from .verify import Coding, ColumnLedger, verify_pass
+from .encode import Coding, ColumnLedger, encode_pass
 
 __all__ = ["append", "DRIFT_FACTOR"]
 
@@ -175,7 +175,7 @@ def _write_version(reader: ArchiveReader, src, batch_rows, progress, temp: Path)
     stream = _stream(src, names, passthrough, batch_rows, first_row, transform, state, report)
     try:
         with one_blas_thread():
-            result = verify_pass(stream, names, passthrough, mixing, anchors, transform, score_right,
+            result = encode_pass(stream, names, passthrough, mixing, anchors, transform, score_right,
                                  writer, scale, coding, block_sums=sums, cells_file=cells_temp)
     finally:
         writer.close()

@@ -1,4 +1,4 @@
-"""Pass 4, verify: rebuild every block from the factors exactly as they will be stored,
+"""Pass 4, encode: rebuild every block from the factors exactly as they will be stored,
 measure the residual, fill the error ledger, route cells that cannot be approximated to the
 exact-cell table, and write the row files. When the sketch came from a sample of the rows,
 this pass also gathers every column's statistics (``profile_columns``), since it is then the
@@ -35,7 +35,7 @@ from .link import Mixing
 from .profile import ColumnProfile, Fingerprint, Transform, profile_block
 from .select import AnchorRows
 
-__all__ = ["ColumnLedger", "ExactCells", "verify_pass"]
+__all__ = ["ColumnLedger", "ExactCells", "encode_pass"]
 
 Stream = Iterator[tuple[int, pa.RecordBatch, np.ndarray, "np.ndarray | None"]]
 
@@ -215,7 +215,7 @@ class Coding:
 
 
 @dataclass
-class VerifyResult:
+class EncodeResult:
     ledger: ColumnLedger
     cells: ExactCells
     fingerprint: Fingerprint
@@ -224,7 +224,7 @@ class VerifyResult:
     profile: ColumnProfile | None = None  # every column's statistics, when asked for
 
     @staticmethod
-    def merge(results: list["VerifyResult"], width: int) -> "VerifyResult":
+    def merge(results: list["EncodeResult"], width: int) -> "EncodeResult":
         """One result from the results of disjoint partitions (cells stay in their files)."""
         ledger, fingerprint = ColumnLedger.empty(width), Fingerprint()
         cells = ExactCells()
@@ -235,7 +235,7 @@ class VerifyResult:
             cells.spilled += r.cells.count
             if profile is not None:
                 profile = profile.merge(r.profile)
-        return VerifyResult(ledger, cells, fingerprint, sum(r.rows for r in results),
+        return EncodeResult(ledger, cells, fingerprint, sum(r.rows for r in results),
                             sum(r.corrections for r in results), profile=profile)
 
 
@@ -264,7 +264,7 @@ def _stored_basis(raw: np.ndarray, step: np.ndarray, float32: bool):
     return values, arrays
 
 
-# Cells per sub-block: the verify pass works through each batch in slices of about this many
+# Cells per sub-block: the encode pass works through each batch in slices of about this many
 # cells (4,096 rows at n = 100), so that its (rows, n) work arrays stay in cache and are reused,
 # instead of page-faulting through fresh 100 MB temporaries per batch. Measured on 1e6 x 100
 # float64, 2 cores: 5.8 s for the pass in whole batches, 1.2-1.4 s in sub-blocks; sub-blocks
@@ -312,7 +312,7 @@ class _Buffers:
 
 @dataclass
 class _Kernel:
-    """The per-cell work of the verify pass on one sub-block (constants of the pass)."""
+    """The per-cell work of the encode pass on one sub-block (constants of the pass)."""
 
     mixing: Mixing
     exact_columns: np.ndarray   # (e,) exactly stored basis columns
@@ -468,7 +468,7 @@ class _Kernel:
         return np.concatenate(rows).astype(np.intp), np.concatenate(cols).astype(np.intp)
 
 
-def verify_pass(
+def encode_pass(
     stream: Stream,
     names: list[str],
     passthrough: list[str],
@@ -483,8 +483,8 @@ def verify_pass(
     cells_file: Path | None = None,
     sub_rows: int | None = None,
     profile_columns: bool = False,
-) -> VerifyResult:
-    """Run the verify pass and write the row files (see the module docstring).
+) -> EncodeResult:
+    """Run the encode pass and write the row files (see the module docstring).
 
     Each batch of the stream is written as one table (so its row groups are cut at
     ``layout.ROW_GROUP_ROWS`` from its first row) and gives one ``block_sums`` record per row
@@ -589,4 +589,4 @@ def verify_pass(
         columns[layout.ROW_ERR_L2] = pa.array(arithmetic.round_up_compact(row_l2, ledger_bits))
         writer.write_rows(pa.table(columns), first)
         rows += b
-    return VerifyResult(ledger, cells.finish(), fingerprint, rows, corrections_count, profile=profile)
+    return EncodeResult(ledger, cells.finish(), fingerprint, rows, corrections_count, profile=profile)

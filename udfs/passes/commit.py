@@ -77,7 +77,7 @@ def _byte_stream_split_wins(column: pa.Array) -> bool:
 
 
 # Rows per row file: 8 row groups of layout.ROW_GROUP_ROWS. A row-range read opens only the
-# files that hold the range, and a distributed verify pass writes at least one file per
+# files that hold the range, and a distributed encode pass writes at least one file per
 # partition; files much larger than this only make such reads coarser.
 PART_ROWS = 1 << 20
 
@@ -88,7 +88,7 @@ class RowPartWriter:
 
     The Parquet encoding and compression run on one background thread, in call order, while
     the caller computes the next batch (pyarrow releases the GIL while it writes): measured
-    0.3 s of the 1.3 s verify pass of 1e6 x 100 taken off the critical path. At most two
+    0.3 s of the 1.3 s encode pass of 1e6 x 100 taken off the critical path. At most two
     tables wait; a table handed to ``write_rows`` must not be changed afterwards. Errors of
     the thread are raised by the next call or by ``close``, which must be called before the
     files are read.
@@ -258,7 +258,7 @@ class ArchiveWriter:
 
     @property
     def worker_target(self) -> Path:
-        """Where the verify pass's partitions write their files: this temporary directory."""
+        """Where the encode pass's partitions write their files: this temporary directory."""
         return self.temp
 
     def row_files(self) -> tuple[list[str], Any]:

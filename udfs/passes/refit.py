@@ -5,7 +5,7 @@ After a first fit, a cell is an outlier when its transformed residual exceeds ``
 its column's residual RMS, which the sketch gives without a pass: for a mixing M on basis J,
 the residual of column j is ||F[:, j] - F[:, J] M[:, j]|| because F^T F = Z^T Z. The refit
 sketches and selects again on the table with every outlier replaced by the first fit's
-prediction; the verify pass then measures the real table, where outliers become corrections
+prediction; the encode pass then measures the real table, where outliers become corrections
 (or large residual codes) like any other cell. Measured on a sensor panel with spikes (team
 notes): per-column error 2.9% -> 0.98% at the same rank.
 

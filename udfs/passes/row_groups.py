@@ -7,7 +7,7 @@ of whole row groups read by index, decoding nothing else. A DuckDB base table is
 way into ranges of its row ids, which DuckDB reads without scanning the rest (a filter on
 ``rowid`` reaches the table scan: 250,000 of 4e6 rows x 100 read in 0.2 s). The compress sketch (the n x n
 Gram matrix that chooses the basis columns and their weights) can come from such a sample;
-the verify pass still reads every row and measures every error, so what the archive reports
+the encode pass still reads every row and measures every error, so what the archive reports
 never rests on the sample.
 """
 

@@ -1,4 +1,4 @@
-"""The pieces the verify pass's sub-blocks are built on, each against an outside reference:
+"""The pieces the encode pass's sub-blocks are built on, each against an outside reference:
 
 * ``BlockSums.add`` and ``BlockSums.partial`` / ``add_partials`` over uneven sub-ranges give
   the sums of a direct numpy computation over the whole range;
@@ -95,7 +95,7 @@ def test_approximate_into_a_buffer_has_the_bits_of_numpys_product(layout_of_out)
         out = np.empty((300, 40))
     elif layout_of_out == "F":
         out = np.empty((300, 40), order="F")
-    else:  # the first rows of a larger column-major buffer, as the verify pass uses them
+    else:  # the first rows of a larger column-major buffer, as the encode pass uses them
         out = np.empty((40, 512)).T[:300]
     result = arithmetic.approximate(filled, weights, offset, out=out)
     assert result is out
@@ -142,7 +142,7 @@ def test_stored_column_norm_covers_the_rounding_of_its_sum():
     # exact rational arithmetic (Python's fractions.Fraction).
     from fractions import Fraction
 
-    from rankfold.udfs.build.verify import ColumnLedger
+    from rankfold.udfs.passes.encode import ColumnLedger
 
     rng = np.random.default_rng(0)  # invented residuals
     for _ in range(20):

@@ -1,4 +1,4 @@
-"""The verify pass works through each batch in cache-sized sub-blocks (udfs/build/verify.py).
+"""The encode pass works through each batch in cache-sized sub-blocks (udfs/passes/encode.py).
 
 Archives here are written with sub-blocks of 7 rows, row groups of 50 rows and batches of 230
 rows, so one batch spans many sub-blocks and row groups, and batch ends fall inside row groups
@@ -13,7 +13,7 @@ the source table and the stored files:
 * a compress of the same table in whole-row-group sub-blocks writes the same row files and
   exact cells, and the same ledger and block sums up to the order of floating-point summation.
 
-The pieces these rest on are checked one by one in test_verify_pieces.py.
+The pieces these rest on are checked one by one in test_encode_pieces.py.
 """
 
 from __future__ import annotations
@@ -26,8 +26,8 @@ import pyarrow.parquet as pq
 import pytest
 
 import rankfold
-from rankfold.udfs.build import compress as compress_module
-from rankfold.udfs.build import verify as verify_module
+from rankfold.udfs.passes import compress as compress_module
+from rankfold.udfs.passes import encode as encode_module
 from rankfold.udfs.store import layout
 from rankfold.udfs.store.reader import ArchiveReader
 
@@ -70,8 +70,8 @@ def _truth(table: pa.Table) -> tuple[np.ndarray, np.ndarray]:
 
 def _compress(tmp_path, monkeypatch, options: dict, sub_rows: int | None, name: str) -> rankfold.Archive:
     monkeypatch.setattr(layout, "ROW_GROUP_ROWS", GROUP_ROWS)
-    monkeypatch.setattr(compress_module, "verify_pass",
-                        functools.partial(verify_module.verify_pass, sub_rows=sub_rows))
+    monkeypatch.setattr(compress_module, "encode_pass",
+                        functools.partial(encode_module.encode_pass, sub_rows=sub_rows))
     return rankfold.compress(_table(), tmp_path / name, batch_rows=BATCH_ROWS, seed=3, **options)
 
 
@@ -143,7 +143,7 @@ def test_column_ledger_is_numpys_residual_statistics(archives):
     ledger = archive.column_ledger()
     cells = approximated.sum(axis=0)
     assert np.array_equal(ledger.column("err_cells").to_numpy(), cells)
-    # the reader may sum in another order than the verify pass: they differ by at most the
+    # the reader may sum in another order than the encode pass: they differ by at most the
     # slack, a few units of the last place of the column's values
     scale = np.nanmax(np.where(approximated, np.abs(truth), 0.0), axis=0)
     tiny = 1e-13 * scale

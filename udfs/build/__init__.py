@@ -1,1 +1,0 @@
-"""The builder: sources, the five compress passes (profile, sketch, select, verify, commit)."""

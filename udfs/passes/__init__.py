@@ -1,0 +1,1 @@
+"""The builder: sources, the five compress passes (profile, sketch, select, encode, commit)."""
