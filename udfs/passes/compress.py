@@ -44,7 +44,7 @@ from .plan import CompressPlan
 from .row_groups import RowGroup, choose_row_groups
 from .profile import (SUB_BLOCK_ROWS, ColumnProfile, Fingerprint, Transform, new_sketch,
                       profile_rows)
-from .select import AnchorRows, anchor_partial, merge_anchor_partials, sketch_of
+from .select import AnchorRows, AnchorScan, anchor_partial, merge_anchor_partials, sketch_of
 from .refit import KAPPA, OutlierScreen
 from .encode import Coding, EncodeResult, encode_pass
 from . import targets
@@ -95,8 +95,9 @@ def _sketch_task(blocks, part, screen, width: int):
 
 
 def _anchor_task(blocks, part, screen, sketch, method, rank, count, seed, replace, draw):
-    return anchor_partial(((f, b, m) for f, _, b, m in blocks), copy.copy(screen), sketch, method,
-                          rank, count, seed, replace=replace, draw=draw)
+    return anchor_partial(((f, b, m) for f, _, b, m in blocks),
+                          AnchorScan(copy.copy(screen), sketch, method, rank, count, seed,
+                                     replace=replace, draw=draw))
 
 
 def _encode_task(blocks, part, temp, part_rows, names, passthrough, mixing, anchors, transform,
