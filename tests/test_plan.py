@@ -13,6 +13,8 @@ import duckdb
 import numpy as np
 import pyarrow as pa
 import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
 
 import rankfold
 from rankfold.cli import cli_spelling, main
@@ -218,3 +220,64 @@ def test_the_command_line_shows_the_same_refusals(tmp_path, capsys, flags, optio
     assert code == 1
     assert err == f"rankfold: error: {cli_spelling(str(library.value))}\n"
     assert not (tmp_path / "cli.rankfold").exists() and not (tmp_path / "lib.rankfold").exists()
+
+
+# -- every combination: refused before reading, or honoured ---------------------------------------
+WIDTH, HEIGHT = 6, 80
+_UNREADABLE_WIDE = ("SELECT " + ", ".join(f"(i * {j + 1})::DOUBLE AS x{j}" for j in range(WIDTH - 1))
+                    + f", CASE WHEN i >= 0 THEN error('a row was read') ELSE 1 END::DOUBLE AS x{WIDTH - 1}"
+                    + f" FROM range({HEIGHT}) t(i)")
+
+
+@st.composite
+def option_sets(draw):
+    """Options drawn together, sizes within the table's rows (the row count is the one thing
+    only a pass can tell) but possibly beyond its columns."""
+    choices = {
+        "rank": st.sampled_from([1, 2, 4, 7]),
+        "n_columns": st.sampled_from([1, 3, 5, 8]),
+        "n_rows": st.sampled_from([4, 9]),
+        "method": st.sampled_from(["cur", "svd"]),
+        "link": st.sampled_from(["cx", "optimal"]),
+        "column_method": st.sampled_from(["leverage"]),
+        "replace": st.sampled_from([True]),
+        "max_abs_error": st.sampled_from([0.5, {"x1": 0.2}]),
+        "max_std_error": st.sampled_from([0.1]),
+        "rel_error": st.sampled_from([0.2]),
+        "target_bytes": st.sampled_from([10**6]),
+        "residual": st.sampled_from(["corrections"]),
+    }
+    names = draw(st.lists(st.sampled_from(sorted(choices)), max_size=4, unique=True))
+    return {name: draw(choices[name]) for name in names}
+
+
+@settings(max_examples=80, deadline=None, derandomize=True,
+          suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(options=option_sets())
+def test_every_combination_is_refused_before_reading_or_honoured(tmp_path_factory, options):
+    # the rule table of plan.py against its promise: no size given is silently replaced
+    folder = tmp_path_factory.mktemp("combination")
+    x = _low_rank(m=HEIGHT, n=WIDTH, k=2, seed=9)
+    table = pa.table({f"x{j}": x[:, j] for j in range(WIDTH)})
+    try:
+        archive = rankfold.compress(table, folder / "a.rankfold", **options)
+    except rankfold.InvalidInputError as refused:
+        con = duckdb.connect()
+        try:  # the same refusal, from a source that cannot be read
+            with pytest.raises(type(refused)) as again:
+                rankfold.compress(_UNREADABLE_WIDE, folder / "b.rankfold", connection=con, **options)
+        finally:
+            con.close()
+        assert str(again.value).split(" of the source ")[0] == str(refused).split(" of the source ")[0]
+        assert list(folder.iterdir()) == []
+        return
+    method = archive.manifest["method"]
+    if "rank" in options:
+        assert method["rank"] == options["rank"]
+    drawn = options.get("replace") and options.get("column_method") == "leverage"
+    if "n_columns" in options and not drawn:
+        assert method["n_columns"] == options["n_columns"]
+    elif "rank" in options and not drawn and method["kind"] == "cur" and "n_columns" not in options:
+        assert method["n_columns"] == min(2 * options["rank"], WIDTH)
+    if "n_rows" in options:
+        assert method["n_rows"] == options["n_rows"] or (options.get("replace") and method["n_rows"] <= options["n_rows"])
