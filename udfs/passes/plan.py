@@ -61,6 +61,7 @@ from __future__ import annotations
 
 import copy
 from dataclasses import dataclass, field
+
 import numpy as np
 import pyarrow as pa
 
