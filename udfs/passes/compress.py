@@ -27,7 +27,7 @@ import numpy as np
 import pyarrow as pa
 
 from ..version import __version__
-from ..errors import (EmptySourceError, InvalidInputError, NoNumericColumnsError, SourceChangedError)
+from ..errors import EmptySourceError, InvalidInputError, NoNumericColumnsError, SourceChangedError
 from ..factor import cur as _cur
 from ..factor.svd import gavish_donoho_rank
 from ..store import layout, remote, versions
@@ -54,10 +54,6 @@ __all__ = ["compress"]
 # Integers above 2^53 do not survive float64; such columns are kept exactly instead. The
 # profile sees them as float64, where 2^53 + 1 reads as 2^53: so 2^53 itself counts too.
 _EXACT_INTEGER_LIMIT = 2.0**53
-
-
-def _is_numeric(data_type: pa.DataType) -> bool:
-    return (pa.types.is_integer(data_type) or pa.types.is_floating(data_type))
 
 
 # -- the passes as tasks over one partition's blocks (first row, batch, block, NULL mask) ---------
@@ -575,11 +571,10 @@ def _first_build(opts, goal, rows, width, sketch, profile, transform, sample, nu
     if goal.target_bytes is not None:
         exact = np.array([sample.get(n, 8.0) for n in numeric])
         fixed = rows * sum(sample.get(n, 8.0) for n in passthrough) + rows * 8.0
-        predicted = {"cur": lambda: targets.PredictedResiduals.of_cur(sketch.r, transform.scale, rows),
-                     "svd": lambda: targets.PredictedResiduals.of_svd(sketch.spectrum, transform.scale, rows)}
-        plan = targets.plan_for_bytes(float(goal.target_bytes),
-                                      [predicted[m]() for m in ((opts.method,) if opts.method else ("cur", "svd"))],
-                                      exact, fixed)
+        candidates = [targets.PredictedResiduals.of_cur(sketch.r, transform.scale, rows) if m == "cur"
+                      else targets.PredictedResiduals.of_svd(sketch.spectrum, transform.scale, rows)
+                      for m in ((opts.method,) if opts.method else ("cur", "svd"))]
+        plan = targets.plan_for_bytes(float(goal.target_bytes), candidates, exact, fixed)
         if plan is None:
             raise InvalidInputError(
                 f"target_bytes={goal.target_bytes} is below the smallest archive rankfold can "
