@@ -281,3 +281,40 @@ def test_every_combination_is_refused_before_reading_or_honoured(tmp_path_factor
         assert method["n_columns"] == min(2 * options["rank"], WIDTH)
     if "n_rows" in options:
         assert method["n_rows"] == options["n_rows"] or (options.get("replace") and method["n_rows"] <= options["n_rows"])
+
+
+# -- the size model the plan hands its sizes to ------------------------------------------------
+def test_predicted_residuals_match_least_squares_and_the_truncated_svd():
+    from rankfold.udfs.factor.sketch import Spectrum
+    from rankfold.udfs.passes import targets
+
+    a = _low_rank(m=200, n=7, k=3, seed=12)
+    a = a - a.mean(axis=0)
+    cur = targets.PredictedResiduals.of_cur(a, np.ones(7), 200)  # F = A: F^T F = A^T A
+    for c in range(8):
+        basis = a[:, cur.order[:c]]
+        # numpy.linalg.lstsq: residual of each column after the least-squares fit on the basis
+        fit = basis @ np.linalg.lstsq(basis, a, rcond=None)[0] if c else np.zeros_like(a)
+        np.testing.assert_allclose(cur.res[c], np.linalg.norm(a - fit, axis=0), rtol=1e-9, atol=1e-9 * np.linalg.norm(a))
+    u, s, vt = np.linalg.svd(a, full_matrices=False)
+    svd = targets.PredictedResiduals.of_svd(Spectrum(s, vt.T), np.ones(7), 200)
+    for k in range(8):
+        # Eckart-Young: the truncated SVD (numpy.linalg.svd) leaves A - A_k, column by column
+        truncated = (u[:, :k] * s[:k]) @ vt[:k]
+        np.testing.assert_allclose(svd.res[k], np.linalg.norm(a - truncated, axis=0), rtol=1e-9,
+                                   atol=1e-9 * np.linalg.norm(a))
+
+
+def test_the_tolerance_planner_keeps_a_given_size():
+    from rankfold.udfs.passes import targets
+
+    a = _low_rank(m=300, n=10, k=3, seed=13)
+    predicted = targets.PredictedResiduals.of_cur(a - a.mean(axis=0), np.ones(10), 300)
+    coding = targets.ToleranceCoding("auto", "exact", a.std(axis=0), np.full(10, 8.0))
+    tolerance = np.full(10, 0.05)
+    free = targets.plan_for_tolerance(predicted, tolerance, coding,
+                                      [((c + 1) // 2, c) for c in range(6)], reason="free")
+    given = targets.plan_for_tolerance(predicted, tolerance, coding, [(4, 7)], reason="given")
+    assert (given.rank, given.columns, given.reason) == (4, 7, "given")
+    assert list(given.basis) == list(predicted.order[:7])
+    assert free.columns != 7 and free.predicted_bytes < given.predicted_bytes
