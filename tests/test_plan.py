@@ -77,6 +77,8 @@ REFUSED = [
      r"replace=False has no effect here: column_method='pivoted_qr' and row_method='qdeim'"),
     ({"link": "textbook"}, rankfold.InvalidInputError, r"'textbook' link needs sampled columns"),
     ({"rank": 2, "sketch_rows": 10, "max_abs_error": 0.1}, rankfold.InvalidInputError, r"sketch_rows=10 cannot be combined"),
+    ({"rank": 2, "storage_options": {"anon": True}}, rankfold.InvalidInputError,
+     r"storage_options are file-system options of a URL .* would have no effect"),
 ]
 
 

@@ -196,6 +196,7 @@ def compress(source: Any, path: str | Path, *, rank: int | None = None, seed: in
     See ``rankfold.compress`` for the user-facing documentation.
     """
     opts = CompressPlan.from_call(rank, seed, options)  # the rules between options, before any work
+    opts.check_locations(source, path)
     if remote.is_url(path):  # object storage (see _compress_to_store)
         return _compress_to_store(source, str(path), opts)
     target = prepare_target(path, opts.overwrite)

@@ -47,6 +47,7 @@ residual other than 'auto', no tolerance    R   the residual coding exists to me
 basis_precision 'tolerance', no tolerance   R   the basis step is twice the tolerance
 sketch_rows a number + any target (the      R   targets and the refit need every row's
 default tolerance too) or refit_outliers        statistics before the encode pass
+storage_options, no URL source or path      R   fsspec options of a URL: no effect on local files
 key, exact_columns, per-column targets      R   when they name no column of the source; a
                                                 per-column target must name a numeric column
                                                 that is not kept exactly (key, exact_columns)
@@ -61,12 +62,13 @@ from __future__ import annotations
 
 import copy
 from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 import pyarrow as pa
 
 from ..errors import InvalidInputError, NoNumericColumnsError, RankTooLargeError
-from ..store import layout
+from ..store import layout, remote
 from .options import CompressOptions
 
 __all__ = ["CompressPlan"]
@@ -185,6 +187,19 @@ class CompressPlan(CompressOptions):
                 "(including the default max_std_error) or with refit_outliers: those need every "
                 "row's statistics before the encode pass. Give 'rank' (alone it keeps no "
                 "tolerance), or drop 'sketch_rows' (the sketch then reads every row)."
+            )
+
+    def check_locations(self, source: Any, path: Any) -> None:
+        """``storage_options`` are fsspec options of a URL: refused when neither the source nor
+        the archive path is one (they would have no effect)."""
+        if self.storage_options is None or remote.is_url(path):
+            return
+        sources = source if isinstance(source, (list, tuple)) else [source]
+        if not any(remote.is_url(s) for s in sources):
+            raise InvalidInputError(
+                "storage_options are file-system options of a URL source or archive path "
+                "(s3://..., gs://...), but neither the source nor the path "
+                f"{str(path)!r} is a URL, so they would have no effect. Drop storage_options."
             )
 
     # -- step 2: the source's columns ---------------------------------------------------------
