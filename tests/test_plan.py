@@ -320,3 +320,9 @@ def test_the_tolerance_planner_keeps_a_given_size():
     assert (given.rank, given.columns, given.reason) == (4, 7, "given")
     assert list(given.basis) == list(predicted.order[:7])
     assert free.columns != 7 and free.predicted_bytes < given.predicted_bytes
+
+
+def test_a_connection_that_is_not_duckdbs_is_refused_before_use(tmp_path):
+    with pytest.raises(rankfold.InvalidInputError, match=r"'connection' option of compress must be a DuckDB connection.*Got int"):
+        rankfold.compress("panel", tmp_path / "c.rankfold", connection=42, rank=1)
+    assert list(tmp_path.iterdir()) == []

@@ -9,6 +9,7 @@ import warnings
 from dataclasses import dataclass, field, fields
 from typing import Any, ClassVar
 
+import duckdb
 import numpy as np
 
 from ..errors import InvalidInputError, UnknownOptionError
@@ -161,6 +162,11 @@ class CompressOptions:
         if self.progress is not None and not callable(self.progress):
             raise InvalidInputError(
                 f"The 'progress' option of compress must be a callable taking one dict. Got {self.progress!r} instead."
+            )
+        if self.connection is not None and not isinstance(self.connection, duckdb.DuckDBPyConnection):
+            raise InvalidInputError(
+                "The 'connection' option of compress must be a DuckDB connection (duckdb.connect()) "
+                f"that holds the table or query to compress. Got {type(self.connection).__name__} instead."
             )
         if self.storage_options is not None and not isinstance(self.storage_options, dict):
             raise InvalidInputError(
