@@ -65,7 +65,9 @@ def compress(source: Any, path: str | Path, *, rank: int | None = None, seed: in
         executor ('local' | 'dask' | a dask.distributed Client), storage_options, batch_rows,
         sketch_rows ('auto' | 'all' | a number of rows: the sketch that chooses the columns
         reads a seeded sample of Parquet row groups; every error is still measured on every
-        row), progress (a callable), overwrite.
+        row), progress (a callable), overwrite. Options given together are honoured or
+        refused before any row is read, never ignored: the README's "Options given together"
+        table (e.g. n_columns with a tolerance is kept; n_columns with rel_error is refused).
 
     Returns
     -------

@@ -78,7 +78,7 @@ def test_block_sums_partials_match_numpy_sums():
         rows, cols = np.nonzero(scattered[lo:hi])
         partials.append(sums.partial(filled[lo:hi], codes[lo:hi][:, coded], xhat[lo:hi], block[lo:hi],
                                      mask[lo:hi], code_columns=coded, exact_columns=exact,
-                                     rows=rows, cols=cols))
+                                     cells=(rows, cols)))
     sums.add_partials(100, partials, np.ones(b))
     _assert_record(sums.records[0], reference)
     with pytest.raises(InvalidInputError, match="cover 89 rows, but 90 row figures"):

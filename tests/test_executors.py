@@ -119,7 +119,8 @@ def test_row_choice_does_not_depend_on_partitioning(method, replace):
 
     def partial(lo, hi, step):
         blocks = ((f, z[f:min(f + step, hi)], None) for f in range(lo, hi, step))
-        return select.anchor_partial(blocks, transform, sketch, method, 3, 12, 9, replace=replace)
+        return select.anchor_partial(blocks, select.AnchorScan(transform, sketch, method, 3, 12, 9,
+                                                               replace=replace))
 
     whole = select.merge_anchor_partials([partial(0, 3000, 3000)], 8, method, 12, replace=replace)
     split = select.merge_anchor_partials([partial(0, 1234, 500), partial(1234, 2000, 77),

@@ -17,7 +17,7 @@ import pytest
 from threadpoolctl import threadpool_limits
 
 from rankfold.udfs.factor import link, sampling, selection
-from rankfold.udfs.factor.cur import cur
+from rankfold.udfs.factor.cur import CURMethods, cur
 from rankfold.udfs.factor.sketch import StreamingQR
 
 
@@ -62,8 +62,8 @@ def textbook_runs():
         rng = np.random.default_rng(1000 + s)
         errors, projection, gram_gap, gram_gap_f = [], [], [], []
         for _ in range(TRIALS):
-            res = cur(a, 5, n_columns=s, n_rows=r, columns="length_squared", rows="length_squared",
-                      link="textbook", replace=True, rng=rng)
+            res = cur(a, 5, n_columns=s, n_rows=r, rng=rng,
+                      methods=CURMethods("length_squared", "length_squared", "textbook", replace=True))
             errors.append(spectral(a - res.approximation(a)) ** 2 / frob2)
             assert res.rows.size == r  # i.i.d. row draws, repeats kept
             rows_scaled = a[res.rows] * sampling.rescaling(q, res.rows)[:, None]

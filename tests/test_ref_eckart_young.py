@@ -25,7 +25,7 @@ from threadpoolctl import threadpool_limits
 import rankfold
 from rankfold.udfs.store.reader import ArchiveReader
 from rankfold.udfs.factor import cur as cur_module
-from rankfold.udfs.factor.cur import COLUMN_METHODS, LINKS, ROW_METHODS, cur
+from rankfold.udfs.factor.cur import COLUMN_METHODS, LINKS, ROW_METHODS, CURMethods, cur
 from rankfold.udfs.factor.svd import truncated_svd
 
 
@@ -137,8 +137,8 @@ def test_in_memory_cur_never_beats_eckart_young(columns, rows, link):
         a = low_rank_plus_noise(seed)
         s = np.linalg.svd(a, compute_uv=False)
         for n_columns, replace in itertools.product((RANK, None), (None, True)):
-            result = cur(a, RANK, n_columns=n_columns, columns=columns, rows=rows or "qdeim",
-                         link=link, replace=replace, rng=np.random.default_rng(5))
+            result = cur(a, RANK, n_columns=n_columns, rng=np.random.default_rng(5),
+                         methods=CURMethods(columns, rows or "qdeim", link, replace=replace))
             product = result.approximation(a)
             k = rank_upper(product, len(result.columns))
             error = np.linalg.norm(a - product)
@@ -185,7 +185,7 @@ def test_default_cur_is_near_the_optimum(tmp_path, seed):
     c = a[:, sorted(int(name[1:]) for name in archive.basis_columns)]
     least_squares = c @ np.linalg.lstsq(c, a, rcond=None)[0]
     assert error <= np.linalg.norm(a - least_squares) * (1 + 1e-9)
-    optimal_u = cur(a, RANK, link="optimal").approximation(a)
+    optimal_u = cur(a, RANK, methods=CURMethods(link="optimal")).approximation(a)
     assert error <= np.linalg.norm(a - optimal_u) * (1 + 1e-9)
     # The in-memory reference makes the same deterministic choices and the same product on
     # the derived columns; the archive keeps basis columns as stored (identity weights).
@@ -209,8 +209,8 @@ def test_textbook_link_is_far_from_the_optimum(tmp_path, table):
     archive = rankfold.compress(a, tmp_path / "tb", rank=RANK, column_method="length_squared",
                                 row_method="length_squared", link="textbook", transform="none")
     textbook = np.linalg.norm(a - factor_product(archive))
-    optimal = np.linalg.norm(a - cur(a, RANK, columns="length_squared", rows="length_squared",
-                                     link="optimal", rng=np.random.default_rng(0)).approximation(a))
+    optimal = np.linalg.norm(a - cur(a, RANK, rng=np.random.default_rng(0), methods=CURMethods(
+        "length_squared", "length_squared", "optimal")).approximation(a))
     assert textbook > 5 * optimal
     assert textbook > 5 * optimum(s, RANK)
 

@@ -69,9 +69,10 @@ def tolerance_cases(draw, invent, truth_of):
         tolerance = float(relative * np.median(spread))
     options = {"max_abs_error": tolerance,
                "residual": draw(st.sampled_from(["auto", "quantized", "corrections"])),
-               "basis_precision": draw(st.sampled_from(["exact", "tolerance"])),
                "method": draw(st.sampled_from(["cur", "svd"])),
                "seed": draw(st.integers(0, 1000))}
+    if options["method"] == "cur":  # svd scores are always rounded below the tolerance (plan.py)
+        options["basis_precision"] = draw(st.sampled_from(["exact", "tolerance"]))
     if draw(st.booleans()):
         options["batch_rows"] = draw(st.sampled_from([1, 7]))
     return table, options

@@ -45,6 +45,7 @@ __all__ = [
     "choose_columns",
     "row_weights",
     "build_mixing",
+    "CURMethods",
     "CURResult",
     "cur",
 ]
@@ -139,16 +140,25 @@ class CURResult:
         return a[:, self.columns] @ self.mixing
 
 
+@dataclass(frozen=True)
+class CURMethods:
+    """The method names of one CUR (table in the module docstring): how ``columns`` and
+    ``rows`` are chosen, the ``link``, and whether draws are i.i.d. (``replace``; None: only
+    for the textbook link, as in the published estimator)."""
+
+    columns: str = "pivoted_qr"
+    rows: str = "qdeim"
+    link: str = "cx"
+    replace: bool | None = None
+
+
 def cur(
     a: np.ndarray,
     rank: int,
     *,
     n_columns: int | None = None,
     n_rows: int | None = None,
-    columns: str = "pivoted_qr",
-    rows: str = "qdeim",
-    link: str = "cx",
-    replace: bool | None = None,
+    methods: CURMethods = CURMethods(),
     rng: np.random.Generator | None = None,
 ) -> CURResult:
     """In-memory CUR of ``a`` (shape (m, n)) with the same choices as the streaming builder.
@@ -161,7 +171,8 @@ def cur(
     a = np.asarray(a, dtype=np.float64)
     m, n = a.shape
     rng = rng if rng is not None else np.random.default_rng(0)
-    replace = (link == "textbook") if replace is None else replace
+    columns, rows, link = methods.columns, methods.rows, methods.link
+    replace = (link == "textbook") if methods.replace is None else methods.replace
     # i.i.d. draws (replace=True) may outnumber the columns or rows: the published estimators
     # take s draws whatever n is. Distinct choices are clipped to the table.
     c = n_columns or min(2 * rank, n)

@@ -27,8 +27,7 @@ import numpy as np
 import pyarrow as pa
 
 from ..version import __version__
-from ..errors import (EmptySourceError, InvalidInputError, NoNumericColumnsError,
-                      RankTooLargeError, SourceChangedError)
+from ..errors import EmptySourceError, InvalidInputError, NoNumericColumnsError, SourceChangedError
 from ..factor import cur as _cur
 from ..factor.svd import gavish_donoho_rank
 from ..store import layout, remote, versions
@@ -41,10 +40,11 @@ from .executors import make_executor
 from .keys import check_unique_key
 from .options import (AUTO_SKETCH_ROWS, AUTO_SKETCH_ROWS_PER_COLUMN, DEFAULT_RANK_CAP_DIVISOR,
                       CompressOptions)
+from .plan import CompressPlan
 from .row_groups import RowGroup, choose_row_groups
 from .profile import (SUB_BLOCK_ROWS, ColumnProfile, Fingerprint, Transform, new_sketch,
                       profile_rows)
-from .select import AnchorRows, anchor_partial, merge_anchor_partials, sketch_of
+from .select import AnchorRows, AnchorScan, anchor_partial, merge_anchor_partials, sketch_of
 from .refit import KAPPA, OutlierScreen
 from .encode import Coding, EncodeResult, encode_pass
 from . import targets
@@ -54,10 +54,6 @@ __all__ = ["compress"]
 # Integers above 2^53 do not survive float64; such columns are kept exactly instead. The
 # profile sees them as float64, where 2^53 + 1 reads as 2^53: so 2^53 itself counts too.
 _EXACT_INTEGER_LIMIT = 2.0**53
-
-
-def _is_numeric(data_type: pa.DataType) -> bool:
-    return (pa.types.is_integer(data_type) or pa.types.is_floating(data_type))
 
 
 # -- the passes as tasks over one partition's blocks (first row, batch, block, NULL mask) ---------
@@ -95,8 +91,9 @@ def _sketch_task(blocks, part, screen, width: int):
 
 
 def _anchor_task(blocks, part, screen, sketch, method, rank, count, seed, replace, draw):
-    return anchor_partial(((f, b, m) for f, _, b, m in blocks), copy.copy(screen), sketch, method,
-                          rank, count, seed, replace=replace, draw=draw)
+    return anchor_partial(((f, b, m) for f, _, b, m in blocks),
+                          AnchorScan(copy.copy(screen), sketch, method, rank, count, seed,
+                                     replace=replace, draw=draw))
 
 
 def _encode_task(blocks, part, temp, part_rows, names, passthrough, mixing, anchors, transform,
@@ -198,7 +195,8 @@ def compress(source: Any, path: str | Path, *, rank: int | None = None, seed: in
 
     See ``rankfold.compress`` for the user-facing documentation.
     """
-    opts = CompressOptions.from_call(rank, seed, options)
+    opts = CompressPlan.from_call(rank, seed, options)  # the rules between options, before any work
+    opts.check_locations(source, path)
     if remote.is_url(path):  # object storage (see _compress_to_store)
         return _compress_to_store(source, str(path), opts)
     target = prepare_target(path, opts.overwrite)
@@ -323,36 +321,9 @@ def _sketch_rows(src, opts: CompressOptions, numeric: list[str]) -> _SketchRows:
     return _SketchRows(chosen, total, len(groups))
 
 
-def _plan_columns(schema: pa.Schema, opts: CompressOptions) -> tuple[list[str], list[str]]:
-    names = schema.names
-    bad = [n for n in names if n.startswith(layout.RESERVED_PREFIX)]
-    if bad:
-        raise InvalidInputError(
-            f"Column names starting with {layout.RESERVED_PREFIX!r} are reserved by rankfold; "
-            f"rename {bad} before compressing."
-        )
-    if len(set(names)) != len(names):
-        raise InvalidInputError(f"The source has duplicate column names {names}; rename them.")
-    for wanted in ([opts.key] if opts.key else []) + list(opts.exact_columns):
-        if wanted not in names:
-            raise InvalidInputError(
-                f"The source has no column {wanted!r} (named in key/exact_columns). Its columns are {names}."
-            )
-    exact = set(opts.exact_columns) | ({opts.key} if opts.key else set())
-    numeric = [f.name for f in schema if _is_numeric(f.type) and f.name not in exact]
-    factored = set(numeric)  # a set: wide tables have 10^5 columns
-    passthrough = [n for n in names if n not in factored]
-    return numeric, passthrough
-
-
 def _sizes(opts: CompressOptions, rows: int, width: int, spectrum) -> tuple[int, int, int, str]:
     limit = min(rows, width)
-    if opts.rank is not None:
-        if opts.rank > limit:
-            raise RankTooLargeError(
-                f"The 'rank' option of compress must be at most min(rows, numeric columns) = "
-                f"{limit} for this source ({rows} x {width}). Got {opts.rank} instead."
-            )
+    if opts.rank is not None:  # at most limit: CompressPlan.check_rows
         rank, why = opts.rank, "given"
     else:
         rank = gavish_donoho_rank(spectrum.values, rows, width)
@@ -364,23 +335,11 @@ def _sizes(opts: CompressOptions, rows: int, width: int, spectrum) -> tuple[int,
         return rank, rank, 0, why
     # i.i.d. draws (replace=True) may outnumber the columns or rows, as in the published
     # estimators; repeats are merged, so the archive keeps at most n distinct columns.
-    iid = opts.sample_with_replacement
+    # sizes given were checked against the table by CompressPlan (for_source, check_rows)
     c = opts.n_columns if opts.n_columns is not None else min(2 * rank, width)
-    if c > width and not (iid and opts.column_method != "pivoted_qr"):
-        raise RankTooLargeError(
-            f"The 'n_columns' option of compress must be at most the {width} numeric columns. Got {c} instead."
-        )
-    if c < rank and opts.column_method == "pivoted_qr":
-        raise RankTooLargeError(
-            f"The 'n_columns' option of compress must be at least the rank ({rank}). Got {c} instead."
-        )
     if opts.link == "cx":  # C^+ A uses no rows: no anchor rows are kept
         return rank, c, 0, why
     r = opts.n_rows if opts.n_rows is not None else min(2 * min(c, width), rows)
-    if r > rows and not (iid and opts.row_method != "qdeim"):
-        raise RankTooLargeError(
-            f"The 'n_rows' option of compress must be at most the {rows} source rows. Got {r} instead."
-        )
     return rank, c, r, why
 
 
@@ -396,15 +355,11 @@ class _Build:
     reason: str
 
 
-def _compress(src, new_writer, opts: CompressOptions) -> Path | str:
+def _compress(src, new_writer, opts: CompressPlan) -> Path | str:
     """Every pass and attempt of one compress; ``new_writer()`` gives each attempt its
     writer (``ArchiveWriter`` or ``StoreArchiveWriter``)."""
-    numeric, passthrough = _plan_columns(src.schema, opts)
-    if not numeric:
-        raise NoNumericColumnsError(
-            f"The source {src.description} has no numeric column to compress (columns: "
-            f"{src.schema.names}). rankfold compresses integer and floating-point columns."
-        )
+    opts = opts.for_source(src.schema, src.description)  # every option checked; no row read yet
+    numeric, passthrough = list(opts.numeric), list(opts.passthrough)
     passes = _Passes(src, opts)
     read = _sketch_rows(src, opts, numeric)
     if read.sampled and (opts.method == "svd" or opts.link == "cx"):
@@ -542,20 +497,20 @@ class _Goal:
         return np.where(self.integer, np.where(t >= 0.5, t - 0.5, t), floats)
 
     @classmethod
-    def from_options(cls, opts: CompressOptions, names: list[str],
+    def from_options(cls, opts: CompressPlan, names: list[str],
                      std: np.ndarray | None = None) -> "_Goal":
         """``max_abs_error`` here is the per-column tolerance in column units: the user's
         max_abs_error, and max_std_error * std_j (std over the column's valid values), the
         smaller where both are given. A column whose std is 0 (constant) gets tolerance 0:
         any cell the factors miss is stored exactly."""
-        absolute = targets.per_column(opts.max_abs_error, names, "max_abs_error")
-        relative = targets.per_column(opts.max_std_error, names, "max_std_error")
+        absolute = opts.per_column_target("max_abs_error", names)
+        relative = opts.per_column_target("max_std_error", names)
         if relative is not None:
             spread = np.where(np.isfinite(std), std, 0.0) if std is not None else np.zeros(len(names))
             with np.errstate(invalid="ignore"):  # inf * 0 for unnamed constant columns
                 from_std = np.where(np.isfinite(relative), relative * spread, np.inf)
             absolute = from_std if absolute is None else np.minimum(absolute, from_std)
-        return cls(targets.per_column(opts.rel_error, names, "rel_error"),
+        return cls(opts.per_column_target("rel_error", names),
                    isinstance(opts.rel_error, dict), absolute,
                    isinstance(opts.max_abs_error, dict) or relative is not None, opts.target_bytes,
                    relative, isinstance(opts.max_std_error, dict))
@@ -612,16 +567,15 @@ class _Goal:
 
 
 def _first_build(opts, goal, rows, width, sketch, profile, transform, sample, numeric, passthrough) -> _Build:
+    opts.check_rows(rows, width)
     method = opts.method or "cur"
     if goal.target_bytes is not None:
         exact = np.array([sample.get(n, 8.0) for n in numeric])
         fixed = rows * sum(sample.get(n, 8.0) for n in passthrough) + rows * 8.0
-        order, res_cur = targets.cur_residuals(sketch.r)
-        res_svd = targets.svd_residuals(sketch.spectrum.values, sketch.spectrum.right)
-        plan = targets.plan_for_bytes(
-            budget=float(goal.target_bytes), rows=rows, width=width, res_cur=res_cur, order=order,
-            res_svd=res_svd, exact_bytes=exact, fixed_bytes=fixed,
-            methods=(opts.method,) if opts.method else ("cur", "svd"))
+        candidates = [targets.PredictedResiduals.of_cur(sketch.r, transform.scale, rows) if m == "cur"
+                      else targets.PredictedResiduals.of_svd(sketch.spectrum, transform.scale, rows)
+                      for m in ((opts.method,) if opts.method else ("cur", "svd"))]
+        plan = targets.plan_for_bytes(float(goal.target_bytes), candidates, exact, fixed)
         if plan is None:
             raise InvalidInputError(
                 f"target_bytes={goal.target_bytes} is below the smallest archive rankfold can "
@@ -632,18 +586,20 @@ def _first_build(opts, goal, rows, width, sketch, profile, transform, sample, nu
                       min(2 * plan.columns, rows) if plan.method == "cur" else 0, plan, plan.reason)
     if goal.max_abs_error is not None:
         if method == "cur":
-            order, res = targets.cur_residuals(sketch.r)
+            predicted = targets.PredictedResiduals.of_cur(sketch.r, transform.scale, rows)
         else:
-            order, res = None, targets.svd_residuals(sketch.spectrum.values, sketch.spectrum.right)
+            predicted = targets.PredictedResiduals.of_svd(sketch.spectrum, transform.scale, rows)
         exact = np.array([sample.get(n, 8.0) for n in numeric])
         limit = min(width - 1, rows, max(1, width // 2)) if method == "cur" else min(width, rows, max(1, width // 2))
         plan = targets.plan_for_tolerance(
-            method=method, rows=rows, width=width, tolerance=goal.stored_tolerance(),
-            scale=transform.scale, std=profile.std, res=res, order=order, exact_bytes=exact,
-            residual=opts.residual, basis_precision=opts.basis_precision, rank=opts.rank,
-            max_columns=max(limit, 0))
+            predicted, goal.stored_tolerance(),
+            targets.ToleranceCoding(opts.residual, opts.basis_precision, profile.std, exact),
+            opts.basis_sizes(method, width, max(limit, 0)),
+            reason=("given size; residual coded to meet the tolerance" if opts.fixed_basis
+                    else "fewest predicted bytes at the tolerance"))
         c = plan.columns
-        return _Build(method, plan.rank, c, min(2 * c, rows) if method == "cur" else 0, plan, plan.reason)
+        return _Build(method, plan.rank, c, opts.anchor_count(c, rows) if method == "cur" else 0, plan,
+                      plan.reason)
     if goal.rel_error is not None:
         order, res = targets.cur_residuals(sketch.r)
         norms = np.sqrt(np.sum(sketch.r**2, axis=0))

@@ -410,7 +410,7 @@ class _Kernel:
         if self.block_sums is not None:
             rows_i, cols_j = self._overridden(stored, anchors)
             sums = self.block_sums.partial(filled, codes, xhat, x, mask, code_columns=wr,
-                                           exact_columns=exact, rows=rows_i, cols=cols_j)
+                                           exact_columns=exact, cells=(rows_i, cols_j))
         return _Piece(block_max, block_l2, block_sum, cells, fingerprint, corrections, stored, over, sums)
 
     def _clear_kept(self, cells: np.ndarray, anchors: np.ndarray) -> None:

@@ -2,12 +2,14 @@
 
 from __future__ import annotations
 
+import decimal
 import difflib
 import numbers
 import warnings
 from dataclasses import dataclass, field, fields
-from typing import Any
+from typing import Any, ClassVar
 
+import duckdb
 import numpy as np
 
 from ..errors import InvalidInputError, UnknownOptionError
@@ -48,7 +50,12 @@ AUTO_SKETCH_ROWS_PER_COLUMN = 256
 
 @dataclass
 class CompressOptions:
-    """Every option of ``rankfold.compress``. See the README for their meaning."""
+    """Every option of ``rankfold.compress``, each checked on its own (type, range, allowed
+    names). The rules between options and against the source's columns are in ``plan.py``
+    (``CompressPlan``). See the README for their meaning."""
+
+    # names of the options the caller passed with a value other than None (set by from_call)
+    given: ClassVar[frozenset[str]] = frozenset()
 
     rank: int | None = None
     seed: int = 0
@@ -79,7 +86,7 @@ class CompressOptions:
 
     @classmethod
     def from_call(cls, rank: Any, seed: Any, options: dict[str, Any]) -> "CompressOptions":
-        known = {f.name for f in fields(cls)} - {"rank", "seed"}
+        known = {f.name for f in fields(CompressOptions)} - {"rank", "seed"}
         options = dict(options)
         for old, new in RENAMED_OPTIONS.items():
             if old in options:
@@ -101,6 +108,8 @@ class CompressOptions:
                     + ", ".join(sorted(known)) + "."
                 )
         opts = cls(rank=rank, seed=seed, **options)
+        opts.given = frozenset(n for n, v in options.items() if v is not None) | (
+            {"rank"} if rank is not None else set())
         opts._validate()
         return opts
 
@@ -129,31 +138,10 @@ class CompressOptions:
         _choice("residual", self.residual, RESIDUALS)
         _choice("basis_precision", self.basis_precision, BASIS_PRECISIONS)
         self.target_bytes = _positive_int("target_bytes", self.target_bytes, allow_none=True)
-        if self.rel_error is not None and self.rank is not None:
-            raise InvalidInputError(
-                "compress takes either 'rank' or 'rel_error', not both: rel_error chooses the "
-                "rank. Drop one of them."
-            )
-        if self.target_bytes is not None and (self.rank is not None or self.rel_error is not None
-                                              or self.has_tolerance):
-            raise InvalidInputError(
-                "compress takes 'target_bytes' alone: it chooses the rank and method to fit the "
-                "size. Drop 'rank', 'rel_error', 'max_abs_error' and 'max_std_error', or drop "
-                "'target_bytes'."
-            )
-        if self.basis_precision == "tolerance" and not self.has_tolerance:
-            raise InvalidInputError(
-                "basis_precision='tolerance' needs max_abs_error or max_std_error: the basis "
-                "columns are rounded to steps of twice the tolerance."
-            )
+        for option in ("max_abs_error", "max_std_error", "rel_error"):
+            setattr(self, option, _target(option, getattr(self, option)))
         _choice("column_method", self.column_method, COLUMN_METHODS)
         _choice("link", self.link, LINKS)
-        if self.link == "cx" and (self.row_method is not None or self.n_rows is not None):
-            raise InvalidInputError(
-                "The 'cx' link (the default: every column a least-squares combination of the "
-                "basis columns, C^+ A) keeps no anchor rows, so 'row_method' and 'n_rows' would "
-                "have no effect. Pass link='optimal' (or 'skeleton', 'textbook') to keep anchor rows."
-            )
         self.row_method = self.row_method if self.row_method is not None else "qdeim"
         _choice("row_method", self.row_method, ROW_METHODS)
         _choice("transform", self.transform, TRANSFORMS)
@@ -167,10 +155,18 @@ class CompressOptions:
             )
         if isinstance(self.exact_columns, str):
             self.exact_columns = (self.exact_columns,)
-        self.exact_columns = tuple(self.exact_columns)
+        try:
+            self.exact_columns = tuple(self.exact_columns)
+        except TypeError:
+            self.exact_columns = (self.exact_columns,)  # refused just below
         if self.progress is not None and not callable(self.progress):
             raise InvalidInputError(
                 f"The 'progress' option of compress must be a callable taking one dict. Got {self.progress!r} instead."
+            )
+        if self.connection is not None and not isinstance(self.connection, duckdb.DuckDBPyConnection):
+            raise InvalidInputError(
+                "The 'connection' option of compress must be a DuckDB connection (duckdb.connect()) "
+                f"that holds the table or query to compress. Got {type(self.connection).__name__} instead."
             )
         if self.storage_options is not None and not isinstance(self.storage_options, dict):
             raise InvalidInputError(
@@ -181,17 +177,10 @@ class CompressOptions:
             raise InvalidInputError(
                 f"The 'key' option of compress must be one column name. Got {self.key!r} instead."
             )
-        if isinstance(self.sketch_rows, int) and (self.has_targets or self.refits):
+        if not all(isinstance(name, str) for name in self.exact_columns):
             raise InvalidInputError(
-                f"sketch_rows={self.sketch_rows} cannot be combined with an error or size target "
-                "(including the default max_std_error) or with refit_outliers: those need every "
-                "row's statistics before the encode pass. Give 'rank' (alone it keeps no "
-                "tolerance), or drop 'sketch_rows' (the sketch then reads every row)."
-            )
-        if self.link == "textbook" and self.column_method == "pivoted_qr":
-            raise InvalidInputError(
-                "The 'textbook' link needs sampled columns (its 1/sqrt(s p) rescaling uses the "
-                "sampling probabilities); use column_method='length_squared' or 'leverage' with it."
+                "The 'exact_columns' option of compress must be column names (strings). Got "
+                f"{list(self.exact_columns)!r} instead."
             )
 
     @property
@@ -223,7 +212,7 @@ class CompressOptions:
 
     def recorded(self) -> dict[str, Any]:
         """The options as written into the manifest (no connection object)."""
-        return {f.name: _plain(getattr(self, f.name)) for f in fields(self)
+        return {f.name: _plain(getattr(self, f.name)) for f in fields(CompressOptions)
                 if f.name not in ("connection", "overwrite", "progress", "executor",
                                   "storage_options")} | {
                     "exact_columns": list(self.exact_columns)}
@@ -255,6 +244,39 @@ def _positive_int(name: str, value: Any, *, allow_none: bool) -> int | None:
             f"{' or None' if allow_none else ''}. Got {value!r} instead."
         )
     return int(value)
+
+
+def _target(option: str, value: Any) -> float | dict[str, float] | None:
+    """A per-column target as a positive float, or a non-empty mapping of column name to
+    positive float (the names are checked against the source by ``CompressPlan``)."""
+    if value is None:
+        return None
+    if isinstance(value, dict):
+        if not value:
+            raise InvalidInputError(
+                f"The {option!r} option of compress got an empty mapping: name at least one "
+                "column, or pass one number for every column, or drop the option."
+            )
+        wrong = [k for k in value if not isinstance(k, str)]
+        if wrong:
+            raise InvalidInputError(
+                f"The {option!r} option of compress maps column names to numbers; these keys "
+                f"are not names: {wrong!r}."
+            )
+        return {k: _positive_number(option, v) for k, v in value.items()}
+    return _positive_number(option, value)
+
+
+def _positive_number(option: str, value: Any) -> float:
+    """``value`` as a positive finite float, or an error naming the option."""
+    number = float(value) if isinstance(value, (numbers.Real, decimal.Decimal)) and not isinstance(
+        value, (bool, np.bool_)) else float("nan")
+    if not (number > 0 and np.isfinite(number)):
+        raise InvalidInputError(
+            f"The {option!r} option of compress must be a positive number (or a mapping of "
+            f"column name to positive number). Got {value!r} instead."
+        )
+    return number
 
 
 def _choice(name: str, value: Any, allowed: tuple[str, ...]) -> None:

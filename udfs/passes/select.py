@@ -219,10 +219,9 @@ class AnchorScan:
         return AnchorPartial(self.positions, self.keys, self.left, self.keeper.rows)
 
 
-def anchor_partial(blocks, transform: Transform, sketch: Sketch, method: str, rank: int,
-                   count: int, seed: int, *, replace: bool, draw: int = 0) -> AnchorPartial:
-    """Map step of the anchor pass over one partition's blocks (first, raw block, mask)."""
-    scan = AnchorScan(transform, sketch, method, rank, count, seed, replace=replace, draw=draw)
+def anchor_partial(blocks, scan: AnchorScan) -> AnchorPartial:
+    """Map step of the anchor pass: one partition's blocks (first, raw block, mask) fed to a
+    new ``scan``, and what it kept."""
     for first, block, mask in blocks:
         scan.add(first, block, mask)
     return scan.partial()

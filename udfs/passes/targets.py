@@ -22,7 +22,6 @@ from __future__ import annotations
 
 import io
 from dataclasses import dataclass, field
-from typing import Any
 
 import numpy as np
 import pyarrow as pa
@@ -30,9 +29,7 @@ import pyarrow.parquet as pq
 import scipy.linalg
 from scipy.special import ndtr  # standard normal CDF, as scipy.stats.norm.cdf (lighter import)
 
-from ..errors import InvalidInputError
-
-__all__ = ["per_column", "column_bytes", "Plan", "quantized_entropy_bits", "cur_residuals",
+__all__ = ["column_bytes", "Plan", "PredictedResiduals", "quantized_entropy_bits", "cur_residuals",
            "svd_residuals", "plan_for_tolerance", "plan_for_bytes", "plan_for_rel_error"]
 
 # bytes per exactly stored cell in cells.parquet (row int64 + column int32 + value, zstd),
@@ -42,37 +39,6 @@ CELL_BYTES = 14.0
 # this factor (measured 1.05-1.25 on quantized Gaussian residuals)
 CODING_OVERHEAD = 1.15
 _LOG2_SQRT_2PI_E = 0.5 * np.log2(2 * np.pi * np.e)
-
-
-def per_column(value: Any, names: list[str], option: str) -> np.ndarray | None:
-    """A number or a {column: number} mapping as an array over ``names`` (inf where unnamed)."""
-    if value is None:
-        return None
-    if isinstance(value, dict):
-        unknown = [k for k in value if k not in names]
-        if unknown:
-            raise InvalidInputError(
-                f"The {option!r} option of compress names columns that are not numeric columns "
-                f"of the source: {unknown}. Numeric columns: {names[:10]}{' ...' if len(names) > 10 else ''}."
-            )
-        out = np.full(len(names), np.inf)
-        for k, v in value.items():
-            out[names.index(k)] = _positive(option, v)
-        return out
-    return np.full(len(names), _positive(option, value))
-
-
-def _positive(option: str, value: Any) -> float:
-    try:
-        number = float(value)
-    except (TypeError, ValueError):
-        number = np.nan
-    if not np.isfinite(number) or number <= 0 or isinstance(value, bool):
-        raise InvalidInputError(
-            f"The {option!r} option of compress must be a positive number (or a mapping of "
-            f"column name to positive number). Got {value!r} instead."
-        )
-    return number
 
 
 def column_bytes(batch: pa.RecordBatch) -> dict[str, float]:
@@ -170,51 +136,88 @@ def _coding_cost(sigma: np.ndarray, tolerance: np.ndarray, rows: int, residual: 
     return cost, np.where(use, step, np.nan)
 
 
-def plan_for_tolerance(
-    *, method: str, rows: int, width: int, tolerance: np.ndarray, scale: np.ndarray,
-    std: np.ndarray, res: np.ndarray, order: np.ndarray | None, exact_bytes: np.ndarray,
-    residual: str, basis_precision: str, rank: int | None, max_columns: int,
-) -> Plan:
-    """The configuration with the fewest predicted bytes that meets ``tolerance`` everywhere.
+@dataclass(frozen=True)
+class PredictedResiduals:
+    """What the sketch predicts for one method, before any pass: ``res`` (p + 1, n), the
+    residual norm of every column (transformed units) with c = 0..p basis columns or scores
+    (:func:`cur_residuals`: the first c of ``order``; :func:`svd_residuals`: ``order`` None);
+    ``scale`` (n,) converts transformed units to raw units; the table has ``rows`` rows."""
 
-    ``res`` is from :func:`cur_residuals` (method 'cur', basis = first c of ``order``) or
-    :func:`svd_residuals` ('svd'); ``scale`` converts its transformed units to raw units;
-    ``exact_bytes`` (n,) is the measured bytes per value of each column stored exactly.
-    """
-    sqrt_m = np.sqrt(max(rows, 1))
-    candidates = range(0, max_columns + 1) if rank is None else [
-        min(2 * rank, width) if method == "cur" else rank]
+    method: str
+    res: np.ndarray
+    order: np.ndarray | None
+    scale: np.ndarray
+    rows: int
+
+    @classmethod
+    def of_cur(cls, sketch_factor: np.ndarray, scale: np.ndarray, rows: int) -> "PredictedResiduals":
+        order, res = cur_residuals(sketch_factor)
+        return cls("cur", res, order, scale, rows)
+
+    @classmethod
+    def of_svd(cls, spectrum, scale: np.ndarray, rows: int) -> "PredictedResiduals":
+        """From a spectrum with ``values`` (p,) and ``right`` (n, p)."""
+        return cls("svd", svd_residuals(spectrum.values, spectrum.right), None, scale, rows)
+
+    @property
+    def width(self) -> int:
+        return self.res.shape[1]
+
+    def sigma(self, columns: int) -> np.ndarray:
+        """Predicted per-cell residual RMS of every column (raw units) with ``columns`` basis
+        columns or scores."""
+        return self.res[columns] * self.scale / np.sqrt(max(self.rows, 1))
+
+
+@dataclass(frozen=True)
+class ToleranceCoding:
+    """How the residual and the basis are coded under a tolerance: ``residual`` ('auto',
+    'quantized', 'corrections') and ``basis_precision`` ('exact', 'tolerance'); ``std`` (n,)
+    the columns' standard deviations and ``exact_bytes`` (n,) the measured bytes per value of
+    each column stored exactly."""
+
+    residual: str
+    basis_precision: str
+    std: np.ndarray
+    exact_bytes: np.ndarray
+
+
+def plan_for_tolerance(predicted: PredictedResiduals, tolerance: np.ndarray, coding: ToleranceCoding,
+                       sizes: list[tuple[int, int]], *, reason: str) -> Plan:
+    """The configuration with the fewest predicted bytes that meets ``tolerance`` (n,)
+    everywhere, among the candidate (rank, basis columns) ``sizes``; ``reason`` is recorded
+    with it (the manifest's ``rank_reason``)."""
+    rows, width = predicted.rows, predicted.width
     best: Plan | None = None
-    for c in candidates:
-        sigma = res[c] * scale / sqrt_m
-        cost, step = _coding_cost(sigma, tolerance, rows, residual)
+    for rank, c in sizes:
+        # i.i.d. draws may ask for more columns than there are; repeats are merged, so the
+        # basis holds at most every column (predicted like the first min(c, n) of the order)
+        k = min(c, width)
+        cost, step = _coding_cost(predicted.sigma(k), tolerance, rows, coding.residual)
         basis_step = np.full(c, np.nan)
-        if method == "cur":
-            basis = order[:c]
+        if predicted.method == "cur":
+            basis = predicted.order[:c]
             cost[basis] = 0.0
             step[basis] = np.nan
-            if basis_precision == "tolerance":
+            if coding.basis_precision == "tolerance":
                 finite = np.isfinite(tolerance[basis])
                 basis_step = np.where(finite, 2.0 * tolerance[basis], np.nan)
-                ratio = np.where(finite, std[basis] / np.where(finite, basis_step, 1.0), 0.0)
+                ratio = np.where(finite, coding.std[basis] / np.where(finite, basis_step, 1.0), 0.0)
                 basis_cost = np.where(finite, rows * quantized_entropy_bits(ratio) / 8.0 * CODING_OVERHEAD,
-                                      rows * exact_bytes[basis])
+                                      rows * coding.exact_bytes[basis])
             else:
-                basis_cost = rows * exact_bytes[basis]
+                basis_cost = rows * coding.exact_bytes[basis]
             anchors = 2 * c * width * 8.0
         else:
             # scores quantized finely enough that their rounding adds little to the residual
             basis_cost = np.array([rows * c * 2.0])
             anchors = 0.0
         total = float(cost.sum() + basis_cost.sum() + anchors + c * width * 8.0)
-        plan = Plan(method, (c + 1) // 2 if method == "cur" else c, c, tolerance, step,
-                    basis_step, order[:c] if method == "cur" else np.zeros(0, np.int64), residual,
-                    total, float(np.sqrt(np.sum((res[c]) ** 2))),
-                    "fewest predicted bytes at the tolerance")
+        plan = Plan(predicted.method, rank, c, tolerance, step, basis_step,
+                    predicted.order[:c] if predicted.method == "cur" else np.zeros(0, np.int64),
+                    coding.residual, total, float(np.sqrt(np.sum((predicted.res[k]) ** 2))), reason)
         if best is None or plan.predicted_bytes < best.predicted_bytes:
             best = plan
-    if rank is not None:
-        best.reason = "given rank; residual coded to meet the tolerance"
     return best
 
 
@@ -234,17 +237,19 @@ def plan_for_rel_error(target: np.ndarray, res: np.ndarray, column_norms: np.nda
     return max_columns
 
 
-def plan_for_bytes(*, budget: float, rows: int, width: int, res_cur: np.ndarray,
-                   order: np.ndarray, res_svd: np.ndarray, exact_bytes: np.ndarray,
-                   fixed_bytes: float, methods: tuple[str, ...]) -> Plan | None:
-    """The configuration with the smallest predicted Frobenius error within ``budget`` bytes."""
+def plan_for_bytes(budget: float, candidates: list[PredictedResiduals], exact_bytes: np.ndarray,
+                   fixed_bytes: float) -> Plan | None:
+    """The configuration with the smallest predicted Frobenius error within ``budget`` bytes,
+    over the methods of ``candidates``; ``exact_bytes`` (n,) are the measured bytes per value
+    of each column stored exactly, ``fixed_bytes`` the bytes every choice pays (exactly kept
+    columns, row ids)."""
     best: Plan | None = None
-    none = np.full(width, np.inf)
-    nan = np.full(width, np.nan)
-    for method in methods:
-        res = res_cur if method == "cur" else res_svd
+    for predicted in candidates:
+        rows, width, res, order = predicted.rows, predicted.width, predicted.res, predicted.order
+        none = np.full(width, np.inf)
+        nan = np.full(width, np.nan)
         for c in range(1, res.shape[0]):
-            if method == "cur":
+            if predicted.method == "cur":
                 size = fixed_bytes + rows * exact_bytes[order[:c]].sum() + 3 * c * width * 8.0
             else:
                 size = fixed_bytes + rows * c * 3.8 + c * width * 8.0  # float32 scores
@@ -252,8 +257,9 @@ def plan_for_bytes(*, budget: float, rows: int, width: int, res_cur: np.ndarray,
                 break
             error = float(np.sqrt(np.sum(res[c] ** 2)))
             if best is None or error < best.predicted_error:
-                best = Plan(method, (c + 1) // 2 if method == "cur" else c, c, none, nan,
-                            np.full(c, np.nan), order[:c] if method == "cur" else np.zeros(0, np.int64),
+                cur = predicted.method == "cur"
+                best = Plan(predicted.method, (c + 1) // 2 if cur else c, c, none, nan,
+                            np.full(c, np.nan), order[:c] if cur else np.zeros(0, np.int64),
                             "auto", size, error,
                             "smallest predicted error within target_bytes")
     return best

@@ -106,22 +106,22 @@ class BlockSums:
             rows_i, cols_j = np.nonzero(~approximated[lo:hi])
             part = self.partial(filled[lo:hi], None if codes is None else codes[lo:hi],
                                 xhat[lo:hi], block[lo:hi], None if mask is None else mask[lo:hi],
-                                rows=rows_i, cols=cols_j)
+                                cells=(rows_i, cols_j))
             self.add_partials(first + lo, [part], row_max[lo:hi])
 
     def partial(self, filled: np.ndarray, codes: np.ndarray | None, xhat: np.ndarray,
                 block: np.ndarray, mask: np.ndarray | None, *,
                 code_columns: np.ndarray | None = None, exact_columns: np.ndarray | None = None,
-                rows: np.ndarray | None = None, cols: np.ndarray | None = None) -> dict[str, Any]:
+                cells: tuple[np.ndarray, np.ndarray] | None = None) -> dict[str, Any]:
         """The additive sums of one row range of s rows (every field of a record except
-        first_row and rowmax_sum; ``rows`` is s). Partials of consecutive ranges add up to the
+        first_row and rowmax_sum; its "rows" is s). Partials of consecutive ranges add up to the
         sums of their union, up to the order of floating-point summation.
 
         filled (s, c); xhat, block (s, n); mask (s, n) or None; codes (s, n), or (s, q) with
         ``code_columns`` (q,) naming their columns (the others have no code), or None.
         Overridden cells (stored exactly): the whole columns ``exact_columns`` (summed per
-        column, O(s e) for e such columns), plus the cells at ``rows``, ``cols`` (equal-length
-        index arrays, outside ``exact_columns``; summed over their indices only, O(cells)).
+        column, O(s e) for e such columns), plus ``cells`` = (rows, cols) (equal-length index
+        arrays, outside ``exact_columns``; summed over their indices only, O(cells)).
         """
         s, n = block.shape
         d = filled - self.shift[None, :]
@@ -133,6 +133,7 @@ class BlockSums:
                                                        np.einsum("ij,ij->j", codes, codes))
         ov_cells, ov_nulls = np.zeros(n, np.int64), np.zeros(n, np.int64)
         ov_corr, ov_abs, ov_sq = np.zeros(n), np.zeros(n), np.zeros(n)
+        rows, cols = cells if cells is not None else (None, None)
         if rows is not None and rows.size:
             x, x_hat = block[rows, cols], xhat[rows, cols]
             null = mask[rows, cols] if mask is not None else None
