@@ -23,6 +23,8 @@ from . import arithmetic, layout
 from .integrity import (RowFileSeal, check_tables, damaged, open_row_file, read_small_table,
                         verified_metadata)
 from .manifest import DIGEST_FIELD, check_files, read_manifest
+from .model import FittedModel
+from .table_schemas import CELLS_SCHEMA, check_schema
 
 __all__ = ["ArchiveReader", "Rebuilt"]
 
@@ -73,6 +75,28 @@ class ArchiveReader:
             raise CorruptArchiveError(f"{self.path} could not be read ({exc}); the archive is damaged.") from None
         self.seal = RowFileSeal(self.path, self.manifest, self._metadata)
 
+    # the fitted model's arrays under the names callers knew before ``model`` (new code: use
+    # ``reader.model``; shapes and meanings in ``model.FittedModel``)
+    offset = property(lambda self: self.model.offset)
+    weights = property(lambda self: self.model.weights)
+    fill = property(lambda self: self.model.fill)
+    err_max_col = property(lambda self: self.model.err_max)
+    ledger_scale = property(lambda self: self.model.ledger_scale)
+    basis_names = property(lambda self: self.model.basis_names)
+    basis_stored = property(lambda self: self.model.basis_stored)
+    basis_step = property(lambda self: self.model.basis_step)
+    is_basis = property(lambda self: self.model.is_basis)
+    tolerance = property(lambda self: self.model.tolerance)
+    residual_step = property(lambda self: self.model.residual_step)
+    is_integer = property(lambda self: self.model.is_integer)
+    kind = property(lambda self: self.model.kind)
+    lower = property(lambda self: self.model.lower)
+    upper = property(lambda self: self.model.upper)
+    special = property(lambda self: self.model.special)
+    anchor_positions = property(lambda self: self.model.anchor_positions)
+    anchor_values = property(lambda self: self.model.anchor_values)
+    anchor_nulls = property(lambda self: self.model.anchor_nulls)
+
     @property
     def version(self) -> str:
         """This archive version's identity: the SHA-256 of its manifest (an append or an
@@ -115,51 +139,10 @@ class ArchiveReader:
         self.numeric_columns: list[str] = list(m["numeric_columns"])
         self.column_index = {n: j for j, n in enumerate(self.numeric_columns)}
         self.rows_count = int(m["shape"][0])
-        cols = read_small_table(self.path, m, layout.table_file(m, layout.COLUMNS))
-        self.columns_table = cols
-        self.offset = cols.column("offset").to_numpy()
-        self.weights = np.array(cols.column("weights").to_pylist(), dtype=np.float64).T.reshape(
-            len(m["basis"]), len(self.numeric_columns))
-        self.err_max_col = cols.column("err_max").to_numpy()
-        self.ledger_scale = cols.column("ledger_scale").to_numpy()
-        self.basis_names = [b["name"] for b in m["basis"]]
-        self.fill = np.array([b["fill"] for b in m["basis"]], dtype=np.float64)
-        # where each basis entry is stored, and the step of its integer codes (NaN: values)
-        self.basis_stored = [b.get("stored_as", b["name"]) for b in m["basis"]]
-        self.basis_step = np.array([b.get("step", np.nan) for b in m["basis"]], dtype=np.float64)
-        exact_basis = [b["name"] for b in m["basis"] if "step" not in b]
-        self.is_basis = np.isin(self.numeric_columns, exact_basis)
-        width = len(self.numeric_columns)
-        self.tolerance = (cols.column("tolerance").fill_null(np.inf).to_numpy()
-                          if "tolerance" in cols.column_names else np.full(width, np.inf))
-        self.residual_step = (cols.column("residual_step").fill_null(np.nan).to_numpy()
-                              if "residual_step" in cols.column_names else np.full(width, np.nan))
-        types = {f["name"]: f["type"] for f in m["schema"]}
-        self.is_integer = np.array([types[n].startswith(("int", "uint")) for n in self.numeric_columns])
-        # how a served value is typed: 'i' integer, 'f' float32, 'e' float16, 'd' float64
-        self.kind = np.array(["i" if i else {"float": "f", "halffloat": "e"}.get(types[n], "d")
-                              for n, i in zip(self.numeric_columns, self.is_integer)], dtype="<U1")
-        # observed range of each column's finite values (the profile of every row): rebuilt
-        # values are clamped into it (arithmetic.serve)
-        self.lower = (cols.column("min").to_numpy(zero_copy_only=False).astype(np.float64)
-                      if "min" in cols.column_names else np.full(width, -np.inf))
-        self.upper = (cols.column("max").to_numpy(zero_copy_only=False).astype(np.float64)
-                      if "max" in cols.column_names else np.full(width, np.inf))
-        # columns that may hold NaN or infinite cells (unknown counts: assume they may)
-        self.special = np.zeros(width, bool)
-        for name in ("nans", "infinities"):
-            self.special |= (cols.column(name).to_numpy(zero_copy_only=False) > 0
-                             if name in cols.column_names else True)
+        self.columns_table = read_small_table(self.path, m, layout.table_file(m, layout.COLUMNS))
         anchors = read_small_table(self.path, m, layout.table_file(m, layout.ANCHORS))
-        self.anchor_positions = anchors.column(layout.ROW_ID).to_numpy()
-        self.anchor_lookup = {int(p): i for i, p in enumerate(self.anchor_positions)}
-        self.anchor_values = np.column_stack(
-            [anchors.column(n).to_numpy(zero_copy_only=False) for n in self.numeric_columns]
-        ) if self.anchor_positions.size else np.zeros((0, len(self.numeric_columns)))
-        self.anchor_nulls = np.column_stack(
-            [anchors.column(n).is_null().to_numpy(zero_copy_only=False) for n in self.numeric_columns]
-        ) if self.anchor_positions.size else np.zeros((0, len(self.numeric_columns)), bool)
         cells = read_small_table(self.path, m, layout.table_file(m, layout.CELLS))
+        check_schema(cells.schema, CELLS_SCHEMA, self.path / layout.table_file(m, layout.CELLS))
         self.cell_rows = cells.column(layout.ROW_ID).to_numpy()
         self.cell_cols = cells.column(layout.COLUMN_ID).to_numpy()
         self.cell_nulls = cells.column("value").is_null().to_numpy(zero_copy_only=False)
@@ -174,6 +157,9 @@ class ArchiveReader:
             self._row_schemas[part["name"]] = meta.schema.to_arrow_schema()
             starts = np.cumsum([0] + [meta.row_group(g).num_rows for g in range(meta.num_row_groups)])
             self.parts.append((part["first_row"], part["rows"], part["name"], starts))
+        self.model = FittedModel.from_tables(
+            m, self.columns_table, anchors, self.row_file_schema(self.parts[0][2]) if self.parts else None)
+        self.anchor_lookup = {int(p): i for i, p in enumerate(self.model.anchor_positions)}
         if self.parts:
             schema = self.row_file_schema(self.parts[0][2])
             signed = [f.name for f in schema if f.name.startswith(layout.CODE_PATTERN.format(""))
