@@ -28,7 +28,7 @@ MUTATIONS = {
         '        return self._stat("err_max", np.inf) * 1000.0\n',
         ["tests/test_bounds_property.py"]),
     "row ledger loose by 1000x": (
-        "udfs/store/reader.py",
+        "udfs/store/model.py",
         "        by_row = arithmetic.round_up(row_max[:, None] * self.ledger_scale[col_idx][None, :])",
         "        by_row = arithmetic.round_up(row_max[:, None] * 1000.0 * self.ledger_scale[col_idx][None, :])",
         ["tests/test_bounds_property.py"]),

@@ -30,7 +30,7 @@ from typing import Any
 import numpy as np
 import pyarrow as pa
 
-from . import layout
+from . import arithmetic, layout
 from .table_schemas import (COLUMNS_OPTIONAL, COLUMNS_SCHEMA, anchors_schema, check_schema)
 
 __all__ = ["Mixing", "Coding", "FittedModel", "mixing_for_columns", "mixing_for_scores",
@@ -252,6 +252,57 @@ class FittedModel:
     def with_statistics(self, statistics: dict[str, np.ndarray]) -> "FittedModel":
         """This model with the measured fields of the columns table (``STATISTICS``)."""
         return dataclasses.replace(self, statistics=dict(statistics))
+
+    # -- the rebuild of a block of rows -------------------------------------------------------
+    def basis_values(self, rows: pa.Table) -> np.ndarray:
+        """Filled basis values (b, c) as float64 from a row-file table: stored codes times
+        their step, missing or non-finite values replaced by the fill."""
+        if not self.basis_names:
+            return np.zeros((rows.num_rows, 0))
+        block = np.column_stack([
+            rows.column(n).cast(pa.float64()).fill_null(np.nan).to_numpy() for n in self.basis_stored
+        ])
+        coded = np.isfinite(self.basis_step)
+        if coded.any():
+            block[:, coded] = block[:, coded] * self.basis_step[coded][None, :]
+        return arithmetic.fill_missing(block, self.fill)
+
+    def residual_codes(self, rows: pa.Table, col_idx: np.ndarray) -> np.ndarray | None:
+        """Quantized residual codes (b, q) of the columns ``col_idx`` (q,) from a row-file
+        table: 0 in columns without codes; None when none of them has codes."""
+        steps = self.residual_step[col_idx]
+        if not np.isfinite(steps).any():
+            return None
+        codes = np.zeros((rows.num_rows, col_idx.size))
+        for t, j in enumerate(col_idx):
+            if np.isfinite(steps[t]):
+                codes[:, t] = arithmetic.decode_codes(
+                    rows.column(layout.CODE_PATTERN.format(int(j))).to_numpy(zero_copy_only=False))
+        return codes
+
+    def rebuild_block(self, rows: pa.Table, col_idx: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """The stored values (b, q) of the columns ``col_idx`` (q,) for a row-file table of b
+        rows, their bounds (b, q) and the floating-point part of the bounds, the slack (b, q):
+        value = offset + basis @ weights + code * step (``arithmetic``), bound =
+        min(round_up(rowmax * ledger_scale), err_max) + slack, capped at the tolerance (the
+        encode pass stored every cell whose error plus slack exceeded it). Basis columns,
+        anchor rows, exact cells and serving are the reader's (``ArchiveReader.rebuild``)."""
+        filled = self.basis_values(rows)
+        weights = self.weights[:, col_idx]
+        offset = self.offset[col_idx]
+        values = arithmetic.approximate(filled, weights, offset)
+        codes = self.residual_codes(rows, col_idx)
+        residual_term = None
+        if codes is not None:
+            steps = self.residual_step[col_idx]
+            residual_term = codes * np.where(np.isfinite(steps), steps, 0.0)[None, :]
+            values = arithmetic.add_residual(values, codes, steps)
+        slack = arithmetic.slack(filled, weights, offset, residual_term)
+        row_max = rows.column(layout.ROW_ERR_MAX).to_numpy()
+        by_row = arithmetic.round_up(row_max[:, None] * self.ledger_scale[col_idx][None, :])
+        bounds = np.minimum(by_row, self.err_max[col_idx][None, :]) + slack
+        bounds = np.minimum(bounds, self.tolerance[col_idx][None, :])
+        return values, bounds, slack
 
     # -- the encoder -------------------------------------------------------------------------
     def basis_entries(self) -> list[dict[str, Any]]:

@@ -319,28 +319,13 @@ class ArchiveReader:
                 raise damaged(self.path / name, f"could not be read ({exc})") from None
 
     def basis_block(self, rows: pa.Table) -> np.ndarray:
-        """Filled basis values (b, c) as float64 from a row-file table."""
-        if not self.basis_names:
-            return np.zeros((rows.num_rows, 0))
-        block = np.column_stack([
-            rows.column(n).cast(pa.float64()).fill_null(np.nan).to_numpy() for n in self.basis_stored
-        ])
-        coded = np.isfinite(self.basis_step)
-        if coded.any():
-            block[:, coded] = block[:, coded] * self.basis_step[coded][None, :]
-        return arithmetic.fill_missing(block, self.fill)
+        """Filled basis values (b, c) as float64 from a row-file table (``FittedModel.basis_values``)."""
+        return self.model.basis_values(rows)
 
     def residual_codes(self, rows: pa.Table, col_idx: np.ndarray) -> np.ndarray | None:
-        """Quantized residual codes (b, q) for the requested columns (None if the archive has none)."""
-        steps = self.residual_step[col_idx]
-        if not np.isfinite(steps).any():
-            return None
-        codes = np.zeros((rows.num_rows, col_idx.size))
-        for t, j in enumerate(col_idx):
-            if np.isfinite(steps[t]):
-                codes[:, t] = arithmetic.decode_codes(
-                    rows.column(layout.CODE_PATTERN.format(int(j))).to_numpy(zero_copy_only=False))
-        return codes
+        """Quantized residual codes (b, q) for the requested columns (None if the archive has
+        none; ``FittedModel.residual_codes``)."""
+        return self.model.residual_codes(rows, col_idx)
 
     def rebuild(self, rows: Any = None, columns: Any = None, *, positions: np.ndarray | None = None,
                 serve: bool = True) -> Rebuilt:
@@ -348,46 +333,32 @@ class ArchiveReader:
         to users (clamped, rounded to the column's type, see ``arithmetic.serve``), or with
         ``serve=False`` the values as stored (the factors' arithmetic, exact cells applied)
         together with their floating-point ``slack``."""
+        model = self.model
         names = self.resolve_columns(columns)
         pos = positions if positions is not None else self.resolve_rows(rows)
-        col_idx = np.array([self.column_index[n] for n in names], dtype=np.int64)
+        col_idx = np.array([model.column_index[n] for n in names], dtype=np.int64)
         table = self.read_rows(pos, self._row_file_columns(col_idx))
-        filled = self.basis_block(table)
-        weights = self.weights[:, col_idx]
-        offset = self.offset[col_idx]
-        values = arithmetic.approximate(filled, weights, offset)
-        codes = self.residual_codes(table, col_idx)
-        residual_term = None
-        if codes is not None:
-            steps = self.residual_step[col_idx]
-            residual_term = codes * np.where(np.isfinite(steps), steps, 0.0)[None, :]
-            values = arithmetic.add_residual(values, codes, steps)
-        slack = arithmetic.slack(filled, weights, offset, residual_term)
-        row_max = table.column(layout.ROW_ERR_MAX).to_numpy()
-        by_row = arithmetic.round_up(row_max[:, None] * self.ledger_scale[col_idx][None, :])
-        bounds = np.minimum(by_row, self.err_max_col[col_idx][None, :]) + slack
-        # the encode pass stored every cell whose error plus slack exceeded the tolerance
-        bounds = np.minimum(bounds, self.tolerance[col_idx][None, :])
+        values, bounds, slack = model.rebuild_block(table, col_idx)
         b, q = values.shape
         exact = np.zeros((b, q), bool)
         nulls = np.zeros((b, q), bool)
         # basis columns: the stored values themselves
         for t, name in enumerate(names):
-            if self.is_basis[self.column_index[name]]:
+            if model.is_basis[model.column_index[name]]:
                 column = table.column(name)
                 values[:, t] = column.cast(pa.float64()).fill_null(np.nan).to_numpy()
                 nulls[:, t] = column.is_null().to_numpy(zero_copy_only=False)
                 exact[:, t] = True
         # anchor rows
         if self.anchor_lookup and b:
-            order = np.argsort(self.anchor_positions, kind="stable")
-            slot = np.searchsorted(self.anchor_positions[order], pos)
+            order = np.argsort(model.anchor_positions, kind="stable")
+            slot = np.searchsorted(model.anchor_positions[order], pos)
             slot = np.minimum(slot, order.size - 1)
-            hit = self.anchor_positions[order][slot] == pos
+            hit = model.anchor_positions[order][slot] == pos
             if hit.any():
                 a = order[slot[hit]]
-                values[hit] = self.anchor_values[np.ix_(a, col_idx)]
-                nulls[hit] = self.anchor_nulls[np.ix_(a, col_idx)]
+                values[hit] = model.anchor_values[np.ix_(a, col_idx)]
+                nulls[hit] = model.anchor_nulls[np.ix_(a, col_idx)]
                 exact[hit] = True
         # exact cells
         if self.cell_rows.size and b:
@@ -399,18 +370,19 @@ class ArchiveReader:
         # columns narrowed, each bound for the value handed out (arithmetic.serve). An integer
         # cell whose bound becomes 0 holds its true value: it counts as exact.
         approximated = ~exact & ~nulls
-        values, bounds = arithmetic.serve(values, bounds, approximated, self.lower[col_idx],
-                                          self.upper[col_idx], self.kind[col_idx], self.special[col_idx])
-        exact |= approximated & self.is_integer[col_idx][None, :] & (bounds == 0.0)
+        values, bounds = arithmetic.serve(values, bounds, approximated, model.lower[col_idx],
+                                          model.upper[col_idx], model.kind[col_idx], model.special[col_idx])
+        exact |= approximated & model.is_integer[col_idx][None, :] & (bounds == 0.0)
         return Rebuilt(pos, names, values, bounds, exact, nulls, table)
 
     def _row_file_columns(self, col_idx: np.ndarray) -> list[str]:
         """Row-file columns a rebuild of ``col_idx`` reads: the exact (key and non-numeric)
         columns, every stored basis column, the row ledger and only the requested columns'
         residual codes (a narrow request on a wide archive skips the other codes)."""
+        model = self.model
         codes = [layout.CODE_PATTERN.format(int(j)) for j in col_idx
-                 if np.isfinite(self.residual_step[j])]
-        wanted = list(self.manifest.get("exact_columns", [])) + self.basis_stored + codes
+                 if np.isfinite(model.residual_step[j])]
+        wanted = list(self.manifest.get("exact_columns", [])) + model.basis_stored + codes
         return list(dict.fromkeys(wanted + [layout.ROW_ERR_MAX]))
 
     def iter_rebuild(self, rows: Any = None, columns: Any = None, *,
