@@ -108,3 +108,57 @@ def test_the_encoder_refuses_to_write_a_table_without_its_statistics(tmp_path):
     with pytest.raises(rankfold.CorruptArchiveError, match=r"about to write columns.parquet .*lacks \['err_l2'\]"):
         dataclasses.replace(model, statistics=partial).to_tables()
     assert model.to_tables()[layout.COLUMNS].schema.equals(COLUMNS_SCHEMA)
+
+
+def _rewrite_row_file(path, change):
+    """Rewrite the first row file with ``change(table)`` and record it in a resealed
+    manifest (sizes and digests of the new file), as an editing program could."""
+    import json
+
+    import pyarrow.parquet as pq
+
+    from rankfold.udfs.store.manifest import file_entry, write_manifest
+
+    manifest = json.loads((path / "manifest.json").read_text())
+    name = manifest["row_parts"][0]["name"]
+    pq.write_table(change(pq.read_table(path / name)), path / name, write_page_checksum=True)
+    entry = file_entry(path, name, [layout.ROW_ID] + list(manifest.get("exact_columns", [])))
+    manifest["files"] = [entry if f["name"] == name else f for f in manifest["files"]]
+    write_manifest(path, manifest)
+
+
+def test_a_row_file_with_another_reserved_type_is_refused(tmp_path):
+    # the row ledger is float32 by the format (arithmetic.round_up_compact): a float64 one,
+    # though its values are the same, is not a file this format wrote
+    path = tmp_path / "a"
+    rankfold.compress(_table(), path, key="id", max_abs_error=0.05, seed=0)
+    ArchiveReader(path)  # reads before the edit
+
+    def widen(table):
+        i = table.schema.get_field_index(layout.ROW_ERR_L2)
+        return table.set_column(i, layout.ROW_ERR_L2, table.column(i).cast(pa.float64()))
+
+    _rewrite_row_file(path, widen)
+    with pytest.raises(rankfold.CorruptArchiveError,
+                       match=r"rows-00000.parquet stores '_rf_err_l2' as double, where the format declares float"):
+        ArchiveReader(path)
+
+
+def test_a_row_file_without_its_residual_codes_is_refused(tmp_path):
+    path = tmp_path / "a"
+    rankfold.compress(_table(), path, key="id", max_abs_error=0.05, seed=0)
+    codes = [n for n in ArchiveReader(path).model.row_file_reserved() if n.startswith("_rf_q_")]
+    assert codes  # a tolerance this tight codes the residuals of the derived columns
+    _rewrite_row_file(path, lambda table: table.drop_columns([codes[0]]))
+    with pytest.raises(rankfold.CorruptArchiveError, match=f"lacks the column '{codes[0]}' the manifest implies"):
+        ArchiveReader(path)
+
+
+def test_the_row_writer_check_names_a_defect():
+    from rankfold.udfs.store.table_schemas import check_row_schema
+
+    schema = pa.schema([(layout.ROW_ID, pa.int64()), (layout.ROW_ERR_MAX, pa.float64())])
+    with pytest.raises(rankfold.CorruptArchiveError, match=r"about to write a row file that stores "
+                                                           r"'_rf_err_max' as double.*defect of rankfold"):
+        check_row_schema(schema, {layout.ROW_ID: pa.int64(), layout.ROW_ERR_MAX: pa.float32()},
+                         "rows from 0 on", writing=True)

@@ -31,7 +31,7 @@ import pyarrow.parquet as pq
 from ..errors import InvalidInputError, SourceChangedError
 from ..store import arithmetic, layout
 from ..store.model import FittedModel, Mixing
-from ..store.table_schemas import CELLS_SCHEMA
+from ..store.table_schemas import CELLS_SCHEMA, check_row_schema
 from .commit import ArchiveWriter
 from .profile import ColumnProfile, Fingerprint, Transform, profile_block
 
@@ -502,6 +502,7 @@ def encode_pass(stream: Stream, model: FittedModel, writer: ArchiveWriter, *, bl
     # it is kept coarser (4 mantissa bits: at most 12.5% loose, about half a byte per figure).
     ledger_bits = 4 if np.isfinite(tolerance).all() and width else 8
     rows = corrections_count = 0
+    reserved = model.row_file_reserved()
     for first, batch, block, mask in stream:
         b = block.shape[0]
         local_anchors = np.array(sorted(p - first for p in anchor_lookup if first <= p < first + b),
@@ -569,6 +570,10 @@ def encode_pass(stream: Stream, model: FittedModel, writer: ArchiveWriter, *, bl
             columns[layout.CODE_PATTERN.format(j)] = pa.array(arithmetic.encode_codes(codes[:, t]))
         columns[layout.ROW_ERR_MAX] = pa.array(arithmetic.round_up_compact(row_max, ledger_bits))
         columns[layout.ROW_ERR_L2] = pa.array(arithmetic.round_up_compact(row_l2, ledger_bits))
-        writer.write_rows(pa.table(columns), first)
+        table = pa.table(columns)
+        if reserved is not None:  # the format's columns, checked once per pass (table_schemas)
+            check_row_schema(table.schema, reserved, f"rows from {first} on", writing=True)
+            reserved = None
+        writer.write_rows(table, first)
         rows += b
     return EncodeResult(ledger, cells.finish(), fingerprint, rows, corrections_count, profile=profile)

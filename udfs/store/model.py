@@ -31,7 +31,8 @@ import numpy as np
 import pyarrow as pa
 
 from . import arithmetic, layout
-from .table_schemas import (COLUMNS_OPTIONAL, COLUMNS_SCHEMA, anchors_schema, check_schema)
+from .table_schemas import (COLUMNS_OPTIONAL, COLUMNS_SCHEMA, anchors_schema, check_schema,
+                            row_file_reserved)
 
 __all__ = ["Mixing", "Coding", "FittedModel", "mixing_for_columns", "mixing_for_scores",
            "FACTOR_COLUMNS", "STATISTICS"]
@@ -209,6 +210,22 @@ class FittedModel:
     def kind(self) -> np.ndarray:
         """(n,) how a served value is typed: 'i' integer, 'f' float32, 'e' float16, 'd' float64."""
         return np.array([_kind(t) for t in self.types], dtype="<U1")
+
+    def row_file_reserved(self) -> dict[str, pa.DataType | None]:
+        """The reserved columns of this model's row files and their types
+        (``table_schemas.row_file_reserved``): the row id and ledger, the stored basis (codes
+        int32; scores float64, or float32 with ``coding.float32_scores``; None for source
+        columns, which keep the source's type) and the residual codes of every coded column."""
+        basis: dict[str, pa.DataType | None] = {}
+        for t, name in enumerate(self.basis_stored):
+            if np.isfinite(self.basis_step[t]):
+                basis[name] = pa.int32()
+            elif self.mixing.basis_columns is None:
+                basis[name] = pa.float32() if self.coding.float32_scores else pa.float64()
+            else:
+                basis[name] = None
+        codes = [layout.CODE_PATTERN.format(int(j)) for j in np.flatnonzero(np.isfinite(self.residual_step))]
+        return row_file_reserved(basis, codes)
 
     def scores_right(self) -> np.ndarray | None:
         """(n, c) the right factor that turns transformed rows into scores (None: basis columns)."""

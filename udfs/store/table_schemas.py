@@ -22,7 +22,7 @@ from ..errors import CorruptArchiveError
 from . import layout
 
 __all__ = ["COLUMNS_SCHEMA", "COLUMNS_OPTIONAL", "CELLS_SCHEMA", "anchors_schema",
-           "row_file_reserved", "check_schema"]
+           "row_file_reserved", "check_schema", "check_row_schema"]
 
 COLUMNS_SCHEMA = pa.schema([
     ("name", pa.string()), ("position", pa.int32()), ("type", pa.string()), ("role", pa.string()),
@@ -93,3 +93,25 @@ def check_schema(schema: pa.Schema, declared: pa.Schema, where: str, *, optional
             f"{where} does not have the declared table schema ({detail}); the archive is damaged "
             "or was written by another program: restore it from a copy or compress the source again."
         )
+
+
+def check_row_schema(schema: pa.Schema, reserved: dict[str, pa.DataType | None], where: str, *,
+                     writing: bool = False) -> None:
+    """Refuse a row file's ``schema`` (of the file ``where``) unless it holds every reserved
+    column of ``reserved`` (:func:`row_file_reserved`) with its type (None: any type; such a
+    column keeps the source's type, checked against the manifest by the reader)."""
+    for column, wanted in reserved.items():
+        problem = None
+        if column not in schema.names:
+            problem = f"lacks the column {column!r} the manifest implies"
+        elif wanted is not None and schema.field(column).type != wanted:
+            problem = f"stores {column!r} as {schema.field(column).type}, where the format declares {wanted}"
+        if problem is None:
+            continue
+        if writing:
+            raise CorruptArchiveError(
+                f"rankfold was about to write a row file that {problem} ({where}); nothing was "
+                "committed. This is a defect of rankfold: please report it.")
+        raise CorruptArchiveError(
+            f"{where} {problem}; the archive is damaged or was edited: restore it from a copy or "
+            "compress the source again.")
