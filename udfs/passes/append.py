@@ -145,7 +145,7 @@ def _write_version(reader: ArchiveReader, src, batch_rows, progress, temp: Path)
                                 anchor_nulls=np.zeros((0, reader.model.width), bool))
     names, passthrough, width = model.names, model.exact_columns, model.width
     transform = Transform(model.transform_kind, model.shift, model.scale)
-    cols = reader.columns_table
+    stats = reader.model.statistics  # the archive's column statistics and ledger (decoded)
     first_row = reader.rows_count
     token = versions.new_token()
     old_parts = list(manifest["row_parts"])
@@ -188,14 +188,11 @@ def _write_version(reader: ArchiveReader, src, batch_rows, progress, temp: Path)
         tables[BLOCKS] = blocks_name
         new_files.append(blocks_name)
     # columns: merged ledger and statistics
-    old = ColumnLedger(cols.column("err_max").to_numpy().copy(), cols.column("err_l2").to_numpy().copy(),
-                       cols.column("err_sum").to_numpy().copy(), cols.column("err_cells").to_numpy().copy())
+    old = ColumnLedger(*(np.array(stats[n]) for n in ("err_max", "err_l2", "err_sum", "err_cells")))
     ledger = old.merge(result.ledger)
     before = ColumnProfile(
-        cols.column("valid").to_numpy(), cols.column("nulls").to_numpy(), cols.column("nans").to_numpy(),
-        cols.column("infinities").to_numpy(), cols.column("mean").to_numpy(),
-        cols.column("std").to_numpy() ** 2 * cols.column("valid").to_numpy(),
-        cols.column("min").to_numpy(), cols.column("max").to_numpy())
+        stats["valid"], stats["nulls"], stats["nans"], stats["infinities"], stats["mean"],
+        stats["std"] ** 2 * stats["valid"], stats["min"], stats["max"])
     profile = before.merge(state["profile"])
     measured = reader.model.with_statistics(column_statistics(profile, ledger, first_row + result.rows))
     columns_name = versions.versioned_name(f"columns.v{version}.parquet", token)

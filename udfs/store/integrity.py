@@ -231,7 +231,7 @@ def check_tables(reader) -> None:
     lengths = pa.compute.list_value_length(cols.column("weights")).to_numpy(zero_copy_only=False)
     if np.any(lengths != len(m["basis"])):
         raise damaged(where, f"holds weights for other than the manifest's {len(m['basis'])} basis entries")
-    anchors = np.sort(reader.anchor_positions)
+    anchors = np.sort(reader.model.anchor_positions)
     if not np.array_equal(anchors, np.sort(np.asarray(m["anchors"], dtype=np.int64))):
         raise damaged(path / layout.table_file(m, layout.ANCHORS), "holds other anchor rows than the manifest")
     rows = reader.rows_count
