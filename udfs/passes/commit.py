@@ -25,7 +25,7 @@ from ..store.manifest import file_entry, write_manifest
 from ..store.table_schemas import CELLS_SCHEMA
 
 __all__ = ["prepare_target", "ArchiveWriter", "RowPartWriter", "PART_ROWS", "concat_parquet",
-           "CELLS_SCHEMA", "write_small_table"]
+           "write_small_table"]
 
 ZSTD_LEVEL = 3
 
@@ -179,9 +179,6 @@ class RowPartWriter:
                 self._thread.shutdown(wait=True)
                 self._thread = None
             self._close_file()
-
-
-# declared in store/table_schemas.py (re-exported for the writers here)
 
 
 def concat_parquet(directory: Path, sources: list[str], target: str, schema: pa.Schema,

@@ -25,14 +25,14 @@ from __future__ import annotations
 import dataclasses
 from dataclasses import dataclass
 from functools import cached_property
+from pathlib import Path
 from typing import Any
 
 import numpy as np
 import pyarrow as pa
 
 from . import arithmetic, layout
-from .table_schemas import (COLUMNS_OPTIONAL, COLUMNS_SCHEMA, anchors_schema, check_schema,
-                            row_file_reserved)
+from .table_schemas import COLUMNS_SCHEMA, anchors_schema, check_schema, row_file_reserved
 
 __all__ = ["Mixing", "Coding", "FittedModel", "mixing_for_columns", "mixing_for_scores",
            "FACTOR_COLUMNS", "STATISTICS"]
@@ -237,10 +237,10 @@ class FittedModel:
 
     # -- what the encode pass measured -------------------------------------------------------
     def _stat(self, name: str, default: float) -> np.ndarray:
-        stats = self.statistics or {}
-        if name in stats:
-            return np.asarray(stats[name], dtype=np.float64)
-        return np.full(self.width, default)
+        """A measured field as float64 (n,); ``default`` before the encode pass measured it."""
+        if self.statistics is None:
+            return np.full(self.width, default)
+        return np.asarray(self.statistics[name], dtype=np.float64)
 
     @cached_property
     def err_max(self) -> np.ndarray:
@@ -259,12 +259,8 @@ class FittedModel:
 
     @cached_property
     def special(self) -> np.ndarray:
-        """(n,) columns that may hold NaN or infinite cells (unknown counts: assume they may)."""
-        stats = self.statistics or {}
-        flags = np.zeros(self.width, bool)
-        for name in ("nans", "infinities"):
-            flags |= (np.asarray(stats[name]) > 0) if name in stats else True
-        return flags
+        """(n,) columns that may hold NaN or infinite cells (before the encode pass: all may)."""
+        return (self._stat("nans", np.inf) > 0) | (self._stat("infinities", np.inf) > 0)
 
     def with_statistics(self, statistics: dict[str, np.ndarray]) -> "FittedModel":
         """This model with the measured fields of the columns table (``STATISTICS``)."""
@@ -337,7 +333,7 @@ class FittedModel:
     def to_tables(self) -> dict[str, pa.Table]:
         """The columns table and the anchors table (``layout.COLUMNS``, ``layout.ANCHORS``),
         checked against their declared schemas (``table_schemas``)."""
-        stats, coding = self.statistics or {}, self.coding  # a field missing is refused below
+        stats, coding = self.statistics or {}, self.coding
         residual_step = self.residual_step
         data = {
             "name": self.names,
@@ -347,14 +343,14 @@ class FittedModel:
             "shift": self.shift, "scale": self.scale, "ledger_scale": self.ledger_scale,
             "offset": self.offset,
             "weights": list(np.ascontiguousarray(self.weights.T)),
-            **{n: stats[n] for n in STATISTICS if n in stats},
+            **{n: stats[n] for n in STATISTICS if n in stats},  # a field missing is refused below
             "tolerance": pa.array(coding.tolerance, pa.float64(), mask=~np.isfinite(coding.tolerance)),
             "residual_step": pa.array(residual_step, pa.float64(), mask=~np.isfinite(residual_step)),
         }
         schema = pa.schema([f for f in COLUMNS_SCHEMA if f.name in data])
         columns = pa.table({f.name: pa.array(data[f.name], f.type) if not isinstance(data[f.name], pa.Array)
                             else data[f.name] for f in schema}, schema=schema)
-        check_schema(columns.schema, COLUMNS_SCHEMA, layout.COLUMNS, optional=COLUMNS_OPTIONAL, writing=True)
+        check_schema(columns.schema, COLUMNS_SCHEMA, layout.COLUMNS, writing=True)
         with_rows = bool(self.anchor_positions.size)
         anchor_cols = {layout.ROW_ID: pa.array(self.anchor_positions, pa.int64())}
         for j, name in enumerate(self.names if with_rows else []):
@@ -365,17 +361,18 @@ class FittedModel:
     # -- the decoder -------------------------------------------------------------------------
     @classmethod
     def from_tables(cls, manifest: dict[str, Any], columns: pa.Table, anchors: pa.Table,
-                    row_schema: pa.Schema | None = None) -> "FittedModel":
+                    row_schema: pa.Schema | None = None, directory: Path | None = None) -> "FittedModel":
         """The model of an archive version from its manifest, columns table and anchors table
         (as read; the schemas are checked here, the cross-checks against the manifest in
         ``integrity.check_tables``). ``row_schema``: a row file's schema, which tells whether
-        scores are stored as float32 (None: as float64)."""
+        scores are stored as float32 (None: as float64). ``directory``: the archive's, named
+        in the messages of a refused table."""
         names = list(manifest["numeric_columns"])
         width = len(names)
-        check_schema(columns.schema, COLUMNS_SCHEMA, layout.table_file(manifest, layout.COLUMNS),
-                     optional=COLUMNS_OPTIONAL)
+        where = Path(directory or "")
+        check_schema(columns.schema, COLUMNS_SCHEMA, where / layout.table_file(manifest, layout.COLUMNS))
         check_schema(anchors.schema, anchors_schema(names, anchors.num_rows > 0),
-                     layout.table_file(manifest, layout.ANCHORS), ordered=False)
+                     where / layout.table_file(manifest, layout.ANCHORS), ordered=False)
         basis = manifest["basis"]
         basis_names = [b["name"] for b in basis]
         weights = np.array(columns.column("weights").to_pylist(), dtype=np.float64).T.reshape(
@@ -389,16 +386,11 @@ class FittedModel:
         stored_first = basis[0].get("stored_as", basis[0]["name"]) if basis else None
         if row_schema is not None and stored_first in row_schema.names:
             float32 = row_schema.field(stored_first).type == pa.float32()
-        optional = set(columns.column_names)
-        coding = Coding(
-            columns.column("tolerance").fill_null(np.inf).to_numpy() if "tolerance" in optional
-            else np.full(width, np.inf),
-            columns.column("residual_step").fill_null(np.nan).to_numpy() if "residual_step" in optional
-            else np.full(width, np.nan),
-            np.array([b.get("step", np.nan) for b in basis], dtype=np.float64),
-            float32_scores=float32)
-        statistics = {n: columns.column(n).to_numpy(zero_copy_only=False)
-                      for n in STATISTICS if n in optional}
+        coding = Coding(columns.column("tolerance").fill_null(np.inf).to_numpy(),
+                        columns.column("residual_step").fill_null(np.nan).to_numpy(),
+                        np.array([b.get("step", np.nan) for b in basis], dtype=np.float64),
+                        float32_scores=float32)
+        statistics = {n: columns.column(n).to_numpy(zero_copy_only=False) for n in STATISTICS}
         types = {f["name"]: f["type"] for f in manifest["schema"]}
         positions = anchors.column(layout.ROW_ID).to_numpy()
         if positions.size:

@@ -158,7 +158,8 @@ class ArchiveReader:
             starts = np.cumsum([0] + [meta.row_group(g).num_rows for g in range(meta.num_row_groups)])
             self.parts.append((part["first_row"], part["rows"], part["name"], starts))
         self.model = FittedModel.from_tables(
-            m, self.columns_table, anchors, self.row_file_schema(self.parts[0][2]) if self.parts else None)
+            m, self.columns_table, anchors, self.row_file_schema(self.parts[0][2]) if self.parts else None,
+            directory=self.path)
         self.anchor_lookup = {int(p): i for i, p in enumerate(self.model.anchor_positions)}
         if self.parts:
             schema = self.row_file_schema(self.parts[0][2])

@@ -16,12 +16,14 @@ sums for aggregates) is declared beside its writer and reader in ``store/aggrega
 
 from __future__ import annotations
 
+from typing import Any
+
 import pyarrow as pa
 
 from ..errors import CorruptArchiveError
 from . import layout
 
-__all__ = ["COLUMNS_SCHEMA", "COLUMNS_OPTIONAL", "CELLS_SCHEMA", "anchors_schema",
+__all__ = ["COLUMNS_SCHEMA", "CELLS_SCHEMA", "anchors_schema",
            "row_file_reserved", "check_schema", "check_row_schema"]
 
 COLUMNS_SCHEMA = pa.schema([
@@ -40,9 +42,8 @@ COLUMNS_SCHEMA = pa.schema([
     ("tolerance", pa.float64()), ("residual_step", pa.float64()),
 ])
 
-# Fields a reader does without (what it assumes instead is in ``model.FittedModel.from_tables``:
-# no tolerance, no residual codes, an unbounded range, NaN or infinite cells possible)
-COLUMNS_OPTIONAL = ("tolerance", "residual_step", "min", "max", "nans", "infinities")
+# Every field is required: each was written before manifests carried their own digest, and
+# archives from before then are refused (``manifest_schema.older_format_rules``).
 
 CELLS_SCHEMA = pa.schema([(layout.ROW_ID, pa.int64()), (layout.COLUMN_ID, pa.int32()),
                           ("value", pa.float64()), ("reason", pa.dictionary(pa.int32(), pa.string()))])
@@ -70,13 +71,13 @@ def row_file_reserved(basis_stored: dict[str, pa.DataType | None],
     return reserved
 
 
-def check_schema(schema: pa.Schema, declared: pa.Schema, where: str, *, optional=(),
-                 ordered: bool = True, writing: bool = False) -> None:
+def check_schema(schema: pa.Schema, declared: pa.Schema, where: Any, *, ordered: bool = True,
+                 writing: bool = False) -> None:
     """Refuse ``schema`` (of the table file ``where``) unless it has every field of
-    ``declared`` with its type, fields named in ``optional`` aside, and no other; in the
-    declared order unless ``ordered`` is False (tables read by field name). ``writing``: the
-    table is about to be written (a mismatch is then a defect of rankfold itself)."""
-    wanted = [(f.name, f.type) for f in declared if f.name in schema.names or f.name not in optional]
+    ``declared`` with its type and no other; in the declared order unless ``ordered`` is
+    False (tables read by field name). ``writing``: the table is about to be written (a
+    mismatch is then a defect of rankfold itself)."""
+    wanted = [(f.name, f.type) for f in declared]
     have = [(f.name, f.type) for f in schema]
     if (have != wanted) if ordered else (sorted(have, key=str) != sorted(wanted, key=str)):
         missing = [n for n, _ in wanted if n not in schema.names]
@@ -95,7 +96,7 @@ def check_schema(schema: pa.Schema, declared: pa.Schema, where: str, *, optional
         )
 
 
-def check_row_schema(schema: pa.Schema, reserved: dict[str, pa.DataType | None], where: str, *,
+def check_row_schema(schema: pa.Schema, reserved: dict[str, pa.DataType | None], where: Any, *,
                      writing: bool = False) -> None:
     """Refuse a row file's ``schema`` (of the file ``where``) unless it holds every reserved
     column of ``reserved`` (:func:`row_file_reserved`) with its type (None: any type; such a
