@@ -75,7 +75,7 @@ class ArchiveReader:
             raise CorruptArchiveError(f"{self.path} could not be read ({exc}); the archive is damaged.") from None
         self.seal = RowFileSeal(self.path, self.manifest, self._metadata)
 
-    # the fitted model's arrays under the names callers knew before ``model`` (new code: use
+    # the fitted model's arrays under the names store/aggregate.py reads them by (new code:
     # ``reader.model``; shapes and meanings in ``model.FittedModel``)
     offset = property(lambda self: self.model.offset)
     weights = property(lambda self: self.model.weights)
@@ -86,13 +86,9 @@ class ArchiveReader:
     basis_stored = property(lambda self: self.model.basis_stored)
     basis_step = property(lambda self: self.model.basis_step)
     is_basis = property(lambda self: self.model.is_basis)
-    tolerance = property(lambda self: self.model.tolerance)
     residual_step = property(lambda self: self.model.residual_step)
-    is_integer = property(lambda self: self.model.is_integer)
-    kind = property(lambda self: self.model.kind)
     lower = property(lambda self: self.model.lower)
     upper = property(lambda self: self.model.upper)
-    special = property(lambda self: self.model.special)
     anchor_positions = property(lambda self: self.model.anchor_positions)
     anchor_values = property(lambda self: self.model.anchor_values)
     anchor_nulls = property(lambda self: self.model.anchor_nulls)
