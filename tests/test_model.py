@@ -162,3 +162,21 @@ def test_the_row_writer_check_names_a_defect():
                                                            r"'_rf_err_max' as double.*defect of rankfold"):
         check_row_schema(schema, {layout.ROW_ID: pa.int64(), layout.ROW_ERR_MAX: pa.float32()},
                          "rows from 0 on", writing=True)
+
+
+def test_report_reads_a_quantized_basis_through_the_model(tmp_path):
+    # basis columns stored as integer codes (_rf_basis_<k>) are decoded by the model, so the
+    # report's leverage scores exist for them too; rank-k leverage scores sum to k (the
+    # squared row norms of k orthonormal columns; Mahoney and Drineas, PNAS 106(3), 2009)
+    from rankfold.report import column_selection
+
+    rng = np.random.default_rng(0)  # invented data: rank 3 plus a little noise
+    x = rng.normal(size=(2000, 3)) @ rng.normal(size=(3, 10)) + 0.001 * rng.normal(size=(2000, 10))
+    path = tmp_path / "a"
+    rankfold.compress(x, path, max_abs_error=0.01, basis_precision="tolerance", seed=0)
+    archive = rankfold.open(path)
+    assert any("stored_as" in b for b in archive.manifest["basis"])
+    selection = column_selection(archive)
+    leverage = np.array([c["leverage"] for c in selection["columns"]])
+    assert leverage.sum() == pytest.approx(min(selection["rank"], len(archive.basis_columns)), abs=1e-9)
+    assert {c["name"] for c in selection["columns"] if c["basis"]} == set(archive.basis_columns)
