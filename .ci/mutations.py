@@ -64,6 +64,15 @@ MUTATIONS = {
         "        middle += [f\"({lin}) + {0.5 * reader.columns_table.column('std')[j].as_py()!r} AS __v{s}\", "
         'f"{raw} AS __e{s}"]',
         ["tests/test_sql_tables.py"]),
+    "model encoder narrows the offsets to float32": (
+        "udfs/store/model.py", '            "offset": self.offset,\n',
+        '            "offset": self.offset.astype(np.float32).astype(np.float64),\n',
+        ["tests/test_model.py"]),
+    "SQL rebuild without the residual codes": (
+        "udfs/store/sql_rebuild.py",
+        '        value = f"({value}) + CAST(__q{slot} AS DOUBLE) * {sql_literal(float(step))}"\n',
+        '        value = f"({value})"\n',
+        ["tests/test_sql_tables.py"]),
     "silent rebuild log": (
         "udfs/store/rebuild_log.py", "        text = json.dumps(entry, default=str)\n",
         "        return entry\n        text = json.dumps(entry, default=str)\n",

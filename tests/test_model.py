@@ -180,3 +180,30 @@ def test_report_reads_a_quantized_basis_through_the_model(tmp_path):
     leverage = np.array([c["leverage"] for c in selection["columns"]])
     assert leverage.sum() == pytest.approx(min(selection["rank"], len(archive.basis_columns)), abs=1e-9)
     assert {c["name"] for c in selection["columns"] if c["basis"]} == set(archive.basis_columns)
+
+
+@pytest.mark.parametrize("options", [dict(rank=2, link="optimal"), dict(max_abs_error=0.02),
+                                     dict(method="svd", max_abs_error=0.05)])
+def test_readers_decode_the_model_the_encode_pass_measured_with(tmp_path, monkeypatch, options):
+    # the bounds hold only if readers rebuild with the very numbers the encode pass used:
+    # the decoded model must equal the encode pass's model bit for bit (common practice for
+    # a codec pair: decode(encode(m)) == m)
+    import rankfold.udfs.passes.compress as compress_module
+
+    seen = []
+    real = compress_module.encode_pass
+
+    def spy(stream, model, *args, **kwargs):
+        seen.append(model)
+        return real(stream, model, *args, **kwargs)
+
+    monkeypatch.setattr(compress_module, "encode_pass", spy)
+    path = tmp_path / "a"
+    rankfold.compress(_table(4), path, key="id", seed=2, **options)
+    decoded, used = ArchiveReader(path).model, seen[-1]
+    for name in ("weights", "offset", "fill", "shift", "scale", "ledger_scale", "tolerance",
+                 "residual_step", "basis_step", "anchor_positions", "anchor_values"):
+        np.testing.assert_array_equal(getattr(decoded, name), getattr(used, name), err_msg=name)
+    assert (decoded.names, decoded.types, decoded.basis_names, decoded.basis_stored) == (
+        used.names, used.types, used.basis_names, used.basis_stored)
+    assert decoded.coding.float32_scores == used.coding.float32_scores
