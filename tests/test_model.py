@@ -207,3 +207,19 @@ def test_readers_decode_the_model_the_encode_pass_measured_with(tmp_path, monkey
     assert (decoded.names, decoded.types, decoded.basis_names, decoded.basis_stored) == (
         used.names, used.types, used.basis_names, used.basis_stored)
     assert decoded.coding.float32_scores == used.coding.float32_scores
+
+
+def test_a_manifest_that_moves_a_basis_entry_is_refused(tmp_path):
+    import json
+
+    from rankfold.udfs.store.manifest import write_manifest
+
+    path = tmp_path / "a"
+    rankfold.compress(_table(2), path, max_abs_error=0.01, basis_precision="tolerance", seed=0)
+    manifest = json.loads((path / "manifest.json").read_text())
+    coded = [b for b in manifest["basis"] if "stored_as" in b]
+    assert coded  # basis values stored as integer codes in _rf_basis_<k>
+    coded[0]["stored_as"] = coded[0]["name"]  # the source column's name: not where codes live
+    write_manifest(path, manifest)
+    with pytest.raises(rankfold.CorruptArchiveError, match="stores the basis entries in the row-file columns"):
+        ArchiveReader(path)

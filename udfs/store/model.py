@@ -31,6 +31,7 @@ from typing import Any
 import numpy as np
 import pyarrow as pa
 
+from ..errors import CorruptArchiveError
 from . import arithmetic, layout
 from .table_schemas import COLUMNS_SCHEMA, anchors_schema, check_schema, row_file_reserved
 
@@ -398,8 +399,15 @@ class FittedModel:
             nulls = np.column_stack([anchors.column(n).is_null().to_numpy(zero_copy_only=False) for n in names])
         else:
             values, nulls = np.zeros((0, width)), np.zeros((0, width), bool)
-        return cls(names, [types[n] for n in names], list(manifest.get("exact_columns", [])),
-                   manifest["transform"], columns.column("shift").to_numpy(),
-                   columns.column("scale").to_numpy(), mixing, basis_names, coding,
-                   columns.column("ledger_scale").to_numpy(), positions, values, nulls,
-                   statistics=statistics)
+        model = cls(names, [types[n] for n in names], list(manifest.get("exact_columns", [])),
+                    manifest["transform"], columns.column("shift").to_numpy(),
+                    columns.column("scale").to_numpy(), mixing, basis_names, coding,
+                    columns.column("ledger_scale").to_numpy(), positions, values, nulls,
+                    statistics=statistics)
+        if [b.get("stored_as", b["name"]) for b in basis] != model.basis_stored:
+            raise CorruptArchiveError(
+                f"The manifest of {where} stores the basis entries in the row-file columns "
+                f"{[b.get('stored_as', b['name']) for b in basis]}, where this format keeps them in "
+                f"{model.basis_stored}; the archive is damaged or was edited: restore it from a "
+                "copy or compress the source again.")
+        return model
