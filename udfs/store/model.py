@@ -109,10 +109,11 @@ def _kind(type_name: str) -> str:
     return {"float": "f", "halffloat": "e"}.get(type_name, "d")
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, eq=False)
 class FittedModel:
     """What rebuilding an archive's numeric columns needs (n columns, c basis entries, r
-    anchor rows).
+    anchor rows). Frozen: a new version of the model is a new object
+    (``dataclasses.replace``, ``with_statistics``); compared by identity, not by its arrays.
 
     names, types: the numeric columns and their Arrow type names (n). exact_columns: the
     columns the row files keep as they are (key and non-numeric columns).
