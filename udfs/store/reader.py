@@ -23,6 +23,7 @@ from . import arithmetic, layout
 from .integrity import (RowFileSeal, check_tables, damaged, open_row_file, read_small_table,
                         verified_metadata)
 from .manifest import DIGEST_FIELD, check_files, read_manifest
+from .manifest_schema import older_row_file_rules
 from .model import FittedModel
 from .table_schemas import CELLS_SCHEMA, check_schema
 
@@ -159,13 +160,7 @@ class ArchiveReader:
         self.anchor_lookup = {int(p): i for i, p in enumerate(self.model.anchor_positions)}
         if self.parts:
             schema = self.row_file_schema(self.parts[0][2])
-            signed = [f.name for f in schema if f.name.startswith(layout.CODE_PATTERN.format(""))
-                      and not pa.types.is_unsigned_integer(f.type)]
-            if signed:
-                raise CorruptArchiveError(
-                    f"{self.path} stores residual codes as signed integers ({signed[0]}), as "
-                    "development builds before format 1.0 was settled did; compress the source again."
-                )
+            older_row_file_rules({f.name: f.type for f in schema}, self.path)
         self.key = m.get("key")
 
     @contextmanager
