@@ -24,11 +24,11 @@ MUTATIONS = {
         "        bounds = bounds * 1000.0\n        bounds[exact] = 0.0\n        if not serve:",
         ["tests/test_bounds_property.py"]),
     "column ledger loose by 1000x": (
-        "udfs/store/reader.py", '        self.err_max_col = cols.column("err_max").to_numpy()',
-        '        self.err_max_col = cols.column("err_max").to_numpy() * 1000.0',
+        "udfs/store/model.py", '        return self._stat("err_max", np.inf)\n',
+        '        return self._stat("err_max", np.inf) * 1000.0\n',
         ["tests/test_bounds_property.py"]),
     "row ledger loose by 1000x": (
-        "udfs/store/reader.py",
+        "udfs/store/model.py",
         "        by_row = arithmetic.round_up(row_max[:, None] * self.ledger_scale[col_idx][None, :])",
         "        by_row = arithmetic.round_up(row_max[:, None] * 1000.0 * self.ledger_scale[col_idx][None, :])",
         ["tests/test_bounds_property.py"]),
@@ -63,6 +63,15 @@ MUTATIONS = {
         "udfs/sql/tables.py", '        middle += [f"{lin} AS __v{s}", f"{raw} AS __e{s}"]',
         "        middle += [f\"({lin}) + {0.5 * reader.columns_table.column('std')[j].as_py()!r} AS __v{s}\", "
         'f"{raw} AS __e{s}"]',
+        ["tests/test_sql_tables.py"]),
+    "model encoder narrows the offsets to float32": (
+        "udfs/store/model.py", '            "offset": self.offset,\n',
+        '            "offset": self.offset.astype(np.float32).astype(np.float64),\n',
+        ["tests/test_model.py"]),
+    "SQL rebuild without the residual codes": (
+        "udfs/store/sql_rebuild.py",
+        '        value = f"({value}) + CAST(__q{slot} AS DOUBLE) * {sql_literal(float(step))}"\n',
+        '        value = f"({value})"\n',
         ["tests/test_sql_tables.py"]),
     "silent rebuild log": (
         "udfs/store/rebuild_log.py", "        text = json.dumps(entry, default=str)\n",

@@ -75,12 +75,12 @@ class Archive:
     @property
     def basis_columns(self) -> list[str]:
         """Numeric columns kept exactly as the C factor (empty for method='svd')."""
-        return [n for n in self._reader.basis_names if not n.startswith(layout.RESERVED_PREFIX)]
+        return [n for n in self._reader.model.basis_names if not n.startswith(layout.RESERVED_PREFIX)]
 
     @property
     def anchor_rows(self) -> list[int]:
         """Positions of the rows kept exactly as the R factor."""
-        return [int(p) for p in self._reader.anchor_positions]
+        return [int(p) for p in self._reader.model.anchor_positions]
 
     @property
     def errors(self) -> dict[str, Any]:

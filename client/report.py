@@ -32,9 +32,10 @@ from pathlib import Path
 from typing import Any, Callable
 
 import numpy as np
+import pyarrow as pa
 
 from rankfold.udfs.errors import InvalidInputError, RankfoldError
-from rankfold.udfs.store import arithmetic, layout
+from rankfold.udfs.store import layout
 
 from .archive import Archive
 
@@ -130,13 +131,10 @@ def _ledger(arch: Archive) -> dict[str, np.ndarray]:
            for name in ("std", "err_max", "err_l2", "rel_rms", "shift", "scale", "mean",
                         "valid", "nulls")}
     out["role"] = np.array(table.column("role").to_pylist())
-    out["weights"] = np.array(table.column("weights").to_pylist(), dtype=np.float64).T  # (c, n)
-    tolerance = None
-    if "tolerance" in table.schema.names:  # absolute, per column; NULL where there is none
-        tolerance = table.column("tolerance").cast("double").fill_null(np.nan).to_numpy(zero_copy_only=False)
-        if not np.isfinite(tolerance).any():
-            tolerance = None
-    out["tolerance"] = tolerance
+    model = arch._reader.model  # the fitted model, as the archive's readers decode it
+    out["weights"] = model.weights  # (c, n)
+    # absolute, per column (inf where there is none)
+    out["tolerance"] = model.tolerance if np.isfinite(model.tolerance).any() else None
     return out
 
 
@@ -172,14 +170,14 @@ def column_selection(archive: Any) -> dict[str, Any]:
     if basis:
         cols = np.array([index[b] for b in basis])
         transformed = weights * scale[cols][:, None] / scale[None, :]       # M (c, n)
-        fill = np.array([b["fill"] for b in arch.manifest["basis"]], dtype=np.float64)
+        model = arch._reader.model
         gram = np.zeros((len(basis), len(basis)))
         for part in arch.manifest["row_parts"]:
             file = arch._reader.row_file(part["name"])
-            for batch in file.iter_batches(batch_size=layout.ROW_GROUP_ROWS, columns=basis):
-                block = np.column_stack([batch.column(b).cast("double").fill_null(np.nan)
-                                         .to_numpy(zero_copy_only=False) for b in basis])
-                z = (arithmetic.fill_missing(block, fill) - ledger["shift"][cols]) / scale[cols]
+            for batch in file.iter_batches(batch_size=layout.ROW_GROUP_ROWS, columns=model.basis_stored):
+                # the basis values as stored (codes times their step) and filled
+                block = model.basis_values(pa.Table.from_batches([batch]))
+                z = (block - ledger["shift"][cols]) / scale[cols]
                 gram += z.T @ z
         values, vectors = np.linalg.eigh(gram)
         root = vectors * np.sqrt(np.clip(values, 0.0, None))[None, :]       # L with L L^T = G

@@ -24,6 +24,7 @@ error measured at compress time; and the share of cells stored as corrections ag
 
 from __future__ import annotations
 
+import dataclasses
 import os
 import shutil
 from pathlib import Path
@@ -35,19 +36,18 @@ import pyarrow as pa
 from ..errors import ArchiveNotFoundError, EmptySourceError, InvalidInputError
 from ..store import layout, versions
 from ..store.aggregate import BLOCKS, BlockSums
-from ..store.arithmetic import round_up
 from ..store.integrity import read_small_table
 from ..store.manifest import file_entry, write_manifest
+from ..store.model import FACTOR_COLUMNS
 from ..store.reader import ArchiveReader
-from .commit import CELLS_SCHEMA, PART_ROWS, RowPartWriter, concat_parquet, write_small_table
+from ..store.table_schemas import CELLS_SCHEMA
+from .commit import PART_ROWS, RowPartWriter, concat_parquet, write_small_table
 from .executors import one_blas_thread
 from .keys import check_unique_key
-from .link import Mixing
 from .profile import ColumnProfile, Transform, profile_block
 from .progress import Progress
-from .select import AnchorRows
 from .sources import block_from_batch, open_source
-from .encode import Coding, ColumnLedger, encode_pass
+from .encode import ColumnLedger, column_statistics, encode_pass
 
 __all__ = ["append", "DRIFT_FACTOR"]
 
@@ -75,16 +75,6 @@ def _check_schema(source_schema: pa.Schema, manifest: dict, description: str, pa
                 f"Column {name!r} of the appended source {description} is {given}, but the archive "
                 f"{path} stores it as {archived}. Cast it to {archived} before appending."
             )
-
-
-def _coding(reader: ArchiveReader) -> Coding:
-    float32 = False
-    if reader.parts and reader.basis_stored:
-        schema = reader.row_file_schema(reader.parts[0][2])
-        first = reader.basis_stored[0]
-        float32 = first in schema.names and schema.field(first).type == pa.float32()
-    return Coding(reader.tolerance.copy(), reader.residual_step.copy(), reader.basis_step.copy(),
-                  float32_scores=float32)
 
 
 def _stream(src, names, passthrough, batch_rows, first_row, transform, state, report):
@@ -148,35 +138,27 @@ def _append(directory, source, expected_id, expected_version, connection, batch_
 def _write_version(reader: ArchiveReader, src, batch_rows, progress, temp: Path) -> Path:
     directory, manifest = reader.path, reader.manifest
     version = int(manifest.get("version", 0)) + 1
-    names, passthrough = reader.numeric_columns, list(manifest["exact_columns"])
-    width = len(names)
-    cols = reader.columns_table
-    transform = Transform(manifest["transform"], cols.column("shift").to_numpy(),
-                          cols.column("scale").to_numpy())
-    scale = cols.column("ledger_scale").to_numpy()
-    is_scores = not reader.basis_names or reader.basis_names[0].startswith(layout.RESERVED_PREFIX)
-    if is_scores:
-        basis, score_right = None, (reader.weights / transform.scale[None, :]).T
-    else:
-        basis = np.array([reader.column_index[n] for n in reader.basis_names], dtype=np.int64)
-        score_right = None
-    mixing = Mixing(reader.weights, reader.offset, reader.fill, basis)
-    anchors = AnchorRows(np.zeros(0, np.int64), np.zeros((0, width)), np.zeros((0, width), bool))
-    coding = _coding(reader)
+    # the archive's model, without its anchor rows (those are rows of the archive, not of the
+    # appended source): the encode pass measures the new rows with it
+    model = dataclasses.replace(reader.model, anchor_positions=np.zeros(0, np.int64),
+                                anchor_values=np.zeros((0, reader.model.width)),
+                                anchor_nulls=np.zeros((0, reader.model.width), bool))
+    names, passthrough, width = model.names, model.exact_columns, model.width
+    transform = Transform(model.transform_kind, model.shift, model.scale)
+    stats = reader.model.statistics  # the archive's column statistics and ledger (decoded)
     first_row = reader.rows_count
     token = versions.new_token()
     old_parts = list(manifest["row_parts"])
     writer = RowPartWriter(temp, PART_ROWS, lambda k: versions.versioned_name(
         layout.ROWS_PATTERN.format(len(old_parts) + k), token))
-    sums = BlockSums(width, mixing.weights.shape[0], mixing.fill)
+    sums = BlockSums(width, model.weights.shape[0], model.fill)
     cells_temp = temp / f".append-{token}-cells.parquet"
     state = {"profile": ColumnProfile.empty(width), "z_norm2": 0.0}
     report = Progress(progress, "append", None)
     stream = _stream(src, names, passthrough, batch_rows, first_row, transform, state, report)
     try:
         with one_blas_thread():
-            result = encode_pass(stream, names, passthrough, mixing, anchors, transform, score_right,
-                                 writer, scale, coding, block_sums=sums, cells_file=cells_temp)
+            result = encode_pass(stream, model, writer, block_sums=sums, cells_file=cells_temp)
     finally:
         writer.close()
     report.finish()
@@ -206,29 +188,16 @@ def _write_version(reader: ArchiveReader, src, batch_rows, progress, temp: Path)
         tables[BLOCKS] = blocks_name
         new_files.append(blocks_name)
     # columns: merged ledger and statistics
-    old = ColumnLedger(cols.column("err_max").to_numpy().copy(), cols.column("err_l2").to_numpy().copy(),
-                       cols.column("err_sum").to_numpy().copy(), cols.column("err_cells").to_numpy().copy())
+    old = ColumnLedger(*(np.array(stats[n]) for n in ("err_max", "err_l2", "err_sum", "err_cells")))
     ledger = old.merge(result.ledger)
     before = ColumnProfile(
-        cols.column("valid").to_numpy(), cols.column("nulls").to_numpy(), cols.column("nans").to_numpy(),
-        cols.column("infinities").to_numpy(), cols.column("mean").to_numpy(),
-        cols.column("std").to_numpy() ** 2 * cols.column("valid").to_numpy(),
-        cols.column("min").to_numpy(), cols.column("max").to_numpy())
+        stats["valid"], stats["nulls"], stats["nans"], stats["infinities"], stats["mean"],
+        stats["std"] ** 2 * stats["valid"], stats["min"], stats["max"])
     profile = before.merge(state["profile"])
-    std = profile.std
-    rms = np.divide(ledger.err_l2, np.sqrt(np.maximum(ledger.cells, 1)))
-    rel_rms = np.divide(rms, std, out=np.full(width, np.nan), where=std > 0)
-    updates = {"valid": profile.valid, "nulls": profile.nulls, "nans": profile.nans,
-               "infinities": profile.infinities, "mean": profile.mean, "std": std,
-               "min": profile.minimum, "max": profile.maximum, "err_max": round_up(ledger.err_max),
-               "err_l2": ledger.l2_upper(first_row + result.rows), "err_sum": ledger.err_sum,
-               "err_cells": ledger.cells, "rel_rms": rel_rms}
-    columns = cols
-    for name, values in updates.items():
-        i = columns.schema.get_field_index(name)
-        columns = columns.set_column(i, name, pa.array(values, columns.schema.field(name).type))
+    measured = reader.model.with_statistics(column_statistics(profile, ledger, first_row + result.rows))
     columns_name = versions.versioned_name(f"columns.v{version}.parquet", token)
-    write_small_table(temp / columns_name, columns, factor_columns=["shift", "scale", "offset"])
+    write_small_table(temp / columns_name, measured.to_tables()[layout.COLUMNS],
+                      factor_columns=list(FACTOR_COLUMNS))
     tables[layout.COLUMNS] = columns_name
     new_files.append(columns_name)
     # the manifest of the new version

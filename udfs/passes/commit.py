@@ -22,9 +22,10 @@ from ..errors import ArchiveExistsError, InvalidInputError
 from ..store import layout, versions
 from ..store.integrity import WRITE_OPTIONS
 from ..store.manifest import file_entry, write_manifest
+from ..store.table_schemas import CELLS_SCHEMA
 
 __all__ = ["prepare_target", "ArchiveWriter", "RowPartWriter", "PART_ROWS", "concat_parquet",
-           "CELLS_SCHEMA", "write_small_table"]
+           "write_small_table"]
 
 ZSTD_LEVEL = 3
 
@@ -178,10 +179,6 @@ class RowPartWriter:
                 self._thread.shutdown(wait=True)
                 self._thread = None
             self._close_file()
-
-
-CELLS_SCHEMA = pa.schema([(layout.ROW_ID, pa.int64()), (layout.COLUMN_ID, pa.int32()),
-                          ("value", pa.float64()), ("reason", pa.dictionary(pa.int32(), pa.string()))])
 
 
 def concat_parquet(directory: Path, sources: list[str], target: str, schema: pa.Schema,

@@ -32,8 +32,8 @@ from ..factor import cur as _cur
 from ..factor.svd import gavish_donoho_rank
 from ..store import layout, remote, versions
 from ..store.aggregate import BlockSums
-from ..store.arithmetic import round_up, trim_mantissa
-from . import link as _link
+from ..store.arithmetic import trim_mantissa
+from ..store.model import FACTOR_COLUMNS, Coding, FittedModel, Mixing, mixing_for_columns, mixing_for_scores
 from ..factor.sketch import GramSketch, RowSketch
 from .commit import ArchiveWriter, RowPartWriter, prepare_target
 from .executors import make_executor
@@ -46,7 +46,7 @@ from .profile import (SUB_BLOCK_ROWS, ColumnProfile, Fingerprint, Transform, new
                       profile_rows)
 from .select import AnchorRows, AnchorScan, anchor_partial, merge_anchor_partials, sketch_of
 from .refit import KAPPA, OutlierScreen
-from .encode import Coding, EncodeResult, encode_pass
+from .encode import EncodeResult, column_statistics, encode_pass
 from . import targets
 
 __all__ = ["compress"]
@@ -90,14 +90,28 @@ def _sketch_task(blocks, part, screen, width: int):
     return gram, counts
 
 
-def _anchor_task(blocks, part, screen, sketch, method, rank, count, seed, replace, draw):
+@dataclass(frozen=True)
+class _AnchorRequest:
+    """How anchor rows are drawn: ``method`` and ``rank`` of the row choice, ``count`` rows,
+    the ``seed``, draws with ``replace``-ment, and ``draw`` (keys the random numbers of a
+    second choice, after a refit, apart from the first)."""
+
+    method: str
+    rank: int
+    count: int
+    seed: int
+    replace: bool
+    draw: int
+
+
+def _anchor_task(blocks, part, screen, sketch, request: _AnchorRequest):
     return anchor_partial(((f, b, m) for f, _, b, m in blocks),
-                          AnchorScan(copy.copy(screen), sketch, method, rank, count, seed,
-                                     replace=replace, draw=draw))
+                          AnchorScan(copy.copy(screen), sketch, request.method, request.rank, request.count,
+                                     request.seed, replace=request.replace, draw=request.draw))
 
 
-def _encode_task(blocks, part, temp, part_rows, names, passthrough, mixing, anchors, transform,
-                 score_right, scale, coding, distributed, profile_columns, writer=None):
+def _encode_task(blocks, part, temp, part_rows, model: FittedModel, distributed, profile_columns,
+                 writer=None):
     """Verify one partition: row files (its own names when distributed), exact cells in a
     file of its own, the ledger and the per row-group sums (and with ``profile_columns``,
     the column statistics).
@@ -117,10 +131,9 @@ def _encode_task(blocks, part, temp, part_rows, names, passthrough, mixing, anch
         name_of = lambda k: f".part-{part.index:05d}-{k:04d}.parquet"  # noqa: E731
         writer = (RowPartWriter(None, part_rows, name_of, open_file=upload) if on_store
                   else RowPartWriter(Path(temp), part_rows, name_of))
-    sums = BlockSums(len(names), mixing.weights.shape[0], mixing.fill)
+    sums = BlockSums(model.width, model.weights.shape[0], model.fill)
     try:
-        result = encode_pass(blocks, names, passthrough, mixing, anchors, transform, score_right,
-                             writer, scale, coding, block_sums=sums,
+        result = encode_pass(blocks, model, writer, block_sums=sums,
                              cells_file=(lambda: upload(cells_name)) if on_store else Path(temp) / cells_name,
                              profile_columns=profile_columns)
         if distributed:
@@ -182,10 +195,10 @@ class _Passes:
             return sketch_of(gram.gram(np.zeros(gram.width), np.ones(gram.width)))
         return sketch_of(gram)
 
-    def anchors(self, stage, numeric, rows, screen, sketch, method, rank, count, seed, replace, draw):
-        parts = self.ex.run(stage, _anchor_task, numeric, (), rows,
-                            (screen, sketch, method, rank, count, seed, replace, draw))
-        return merge_anchor_partials(parts, len(numeric), method, count, replace=replace)
+    def anchors(self, stage, numeric, rows, screen, sketch, request: _AnchorRequest):
+        parts = self.ex.run(stage, _anchor_task, numeric, (), rows, (screen, sketch, request))
+        return merge_anchor_partials(parts, len(numeric), request.method, request.count,
+                                     replace=request.replace)
 
 
 def compress(source: Any, path: str | Path, *, rank: int | None = None, seed: int = 0,
@@ -343,6 +356,22 @@ def _sizes(opts: CompressOptions, rows: int, width: int, spectrum) -> tuple[int,
     return rank, c, r, why
 
 
+@dataclass(frozen=True)
+class _Inputs:
+    """What the profile pass gives every attempt: the numeric and exactly kept columns, the
+    row count, the column statistics (of the sketch's sample when ``read.sampled``), the
+    fingerprint, the transform, the sketch and the rows it read."""
+
+    numeric: list[str]
+    passthrough: list[str]
+    rows: int
+    profile: ColumnProfile
+    fingerprint: Fingerprint
+    transform: Transform
+    sketch: Any
+    read: _SketchRows
+
+
 @dataclass
 class _Build:
     """Everything one attempt needs beyond the source: sizes, coding and a reason."""
@@ -398,10 +427,10 @@ def _compress(src, new_writer, opts: CompressPlan) -> Path | str:
     del moments
     goal = _Goal.from_options(opts, numeric, profile.std)
     goal.serving(src.schema, numeric, profile)
-    build = _first_build(opts, goal, rows, width, sketch, profile, transform, sample, numeric, passthrough)
+    inputs = _Inputs(numeric, passthrough, rows, profile, fingerprint, transform, sketch, read)
+    build = _first_build(opts, goal, inputs, sample)
     for attempt in range(_MAX_ATTEMPTS):
-        written = _write(src, new_writer, opts, numeric, passthrough, rows, profile, fingerprint,
-                         transform, sketch, build, passes, read)
+        written = _write(src, new_writer, opts, inputs, build, passes)
         verdict = goal.verdict(written, transform, sketch)
         if verdict is None or attempt == _MAX_ATTEMPTS - 1 or build.n_columns >= width:
             if verdict is not None and goal.target_bytes is None:
@@ -566,7 +595,9 @@ class _Goal:
                       build.coding_plan, build.reason + f"; retried with {c} columns")
 
 
-def _first_build(opts, goal, rows, width, sketch, profile, transform, sample, numeric, passthrough) -> _Build:
+def _first_build(opts, goal, inputs: _Inputs, sample) -> _Build:
+    rows, width, sketch, profile = inputs.rows, len(inputs.numeric), inputs.sketch, inputs.profile
+    transform, numeric, passthrough = inputs.transform, inputs.numeric, inputs.passthrough
     opts.check_rows(rows, width)
     method = opts.method or "cur"
     if goal.target_bytes is not None:
@@ -643,11 +674,12 @@ class _Written:
         return path
 
 
-def _write(src, new_writer, opts, numeric, passthrough, rows, profile, fingerprint, transform,
-           sketch, build: _Build, passes: _Passes, read: _SketchRows) -> _Written:
+def _write(src, new_writer, opts, inputs: _Inputs, build: _Build, passes: _Passes) -> _Written:
     """One attempt: fit from the sketch, then the encode pass writes it to a temporary
-    directory. ``profile`` is the profile pass's (of a sample when ``read.sampled``: then
-    the encode pass gathers the statistics of every row, which the archive records)."""
+    directory. ``inputs.profile`` is the profile pass's (of a sample when ``read.sampled``:
+    then the encode pass gathers the statistics of every row, which the archive records)."""
+    numeric, passthrough, rows, profile = inputs.numeric, inputs.passthrough, inputs.rows, inputs.profile
+    transform, sketch, read = inputs.transform, inputs.sketch, inputs.read
     width = len(numeric)
     rng = np.random.default_rng(opts.seed)
     plan = build.coding_plan
@@ -655,44 +687,45 @@ def _write(src, new_writer, opts, numeric, passthrough, rows, profile, fingerpri
     if build.method == "svd":
         rank = build.n_columns
         score_right = sketch.spectrum.right[:, :rank]
-        mixing = _link.mixing_for_scores(sketch.spectrum.right, rank, transform)
+        mixing = mixing_for_scores(sketch.spectrum.right, rank, transform)
         if opts.refits and rank:
             screen = OutlierScreen(transform, mixing, sketch.r, None, rows, score_right)
             cleaned = passes.sketch("refit", numeric, rows, screen)
             refit = {"kappa": KAPPA, "cells_screened": screen.replaced,
                      "rows_left_out": screen.rows_left_out}
             score_right = cleaned.spectrum.right[:, :rank]
-            mixing = _link.mixing_for_scores(cleaned.spectrum.right, rank, transform)
+            mixing = mixing_for_scores(cleaned.spectrum.right, rank, transform)
         anchors = _no_anchors(width)
         basis_names = [layout.SCORE_PATTERN.format(k) for k in range(rank)]
     elif build.n_columns == 0:  # no low-rank part: offsets (the column means) and the residual
-        mixing = _link.Mixing(np.zeros((0, width)), transform.shift.copy(), np.zeros(0), np.zeros(0, np.int64))
+        mixing = Mixing(np.zeros((0, width)), transform.shift.copy(), np.zeros(0), np.zeros(0, np.int64))
         anchors = _no_anchors(width)
         score_right, basis_names = None, []
     else:
-        mixing, anchors, m_transformed = _fit_cur(
-            opts, build, sketch, transform, transform, passes, "select", numeric, rows, rng, 0)
+        mixing, anchors, m_transformed = _fit_cur(passes, opts, build, inputs, sketch, transform, rng, False)
         if opts.refits:
             screen = OutlierScreen(transform, mixing, sketch.r, m_transformed, rows)
             cleaned = passes.sketch("refit", numeric, rows, screen)
             refit = {"kappa": KAPPA, "cells_screened": screen.replaced,
                      "rows_left_out": screen.rows_left_out}
-            mixing, anchors, _ = _fit_cur(
-                opts, build, cleaned, screen, transform, passes, "refit-select", numeric, rows, rng, 1)
+            mixing, anchors, _ = _fit_cur(passes, opts, build, inputs, cleaned, screen, rng, True)
         score_right = None
         basis_names = [numeric[k] for k in mixing.basis_columns]
-    coding = _coding(plan, mixing, build)
-    if coding is not None and np.isfinite(coding.tolerance).any():
+    coding = _coding(plan, mixing, build) or Coding.plain(width, mixing.weights.shape[0])
+    if np.isfinite(coding.tolerance).any():
         mixing = _trim_factors(mixing, coding.tolerance, profile)
+    model = FittedModel(
+        numeric, [str(src.schema.field(n).type) for n in numeric], passthrough, transform.kind,
+        transform.shift, transform.scale, mixing, basis_names, coding,
+        ledger_scale(profile),  # units of the row ledger (of the sample's spread, if sampled)
+        anchors.positions, anchors.values, anchors.nulls, score_right=score_right)
     writer = new_writer()
     sums = BlockSums(width, mixing.weights.shape[0], mixing.fill)
-    scale = ledger_scale(profile)  # units of the row ledger (of the sample's spread, if sampled)
     try:
         distributed = passes.ex.distributed
         parts = passes.ex.run(
             "encode", _encode_task, numeric, passthrough, rows,
-            (writer.worker_target, writer.part_rows, numeric, passthrough, mixing, anchors, transform,
-             score_right, scale, coding, distributed, read.sampled)
+            (writer.worker_target, writer.part_rows, model, distributed, read.sampled)
             + (() if distributed else (writer,)))
         result = EncodeResult.merge([p[0] for p in parts], width)
         if distributed:
@@ -705,18 +738,16 @@ def _write(src, new_writer, opts, numeric, passthrough, rows, profile, fingerpri
             check_unique_key(files, opts.key, src.description, filesystem=filesystem)
         if read.sampled:
             profile = _whole_table_profile(src, numeric, rows, result)
-        elif not result.fingerprint.matches(fingerprint):
+        elif not result.fingerprint.matches(inputs.fingerprint):
             raise SourceChangedError(
                 f"The source {src.description} gave different rows in the profile and encode "
-                f"passes ({fingerprint.rows} then {result.rows} rows, or the same count with "
+                f"passes ({inputs.fingerprint.rows} then {result.rows} rows, or the same count with "
                 "other values or order). Compress a stable snapshot, or add an ORDER BY."
             )
-        files = _write_small_tables(writer, src.schema, numeric, profile, scale, transform, mixing,
-                                    anchors, result, coding, cell_files)
+        model = model.with_statistics(column_statistics(profile, result.ledger, result.rows))
+        files = _write_small_tables(writer, model, result, cell_files)
         files.append(sums.write(writer))
-        manifest = _manifest(src, opts, numeric, passthrough, rows, build, sketch.spectrum,
-                             profile, transform, mixing, anchors, result, basis_names,
-                             writer.parts, coding)
+        manifest = _manifest(src, opts, inputs, build, model, profile, result, writer.parts)
         manifest["refit"] = refit
         manifest["sketch"] = read.recorded(rows)
         if read.sampled:
@@ -748,12 +779,14 @@ def _no_anchors(width: int) -> AnchorRows:
     return AnchorRows(np.zeros(0, np.int64), np.zeros((0, width)), np.zeros((0, width), bool))
 
 
-def _fit_cur(opts, build, sketch, screen, transform, passes, stage, numeric, rows, rng, draw):
+def _fit_cur(passes, opts, build, inputs: _Inputs, sketch, screen, rng, refit: bool):
     """Basis columns, anchor rows and raw-unit mixing of one CUR fit. ``screen`` is the
     transform used to read rows (the plain transform, or an OutlierScreen for a refit);
-    ``draw`` keys the row choice's random numbers (with the seed and each row's position).
+    a ``refit`` keys the row choice's random numbers (with the seed and each row's position)
+    apart from the first fit's.
 
     The ``cx`` link (C^+ Z) uses no rows: it keeps no anchor rows and spends no pass on them."""
+    numeric, rows = inputs.numeric, inputs.rows
     replace = opts.sample_with_replacement
     rank = max(1, build.rank)
     choice = _cur.choose_columns(opts.column_method, sketch.r, sketch.spectrum, rank, build.n_columns,
@@ -761,10 +794,11 @@ def _fit_cur(opts, build, sketch, screen, transform, passes, stage, numeric, row
     if opts.link == "cx":
         anchors = _no_anchors(len(numeric))
     else:
-        anchors = passes.anchors(stage, numeric, rows, screen, sketch, opts.row_method, rank, build.n_rows,
-                                 opts.seed, replace, draw)
+        request = _AnchorRequest(opts.row_method, rank, build.n_rows, opts.seed, replace, int(refit))
+        anchors = passes.anchors("refit-select" if refit else "select", numeric, rows, screen, sketch,
+                                 request)
     columns, m_transformed = _cur.build_mixing(opts.link, choice, sketch.r, screen.apply(anchors.values))
-    return _link.mixing_for_columns(columns, m_transformed, transform), anchors, m_transformed
+    return mixing_for_columns(columns, m_transformed, inputs.transform), anchors, m_transformed
 
 
 def _coding(plan, mixing, build) -> Coding | None:
@@ -805,7 +839,7 @@ def _coding(plan, mixing, build) -> Coding | None:
                   float32_scores=build.method == "svd" and not np.isfinite(plan.tolerance).any())
 
 
-def _trim_factors(mixing: _link.Mixing, tolerance: np.ndarray, profile: ColumnProfile) -> _link.Mixing:
+def _trim_factors(mixing: Mixing, tolerance: np.ndarray, profile: ColumnProfile) -> Mixing:
     """Trim the mantissas of offsets and weights so that their rounding moves no rebuilt value
     by more than 5% of its column's tolerance: |dw| <= |w| 2^-bits, so a value moves at most
     2^-bits (|offset_j| + sum_k |w_kj| max|x_k|). The encode pass measures with the trimmed
@@ -826,7 +860,7 @@ def _trim_factors(mixing: _link.Mixing, tolerance: np.ndarray, profile: ColumnPr
     if mixing.basis_columns is not None and c:
         weights[:, mixing.basis_columns] = np.eye(c)
         offset[mixing.basis_columns] = 0.0
-    return _link.Mixing(weights, offset, mixing.fill, mixing.basis_columns)
+    return Mixing(weights, offset, mixing.fill, mixing.basis_columns)
 
 
 def ledger_scale(profile: ColumnProfile) -> np.ndarray:
@@ -835,50 +869,12 @@ def ledger_scale(profile: ColumnProfile) -> np.ndarray:
     return np.where((std > 0) & np.isfinite(std), std, 1.0)
 
 
-def _column_table(schema, numeric, profile, scale, transform, mixing, result, coding) -> pa.Table:
-    width = len(numeric)
-    is_basis = np.zeros(width, bool)
-    if mixing.basis_columns is not None:
-        is_basis[mixing.basis_columns] = True
-    coding = coding or Coding.plain(width, mixing.weights.shape[0])
-    residual_step = np.where(is_basis, np.nan, coding.residual_step)
-    std = profile.std
-    ledger = result.ledger
-    rms = np.divide(ledger.err_l2, np.sqrt(np.maximum(ledger.cells, 1)))
-    rel_rms = np.divide(rms, std, out=np.full(width, np.nan), where=std > 0)
-    return pa.table({
-        "name": pa.array(numeric, pa.string()),
-        "position": pa.array(np.arange(width, dtype=np.int32)),
-        "type": pa.array([str(schema.field(n).type) for n in numeric], pa.string()),
-        "role": pa.array(np.where(is_basis, "basis", "derived").tolist(), pa.string()),
-        "shift": transform.shift, "scale": transform.scale,
-        "ledger_scale": scale,
-        "offset": mixing.offset,
-        "weights": pa.array(list(np.ascontiguousarray(mixing.weights.T)), pa.list_(pa.float64())),
-        "valid": profile.valid, "nulls": profile.nulls, "nans": profile.nans,
-        "infinities": profile.infinities,
-        "mean": profile.mean, "std": std, "min": profile.minimum, "max": profile.maximum,
-        "err_max": round_up(ledger.err_max), "err_l2": ledger.l2_upper(result.rows),
-        "err_sum": ledger.err_sum, "err_cells": ledger.cells,
-        "rel_rms": rel_rms,
-        "tolerance": pa.array(coding.tolerance, mask=~np.isfinite(coding.tolerance)),
-        "residual_step": pa.array(residual_step, mask=~np.isfinite(residual_step)),
-    })
-
-
-def _write_small_tables(writer, schema, numeric, profile, scale, transform, mixing, anchors, result,
-                        coding, cell_files=()) -> list[str]:
-    writer.write_table(layout.COLUMNS,
-                       _column_table(schema, numeric, profile, scale, transform, mixing, result, coding),
-                       factor_columns=["shift", "scale", "offset"])
-    anchor_cols = {layout.ROW_ID: pa.array(anchors.positions, pa.int64())}
-    # no anchor rows (the default cx link): the row ids alone. An empty column per numeric
-    # column cost 9.3 kB of footer at 64 columns, for nothing (readers read the values only
-    # when there are anchor rows)
-    for j, name in enumerate(numeric if anchors.positions.size else []):
-        anchor_cols[name] = pa.array(anchors.values[:, j], pa.float64(), mask=anchors.nulls[:, j])
-    writer.write_table(layout.ANCHORS, pa.table(anchor_cols))
-    # the partitions' exact cells, streamed into one file in row order
+def _write_small_tables(writer, model: FittedModel, result: EncodeResult, cell_files=()) -> list[str]:
+    """The columns and anchors tables (``FittedModel.to_tables``) and the exact cells of the
+    partitions, streamed into one file in row order."""
+    tables = model.to_tables()
+    writer.write_table(layout.COLUMNS, tables[layout.COLUMNS], factor_columns=list(FACTOR_COLUMNS))
+    writer.write_table(layout.ANCHORS, tables[layout.ANCHORS])
     writer.concat_cells(list(cell_files), [result.cells.table()] if result.cells.rows else [])
     return [layout.COLUMNS, layout.ANCHORS, layout.CELLS]
 
@@ -926,23 +922,10 @@ def _error_summary(numeric, profile, transform, result, spectrum, rank, sampled=
     }
 
 
-def _basis_entries(basis_names, mixing, coding) -> list[dict[str, Any]]:
-    """Manifest entries of the basis: source column or score name, fill, and where the stored
-    values are integer codes, the column holding them and their step."""
-    entries = []
-    for t, (name, fill) in enumerate(zip(basis_names, mixing.fill)):
-        entry = {"name": name, "fill": float(fill)}
-        step = coding.basis_step[t] if coding is not None and t < coding.basis_step.size else np.nan
-        if np.isfinite(step):
-            entry["step"] = float(step)
-            entry["stored_as"] = (layout.BASIS_PATTERN.format(t) if mixing.basis_columns is not None
-                                  else name)
-        entries.append(entry)
-    return entries
-
-
-def _manifest(src, opts, numeric, passthrough, rows, build, spectrum, profile, transform,
-              mixing, anchors, result: EncodeResult, basis_names, parts, coding) -> dict:
+def _manifest(src, opts, inputs: _Inputs, build: _Build, model: FittedModel, profile: ColumnProfile,
+              result: EncodeResult, parts) -> dict:
+    """The manifest of one attempt (``profile``: the statistics of every row)."""
+    numeric, passthrough, rows, spectrum = inputs.numeric, inputs.passthrough, inputs.rows, inputs.sketch.spectrum
     roles = {n: "numeric" for n in numeric} | {n: "exact" for n in passthrough}
     return {
         "format": layout.FORMAT_NAME,
@@ -957,14 +940,14 @@ def _manifest(src, opts, numeric, passthrough, rows, build, spectrum, profile, t
         "exact_columns": passthrough,
         "key": opts.key,
         "method": {"kind": build.method, "rank": build.rank, "rank_reason": build.reason,
-                   "n_columns": len(basis_names), "n_rows": int(anchors.positions.size),
+                   "n_columns": len(model.basis_names), "n_rows": int(model.anchor_positions.size),
                    "seed": opts.seed, "options": opts.recorded()},
-        "transform": transform.kind,
-        "basis": _basis_entries(basis_names, mixing, coding),
-        "anchors": [int(p) for p in anchors.positions],
+        "transform": model.transform_kind,
+        "basis": model.basis_entries(),
+        "anchors": [int(p) for p in model.anchor_positions],
         "row_parts": parts,
         "spectrum": [float(s) for s in spectrum.values],
-        "errors": _error_summary(numeric, profile, transform, result, spectrum, build.rank,
+        "errors": _error_summary(numeric, profile, inputs.transform, result, spectrum, build.rank,
                                  sampled=result.profile is not None),
         "files": [],
     }

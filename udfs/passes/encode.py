@@ -11,7 +11,7 @@ those units, and xhat is computed by ``store.arithmetic`` in any evaluation orde
 docstring for the slack). Cells of exactly stored basis columns, anchor rows and NULL, NaN,
 +-inf or overflowing cells are stored exactly (error 0).
 
-With a tolerance t_j (``Coding``), every approximated cell also satisfies
+With a tolerance t_j (``store.model.Coding``), every approximated cell also satisfies
 |x_ij - xhat_ij| <= t_j: the residual may be coded as integers with step 2 t_j (the rebuild
 adds code * step), basis values may be stored quantized with such a step, and any cell that
 would still exceed t_j after the slack is stored exactly as a correction.
@@ -30,12 +30,12 @@ import pyarrow.parquet as pq
 
 from ..errors import InvalidInputError, SourceChangedError
 from ..store import arithmetic, layout
-from .commit import CELLS_SCHEMA, ArchiveWriter
-from .link import Mixing
+from ..store.model import FittedModel, Mixing
+from ..store.table_schemas import CELLS_SCHEMA, check_row_schema
+from .commit import ArchiveWriter
 from .profile import ColumnProfile, Fingerprint, Transform, profile_block
-from .select import AnchorRows
 
-__all__ = ["ColumnLedger", "ExactCells", "encode_pass"]
+__all__ = ["ColumnLedger", "ExactCells", "encode_pass", "column_statistics"]
 
 Stream = Iterator[tuple[int, pa.RecordBatch, np.ndarray, "np.ndarray | None"]]
 
@@ -85,6 +85,19 @@ class ColumnLedger:
         """The ledger of two disjoint row sets (associative: max, hypot, sums)."""
         return ColumnLedger(np.maximum(self.err_max, other.err_max), np.hypot(self.err_l2, other.err_l2),
                             self.err_sum + other.err_sum, self.cells + other.cells)
+
+
+def column_statistics(profile: ColumnProfile, ledger: ColumnLedger, rows: int) -> dict[str, np.ndarray]:
+    """The measured fields of the columns table (``store.model.STATISTICS``) from the column
+    statistics of every row and the column ledger of a table of ``rows`` rows."""
+    std = profile.std
+    rms = np.divide(ledger.err_l2, np.sqrt(np.maximum(ledger.cells, 1)))
+    rel_rms = np.divide(rms, std, out=np.full(std.size, np.nan), where=std > 0)
+    return {"valid": profile.valid, "nulls": profile.nulls, "nans": profile.nans,
+            "infinities": profile.infinities, "mean": profile.mean, "std": std,
+            "min": profile.minimum, "max": profile.maximum, "err_max": arithmetic.round_up(ledger.err_max),
+            "err_l2": ledger.l2_upper(rows), "err_sum": ledger.err_sum, "err_cells": ledger.cells,
+            "rel_rms": rel_rms}
 
 
 # Exact cells buffered in memory before they are written out (with ``spill_to``)
@@ -190,28 +203,6 @@ def _norms(values: np.ndarray, largest: np.ndarray, axis: int) -> np.ndarray:
 
 def _same_row(a: np.ndarray, b: np.ndarray) -> bool:
     return bool(np.all((a == b) | (np.isnan(a) & np.isnan(b))))
-
-
-@dataclass
-class Coding:
-    """How values are coded beyond the factors (arrays over the n numeric columns, or over the
-    c basis entries for ``basis_step``).
-
-    tolerance: guaranteed max abs error per column (inf: none); approximated cells whose
-        error plus slack would exceed it are stored exactly as corrections.
-    residual_step: step of the quantized residual per column (NaN: no residual stored).
-    basis_step: step of stored basis values or scores (NaN: stored exactly / as float64).
-    float32_scores: SVD scores stored as float32 (when no step is set).
-    """
-
-    tolerance: np.ndarray
-    residual_step: np.ndarray
-    basis_step: np.ndarray
-    float32_scores: bool = False
-
-    @classmethod
-    def plain(cls, width: int, basis: int) -> "Coding":
-        return cls(np.full(width, np.inf), np.full(width, np.nan), np.full(basis, np.nan))
 
 
 @dataclass
@@ -331,12 +322,12 @@ class _Kernel:
         self.code_index[self.with_residual] = np.arange(self.with_residual.size)
 
     def run(self, first: int, x: np.ndarray, mask: np.ndarray | None, filled: np.ndarray,
-            anchors: np.ndarray, buffers: _Buffers, codes_out: np.ndarray | None,
-            row_max_out: np.ndarray, row_l2_out: np.ndarray) -> _Piece:
+            anchors: np.ndarray, buffers: _Buffers, out: tuple) -> _Piece:
         """Verify rows first .. first + s - 1: x (s, n) source values (NaN where NULL), mask
         (s, n) or None, filled (s, c) basis values as stored and filled, anchors: positions
-        of anchor rows within the sub-block. Writes the residual codes (s, q) and the row
-        figures (s,) into the given outputs and returns the rest as a ``_Piece``."""
+        of anchor rows within the sub-block. Writes into ``out`` = (residual codes (s, q) or
+        None, row max (s,), row norm (s,)) and returns the rest as a ``_Piece``."""
+        codes_out, row_max_out, row_l2_out = out
         s, n = x.shape
         mixing, wr, exact = self.mixing, self.with_residual, self.exact_columns
         xhat, residual, abs_e, slack_out = buffers.take(s)
@@ -468,23 +459,12 @@ class _Kernel:
         return np.concatenate(rows).astype(np.intp), np.concatenate(cols).astype(np.intp)
 
 
-def encode_pass(
-    stream: Stream,
-    names: list[str],
-    passthrough: list[str],
-    mixing: Mixing,
-    anchors: AnchorRows,
-    transform: Transform,
-    score_right: np.ndarray | None,
-    writer: ArchiveWriter,
-    ledger_scale: np.ndarray,
-    coding: Coding | None = None,
-    block_sums=None,
-    cells_file: Path | None = None,
-    sub_rows: int | None = None,
-    profile_columns: bool = False,
-) -> EncodeResult:
-    """Run the encode pass and write the row files (see the module docstring).
+def encode_pass(stream: Stream, model: FittedModel, writer: ArchiveWriter, *, block_sums=None,
+                cells_file: Path | None = None, sub_rows: int | None = None,
+                profile_columns: bool = False) -> EncodeResult:
+    """Run the encode pass with ``model`` (its numeric and exact columns, mixing, anchor rows,
+    transform and scores' right factor, coding and ledger scale) and write the row files (see
+    the module docstring).
 
     Each batch of the stream is written as one table (so its row groups are cut at
     ``layout.ROW_GROUP_ROWS`` from its first row) and gives one ``block_sums`` record per row
@@ -492,10 +472,12 @@ def encode_pass(
     ``sub_block_rows(n)``; any value gives the same results up to the order of floating-point
     summation in the ledger and the sums). With ``profile_columns``, the result also holds
     every column's statistics (``profile.ColumnProfile``) of the rows read."""
+    names, passthrough, mixing = model.names, model.exact_columns, model.mixing
+    transform = Transform(model.transform_kind, model.shift, model.scale)
+    score_right, coding, ledger_scale = model.scores_right(), model.coding, model.ledger_scale
     width = len(names)
     profile = ColumnProfile.empty(width) if profile_columns else None
     basis = mixing.basis_columns
-    coding = coding or Coding.plain(width, mixing.weights.shape[0])
     ledger = ColumnLedger.empty(width)
     cells = ExactCells(spill_to=cells_file)
     fingerprint = Fingerprint()
@@ -515,11 +497,12 @@ def encode_pass(
         raise InvalidInputError(f"sub_rows must be a positive number of rows; got {sub_rows}.")
     buffers = _Buffers(width)
     score_rows = sub_block_rows(width)
-    anchor_lookup = {int(p): i for i, p in enumerate(anchors.positions)}
+    anchor_lookup = {int(p): i for i, p in enumerate(model.anchor_positions)}
     # When every column has a tolerance, the row ledger can only tighten bounds below it, so
     # it is kept coarser (4 mantissa bits: at most 12.5% loose, about half a byte per figure).
     ledger_bits = 4 if np.isfinite(tolerance).all() and width else 8
     rows = corrections_count = 0
+    reserved = model.row_file_reserved()
     for first, batch, block, mask in stream:
         b = block.shape[0]
         local_anchors = np.array(sorted(p - first for p in anchor_lookup if first <= p < first + b),
@@ -527,8 +510,8 @@ def encode_pass(
         for local in local_anchors:
             row = anchor_lookup[first + int(local)]
             same_nulls = mask[local] if mask is not None else np.zeros(width, bool)
-            if not (_same_row(block[local], anchors.values[row])
-                    and np.array_equal(same_nulls, anchors.nulls[row])):
+            if not (_same_row(block[local], model.anchor_values[row])
+                    and np.array_equal(same_nulls, model.anchor_nulls[row])):
                 raise SourceChangedError(
                     f"Row {first + local} of the source differs between two passes of one "
                     "compress run. The source must give the same rows in the same order each "
@@ -555,8 +538,8 @@ def encode_pass(
                 piece = kernel.run(first + lo, block[lo:hi], None if mask is None else mask[lo:hi],
                                    filled[lo:hi],
                                    local_anchors[(local_anchors >= lo) & (local_anchors < hi)] - lo,
-                                   buffers, None if codes is None else codes[lo:hi],
-                                   row_max[lo:hi], row_l2[lo:hi])
+                                   buffers, (None if codes is None else codes[lo:hi],
+                                             row_max[lo:hi], row_l2[lo:hi]))
                 ledger.add_stats(piece.block_max, piece.block_l2, piece.block_sum, piece.cells)
                 if piece.fingerprint is not None:
                     fingerprint = fingerprint.merge(piece.fingerprint)
@@ -587,6 +570,10 @@ def encode_pass(
             columns[layout.CODE_PATTERN.format(j)] = pa.array(arithmetic.encode_codes(codes[:, t]))
         columns[layout.ROW_ERR_MAX] = pa.array(arithmetic.round_up_compact(row_max, ledger_bits))
         columns[layout.ROW_ERR_L2] = pa.array(arithmetic.round_up_compact(row_l2, ledger_bits))
-        writer.write_rows(pa.table(columns), first)
+        table = pa.table(columns)
+        if reserved is not None:  # the format's columns, checked once per pass (table_schemas)
+            check_row_schema(table.schema, reserved, f"rows from {first} on", writing=True)
+            reserved = None
+        writer.write_rows(table, first)
         rows += b
     return EncodeResult(ledger, cells.finish(), fingerprint, rows, corrections_count, profile=profile)

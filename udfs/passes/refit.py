@@ -19,7 +19,7 @@ from __future__ import annotations
 import numpy as np
 
 from ..store import arithmetic
-from .link import Mixing
+from ..store.model import Mixing
 from .profile import Transform
 
 __all__ = ["KAPPA", "OutlierScreen"]

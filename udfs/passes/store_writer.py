@@ -37,7 +37,8 @@ from ..errors import ArchiveExistsError
 from ..store import layout
 from ..store.manifest import entry_of, file_entry, write_manifest
 from ..store.remote import RemoteTarget, Staging
-from .commit import CELLS_SCHEMA, PART_ROWS, concat_parquet, write_small_table
+from ..store.table_schemas import CELLS_SCHEMA
+from .commit import PART_ROWS, concat_parquet, write_small_table
 
 __all__ = ["StoreArchiveWriter"]
 

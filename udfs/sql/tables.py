@@ -35,22 +35,18 @@ import pyarrow.parquet as pq
 
 from ..errors import InvalidInputError
 from ..store import aggregate as agg
-from ..store import arithmetic, layout
+from ..store import layout
 from ..store.aggregate import basis_sql, rows_source_sql
 from ..store.integrity import read_parquet_sql
 from ..store.reader import ArchiveReader
-from ..store.sql_text import quote_identifier, sql_literal
+from ..store.sql_rebuild import derived_value_sql, row_bound_sql, served_sql, stored_bound_sql
+from ..store.sql_text import quote_identifier
 
 __all__ = ["scan_sql", "table_sql", "column_errors_sql", "row_errors_sql", "ResultCache",
            "sweep_spools"]
 
-U = arithmetic.UNIT_ROUNDOFF
 BOUND = "_rf_bound"
 BOUND_MODES = ("row", "cell", "none")
-
-
-def _list(values) -> str:
-    return "[" + ", ".join(f"{float(v):.17e}" for v in values) + f"]::DOUBLE[{len(values)}]"
 
 
 def scan_sql(reader: ArchiveReader, columns: Any = None, bounds: str = "row",
@@ -75,10 +71,11 @@ def scan_sql(reader: ArchiveReader, columns: Any = None, bounds: str = "row",
     names = reader.resolve_columns(columns)
     if len(set(names)) != len(names):
         raise InvalidInputError(f"columns lists a column twice: {names}. Name each column once.")
-    c = len(reader.basis_names)
+    model = reader.model  # the values and bounds below are generated from it (store/sql_rebuild.py)
+    c = len(model.basis_names)
     exact_cols = [f["name"] for f in reader.manifest["schema"] if f["role"] == "exact"]
-    col_idx = np.array([reader.column_index[n] for n in names], np.int64)
-    is_basis = reader.is_basis[col_idx] if col_idx.size else np.zeros(0, bool)
+    col_idx = np.array([model.column_index[n] for n in names], np.int64)
+    is_basis = model.is_basis[col_idx] if col_idx.size else np.zeros(0, bool)
     derived = [s for s in range(len(names)) if not is_basis[s]]
     inner = [f"r.{layout.ROW_ID}"] + [f"r.{quote_identifier(n)}" for n in exact_cols]
     if derived and c:
@@ -89,10 +86,10 @@ def scan_sql(reader: ArchiveReader, columns: Any = None, bounds: str = "row",
     for s in range(len(names)):
         if is_basis[s]:
             inner.append(f"r.{quote_identifier(names[s])} AS __b{s}")
-        elif np.isfinite(reader.residual_step[col_idx[s]]):
+        elif np.isfinite(model.residual_step[col_idx[s]]):
             inner.append(f"{layout.code_sql('r.' + quote_identifier(layout.CODE_PATTERN.format(int(col_idx[s]))))} AS __q{s}")
     joins = ""
-    use_anchors = bool(reader.anchor_positions.size) and bool(derived)
+    use_anchors = bool(model.anchor_positions.size) and bool(derived)
     if use_anchors:
         anchor = read_parquet_sql([reader.path / layout.table_file(reader.manifest, layout.ANCHORS)])
         picked = ", ".join(f"{quote_identifier(names[s])} AS __av{s}" for s in derived)
@@ -117,7 +114,6 @@ def scan_sql(reader: ArchiveReader, columns: Any = None, bounds: str = "row",
     middle: list[str] = []  # stored value __v<s> and bound __e<s> of each derived column
     widened: list[str] = []
     bound_exprs = []
-    gamma = 2.0 * (c + 3) * U / (1.0 - (c + 3) * U)
     per_cell = bounds == "cell"
     for s, name in enumerate(names):
         j = int(col_idx[s])
@@ -126,28 +122,11 @@ def scan_sql(reader: ArchiveReader, columns: Any = None, bounds: str = "row",
             outer.append(f"{'(' + served + ' * 1.0)' if sealed else served} AS {quote_identifier(name)}")
             bound_exprs.append("0.0::DOUBLE")
             continue
-        offset = float(reader.offset[j])
-        step = reader.residual_step[j]
-        lin = sql_literal(offset)
-        mag = sql_literal(abs(offset))
-        if c:
-            lin += f" + array_inner_product(__f, {_list(reader.weights[:, j])})"
-            mag += f" + array_inner_product(__fa, {_list(np.abs(reader.weights[:, j]))})"
-        if np.isfinite(step):
-            lin = f"({lin}) + CAST(__q{s} AS DOUBLE) * {sql_literal(float(step))}"
-            mag += f" + abs(CAST(__q{s} AS DOUBLE) * {sql_literal(float(step))})"
-        colmax = float(reader.err_max_col[j])
-        scale = float(reader.ledger_scale[j])
-        tol = float(reader.tolerance[j])
-        # reader: min(round_up(rowmax * scale), colmax) + slack, capped at the tolerance; the
-        # factor (1 + 16u) more than covers round_up and this expression's own rounding
-        raw = (f"(least(__rowmax * {sql_literal(scale)}, {sql_literal(colmax)}) + "
-               f"{sql_literal(gamma)} * ({mag})) * {sql_literal(1.0 + 16 * U)}")
-        if np.isfinite(tol):
-            raw = f"least({raw}, {sql_literal(tol)})"
+        lin, mag = derived_value_sql(model, j, s)
+        raw = stored_bound_sql(model, j, mag)
         middle += [f"{lin} AS __v{s}", f"{raw} AS __e{s}"]
-        outer_val, outer_bound = _served(reader, j, f"__v{s}", f"__e{s}")
-        served_extra = reader.kind[j] == "i"  # the served bound may exceed the stored one
+        outer_val, outer_bound = served_sql(model, j, f"__v{s}", f"__e{s}")
+        served_extra = model.kind[j] == "i"  # the served bound may exceed the stored one
         over_v, over_b = [], []
         if use_anchors:
             over_v.append(f"WHEN __anchor THEN CAST(__av{s} AS DOUBLE)")
@@ -170,7 +149,7 @@ def scan_sql(reader: ArchiveReader, columns: Any = None, bounds: str = "row",
     agg.check_result_names(named, "This scan", "Use bounds := 'row' (one _rf_bound per row), scan "
                            "those columns separately, or rename the source column and compress again.")
     if bounds == "row":
-        row = _row_bound(reader, col_idx[derived], derived, use_anchors, gamma)
+        row = row_bound_sql(model, col_idx[derived], derived, use_anchors)
         if widened:  # integer and float32 cells: their served bounds, beside the stored ones
             row = f"greatest({row}, {', '.join(f'CAST({w} AS DOUBLE)' for w in widened)})"
         outer.append(f"{row} AS {BOUND}")
@@ -185,81 +164,6 @@ def scan_sql(reader: ArchiveReader, columns: Any = None, bounds: str = "row",
     if middle:
         stored = f"(SELECT *, {', '.join(middle)} FROM {stored})"
     return f"SELECT {', '.join(outer)} FROM {stored}"
-
-
-def _served(reader: ArchiveReader, j: int, v: str, b: str) -> tuple[str, str]:
-    """SQL of the served value and its bound for numeric column j from the stored value ``v``
-    and bound ``b`` (column names): the same steps as ``arithmetic.serve`` -- clamped into the
-    column's observed range, rounded half to even in integer columns (bound: the farthest
-    integer the true value can be; in the fallback, the factor 1 + 8u covers this
-    expression's own rounding). SQL serves every numeric column as DOUBLE, so float32
-    columns are not narrowed here."""
-    lower, upper = float(reader.lower[j]), float(reader.upper[j])
-    clamped = v
-    if np.isfinite(upper):
-        clamped = f"least({clamped}, {sql_literal(upper)})"
-    if np.isfinite(lower):
-        clamped = f"greatest({clamped}, {sql_literal(lower)})"
-    kind = reader.kind[j]
-    if kind == "i":
-        r = f"round_even({clamped}, 0)"
-        low = f"nextafter({v} - {b}, {sql_literal(-np.inf)})"
-        high = f"nextafter({v} + {b}, {sql_literal(np.inf)})"
-        if np.isfinite(lower):
-            low = f"greatest({low}, {sql_literal(lower)})"
-        if np.isfinite(upper):
-            high = f"least({high}, {sql_literal(upper)})"
-        low, high = f"ceil({low})", f"floor({high})"
-        bound = (f"(CASE WHEN {low} <= {high} THEN greatest({high} - {r}, {r} - {low}, 0.0) "
-                 f"ELSE ({b} + abs({r} - {v})) * {sql_literal(1.0 + 8 * U)} END)")
-        return f"({r})", bound
-    # float columns (float32 too: SQL serves DOUBLE) are clamped only, their bound unchanged
-    return f"({clamped})", f"({b})"
-
-
-def _row_bound(reader, cols: np.ndarray, slots: list[int], use_anchors: bool, gamma: float) -> str:
-    """One bound for every requested cell of a row, cheaper than the cell bounds' maximum:
-    max_j min(scale_j r, colmax_j) (r: the row figure) is a non-decreasing piecewise linear
-    function of r, evaluated over the columns not dominated by another (larger scale and
-    larger colmax); the slack uses, per basis entry, the largest |weight| of the requested
-    columns, which can only raise it; the cap is the largest tolerance."""
-    if cols.size == 0:
-        return "0.0::DOUBLE"
-    scale = reader.ledger_scale[cols]
-    colmax = reader.err_max_col[cols]
-    order = np.lexsort((-colmax, -scale))  # by scale descending, then colmax descending
-    front, best = [], -np.inf
-    for k in order:
-        if colmax[k] > best:
-            front.append(k)
-            best = colmax[k]
-    # along the front scale falls and colmax rises: breakpoints r_k = colmax_k / scale_k rise
-    a = scale[front]
-    b = colmax[front]
-    r = "__rowmax"
-    whens = []
-    for i in range(len(front)):
-        lower = f"{sql_literal(float(b[i - 1]))}" if i else None
-        term = f"{r} * {sql_literal(float(a[i]))}"
-        expr = f"greatest({lower}, {term})" if lower else term
-        whens.append(f"WHEN {r} * {sql_literal(float(a[i]))} < {sql_literal(float(b[i]))} THEN {expr}")
-    ledger = f"CASE {' '.join(whens)} ELSE {sql_literal(float(b[-1]))} END"
-    c = len(reader.basis_names)
-    mag = sql_literal(float(np.max(np.abs(reader.offset[cols]))))
-    if c:
-        mag += f" + array_inner_product(__fa, {_list(np.max(np.abs(reader.weights[:, cols]), axis=1))})"
-    steps = reader.residual_step[cols]
-    coded = [f"abs(CAST(__q{s} AS DOUBLE)) * {sql_literal(float(steps[t]))}"
-             for t, s in enumerate(slots) if np.isfinite(steps[t])]
-    if coded:
-        mag += f" + greatest({', '.join(coded)})" if len(coded) > 1 else f" + {coded[0]}"
-    bound = f"(({ledger}) + {sql_literal(gamma)} * ({mag})) * {sql_literal(1.0 + 16 * U)}"
-    tol = reader.tolerance[cols]
-    if np.all(np.isfinite(tol)):
-        bound = f"least({bound}, {sql_literal(float(tol.max()))})"
-    if use_anchors:
-        bound = f"CASE WHEN __anchor THEN 0.0 ELSE {bound} END"
-    return f"CAST({bound} AS DOUBLE)"
 
 
 def column_errors_sql(reader: ArchiveReader) -> str:

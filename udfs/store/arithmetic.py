@@ -24,7 +24,7 @@ from __future__ import annotations
 
 import numpy as np
 
-__all__ = ["UNIT_ROUNDOFF", "fill_missing", "approximate", "add_residual", "slack", "slack_limit",
+__all__ = ["UNIT_ROUNDOFF", "fill_missing", "approximate", "add_residual", "slack", "slack_factor", "slack_limit",
            "round_up", "round_up_compact", "quantize", "trim_mantissa", "encode_codes", "decode_codes",
            "serve"]
 
@@ -68,6 +68,13 @@ def _gamma(terms: int) -> float:
     return nu / (1.0 - nu)
 
 
+def slack_factor(basis: int) -> float:
+    """2 gamma_{c+3} for ``basis`` = c entries: the slack is this factor times the magnitude
+    |offset_j| + sum_k |w_kj| |f(x_ik)| + |residual_ij| (``slack``; the SQL rebuild,
+    ``sql_rebuild``, multiplies by the same number)."""
+    return 2.0 * _gamma(basis + 3)
+
+
 def add_residual(values: np.ndarray, codes: np.ndarray | None, step: np.ndarray | None) -> np.ndarray:
     """Add a quantized residual: values (b, n) + codes (b, n) * step (n,); NaN steps add nothing."""
     if codes is None or step is None:
@@ -95,7 +102,7 @@ def slack(filled_basis: np.ndarray, weights: np.ndarray, offset: np.ndarray,
         if residual_term is not None:
             where = slice(None) if residual_columns is None else residual_columns
             magnitude[:, where] += np.abs(residual_term)
-        magnitude *= 2.0 * _gamma(weights.shape[0] + 3)
+        magnitude *= slack_factor(weights.shape[0])
     return magnitude
 
 

@@ -55,6 +55,7 @@ import pyarrow.parquet as pq
 from ..errors import CorruptArchiveError
 from . import layout
 from .sql_text import sql_literal
+from .table_schemas import check_row_schema
 from .manifest_schema import DIGEST_FIELD, check_plain_name, files_used, sealed_by_groups
 
 __all__ = ["PAGE_CHECKSUMS", "WRITE_OPTIONS", "footer_sha256", "verified_metadata", "check_listed_files",
@@ -230,21 +231,21 @@ def check_tables(reader) -> None:
     lengths = pa.compute.list_value_length(cols.column("weights")).to_numpy(zero_copy_only=False)
     if np.any(lengths != len(m["basis"])):
         raise damaged(where, f"holds weights for other than the manifest's {len(m['basis'])} basis entries")
-    anchors = np.sort(reader.anchor_positions)
+    anchors = np.sort(reader.model.anchor_positions)
     if not np.array_equal(anchors, np.sort(np.asarray(m["anchors"], dtype=np.int64))):
         raise damaged(path / layout.table_file(m, layout.ANCHORS), "holds other anchor rows than the manifest")
     rows = reader.rows_count
     if reader.cell_rows.size and (reader.cell_rows.min() < 0 or reader.cell_rows.max() >= rows
                                   or reader.cell_cols.min() < 0 or reader.cell_cols.max() >= width):
         raise damaged(path / layout.table_file(m, layout.CELLS), "addresses a cell outside the archive's shape")
-    needed = {layout.ROW_ID: None, layout.ROW_ERR_MAX: None}
-    needed.update({n: declared[n] for n in m.get("exact_columns", [])})
-    needed.update({s: None for s in reader.basis_stored})
-    needed.update({layout.CODE_PATTERN.format(j): None for j in np.flatnonzero(np.isfinite(reader.residual_step))})
+    reserved = reader.model.row_file_reserved()  # the format's own columns (table_schemas)
+    needed = {n: declared[n] for n in m.get("exact_columns", [])}
+    needed.update({n: declared[n] for n, t in reserved.items() if t is None})  # source-typed basis
     for first, count, name, starts in reader.parts:
         if int(starts[-1]) != count:
             raise damaged(path / name, f"holds {int(starts[-1])} rows where the manifest records {count}")
         schema = reader.row_file_schema(name)
+        check_row_schema(schema, reserved, path / name)
         for column, type_name in needed.items():
             if column not in schema.names:
                 raise damaged(path / name, f"lacks the column {column!r} the manifest implies")

@@ -27,7 +27,8 @@ from ..errors import CorruptArchiveError
 from . import layout
 
 __all__ = ["MANIFEST_SCHEMA", "DIGEST_FIELD", "MAX_ROWS", "MAX_COLUMNS", "validate",
-           "check_plain_name", "older_format_rules", "sealed_by_groups", "files_used"]
+           "check_plain_name", "older_format_rules", "older_row_file_rules", "sealed_by_groups",
+           "files_used"]
 
 DIGEST_FIELD = "manifest_sha256"
 # Row positions must be exact in float64 and in JSON readers of every language (2^53 - 1,
@@ -245,7 +246,7 @@ def files_used(manifest: dict[str, Any]) -> list[str]:
 
 
 def older_format_rules(manifest: dict[str, Any], path: Any) -> None:
-    """The one place that knows older format versions.
+    """The one place that knows older format versions (with :func:`older_row_file_rules`).
 
     Format 1.0 archives written before manifests carried their own digest
     (``manifest_sha256``) and the Parquet footer digests of their row files are refused:
@@ -260,6 +261,20 @@ def older_format_rules(manifest: dict[str, Any], path: Any) -> None:
             f"{path} has no {DIGEST_FIELD}: it was written by a rankfold before manifests "
             "carried their own digest, or the entry was removed. It cannot be checked for edits; "
             "compress the source again."
+        )
+
+
+def older_row_file_rules(field_types: dict[str, Any], path: Any) -> None:
+    """The row-file side of :func:`older_format_rules` (``field_types``: a row file's column
+    names and Arrow types). Residual codes stored as signed integers come from development
+    builds before format 1.0 was settled (codes are zigzag unsigned since): refuse them with
+    what to do."""
+    signed = [name for name, kind in field_types.items()
+              if name.startswith(layout.CODE_PATTERN.format("")) and not str(kind).startswith("uint")]
+    if signed:
+        raise CorruptArchiveError(
+            f"{path} stores residual codes as signed integers ({signed[0]}), as development "
+            "builds before format 1.0 was settled did; compress the source again."
         )
 
 

@@ -23,6 +23,9 @@ from . import arithmetic, layout
 from .integrity import (RowFileSeal, check_tables, damaged, open_row_file, read_small_table,
                         verified_metadata)
 from .manifest import DIGEST_FIELD, check_files, read_manifest
+from .manifest_schema import older_row_file_rules
+from .model import FittedModel
+from .table_schemas import CELLS_SCHEMA, check_schema
 
 __all__ = ["ArchiveReader", "Rebuilt"]
 
@@ -73,6 +76,24 @@ class ArchiveReader:
             raise CorruptArchiveError(f"{self.path} could not be read ({exc}); the archive is damaged.") from None
         self.seal = RowFileSeal(self.path, self.manifest, self._metadata)
 
+    # the fitted model's arrays under the names store/aggregate.py reads them by (new code:
+    # ``reader.model``; shapes and meanings in ``model.FittedModel``)
+    offset = property(lambda self: self.model.offset)
+    weights = property(lambda self: self.model.weights)
+    fill = property(lambda self: self.model.fill)
+    err_max_col = property(lambda self: self.model.err_max)
+    ledger_scale = property(lambda self: self.model.ledger_scale)
+    basis_names = property(lambda self: self.model.basis_names)
+    basis_stored = property(lambda self: self.model.basis_stored)
+    basis_step = property(lambda self: self.model.basis_step)
+    is_basis = property(lambda self: self.model.is_basis)
+    residual_step = property(lambda self: self.model.residual_step)
+    lower = property(lambda self: self.model.lower)
+    upper = property(lambda self: self.model.upper)
+    anchor_positions = property(lambda self: self.model.anchor_positions)
+    anchor_values = property(lambda self: self.model.anchor_values)
+    anchor_nulls = property(lambda self: self.model.anchor_nulls)
+
     @property
     def version(self) -> str:
         """This archive version's identity: the SHA-256 of its manifest (an append or an
@@ -115,51 +136,10 @@ class ArchiveReader:
         self.numeric_columns: list[str] = list(m["numeric_columns"])
         self.column_index = {n: j for j, n in enumerate(self.numeric_columns)}
         self.rows_count = int(m["shape"][0])
-        cols = read_small_table(self.path, m, layout.table_file(m, layout.COLUMNS))
-        self.columns_table = cols
-        self.offset = cols.column("offset").to_numpy()
-        self.weights = np.array(cols.column("weights").to_pylist(), dtype=np.float64).T.reshape(
-            len(m["basis"]), len(self.numeric_columns))
-        self.err_max_col = cols.column("err_max").to_numpy()
-        self.ledger_scale = cols.column("ledger_scale").to_numpy()
-        self.basis_names = [b["name"] for b in m["basis"]]
-        self.fill = np.array([b["fill"] for b in m["basis"]], dtype=np.float64)
-        # where each basis entry is stored, and the step of its integer codes (NaN: values)
-        self.basis_stored = [b.get("stored_as", b["name"]) for b in m["basis"]]
-        self.basis_step = np.array([b.get("step", np.nan) for b in m["basis"]], dtype=np.float64)
-        exact_basis = [b["name"] for b in m["basis"] if "step" not in b]
-        self.is_basis = np.isin(self.numeric_columns, exact_basis)
-        width = len(self.numeric_columns)
-        self.tolerance = (cols.column("tolerance").fill_null(np.inf).to_numpy()
-                          if "tolerance" in cols.column_names else np.full(width, np.inf))
-        self.residual_step = (cols.column("residual_step").fill_null(np.nan).to_numpy()
-                              if "residual_step" in cols.column_names else np.full(width, np.nan))
-        types = {f["name"]: f["type"] for f in m["schema"]}
-        self.is_integer = np.array([types[n].startswith(("int", "uint")) for n in self.numeric_columns])
-        # how a served value is typed: 'i' integer, 'f' float32, 'e' float16, 'd' float64
-        self.kind = np.array(["i" if i else {"float": "f", "halffloat": "e"}.get(types[n], "d")
-                              for n, i in zip(self.numeric_columns, self.is_integer)], dtype="<U1")
-        # observed range of each column's finite values (the profile of every row): rebuilt
-        # values are clamped into it (arithmetic.serve)
-        self.lower = (cols.column("min").to_numpy(zero_copy_only=False).astype(np.float64)
-                      if "min" in cols.column_names else np.full(width, -np.inf))
-        self.upper = (cols.column("max").to_numpy(zero_copy_only=False).astype(np.float64)
-                      if "max" in cols.column_names else np.full(width, np.inf))
-        # columns that may hold NaN or infinite cells (unknown counts: assume they may)
-        self.special = np.zeros(width, bool)
-        for name in ("nans", "infinities"):
-            self.special |= (cols.column(name).to_numpy(zero_copy_only=False) > 0
-                             if name in cols.column_names else True)
+        self.columns_table = read_small_table(self.path, m, layout.table_file(m, layout.COLUMNS))
         anchors = read_small_table(self.path, m, layout.table_file(m, layout.ANCHORS))
-        self.anchor_positions = anchors.column(layout.ROW_ID).to_numpy()
-        self.anchor_lookup = {int(p): i for i, p in enumerate(self.anchor_positions)}
-        self.anchor_values = np.column_stack(
-            [anchors.column(n).to_numpy(zero_copy_only=False) for n in self.numeric_columns]
-        ) if self.anchor_positions.size else np.zeros((0, len(self.numeric_columns)))
-        self.anchor_nulls = np.column_stack(
-            [anchors.column(n).is_null().to_numpy(zero_copy_only=False) for n in self.numeric_columns]
-        ) if self.anchor_positions.size else np.zeros((0, len(self.numeric_columns)), bool)
         cells = read_small_table(self.path, m, layout.table_file(m, layout.CELLS))
+        check_schema(cells.schema, CELLS_SCHEMA, self.path / layout.table_file(m, layout.CELLS))
         self.cell_rows = cells.column(layout.ROW_ID).to_numpy()
         self.cell_cols = cells.column(layout.COLUMN_ID).to_numpy()
         self.cell_nulls = cells.column("value").is_null().to_numpy(zero_copy_only=False)
@@ -174,15 +154,13 @@ class ArchiveReader:
             self._row_schemas[part["name"]] = meta.schema.to_arrow_schema()
             starts = np.cumsum([0] + [meta.row_group(g).num_rows for g in range(meta.num_row_groups)])
             self.parts.append((part["first_row"], part["rows"], part["name"], starts))
+        self.model = FittedModel.from_tables(
+            m, self.columns_table, anchors, self.row_file_schema(self.parts[0][2]) if self.parts else None,
+            directory=self.path)
+        self.anchor_lookup = {int(p): i for i, p in enumerate(self.model.anchor_positions)}
         if self.parts:
             schema = self.row_file_schema(self.parts[0][2])
-            signed = [f.name for f in schema if f.name.startswith(layout.CODE_PATTERN.format(""))
-                      and not pa.types.is_unsigned_integer(f.type)]
-            if signed:
-                raise CorruptArchiveError(
-                    f"{self.path} stores residual codes as signed integers ({signed[0]}), as "
-                    "development builds before format 1.0 was settled did; compress the source again."
-                )
+            older_row_file_rules({f.name: f.type for f in schema}, self.path)
         self.key = m.get("key")
 
     @contextmanager
@@ -333,28 +311,13 @@ class ArchiveReader:
                 raise damaged(self.path / name, f"could not be read ({exc})") from None
 
     def basis_block(self, rows: pa.Table) -> np.ndarray:
-        """Filled basis values (b, c) as float64 from a row-file table."""
-        if not self.basis_names:
-            return np.zeros((rows.num_rows, 0))
-        block = np.column_stack([
-            rows.column(n).cast(pa.float64()).fill_null(np.nan).to_numpy() for n in self.basis_stored
-        ])
-        coded = np.isfinite(self.basis_step)
-        if coded.any():
-            block[:, coded] = block[:, coded] * self.basis_step[coded][None, :]
-        return arithmetic.fill_missing(block, self.fill)
+        """Filled basis values (b, c) as float64 from a row-file table (``FittedModel.basis_values``)."""
+        return self.model.basis_values(rows)
 
     def residual_codes(self, rows: pa.Table, col_idx: np.ndarray) -> np.ndarray | None:
-        """Quantized residual codes (b, q) for the requested columns (None if the archive has none)."""
-        steps = self.residual_step[col_idx]
-        if not np.isfinite(steps).any():
-            return None
-        codes = np.zeros((rows.num_rows, col_idx.size))
-        for t, j in enumerate(col_idx):
-            if np.isfinite(steps[t]):
-                codes[:, t] = arithmetic.decode_codes(
-                    rows.column(layout.CODE_PATTERN.format(int(j))).to_numpy(zero_copy_only=False))
-        return codes
+        """Quantized residual codes (b, q) for the requested columns (None if the archive has
+        none; ``FittedModel.residual_codes``)."""
+        return self.model.residual_codes(rows, col_idx)
 
     def rebuild(self, rows: Any = None, columns: Any = None, *, positions: np.ndarray | None = None,
                 serve: bool = True) -> Rebuilt:
@@ -362,46 +325,32 @@ class ArchiveReader:
         to users (clamped, rounded to the column's type, see ``arithmetic.serve``), or with
         ``serve=False`` the values as stored (the factors' arithmetic, exact cells applied)
         together with their floating-point ``slack``."""
+        model = self.model
         names = self.resolve_columns(columns)
         pos = positions if positions is not None else self.resolve_rows(rows)
-        col_idx = np.array([self.column_index[n] for n in names], dtype=np.int64)
+        col_idx = np.array([model.column_index[n] for n in names], dtype=np.int64)
         table = self.read_rows(pos, self._row_file_columns(col_idx))
-        filled = self.basis_block(table)
-        weights = self.weights[:, col_idx]
-        offset = self.offset[col_idx]
-        values = arithmetic.approximate(filled, weights, offset)
-        codes = self.residual_codes(table, col_idx)
-        residual_term = None
-        if codes is not None:
-            steps = self.residual_step[col_idx]
-            residual_term = codes * np.where(np.isfinite(steps), steps, 0.0)[None, :]
-            values = arithmetic.add_residual(values, codes, steps)
-        slack = arithmetic.slack(filled, weights, offset, residual_term)
-        row_max = table.column(layout.ROW_ERR_MAX).to_numpy()
-        by_row = arithmetic.round_up(row_max[:, None] * self.ledger_scale[col_idx][None, :])
-        bounds = np.minimum(by_row, self.err_max_col[col_idx][None, :]) + slack
-        # the encode pass stored every cell whose error plus slack exceeded the tolerance
-        bounds = np.minimum(bounds, self.tolerance[col_idx][None, :])
+        values, bounds, slack = model.rebuild_block(table, col_idx)
         b, q = values.shape
         exact = np.zeros((b, q), bool)
         nulls = np.zeros((b, q), bool)
         # basis columns: the stored values themselves
         for t, name in enumerate(names):
-            if self.is_basis[self.column_index[name]]:
+            if model.is_basis[model.column_index[name]]:
                 column = table.column(name)
                 values[:, t] = column.cast(pa.float64()).fill_null(np.nan).to_numpy()
                 nulls[:, t] = column.is_null().to_numpy(zero_copy_only=False)
                 exact[:, t] = True
         # anchor rows
         if self.anchor_lookup and b:
-            order = np.argsort(self.anchor_positions, kind="stable")
-            slot = np.searchsorted(self.anchor_positions[order], pos)
+            order = np.argsort(model.anchor_positions, kind="stable")
+            slot = np.searchsorted(model.anchor_positions[order], pos)
             slot = np.minimum(slot, order.size - 1)
-            hit = self.anchor_positions[order][slot] == pos
+            hit = model.anchor_positions[order][slot] == pos
             if hit.any():
                 a = order[slot[hit]]
-                values[hit] = self.anchor_values[np.ix_(a, col_idx)]
-                nulls[hit] = self.anchor_nulls[np.ix_(a, col_idx)]
+                values[hit] = model.anchor_values[np.ix_(a, col_idx)]
+                nulls[hit] = model.anchor_nulls[np.ix_(a, col_idx)]
                 exact[hit] = True
         # exact cells
         if self.cell_rows.size and b:
@@ -413,18 +362,19 @@ class ArchiveReader:
         # columns narrowed, each bound for the value handed out (arithmetic.serve). An integer
         # cell whose bound becomes 0 holds its true value: it counts as exact.
         approximated = ~exact & ~nulls
-        values, bounds = arithmetic.serve(values, bounds, approximated, self.lower[col_idx],
-                                          self.upper[col_idx], self.kind[col_idx], self.special[col_idx])
-        exact |= approximated & self.is_integer[col_idx][None, :] & (bounds == 0.0)
+        values, bounds = arithmetic.serve(values, bounds, approximated, model.lower[col_idx],
+                                          model.upper[col_idx], model.kind[col_idx], model.special[col_idx])
+        exact |= approximated & model.is_integer[col_idx][None, :] & (bounds == 0.0)
         return Rebuilt(pos, names, values, bounds, exact, nulls, table)
 
     def _row_file_columns(self, col_idx: np.ndarray) -> list[str]:
         """Row-file columns a rebuild of ``col_idx`` reads: the exact (key and non-numeric)
         columns, every stored basis column, the row ledger and only the requested columns'
         residual codes (a narrow request on a wide archive skips the other codes)."""
+        model = self.model
         codes = [layout.CODE_PATTERN.format(int(j)) for j in col_idx
-                 if np.isfinite(self.residual_step[j])]
-        wanted = list(self.manifest.get("exact_columns", [])) + self.basis_stored + codes
+                 if np.isfinite(model.residual_step[j])]
+        wanted = list(self.manifest.get("exact_columns", [])) + model.basis_stored + codes
         return list(dict.fromkeys(wanted + [layout.ROW_ERR_MAX]))
 
     def iter_rebuild(self, rows: Any = None, columns: Any = None, *,

@@ -1,0 +1,225 @@
+"""The fitted model (udfs/store/model.py): one encoder and one decoder of the archive's
+columns and anchors tables, and the declared table schemas (udfs/store/table_schemas.py)."""
+
+from __future__ import annotations
+
+import dataclasses
+
+import numpy as np
+import pyarrow as pa
+import pytest
+
+import rankfold
+from rankfold.udfs.store import layout
+from rankfold.udfs.store.integrity import read_small_table
+from rankfold.udfs.store.model import FittedModel, mixing_for_columns
+from rankfold.udfs.store.reader import ArchiveReader
+from rankfold.udfs.store.table_schemas import COLUMNS_SCHEMA
+
+
+def _table(seed: int = 0, rows: int = 400) -> pa.Table:
+    # invented low-rank data (seeded): 3 factors, 8 columns, a little noise
+    rng = np.random.default_rng(seed)
+    x = rng.normal(size=(rows, 3)) @ rng.normal(size=(3, 8)) + 0.01 * rng.normal(size=(rows, 8))
+    columns = {f"c{j}": x[:, j] for j in range(8)}
+    columns["id"] = np.arange(rows)
+    return pa.table(columns)
+
+
+@pytest.mark.parametrize("options", [dict(rank=2, link="optimal"), dict(max_abs_error=0.02),
+                                     dict(method="svd", rank=3)])
+def test_decoder_and_encoder_are_inverse(tmp_path, options):
+    # encode(decode(tables)) == tables, cell for cell (common practice for a codec pair)
+    path = tmp_path / "a"
+    rankfold.compress(_table(), path, key="id", seed=1, **options)
+    reader = ArchiveReader(path)
+    tables = reader.model.to_tables()
+    m = reader.manifest
+    assert tables[layout.COLUMNS].equals(read_small_table(path, m, layout.table_file(m, layout.COLUMNS)))
+    assert tables[layout.ANCHORS].equals(read_small_table(path, m, layout.table_file(m, layout.ANCHORS)))
+    assert reader.model.basis_entries() == m["basis"]
+    again = FittedModel.from_tables(m, tables[layout.COLUMNS], tables[layout.ANCHORS])
+    for name in ("weights", "offset", "fill", "ledger_scale", "err_max", "residual_step", "tolerance",
+                 "lower", "upper", "anchor_values"):
+        np.testing.assert_array_equal(getattr(again, name), getattr(reader.model, name), err_msg=name)
+    assert again.basis_stored == reader.model.basis_stored
+
+
+def test_model_arrays_rebuild_the_stored_values(tmp_path):
+    # the rebuild formula on the model's arrays, written out with numpy.matmul as the
+    # reference: xhat = offset + basis @ weights (+ code * step), for the approximated cells
+    path = tmp_path / "a"
+    rankfold.compress(_table(2), path, key="id", max_abs_error=0.05, seed=0)
+    reader = ArchiveReader(path)
+    model = reader.model
+    block = reader.rebuild(rows=slice(0, 100), serve=False)
+    basis = reader.basis_block(block.rows)
+    expected = model.offset[None, :] + np.matmul(basis, model.weights)
+    codes = reader.residual_codes(block.rows, np.arange(model.width))
+    if codes is not None:
+        expected = expected + codes * np.where(np.isfinite(model.residual_step), model.residual_step, 0.0)
+    approximated = ~block.exact & ~block.nulls
+    assert approximated.any()
+    # both sums of c + 1 terms: they agree to the slack the bound already includes
+    np.testing.assert_allclose(block.values[approximated], expected[approximated], rtol=0, atol=1e-12)
+
+
+def test_raw_unit_mixing_matches_the_transformed_fit():
+    # Z ~ Z[:, J] M in transformed units, rebuilt in raw units by offset + X[:, J] W: the
+    # same numbers up to rounding (numpy reference computation of both sides)
+    rng = np.random.default_rng(3)
+    x = rng.normal(size=(50, 6)) * np.array([1, 10, 0.1, 5, 2, 3]) + np.arange(6)
+
+    class Affine:  # shift and scale of the transform z = (x - shift) / scale
+        shift = x.mean(axis=0)
+        scale = x.std(axis=0)
+
+    z = (x - Affine.shift) / Affine.scale
+    basis = np.array([1, 4])
+    m, *_ = np.linalg.lstsq(z[:, basis], z, rcond=None)
+    mixing = mixing_for_columns(basis, m, Affine)
+    raw = mixing.offset[None, :] + x[:, basis] @ mixing.weights
+    transformed = Affine.shift + Affine.scale * (z[:, basis] @ m)
+    np.testing.assert_allclose(raw, transformed, rtol=1e-12, atol=1e-9)
+    np.testing.assert_array_equal(raw[:, basis], x[:, basis])  # basis columns: identity
+
+
+def test_a_columns_table_of_another_schema_is_refused(tmp_path):
+    path = tmp_path / "a"
+    rankfold.compress(_table(), path, rank=2, seed=0)
+    reader = ArchiveReader(path)
+    columns = reader.columns_table
+    narrowed = columns.set_column(columns.schema.get_field_index("err_max"), "err_max",
+                                  columns.column("err_max").cast(pa.float32()))
+    with pytest.raises(rankfold.CorruptArchiveError, match=r"columns.parquet does not have the declared "
+                                                           r"table schema \(types \['err_max: float'\]\)"):
+        FittedModel.from_tables(reader.manifest, narrowed, read_small_table(
+            path, reader.manifest, layout.ANCHORS))
+    dropped = columns.drop_columns(["err_sum"])
+    with pytest.raises(rankfold.CorruptArchiveError, match=r"lacks \['err_sum'\]"):
+        FittedModel.from_tables(reader.manifest, dropped, read_small_table(path, reader.manifest, layout.ANCHORS))
+
+
+def test_the_encoder_refuses_to_write_a_table_without_its_statistics(tmp_path):
+    path = tmp_path / "a"
+    rankfold.compress(_table(), path, rank=2, seed=0)
+    model = ArchiveReader(path).model
+    partial = {k: v for k, v in model.statistics.items() if k != "err_l2"}
+    with pytest.raises(rankfold.CorruptArchiveError, match=r"about to write columns.parquet .*lacks \['err_l2'\]"):
+        dataclasses.replace(model, statistics=partial).to_tables()
+    assert model.to_tables()[layout.COLUMNS].schema.equals(COLUMNS_SCHEMA)
+
+
+def _rewrite_row_file(path, change):
+    """Rewrite the first row file with ``change(table)`` and record it in a resealed
+    manifest (sizes and digests of the new file), as an editing program could."""
+    import json
+
+    import pyarrow.parquet as pq
+
+    from rankfold.udfs.store.manifest import file_entry, write_manifest
+
+    manifest = json.loads((path / "manifest.json").read_text())
+    name = manifest["row_parts"][0]["name"]
+    pq.write_table(change(pq.read_table(path / name)), path / name, write_page_checksum=True)
+    entry = file_entry(path, name, [layout.ROW_ID] + list(manifest.get("exact_columns", [])))
+    manifest["files"] = [entry if f["name"] == name else f for f in manifest["files"]]
+    write_manifest(path, manifest)
+
+
+def test_a_row_file_with_another_reserved_type_is_refused(tmp_path):
+    # the row ledger is float32 by the format (arithmetic.round_up_compact): a float64 one,
+    # though its values are the same, is not a file this format wrote
+    path = tmp_path / "a"
+    rankfold.compress(_table(), path, key="id", max_abs_error=0.05, seed=0)
+    ArchiveReader(path)  # reads before the edit
+
+    def widen(table):
+        i = table.schema.get_field_index(layout.ROW_ERR_L2)
+        return table.set_column(i, layout.ROW_ERR_L2, table.column(i).cast(pa.float64()))
+
+    _rewrite_row_file(path, widen)
+    with pytest.raises(rankfold.CorruptArchiveError,
+                       match=r"rows-00000.parquet stores '_rf_err_l2' as double, where the format declares float"):
+        ArchiveReader(path)
+
+
+def test_a_row_file_without_its_residual_codes_is_refused(tmp_path):
+    path = tmp_path / "a"
+    rankfold.compress(_table(), path, key="id", max_abs_error=0.05, seed=0)
+    codes = [n for n in ArchiveReader(path).model.row_file_reserved() if n.startswith("_rf_q_")]
+    assert codes  # a tolerance this tight codes the residuals of the derived columns
+    _rewrite_row_file(path, lambda table: table.drop_columns([codes[0]]))
+    with pytest.raises(rankfold.CorruptArchiveError, match=f"lacks the column '{codes[0]}' the manifest implies"):
+        ArchiveReader(path)
+
+
+def test_the_row_writer_check_names_a_defect():
+    from rankfold.udfs.store.table_schemas import check_row_schema
+
+    schema = pa.schema([(layout.ROW_ID, pa.int64()), (layout.ROW_ERR_MAX, pa.float64())])
+    with pytest.raises(rankfold.CorruptArchiveError, match=r"about to write a row file that stores "
+                                                           r"'_rf_err_max' as double.*defect of rankfold"):
+        check_row_schema(schema, {layout.ROW_ID: pa.int64(), layout.ROW_ERR_MAX: pa.float32()},
+                         "rows from 0 on", writing=True)
+
+
+def test_report_reads_a_quantized_basis_through_the_model(tmp_path):
+    # basis columns stored as integer codes (_rf_basis_<k>) are decoded by the model, so the
+    # report's leverage scores exist for them too; rank-k leverage scores sum to k (the
+    # squared row norms of k orthonormal columns; Mahoney and Drineas, PNAS 106(3), 2009)
+    from rankfold.report import column_selection
+
+    rng = np.random.default_rng(0)  # invented data: rank 3 plus a little noise
+    x = rng.normal(size=(2000, 3)) @ rng.normal(size=(3, 10)) + 0.001 * rng.normal(size=(2000, 10))
+    path = tmp_path / "a"
+    rankfold.compress(x, path, max_abs_error=0.01, basis_precision="tolerance", seed=0)
+    archive = rankfold.open(path)
+    assert any("stored_as" in b for b in archive.manifest["basis"])
+    selection = column_selection(archive)
+    leverage = np.array([c["leverage"] for c in selection["columns"]])
+    assert leverage.sum() == pytest.approx(min(selection["rank"], len(archive.basis_columns)), abs=1e-9)
+    assert {c["name"] for c in selection["columns"] if c["basis"]} == set(archive.basis_columns)
+
+
+@pytest.mark.parametrize("options", [dict(rank=2, link="optimal"), dict(max_abs_error=0.02),
+                                     dict(method="svd", max_abs_error=0.05)])
+def test_readers_decode_the_model_the_encode_pass_measured_with(tmp_path, monkeypatch, options):
+    # the bounds hold only if readers rebuild with the very numbers the encode pass used:
+    # the decoded model must equal the encode pass's model bit for bit (common practice for
+    # a codec pair: decode(encode(m)) == m)
+    import rankfold.udfs.passes.compress as compress_module
+
+    seen = []
+    real = compress_module.encode_pass
+
+    def spy(stream, model, *args, **kwargs):
+        seen.append(model)
+        return real(stream, model, *args, **kwargs)
+
+    monkeypatch.setattr(compress_module, "encode_pass", spy)
+    path = tmp_path / "a"
+    rankfold.compress(_table(4), path, key="id", seed=2, **options)
+    decoded, used = ArchiveReader(path).model, seen[-1]
+    for name in ("weights", "offset", "fill", "shift", "scale", "ledger_scale", "tolerance",
+                 "residual_step", "basis_step", "anchor_positions", "anchor_values"):
+        np.testing.assert_array_equal(getattr(decoded, name), getattr(used, name), err_msg=name)
+    assert (decoded.names, decoded.types, decoded.basis_names, decoded.basis_stored) == (
+        used.names, used.types, used.basis_names, used.basis_stored)
+    assert decoded.coding.float32_scores == used.coding.float32_scores
+
+
+def test_a_manifest_that_moves_a_basis_entry_is_refused(tmp_path):
+    import json
+
+    from rankfold.udfs.store.manifest import write_manifest
+
+    path = tmp_path / "a"
+    rankfold.compress(_table(2), path, max_abs_error=0.01, basis_precision="tolerance", seed=0)
+    manifest = json.loads((path / "manifest.json").read_text())
+    coded = [b for b in manifest["basis"] if "stored_as" in b]
+    assert coded  # basis values stored as integer codes in _rf_basis_<k>
+    coded[0]["stored_as"] = coded[0]["name"]  # the source column's name: not where codes live
+    write_manifest(path, manifest)
+    with pytest.raises(rankfold.CorruptArchiveError, match="stores the basis entries in the row-file columns"):
+        ArchiveReader(path)
