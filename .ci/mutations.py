@@ -39,7 +39,7 @@ MUTATIONS = {
     "SQL scan bound loose by 1000x": (
         "udfs/sql/tables.py", '        middle += [f"{lin} AS __v{s}", f"{raw} AS __e{s}"]',
         '        middle += [f"{lin} AS __v{s}", f"({raw}) * 1000.0 AS __e{s}"]',
-        ["tests/test_sql_tables.py"]),
+        ["tests/test_sql_tables.py", "tests/test_sql_matches_numpy.py"]),
     "aggregate bound loose by 1000x": (
         "udfs/store/aggregate.py", "    bound = np.where(null, 0.0, bound)\n",
         "    bound = np.where(null, 0.0, bound * 1000.0)\n",
@@ -72,12 +72,20 @@ MUTATIONS = {
         "udfs/store/reader.py", "        b, q = values.shape\n",
         '        values = values + 0.5 * self.columns_table.column("std").to_numpy()[col_idx][None, :]\n'
         "        b, q = values.shape\n",
-        ["tests/test_roundtrip.py", "tests/test_bounds_property.py"]),
+        ["tests/test_roundtrip.py", "tests/test_bounds_property.py", "tests/test_sql_matches_numpy.py"]),
     "SQL scan values off by half a standard deviation": (
         "udfs/sql/tables.py", '        middle += [f"{lin} AS __v{s}", f"{raw} AS __e{s}"]',
         "        middle += [f\"({lin}) + {0.5 * reader.columns_table.column('std')[j].as_py()!r} AS __v{s}\", "
         'f"{raw} AS __e{s}"]',
-        ["tests/test_sql_tables.py"]),
+        ["tests/test_sql_tables.py", "tests/test_sql_matches_numpy.py"]),
+    "SQL scan integer bound without the rounding": (
+        "udfs/sql/tables.py", '        return f"({r})", bound\n',
+        '        return f"({r})", f"({b})"\n',
+        ["tests/test_sql_matches_numpy.py"]),
+    "SQL scan values not clamped into the range": (
+        "udfs/sql/tables.py", '    clamped = v\n    if np.isfinite(upper):\n',
+        '    clamped = v\n    upper = lower = np.inf\n    if np.isfinite(upper):\n',
+        ["tests/test_sql_matches_numpy.py"]),
     "silent rebuild log": (
         "udfs/store/rebuild_log.py", "        text = json.dumps(entry, default=str)\n",
         "        return entry\n        text = json.dumps(entry, default=str)\n",
