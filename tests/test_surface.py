@@ -115,7 +115,7 @@ def test_per_column_max_std_error_and_the_smaller_of_two_tolerances(tmp_path):
 
 @settings(max_examples=8, deadline=None)
 @given(level=st.floats(0.002, 0.5), seed=st.integers(0, 2**16))
-def test_no_value_exceeds_max_std_error_of_its_column(level, seed, tmp_path_factory):
+def test_no_value_exceeds_max_std_error_of_its_column(level, seed, tmp_path_factory, assert_tight):
     rng = np.random.default_rng(seed)
     a = rng.standard_normal((120, 3)) @ rng.standard_normal((3, 8)) * np.geomspace(1, 1e4, 8)
     a += rng.standard_normal(a.shape) * rng.uniform(0, 0.3) * a.std(axis=0)
@@ -125,6 +125,9 @@ def test_no_value_exceeds_max_std_error_of_its_column(level, seed, tmp_path_fact
     std = np.std(a, axis=0)  # numpy.std
     assert np.all(np.abs(rebuilt - a) <= bounds)
     assert np.all(np.abs(rebuilt - a) <= level * std * (1 + 1e-12))
+    # and not loose: each bound within rounding of the errors it summarizes (conftest.bounds_are_tight)
+    table = pa.table({name: a[:, j] for j, name in enumerate(archive.numeric_columns)})
+    assert_tight(archive, table, a, rebuilt, bounds)
 
 
 # -- one vocabulary ----------------------------------------------------------------------------------

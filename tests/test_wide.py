@@ -167,7 +167,7 @@ def test_wide_path_on_dask_gives_the_local_archive(tmp_path, monkeypatch):
 @settings(max_examples=6, deadline=None)
 @given(rows=st.integers(3, 40), width=st.integers(30, 80), rank=st.integers(1, 3),
        missing=st.sampled_from([0.0, 0.05]), seed=st.integers(0, 2**16))
-def test_wide_path_bounds_hold_on_random_tables(tmp_path_factory, rows, width, rank, missing, seed):
+def test_wide_path_bounds_hold_on_random_tables(tmp_path_factory, assert_tight, rows, width, rank, missing, seed):
     """Hypothesis tries shapes, ranks and missing cells on the wide path (thresholds lowered
     so that small tables take it); every finite cell must lie within its reported bound."""
     x = _wide(seed, rows, width, rank=min(rank, rows), noise=0.1)
@@ -180,3 +180,6 @@ def test_wide_path_bounds_hold_on_random_tables(tmp_path_factory, rows, width, r
     finite = np.isfinite(x)
     assert np.all(np.abs(rebuilt[finite] - x[finite]) <= bounds[finite])
     assert np.array_equal(np.isnan(rebuilt), np.isnan(x))  # missing cells come back missing
+    # and not loose: each bound within rounding of the errors it summarizes (conftest.bounds_are_tight)
+    table = pa.table({name: x[:, j] for j, name in enumerate(archive.numeric_columns)})
+    assert_tight(archive, table, x, rebuilt, bounds)
