@@ -18,6 +18,7 @@ from __future__ import annotations
 import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
+import distributed  # in the test extra (pyproject.toml): imported, never skipped
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
@@ -146,7 +147,6 @@ def test_row_gram_of_a_zero_table():
 def test_wide_path_on_dask_gives_the_local_archive(tmp_path, monkeypatch):
     """Partitions of a wide Parquet source read by column groups on Dask workers; their row
     sketches merge to the rows a single stream keeps (keys per global row)."""
-    distributed = pytest.importorskip("distributed")
     monkeypatch.setattr(profile, "WIDE_COLUMNS", 100)
     monkeypatch.setattr(sources, "WIDE_PARQUET_COLUMNS", 100)
     monkeypatch.setattr(executors, "COLUMN_GROUP", 64)
@@ -157,10 +157,12 @@ def test_wide_path_on_dask_gives_the_local_archive(tmp_path, monkeypatch):
         pq.write_table(pa.table({f"c{j:03d}": part[:, j] for j in range(300)}), folder / f"p{k}.parquet")
     local = rankfold.compress(str(folder), tmp_path / "l.rfa", rank=3)
     with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=False,
-                                  dashboard_address=None) as cluster, distributed.Client(cluster) as client:
+                                  dashboard_address=":0") as cluster, distributed.Client(cluster) as client:
         spread = rankfold.compress(str(folder), tmp_path / "d.rfa", rank=3, executor=client)
     assert spread.basis_columns == local.basis_columns
-    np.testing.assert_allclose(spread.to_numpy(), local.to_numpy(), rtol=0, atol=1e-9)
+    # measured: equal bit for bit; the workers may merge partitions in another order, so
+    # allow the rounding of such a sum: 1e-13 of the table's reach (was 1e-9 absolute)
+    np.testing.assert_allclose(spread.to_numpy(), local.to_numpy(), rtol=0, atol=1e-13 * np.abs(x).max())
     assert np.all(np.abs(spread.to_numpy() - x) <= spread.cell_bounds())
 
 
