@@ -196,7 +196,7 @@ def test_default_cur_is_near_the_optimum(tmp_path, seed):
     derived = np.setdiff1d(np.arange(a.shape[1]), basis)
     scale = np.abs(a).max()
     assert np.allclose(product[:, derived], reference.approximation(a)[:, derived], rtol=0,
-                       atol=1e-10 * scale)
+                       atol=1e-12 * scale)  # measured 1.1e-13 absolute, 3.5e-14 of the scale (was 1e-10)
     assert np.allclose(product[:, basis], a[:, basis], rtol=0, atol=1e-12 * scale)
 
 
