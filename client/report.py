@@ -596,7 +596,7 @@ def _html(data: dict[str, Any], images: dict[str, str | None]) -> str:
         ["relative Frobenius error", f"{_g(e.get('relative_frobenius'))} (best possible at rank "
                                      f"{info['rank']}: {_g(e.get('optimal_relative_frobenius'))})"],
         ["worst column", f"{e.get('worst_column')}: relative RMS {_g(e.get('worst_column_relative_rms'))}"],
-        ["largest error", f"{_g(e.get('max_abs_error_over_std'))} column std"],
+        ["largest error", f"{_g(e.get('largest_error_over_std'))} column std"],
     ])
     spectrum_table = _table(["figure", "value"], [
         ["chosen rank k", s["rank"]], ["why this rank", s["rank_reason"]],
