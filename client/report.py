@@ -188,7 +188,7 @@ def column_selection(archive: Any) -> dict[str, Any]:
         cols = np.zeros(0, dtype=int)
         transformed = weights / scale[None, :]
         small = transformed
-    _, sing, vt = np.linalg.svd(small, full_matrices=False)
+    _, _, vt = np.linalg.svd(small, full_matrices=False)
     k = min(rank, vt.shape[0])
     leverage = np.sum(vt[:k] ** 2, axis=0)
     mean_z = (ledger["mean"] - ledger["shift"]) / scale

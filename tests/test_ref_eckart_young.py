@@ -26,7 +26,6 @@ import rankfold
 from rankfold.udfs.store.reader import ArchiveReader
 from rankfold.udfs.factor import cur as cur_module
 from rankfold.udfs.factor.cur import COLUMN_METHODS, LINKS, ROW_METHODS, cur
-from rankfold.udfs.factor.svd import truncated_svd
 
 
 @pytest.fixture(autouse=True, scope="module")
@@ -77,6 +76,13 @@ def factor_product(archive: rankfold.Archive) -> np.ndarray:
     return basis @ weights + offset
 
 
+def truncated_svd(a: np.ndarray, rank: int) -> np.ndarray:
+    """A_k, the best rank-k approximation of ``a`` in every unitarily invariant norm
+    (Eckart-Young-Mirsky), from numpy.linalg.svd."""
+    u, s, vt = np.linalg.svd(a, full_matrices=False)
+    return (u[:, :rank] * s[:rank]) @ vt[:rank]
+
+
 @pytest.fixture(scope="module")
 def table():
     a = low_rank_plus_noise(1)
@@ -85,7 +91,7 @@ def table():
 
 def test_numpy_reference_meets_eckart_young(table):
     # Eckart-Young (references.md 7.2, 10.1): ||A - A_k||_F^2 = sum_{j>k} s_j^2 and
-    # ||A - A_k||_2 = s_{k+1}, with A_k from numpy.linalg.svd; our truncated_svd is that A_k.
+    # ||A - A_k||_2 = s_{k+1}, with A_k from numpy.linalg.svd (truncated_svd below).
     a, s = table
     a_k = truncated_svd(a, RANK)
     assert np.linalg.norm(a - a_k) == pytest.approx(optimum(s, RANK), rel=1e-12)
