@@ -367,6 +367,9 @@ def test_printed_bound_covers_the_printed_value(value, bound):
     # the true value is within bound of value; the printed value is within the display step
     assert abs(float(text) - value) <= _display_step(bound) * (1 + 1e-9) + 1e-9 * abs(value)
     assert printed >= bound + abs(float(text) - value) - 1e-9 * abs(value)
+    # and tight: bound plus display step, rounded up to two significant figures, is at most one
+    # unit of the second figure above it (10%; arithmetic of rounding up, common practice)
+    assert printed <= (bound + _display_step(bound)) * 1.1 * (1 + 1e-12)
     # no more digits than the bound makes meaningful: the last digit is at most bound / 2
     decimals = len(text.split(".")[1]) if "." in text else 0
     assert 10.0 ** (-decimals) <= bound or math.isclose(10.0 ** (-decimals), bound, rel_tol=1e-9)
