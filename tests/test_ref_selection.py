@@ -147,7 +147,7 @@ def test_streaming_qr_spectrum_matches_numpy_svd():
     spectrum = qr.spectrum()
     assert np.allclose(spectrum.values, np.linalg.svd(a, compute_uv=False), rtol=0, atol=1e-13)
     assert np.allclose(spectrum.values, s, rtol=0, atol=1e-13)
-    assert spectrum.optimal_error(K) == pytest.approx(np.sqrt(np.sum(s[K:] ** 2)), rel=1e-10)
+    assert spectrum.optimal_error(K) == pytest.approx(np.sqrt(np.sum(s[K:] ** 2)), rel=1e-12)  # measured 8.9e-16
 
 
 def test_streaming_qr_merge_is_associative():

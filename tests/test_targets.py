@@ -169,7 +169,7 @@ def test_rel_error_is_met_and_recorded(tmp_path, target):
     whole, _ = _relative_error(archive, x)  # numpy.linalg.norm as the reference
     assert whole <= target
     assert archive.manifest["targets"]["rel_error"] == target
-    assert archive.manifest["achieved"]["relative_frobenius"] == pytest.approx(whole, rel=1e-6)
+    assert archive.manifest["achieved"]["relative_frobenius"] == pytest.approx(whole, rel=1e-12)  # measured 6.1e-16
 
 
 def test_rel_error_per_column(tmp_path):
