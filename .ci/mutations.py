@@ -53,17 +53,43 @@ MUTATIONS = {
         "udfs/store/aggregate.py",
         "        bound = np.where(np.isfinite(bound) & ~bad[:, None] & ~bad[None, :], np.minimum(bound, 2.0), 2.0)",
         "        bound = np.full_like(bound, 2.0)",
-        ["tests/test_aggregate.py", "tests/test_sql_tables.py"]),
+        ["tests/test_aggregate.py", "tests/test_sql_tables.py", "tests/test_covariance_stored.py"]),
+    "covariance bound loose by 10x": (
+        "udfs/store/aggregate.py",
+        "    names, cov, bound, _, _ = _covariance(reader, columns)\n    return names, cov, bound\n",
+        "    names, cov, bound, _, _ = _covariance(reader, columns)\n    return names, cov, bound * 10.0\n",
+        ["tests/test_aggregate.py", "tests/test_covariance_stored.py"]),
+    "SQL correlation bound of 2.0": (
+        "udfs/sql/functions.py", '                table = _tables.agg.pairs_table(*kind(reader, p["columns"]))\n',
+        '                names, value, bound = kind(reader, p["columns"])\n'
+        '                table = _tables.agg.pairs_table(names, value, bound * 0.0 + 2.0 if verb == "correlation" else bound)\n',
+        ["tests/test_sql_tables.py"]),
+    "cell bound of 1e300 (finite, useless)": (
+        "udfs/store/reader.py", "        bounds[exact] = 0.0\n        if not serve:",
+        "        bounds = np.where(bounds > 0, 1e300, bounds)\n        bounds[exact] = 0.0\n        if not serve:",
+        ["tests/test_bounds_property.py"]),
     "values off by half a standard deviation": (
         "udfs/store/reader.py", "        b, q = values.shape\n",
         '        values = values + 0.5 * self.columns_table.column("std").to_numpy()[col_idx][None, :]\n'
         "        b, q = values.shape\n",
-        ["tests/test_roundtrip.py", "tests/test_bounds_property.py"]),
+        ["tests/test_roundtrip.py", "tests/test_bounds_property.py", "tests/test_sql_matches_numpy.py"]),
     "SQL scan values off by half a standard deviation": (
         "udfs/sql/tables.py", '        middle += [f"{lin} AS __v{s}", f"{raw} AS __e{s}"]',
         "        middle += [f\"({lin}) + {0.5 * reader.columns_table.column('std')[j].as_py()!r} AS __v{s}\", "
         'f"{raw} AS __e{s}"]',
-        ["tests/test_sql_tables.py"]),
+        ["tests/test_sql_tables.py", "tests/test_sql_matches_numpy.py"]),
+    "SQL scan integer bound without the rounding": (
+        "udfs/store/sql_rebuild.py", '        return f"({r})", bound\n',
+        '        return f"({r})", f"({b})"\n',
+        ["tests/test_sql_matches_numpy.py"]),
+    "SQL scan values not clamped into the range": (
+        "udfs/store/sql_rebuild.py", '    clamped = v\n    if np.isfinite(upper):\n',
+        '    clamped = v\n    upper = lower = np.inf\n    if np.isfinite(upper):\n',
+        ["tests/test_sql_matches_numpy.py"]),
+    "older archives' error names not renamed": (
+        "udfs/store/manifest_schema.py", "                record[new] = record.pop(old)\n",
+        "                pass\n",
+        ["tests/test_integrity.py"]),
     "model encoder narrows the offsets to float32": (
         "udfs/store/model.py", '            "offset": self.offset,\n',
         '            "offset": self.offset.astype(np.float32).astype(np.float64),\n',

@@ -287,7 +287,7 @@ def describe_guarantee(manifest: dict[str, Any]) -> str:
 
 def error_warnings(manifest: dict[str, Any]) -> list[str]:
     """Warnings when the measured error is large compared with its column's spread."""
-    worst = (manifest.get("errors") or {}).get("max_abs_error_over_std")
+    worst = (manifest.get("errors") or {}).get("largest_error_over_std")
     if worst is None or not worst > LARGE_ERROR_STD:
         return []
     column = (manifest.get("errors") or {}).get("worst_column")

@@ -93,7 +93,7 @@ def _summary_text(info: dict[str, Any]) -> str:
         f"{_fmt(e.get('optimal_relative_frobenius'))})",
         f"  column relative RMS     mean {_fmt(e.get('mean_column_relative_rms'))}, worst "
         f"{_fmt(e.get('worst_column_relative_rms'))} ({e.get('worst_column')})",
-        f"  max abs error / std     {_fmt(e.get('max_abs_error_over_std'))}",
+        f"  largest error / std     {_fmt(e.get('largest_error_over_std'))}",
         f"guaranteed    {cli_spelling(info['guarantee'])}",
     ]
     lines += [f"warning       {cli_spelling(w)}" for w in info.get("warnings", [])]
@@ -228,7 +228,7 @@ def cmd_compress(args: argparse.Namespace) -> int:
     e = info["errors"]
     text = (f"compressed {info['shape'][0]} rows x {info['shape'][1]} numeric columns into "
             f"{info['archive']} in {elapsed:.2f} s: rank {info['rank']}, {info['archive_bytes']:,} bytes, "
-            f"largest error {_fmt(e.get('max_abs_error_over_std'))} column standard deviations\n"
+            f"largest error {_fmt(e.get('largest_error_over_std'))} column standard deviations\n"
             f"guaranteed: {cli_spelling(info['guarantee'])}\n"
             + "".join(f"warning: {cli_spelling(w)}\n" for w in info["warnings"])
             + f"details: rankfold inspect {info['archive']}")

@@ -160,8 +160,8 @@ def run_demo(out: str = "rankfold-demo", *, rows: int = 20_000, quiet: bool = Fa
         f"{report['lossless_parquet_bytes']:,} B ({report['lossless_parquet_bytes'] / report['archive_bytes']:.1f}x larger) | "
         f"raw float64 {report['raw_numeric_bytes']:,} B")
     say(f"  error            column relative RMS: mean {e['mean_column_relative_rms']:.4f}, worst "
-        f"{e['worst_column_relative_rms']:.4f} ({e['worst_column']}); max abs error "
-        f"{e['max_abs_error_over_std']:.2f} column std; relative Frobenius "
+        f"{e['worst_column_relative_rms']:.4f} ({e['worst_column']}); largest error "
+        f"{e['largest_error_over_std']:.2f} column std; relative Frobenius "
         f"{e['relative_frobenius']:.4f} (SVD optimum at this rank {e['optimal_relative_frobenius']:.4f})")
     ex = report["example"]
     shown, bound = format_with_bound(ex["rebuilt"], ex["bound"])  # the bound covers the rounding

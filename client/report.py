@@ -186,7 +186,7 @@ def column_selection(archive: Any) -> dict[str, Any]:
         cols = np.zeros(0, dtype=int)
         transformed = weights / scale[None, :]
         small = transformed
-    _, sing, vt = np.linalg.svd(small, full_matrices=False)
+    _, _, vt = np.linalg.svd(small, full_matrices=False)
     k = min(rank, vt.shape[0])
     leverage = np.sum(vt[:k] ** 2, axis=0)
     mean_z = (ledger["mean"] - ledger["shift"]) / scale
@@ -594,7 +594,7 @@ def _html(data: dict[str, Any], images: dict[str, str | None]) -> str:
         ["relative Frobenius error", f"{_g(e.get('relative_frobenius'))} (best possible at rank "
                                      f"{info['rank']}: {_g(e.get('optimal_relative_frobenius'))})"],
         ["worst column", f"{e.get('worst_column')}: relative RMS {_g(e.get('worst_column_relative_rms'))}"],
-        ["largest error", f"{_g(e.get('max_abs_error_over_std'))} column std"],
+        ["largest error", f"{_g(e.get('largest_error_over_std'))} column std"],
     ])
     spectrum_table = _table(["figure", "value"], [
         ["chosen rank k", s["rank"]], ["why this rank", s["rank_reason"]],

@@ -10,7 +10,7 @@ the same rows from the archive and checks, cell by cell, that
 * the columns kept exactly (keys, non-numeric columns) are equal,
 * the source has the archive's rows and columns,
 
-and re-measures the error per column (max abs error and relative RMS) next to the ledger's
+and re-measures the error per column (largest error and relative RMS) next to the ledger's
 figures. The result is a plain dict (JSON-ready); ``report["ok"]`` is True when nothing failed.
 """
 

@@ -1,5 +1,5 @@
 -- Describe an archive: shape, method, rank, the basis columns kept exactly, the number of
 -- anchor rows kept exactly, and the largest error measured when it was written.
 -- Placeholder: {archive} an archive of table panel.
-SELECT i.rows, i.columns, i.method, i.rank, i.basis_columns, i.anchor_rows, i.max_abs_error
+SELECT i.rows, i.columns, i.method, i.rank, i.basis_columns, i.anchor_rows, i.largest_error
 FROM (SELECT rankfold_info('{archive}') AS i);

@@ -252,7 +252,7 @@ def integer_cases(draw):
 @settings(max_examples=25, deadline=None, derandomize=True,
           suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large])
 @given(case=integer_cases())
-def test_integer_columns_rounded_within_their_bounds(tmp_path_factory, table_truth, case):
+def test_integer_columns_rounded_within_their_bounds(tmp_path_factory, table_truth, assert_tight, case):
     """Python and SQL serve the same kind of value: a whole number in the column's range,
     whose (whole-number) bound holds for it."""
     import duckdb
@@ -266,6 +266,7 @@ def test_integer_columns_rounded_within_their_bounds(tmp_path_factory, table_tru
     assert np.array_equal(values, np.rint(values)) and np.array_equal(bounds, np.rint(bounds))
     assert np.all(np.abs(truth - values) <= bounds)
     assert np.all((values >= truth.min(axis=0)) & (values <= truth.max(axis=0)))
+    assert_tight(archive, table, truth, values, bounds)  # rounding widens a bound by 1/2 at most
     con = duckdb.connect()
     try:
         rankfold.udfs.register(con)

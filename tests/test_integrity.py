@@ -27,6 +27,7 @@ import rankfold
 from rankfold.cli import main
 from rankfold.udfs.sql import register
 from rankfold.udfs.store.manifest import manifest_digest, read_manifest, write_manifest
+from rankfold.udfs.store.reader import ArchiveReader
 
 ROWS, COLS = 400, 6
 
@@ -101,7 +102,7 @@ def test_the_fixture_holds_every_kind_of_file(pristine):
     assert names == {"rows-00000.parquet", "columns.parquet", "anchors.parquet", "cells.parquet",
                      "blocks.parquet"}
     arch = rankfold.open(pristine)
-    assert arch._reader.anchor_positions.size > 0 and arch._reader.cell_rows.size > 0
+    assert arch.anchor_rows and arch.manifest["errors"]["cells_stored_exactly_outside_factors"] > 0
 
 
 # -- a flipped bit in any file ----------------------------------------------------------------
@@ -567,7 +568,7 @@ def test_an_archive_without_row_group_digests_is_checked_whole(grouped, grouped_
         entry.pop("group_sha256", None)
         entry.pop("column_sha256", None)
     write_manifest(grouped_copy, manifest)
-    assert not rankfold.open(grouped_copy)._reader.seal.by_groups
+    assert not ArchiveReader(grouped_copy).seal.by_groups
     seen = _watch_hashes(monkeypatch)
     con = _con()
     lookup = "SELECT * FROM rankfold_scan(?) WHERE id = 250"
@@ -578,6 +579,27 @@ def test_an_archive_without_row_group_digests_is_checked_whole(grouped, grouped_
     _flip(path, (start + stop) // 2 + 8, 1)
     with pytest.raises(duckdb.Error, match="CorruptArchiveError"):
         con.execute(lookup, [str(grouped_copy)]).fetchall()
+
+
+def test_an_archive_with_the_older_error_names_reads_under_the_new_ones(pristine, archive, capsys):
+    """Archives written when the achieved error was recorded as errors.max_abs_error (and
+    _over_std) and achieved.max_abs_error -- the name of the option that asks for a tolerance
+    -- keep reading: manifest_schema.older_format_rules renames them on read."""
+    expected = rankfold.open(pristine).manifest
+    manifest = read_manifest(archive)
+    manifest["errors"]["max_abs_error"] = manifest["errors"].pop("largest_error")
+    manifest["errors"]["max_abs_error_over_std"] = manifest["errors"].pop("largest_error_over_std")
+    manifest["achieved"]["max_abs_error"] = manifest["achieved"].pop("largest_error")
+    write_manifest(archive, manifest)  # sealed again, as such an archive was
+    on_disk = json.loads((archive / "manifest.json").read_text(encoding="utf-8"))
+    assert "max_abs_error" in on_disk["errors"] and "largest_error" not in on_disk["errors"]
+    opened = rankfold.open(archive)
+    assert opened.errors == expected["errors"] and opened.manifest["achieved"] == expected["achieved"]
+    assert opened.errors["largest_error"] > 0 and "max_abs_error" not in opened.errors
+    info = _con().execute("SELECT rankfold_info(?)", [str(archive)]).fetchone()[0]
+    assert info["largest_error"] == expected["errors"]["largest_error"]
+    assert main(["inspect", str(archive)]) == 0
+    assert "largest error / std" in capsys.readouterr().out
 
 
 def test_a_resealed_manifest_without_a_key_column_digest_is_refused_in_sql(grouped_copy):

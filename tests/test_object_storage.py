@@ -20,13 +20,16 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 
-pytest.importorskip("moto.server")
-s3fs = pytest.importorskip("s3fs")
+# s3fs, moto and dask.distributed are in the test extra (pyproject.toml): imported, not
+# skipped when missing, so a broken install fails instead of quietly testing less
+import distributed
+import moto.server  # noqa: F401  (the local S3-compatible server the fixtures start)
+import s3fs
 
-import rankfold  # noqa: E402
-import rankfold.udfs  # noqa: E402
-from rankfold.udfs.store import remote  # noqa: E402
-from rankfold.udfs.store.manifest_schema import sealed_by_groups  # noqa: E402
+import rankfold
+import rankfold.udfs
+from rankfold.udfs.store import remote
+from rankfold.udfs.store.manifest_schema import sealed_by_groups
 
 BUCKET = "rankfold-tests"
 KEY, SECRET = "test-key", "test-secret"  # the local server accepts any credentials
@@ -151,12 +154,11 @@ def test_source_on_the_store_with_the_local_executor(store, tmp_path):
 
 def test_dask_compress_writes_to_the_store(store):
     """Workers in processes of their own (what they send back must pickle: no open upload)."""
-    distributed = pytest.importorskip("distributed")
     x = _table(4, rows=2000, width=8)
     source = _upload_parquet(store, x, "source-dask", files=3)
     url = f"s3://{BUCKET}/dask.rfa"
     with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
-                                  dashboard_address=None) as cluster, distributed.Client(cluster) as client:
+                                  dashboard_address=":0") as cluster, distributed.Client(cluster) as client:
         archive = rankfold.compress(source, url, rank=3, executor=client, storage_options=store["options"])
     assert store["fs"].exists(f"{BUCKET}/dask.rfa/manifest.json")
     local = rankfold.compress(source, f"s3://{BUCKET}/dask-local.rfa", rank=3,
@@ -204,9 +206,8 @@ def _spy_parquet_writers(monkeypatch) -> list:
 
 
 def _dask_client():
-    distributed = pytest.importorskip("distributed")
     cluster = distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=False,
-                                       dashboard_address=None)
+                                       dashboard_address=":0")
     return cluster, distributed.Client(cluster)
 
 

@@ -243,8 +243,8 @@ def test_rare_rows_outside_the_sample_are_still_bounded(tmp_path):
 @given(rows=st.integers(40, 900), width=st.integers(1, 8), group=st.integers(5, 120),
        fraction=st.floats(0.01, 0.6), data_seed=st.integers(0, 2**31), seed=st.integers(0, 2**31),
        spikes=st.integers(0, 5), nulls=st.booleans())
-def test_bounds_hold_whatever_the_sample(tmp_path_factory, rows, width, group, fraction, data_seed,
-                                         seed, spikes, nulls):
+def test_bounds_hold_whatever_the_sample(tmp_path_factory, assert_tight, rows, width, group, fraction,
+                                         data_seed, seed, spikes, nulls):
     wanted = max(1, int(fraction * rows))
     x = _low_rank(data_seed, rows, width, rank=min(2, width), noise=1e-3)
     rng = np.random.default_rng(data_seed + 1)
@@ -255,7 +255,10 @@ def test_bounds_hold_whatever_the_sample(tmp_path_factory, rows, width, group, f
     folder = _write(tmp_path_factory.mktemp("prop") / "d", columns, files=2, group_rows=group)
     archive = rankfold.compress(str(folder), folder.parent / "p.rankfold", rank=1, sketch_rows=wanted,
                                 seed=seed)
-    _assert_bounds_hold(archive, _truth(archive, pa.table(columns)))
+    truth = _truth(archive, pa.table(columns))
+    _assert_bounds_hold(archive, truth)
+    # and tight, whatever the sample (the contract in tests/conftest.py, bounds_are_tight)
+    assert_tight(archive, pa.table(columns), truth, archive.to_numpy(), archive.cell_bounds())
     sketch = archive.manifest["sketch"]
     assert sketch["of_rows"] == rows
     chosen = choose_row_groups(parquet_row_groups(sorted(str(p) for p in folder.glob("*.parquet"))),

@@ -118,7 +118,7 @@ def test_spiky_low_rank_table_meets_the_tolerance_and_stores_spikes(tmp_path):
     names = [f"x{j}" for j in range(x.shape[1])]
     archive = rankfold.compress(x, tmp_path / "s.rankfold", max_abs_error=dict(zip(names, tol)))
     _check_within(archive, x, tol[None, :])
-    assert archive.manifest["achieved"]["max_abs_error"] <= tol.max()
+    assert archive.manifest["achieved"]["largest_error"] <= tol.max()
 
 
 def _quantized_baseline_bytes(x: np.ndarray, tol: np.ndarray) -> int:
@@ -170,7 +170,7 @@ def test_rel_error_is_met_and_recorded(tmp_path, target):
     whole, _ = _relative_error(archive, x)  # numpy.linalg.norm as the reference
     assert whole <= target
     assert archive.manifest["targets"]["rel_error"] == target
-    assert archive.manifest["achieved"]["relative_frobenius"] == pytest.approx(whole, rel=1e-6)
+    assert archive.manifest["achieved"]["relative_frobenius"] == pytest.approx(whole, rel=1e-12)  # measured 6.1e-16
 
 
 def test_rel_error_per_column(tmp_path):

@@ -8,8 +8,6 @@ Drineas, Kannan, Mahoney, "Fast Monte Carlo algorithms for matrices I: approxima
 multiplication", SIAM J. Comput. 36(1):132-157, 2006 (the 1/sqrt(s p) rescaling).
 Drineas, Mahoney, Muthukrishnan, "Relative-error CUR matrix decompositions", SIAM J. Matrix
 Anal. Appl. 30(2):844-881, 2008 (leverage scores).
-Efraimidis, Spirakis, "Weighted random sampling with a reservoir", Inf. Process. Lett. 97(5),
-2006 (one-pass weighted sampling without replacement, used for streamed rows).
 """
 
 from __future__ import annotations
@@ -21,8 +19,6 @@ __all__ = [
     "leverage_scores",
     "draw",
     "rescaling",
-    "ReservoirWithReplacement",
-    "ReservoirWithoutReplacement",
 ]
 
 
@@ -81,69 +77,3 @@ def rescaling(p: np.ndarray, indices: np.ndarray) -> np.ndarray:
     """
     s = len(indices)
     return 1.0 / np.sqrt(s * np.asarray(p, dtype=np.float64)[indices])
-
-
-class ReservoirWithReplacement:
-    """``size`` independent one-item weighted reservoirs over a stream: i.i.d. draws with
-    replacement, probability w_i / sum(w), in one pass and O(size) memory.
-
-    Each slot keeps its item; a new block of total weight w_b replaces it with probability
-    w_b / (W_before + w_b), by an item drawn from the block in proportion to its weights.
-    """
-
-    def __init__(self, size: int, rng: np.random.Generator):
-        self.size = size
-        self.rng = rng
-        self.total = 0.0
-        self.items = np.full(size, -1, dtype=np.int64)
-        self.weights = np.zeros(size)
-
-    def offer(self, first_index: int, weights: np.ndarray) -> np.ndarray:
-        """Offer items ``first_index + arange(len(weights))``; returns the slots that changed."""
-        w = np.asarray(weights, dtype=np.float64)
-        block_total = float(w.sum())
-        if block_total <= 0:
-            return np.zeros(0, dtype=np.int64)
-        self.total += block_total
-        take = self.rng.random(self.size) < block_total / self.total
-        slots = np.flatnonzero(take)
-        if slots.size:
-            local = self.rng.choice(w.size, size=slots.size, replace=True, p=w / block_total)
-            self.items[slots] = first_index + local
-            self.weights[slots] = w[local]
-        return slots
-
-    def probabilities(self) -> np.ndarray:
-        """Selection probability of each kept item: w_i / sum over the stream of w."""
-        return self.weights / self.total if self.total > 0 else np.zeros(self.size)
-
-
-class ReservoirWithoutReplacement:
-    """Weighted sampling of ``size`` distinct items in one pass (Efraimidis-Spirakis A-Res).
-
-    Item i gets the key log(u_i) / w_i with u_i uniform on (0, 1); the ``size`` largest keys
-    win. Items of zero weight only enter when fewer than ``size`` items have positive weight.
-    """
-
-    def __init__(self, size: int, rng: np.random.Generator):
-        self.size = size
-        self.rng = rng
-        self.items = np.zeros(0, dtype=np.int64)
-        self.keys = np.zeros(0)
-
-    def offer(self, first_index: int, weights: np.ndarray) -> None:
-        w = np.asarray(weights, dtype=np.float64)
-        u = self.rng.random(w.size)
-        with np.errstate(divide="ignore"):
-            keys = np.where(w > 0, np.log(u) / np.where(w > 0, w, 1.0), -np.inf)
-        # zero-weight items: rank them after every positive one, randomly among themselves
-        keys = np.where(np.isneginf(keys), -1e300 - u, keys)
-        items = np.concatenate([self.items, first_index + np.arange(w.size, dtype=np.int64)])
-        keys = np.concatenate([self.keys, keys])
-        if items.size > self.size:
-            keep = np.argpartition(-keys, self.size - 1)[: self.size]
-            items, keys = items[keep], keys[keep]
-        self.items, self.keys = items, keys
-
-    def result(self) -> np.ndarray:
-        return np.sort(self.items)

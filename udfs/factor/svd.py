@@ -1,4 +1,5 @@
-"""Truncated SVD: the quality reference (Eckart-Young) and the ``method='svd'`` archive.
+"""Rank choice for truncated SVDs (Gavish-Donoho). The truncated SVD itself is
+numpy.linalg.svd: Eckart-Young makes it the quality reference and the ``method='svd'`` archive.
 
 References
 ----------
@@ -12,13 +13,7 @@ from __future__ import annotations
 
 import numpy as np
 
-__all__ = ["truncated_svd", "gavish_donoho_rank"]
-
-
-def truncated_svd(a: np.ndarray, rank: int) -> np.ndarray:
-    """The best rank-k approximation A_k of ``a`` (shape (m, n)) in every unitarily invariant norm."""
-    u, s, vt = np.linalg.svd(np.asarray(a, dtype=np.float64), full_matrices=False)
-    return (u[:, :rank] * s[:rank]) @ vt[:rank]
+__all__ = ["gavish_donoho_rank"]
 
 
 def gavish_donoho_rank(singular_values: np.ndarray, rows: int, columns: int) -> int:

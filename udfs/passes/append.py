@@ -225,7 +225,7 @@ def _errors(manifest, ledger, transform, result, width, rows, z_norm2_new) -> di
     z_norm2 = float(np.sum(np.square(manifest["spectrum"]))) + previous.get("z_norm2", 0.0) + z_norm2_new
     z_err = float(np.sqrt(np.sum((ledger.err_l2 / transform.scale) ** 2)))
     errors["relative_frobenius"] = z_err / np.sqrt(z_norm2) if z_norm2 > 0 else 0.0
-    errors["max_abs_error"] = float(ledger.err_max.max()) if width else 0.0
+    errors["largest_error"] = float(ledger.err_max.max()) if width else 0.0
     errors["cells_approximated"] = int(ledger.cells.sum())
     errors["cells_exact"] = int(rows * width - ledger.cells.sum())
     errors["cells_stored_exactly_outside_factors"] = int(

@@ -662,7 +662,7 @@ class _Written:
         self.manifest["achieved"] = {
             "bytes": int(self.bytes),  # the data files; manifest.json comes on top
             "relative_frobenius": self.manifest["errors"]["relative_frobenius"],
-            "max_abs_error": self.manifest["errors"]["max_abs_error"],
+            "largest_error": self.manifest["errors"]["largest_error"],
             "corrections": self.result.corrections,
             "attempts": attempts,
         }
@@ -912,8 +912,8 @@ def _error_summary(numeric, profile, transform, result, spectrum, rank, sampled=
         "mean_column_relative_rms": _finite_or_none(np.nanmean(rel_rms)) if np.isfinite(rel_rms).any() else None,
         "worst_column": numeric[worst] if worst is not None else None,
         "worst_column_relative_rms": _finite_or_none(rel_rms[worst]) if worst is not None else None,
-        "max_abs_error_over_std": _finite_or_none(np.nanmax(max_over_std)) if np.isfinite(max_over_std).any() else None,
-        "max_abs_error": _finite_or_none(ledger.err_max.max()),
+        "largest_error_over_std": _finite_or_none(np.nanmax(max_over_std)) if np.isfinite(max_over_std).any() else None,
+        "largest_error": _finite_or_none(ledger.err_max.max()),
         "cells_approximated": int(ledger.cells.sum()),
         "cells_exact": int(result.rows * len(numeric) - ledger.cells.sum()),
         "cells_stored_exactly_outside_factors": result.cells.count,

@@ -457,8 +457,10 @@ def _dask_client(executor: Any):
     try:
         return distributed.default_client(), False
     except ValueError:  # no client yet: a local cluster for this call, one worker per core
+        # dashboard on a free port: None means the configured 8787, and a second cluster on
+        # the machine (another process's) would make this one warn or fail to start
         cluster = distributed.LocalCluster(n_workers=os.cpu_count() or 1, threads_per_worker=1,
-                                           dashboard_address=None)
+                                           dashboard_address=":0")
         return distributed.Client(cluster), True
 
 

@@ -4,7 +4,7 @@
 
     rankfold_compress(source, path, rank := NULL, seed := 0, overwrite := false, options := NULL)
         -> STRUCT(path, archive_id, rows, columns, method, rank, basis_columns, anchor_rows,
-                  relative_frobenius, max_abs_error, numeric_columns)
+                  relative_frobenius, largest_error, numeric_columns)
     rankfold_info(path)                      -> the same STRUCT, for an existing archive
     rankfold_cell(path, row, col)            -> DOUBLE  rebuilt value, NULL where the source was NULL
     rankfold_cell_bound(path, row, col)      -> DOUBLE  guaranteed bound on |true - rebuilt|

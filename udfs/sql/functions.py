@@ -58,7 +58,7 @@ _INFO_FIELDS = {
     "basis_columns": "VARCHAR[]",
     "anchor_rows": "BIGINT",
     "relative_frobenius": "DOUBLE",
-    "max_abs_error": "DOUBLE",
+    "largest_error": "DOUBLE",
     "numeric_columns": "VARCHAR[]",
 }
 _INFO_TYPE = "STRUCT(" + ", ".join(f'"{k}" {v}' for k, v in _INFO_FIELDS.items()) + ")"
@@ -409,7 +409,7 @@ def _info(reader: ArchiveReader) -> dict[str, Any]:
         "basis_columns": [n for n in reader.model.basis_names if not n.startswith(layout.RESERVED_PREFIX)],
         "anchor_rows": int(len(reader.model.anchor_positions)),
         "relative_frobenius": _finite(errors.get("relative_frobenius")),
-        "max_abs_error": _finite(errors.get("max_abs_error")),
+        "largest_error": _finite(errors.get("largest_error")),
         "numeric_columns": list(reader.numeric_columns),
     }
 

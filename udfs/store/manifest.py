@@ -120,11 +120,11 @@ def read_manifest(directory: Path) -> dict[str, Any]:
             f"{writer.get('name', '?')} {writer.get('version', '?')}); this rankfold reads "
             f"format {layout.FORMAT_VERSION.split('.')[0]}.x. Open it with a matching rankfold version."
         )
-    older_format_rules(manifest, path)
-    try:
+    try:  # of the manifest as written: older_format_rules may rename entries
         digest = manifest_digest(manifest)
     except (ValueError, RecursionError):  # NaN or infinity (JSON extensions), or absurd nesting
         digest = None
+    older_format_rules(manifest, path)
     if digest is None or manifest.get(DIGEST_FIELD) != digest:
         raise CorruptArchiveError(
             f"{path} does not match its own {DIGEST_FIELD}: the manifest was edited or damaged "

@@ -26,7 +26,7 @@ from typing import Any
 from ..errors import CorruptArchiveError
 from . import layout
 
-__all__ = ["MANIFEST_SCHEMA", "DIGEST_FIELD", "MAX_ROWS", "MAX_COLUMNS", "validate",
+__all__ = ["MANIFEST_SCHEMA", "DIGEST_FIELD", "RENAMED_ERROR_KEYS", "MAX_ROWS", "MAX_COLUMNS", "validate",
            "check_plain_name", "older_format_rules", "older_row_file_rules", "sealed_by_groups",
            "files_used"]
 
@@ -255,6 +255,12 @@ def older_format_rules(manifest: dict[str, Any], path: Any) -> None:
     Row files listed without row-group digests (``group_sha256`` and ``column_sha256``,
     written since the SQL scan checks by row group) are read as before: SQL checks their
     whole-file SHA-256 (:func:`sealed_by_groups` says which way a file is checked).
+
+    The achieved error was once recorded under the name of the option that asks for a
+    tolerance: ``errors.max_abs_error`` / ``errors.max_abs_error_over_std`` and
+    ``achieved.max_abs_error`` are renamed here, in ``manifest`` (in place), to
+    :data:`RENAMED_ERROR_KEYS`' new names. The caller computes the manifest's digest before
+    this renaming (it seals the manifest as written).
     """
     if DIGEST_FIELD not in manifest:
         raise CorruptArchiveError(
@@ -262,6 +268,18 @@ def older_format_rules(manifest: dict[str, Any], path: Any) -> None:
             "carried their own digest, or the entry was removed. It cannot be checked for edits; "
             "compress the source again."
         )
+    for section in ("errors", "achieved"):
+        record = manifest.get(section)
+        if not isinstance(record, dict):
+            continue
+        for old, new in RENAMED_ERROR_KEYS.items():
+            if old in record and new not in record:
+                record[new] = record.pop(old)
+
+
+# older name -> name, in the manifest's ``errors`` and ``achieved`` records: the achieved error
+# has a name of its own (``max_abs_error`` is the option that asks for a tolerance)
+RENAMED_ERROR_KEYS = {"max_abs_error": "largest_error", "max_abs_error_over_std": "largest_error_over_std"}
 
 
 def older_row_file_rules(field_types: dict[str, Any], path: Any) -> None:
