@@ -286,7 +286,13 @@ def test_chosen_layout_is_the_smallest_and_the_file_written_with_it_round_trips(
     choice = cl.choose_layouts(coded, seed=7, sample=4)
     assert set(choice) == set(coded)
     for name, c in choice.items():
-        assert len(c.sizes) == len(cl.ENCODINGS) * len(cl.ZSTD_LEVELS)
+        # stage 1: every encoding at level 3; stage 2: the best of those at the other levels
+        at_three = {lay.encoding: size for lay, size in c.sizes.items() if lay.zstd_level == 3}
+        assert set(at_three) == set(cl.ENCODINGS)
+        stage_one = min(cl.ENCODINGS, key=lambda e: (at_three[e], cl.ENCODINGS.index(e)))
+        assert {lay for lay in c.sizes if lay.zstd_level != 3} == \
+            {cl.ColumnLayout(stage_one, level) for level in cl.ZSTD_LEVELS if level != 3}
+        assert c.layout.encoding == stage_one
         assert c.sampled_bytes == min(c.sizes.values()) == c.sizes[c.layout]
         assert c.sampled_rows == 4 * 256
     # delta coding pays off on the random walk (common practice: differences of a walk are small)
@@ -302,6 +308,18 @@ def test_chosen_layout_is_the_smallest_and_the_file_written_with_it_round_trips(
         written = meta.row_group(0).column(j).encodings
         expected = "RLE_DICTIONARY" if choice[name].layout.encoding == "dictionary" else choice[name].layout.encoding
         assert expected in written, (name, written)
+
+
+def test_per_column_plan_is_measured_in_one_file_like_each_layout_alone():
+    coded = _coded_table(4)
+    picked = cl.sample_chunks(next(iter(coded.values())).chunks, seed=1, count=3)
+    arrays = {name: cl.sampled_offsets(c, picked) for name, c in coded.items()}
+    plan = {"walk|none": cl.ColumnLayout("BYTE_STREAM_SPLIT", 1), "walk|previous": cl.ColumnLayout("PLAIN", 19),
+            "runs|none": cl.ColumnLayout("dictionary", 9)}
+    together = cl.trial_sizes(arrays, plan)
+    for name, layout in plan.items():
+        alone = cl.trial_sizes({name: arrays[name]}, [layout])
+        assert together[name] == alone[name] == {layout: alone[name][layout]}
 
 
 def test_layout_arguments_are_checked():

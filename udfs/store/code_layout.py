@@ -92,16 +92,9 @@ def sampled_offsets(coded: CodedColumn, picked: np.ndarray) -> pa.Array:
     return pa.array(coded.offsets[rows], mask=~coded.valid[rows])
 
 
-def _writer(layout: ColumnLayout, names: Sequence[str]) -> dict:
-    if layout.encoding == "dictionary":
-        return dict(use_dictionary=list(names), compression_level=layout.zstd_level)
-    return dict(use_dictionary=False, column_encoding={n: layout.encoding for n in names},
-                compression_level=layout.zstd_level)
-
-
 def _column_bytes(table: pa.Table, **writer: object) -> dict[str, int]:
     sink = pa.BufferOutputStream()
-    pq.write_table(table, sink, compression="zstd", **writer)
+    pq.write_table(table, sink, **writer)
     meta = pq.ParquetFile(pa.BufferReader(sink.getvalue())).metadata
     sizes = dict.fromkeys(table.column_names, 0)
     for g in range(meta.num_row_groups):
@@ -111,14 +104,19 @@ def _column_bytes(table: pa.Table, **writer: object) -> dict[str, int]:
     return sizes
 
 
-def trial_sizes(columns: Mapping[str, pa.Array], layouts: Sequence[ColumnLayout]) -> dict[str, dict[ColumnLayout, int]]:
+def trial_sizes(columns: Mapping[str, pa.Array], layouts: Mapping[str, ColumnLayout]
+                | Sequence[ColumnLayout]) -> dict[str, dict[ColumnLayout, int]]:
     """Compressed bytes (data and dictionary pages with their headers, as the file's metadata
-    records them) of each column under each layout: one in-memory Parquet file per layout."""
+    records them) of each column under each layout. ``layouts`` is either a sequence of
+    layouts, each tried on every column (one in-memory Parquet file per layout), or a mapping
+    column -> layout, tried in one file."""
     table = pa.table(dict(columns))
     out: dict[str, dict[ColumnLayout, int]] = {name: {} for name in table.column_names}
-    for layout in layouts:
-        for name, size in _column_bytes(table, **_writer(layout, table.column_names)).items():
-            out[name][layout] = size
+    plans = [dict.fromkeys(table.column_names, lay) for lay in layouts] if not isinstance(layouts, Mapping) \
+        else [dict(layouts)]
+    for plan in plans:
+        for name, size in _column_bytes(table, **writer_options(plan)).items():
+            out[name][plan[name]] = size
     return out
 
 
@@ -129,7 +127,12 @@ def choose_layouts(columns: Mapping[str, CodedColumn], *, seed: int, sample: int
 
     All columns must share rows and chunk size: the same chunks are sampled for every column,
     so columns (and the candidate predictors of one column, given as separate entries) are
-    compared on the same rows. Ties go to the earlier encoding, then the lower level.
+    compared on the same rows. The search has two stages, each a few in-memory files holding
+    every column: every encoding at zstd level 3 (the level changes the sizes of the encodings
+    much less than the encoding does), then each column's best encoding at every other level
+    of ``levels``; ``len(encodings) + len(levels) - 1`` files in all, instead of the
+    ``len(encodings) * len(levels)`` of the full grid. Ties go to the earlier encoding, then
+    the earlier level.
     """
     if not columns:
         raise InvalidInputError("choose_layouts needs at least one coded column.")
@@ -140,12 +143,20 @@ def choose_layouts(columns: Mapping[str, CodedColumn], *, seed: int, sample: int
     first = next(iter(columns.values()))
     picked = sample_chunks(first.chunks, seed, sample)
     arrays = {name: sampled_offsets(c, picked) for name, c in columns.items()}
-    layouts = [ColumnLayout(e, int(level)) for e in encodings for level in levels]
-    sizes = trial_sizes(arrays, layouts)
+    base_level = 3 if 3 in levels else int(levels[0])
+    sizes = trial_sizes(arrays, [ColumnLayout(e, base_level) for e in encodings])
+    best_encoding = {name: min(by.items(), key=lambda item: item[1])[0].encoding for name, by in sizes.items()}
+    for level in levels:
+        if level != base_level:
+            plan = {name: ColumnLayout(best_encoding[name], int(level)) for name in arrays}
+            for name, by in trial_sizes(arrays, plan).items():
+                sizes[name].update(by)
     rows = len(arrays[next(iter(arrays))])
+    order = {ColumnLayout(e, int(level)): i for i, (e, level) in
+             enumerate((e, level) for e in encodings for level in levels)}
     out = {}
     for name, by_layout in sizes.items():
-        best = min(layouts, key=lambda lay: by_layout[lay])   # min keeps the first of equals
+        best = min(by_layout, key=lambda lay: (by_layout[lay], order[lay]))
         out[name] = LayoutChoice(best, by_layout[best], rows, by_layout)
     return out
 
