@@ -6,7 +6,8 @@ hand methods round it (``baselines.quantize_column``), so all methods keep the s
 the same error, and only their bytes differ. Printed per table and tolerance:
 
 * hand: the better of ``round`` and ``round+diff`` (``real_tables.py``), whole Parquet files;
-* codec: each column coded under the predictor that won a trial of the real Parquet writer
+* codec: each column coded under the predictor (and reference rule: each chunk's minimum, or the
+  column's minimum for every chunk) that won a trial of the real Parquet writer
   (``code_layout.choose_layouts`` on a seeded sample of whole chunks; every encoding and zstd
   level tried), then the whole table written once with each column's predictor, encoding and
   level: bytes of that file, plus 8 bytes per per-chunk integer (references and starts), plus 8 bytes per stored weight of the low-rank prediction, plus a flat 8 KB
@@ -112,44 +113,52 @@ def coded_total(coded: dict[str, cc.CodedColumn], layouts: dict[str, cl.ColumnLa
 
 
 def codec_bytes(codes, valid, steps, values, names, chunk_rows, basis_sizes) -> dict:
-    """Best per-column codec total over the basis sizes tried (0 = no low-rank predictor)."""
+    """Best per-column codec total over the basis sizes tried (0 = no low-rank predictor). Each
+    predictor is offered with per-chunk references and, when there is more than one chunk, with
+    the column's minimum as every chunk's reference (``encode_codes(reference=...)``)."""
     n = len(names)
-    plain = {}
+    rows = len(codes)
+    references = cc.REFERENCES if rows > chunk_rows else ("chunk",)
+
+    def offer(into: dict, name: str, q: np.ndarray, v: np.ndarray, predictors: tuple[str, ...]) -> None:
+        for p in predictors:
+            for ref in references:
+                into[f"{name}|{p}|{ref}"] = (name, p, cc.encode_codes(q, v, p, chunk_rows=chunk_rows,
+                                                                       reference=ref))
+
+    plain: dict[str, tuple] = {}
     for j, name in enumerate(names):
-        for p in ("none", "previous"):
-            plain[(name, p)] = cc.encode_codes(codes[:, j], valid[:, j], p, chunk_rows=chunk_rows)
+        offer(plain, name, codes[:, j], valid[:, j], ("none", "previous"))
     best = None
     for k in (0, *basis_sizes):
-        if k and (k >= n or k >= len(codes)):
+        if k and (k >= n or k >= rows):
             continue
         candidates = dict(plain)
-        basis = np.arange(n)
         if k:
             basis, residual = cur_residuals(values, codes, valid, steps, k)
+            in_basis = set(basis.tolist())
             for j, name in enumerate(names):
-                if j in set(basis.tolist()):
-                    continue
-                for p in ("lowrank", "lowrank+previous"):
-                    candidates[(name, p)] = cc.encode_codes(residual[:, j], valid[:, j], p, chunk_rows=chunk_rows)
-        keys = {f"{name}|{p}": (name, p) for name, p in candidates}
-        trial = cl.choose_layouts({key: candidates[keys[key]] for key in keys}, seed=SEED)
-        sampled_chunks = min(cl.SAMPLE_CHUNKS, next(iter(candidates.values())).chunks)
+                if j not in in_basis:
+                    offer(candidates, name, residual[:, j], valid[:, j], ("lowrank", "lowrank+previous"))
+        trial = cl.choose_layouts({key: c for key, (_, _, c) in candidates.items()}, seed=SEED)
+        sampled_chunks = min(cl.SAMPLE_CHUNKS, -(-rows // chunk_rows))
         score: dict[str, tuple[float, str]] = {}
-        for key, (name, p) in keys.items():
-            cost = trial[key].sampled_bytes + cl.chunk_overhead_bytes(candidates[(name, p)], sampled_chunks)
+        for key, (name, p, coded) in candidates.items():
+            cost = trial[key].sampled_bytes + cl.chunk_overhead_bytes(coded, sampled_chunks)
             if p.startswith("lowrank"):
                 cost += 8 * (k + 1)                              # the column's weights, float64
             if name not in score or cost < score[name][0]:
-                score[name] = (cost, p)
-        chosen = {name: candidates[(name, p)] for name, (_, p) in score.items()}
-        layouts = {name: trial[f"{name}|{p}"].layout for name, (_, p) in score.items()}
-        data, chunk_file = coded_total(chosen, layouts)
-        lowrank_columns = sum(p.startswith("lowrank") for _, p in score.values())
-        weights = 8 * (k + 1) * lowrank_columns if lowrank_columns else 0
-        total = data + chunk_file + weights + FIXED_OVERHEAD
-        counts = {p: sum(q == p for _, q in score.values()) for p in cc.PREDICTORS}
-        result = {"k": k, "data": data, "chunks": chunk_file, "weights": weights, "total": total,
-                  "counts": counts, "chosen": chosen, "layouts": layouts}
+                score[name] = (cost, key)
+        chosen = {name: candidates[key][2] for name, (_, key) in score.items()}
+        layouts = {name: trial[key].layout for name, (_, key) in score.items()}
+        data, chunk_ints = coded_total(chosen, layouts)
+        lowrank_columns = sum(c.predictor.startswith("lowrank") for c in chosen.values())
+        weights = 8 * (k + 1) * lowrank_columns
+        total = data + chunk_ints + weights + FIXED_OVERHEAD
+        counts = {p: sum(c.predictor == p for c in chosen.values()) for p in cc.PREDICTORS}
+        column_refs = sum(key.endswith("|column") for _, key in score.values())
+        result = {"k": k, "data": data, "chunks": chunk_ints, "weights": weights, "total": total,
+                  "counts": counts, "column_refs": column_refs, "chosen": chosen, "layouts": layouts}
         if best is None or total < best["total"]:
             best = result
     return best
@@ -187,15 +196,15 @@ def print_sizes(rows: list[dict], chunk_rows: int) -> None:
           f"offsets file + per-chunk file + low-rank weights + {FIXED_OVERHEAD // 1000} kB fixed overhead. "
           "ratio = hand / codec (above 1: the codec is smaller).")
     print("| table | raw | t/std | round | round+diff | hand | codec data | chunks | weights | codec total "
-          "| hand/codec | hand/(codec - 8 kB) | k | none | previous | lowrank | lowrank+previous |")
-    print("|---|---|---|---|---|---|---|---|---|---|---|---|---|---|---|---|---|")
+          "| hand/codec | hand/(codec - 8 kB) | k | none | previous | lowrank | lowrank+previous | column ref |")
+    print("|---|---|---|---|---|---|---|---|---|---|---|---|---|---|---|---|---|---|")
     for r in rows:
         c = r["counts"]
         print(f"| {r['table']} | {_kb(r['raw'])} | {r['t']:g} | {_kb(r['round'])} | {_kb(r['diff'])} | "
               f"{_kb(r['hand'])} | {_kb(r['data'])} | {_kb(r['chunks'])} | {_kb(r['weights'])} | "
               f"{_kb(r['total'])} | {r['hand'] / r['total']:.2f} | "
               f"{r['hand'] / (r['total'] - FIXED_OVERHEAD):.2f} | {r['k']} | {c['none']} | {c['previous']} | "
-              f"{c['lowrank']} | {c['lowrank+previous']} |")
+              f"{c['lowrank']} | {c['lowrank+previous']} | {r['column_refs']} |")
     ratios = np.array([r["hand"] / r["total"] for r in rows])
     large = np.array([r["hand"] / r["total"] for r in rows if r["raw"] >= 1_000_000])
     worst = max(rows, key=lambda r: r["total"] - (1.05 * r["hand"] + FIXED_OVERHEAD))
@@ -216,7 +225,8 @@ def _best_of(con, sql: str, params: dict | None = None, runs: int = 3) -> float:
     return min(times)
 
 
-def sql_run(row: dict, out: Path, target_rows: int = 1_000_000) -> None:
+def sql_run(row: dict, out: Path, chunk_rows: int = cc.CHUNK_ROWS, today: bool = True,
+            target_rows: int = 1_000_000) -> None:
     repeat = max(1, -(-target_rows // len(row["codes"])))
     codes, valid = np.tile(row["codes"], (repeat, 1)), np.tile(row["valid"], (repeat, 1))
     names = [f"c{j}" for j in range(codes.shape[1])]            # plain names: the SQL text stays short
@@ -227,11 +237,14 @@ def sql_run(row: dict, out: Path, target_rows: int = 1_000_000) -> None:
         p = chosen[original].predictor
         p = {"lowrank": "none", "lowrank+previous": "previous"}.get(p, p)   # residuals not rebuilt here
         predictors[name] = p
-        coded[name] = cc.encode_codes(codes[:, j], valid[:, j], p)
+        # the reference rule the size trial chose (all references equal: the column's minimum)
+        reference = "column" if chosen[original].chunks > 1 and np.ptp(chosen[original].references) == 0 \
+            else "chunk"
+        coded[name] = cc.encode_codes(codes[:, j], valid[:, j], p, chunk_rows=chunk_rows, reference=reference)
     layouts = {n: row["layouts"][o] for n, o in zip(names, row["names"])}
     out.mkdir(parents=True, exist_ok=True)
     coded_path, chunks_path, plain_path = out / "coded.parquet", out / "chunks.parquet", out / "plain.parquet"
-    group_rows = cc.CHUNK_ROWS * max(1, 131_072 // cc.CHUNK_ROWS)
+    group_rows = chunk_rows * max(1, 131_072 // chunk_rows)
     pq.write_table(pa.table({n: c.offsets_array() for n, c in coded.items()}), coded_path,
                    row_group_size=group_rows, **cl.writer_options(layouts))
     pq.write_table(cc.chunk_table(coded), chunks_path, compression="zstd")
@@ -244,10 +257,10 @@ def sql_run(row: dict, out: Path, target_rows: int = 1_000_000) -> None:
     con.read_parquet(str(chunks_path)).create_view("chunks")
     con.read_parquet(str(plain_path), file_row_number=True).create_view("plain")
     sums = ", ".join(f"sum({n})" for n in names)
-    decode = f"SELECT {sums} FROM ({cc.decode_sql('coded', 'chunks', predictors)})"
+    decode = f"SELECT {sums} FROM ({cc.decode_sql('coded', 'chunks', predictors, chunk_rows=chunk_rows)})"
     plain_sql = "SELECT " + ", ".join(f"sum({n} + {int(low[j])})" for j, n in enumerate(names)) + " FROM plain"
     assert con.sql(decode).fetchall() == con.sql(plain_sql).fetchall(), "decoders disagree"
-    lookup = cc.decode_sql("coded", "chunks", predictors, lookup=True)
+    lookup = cc.decode_sql("coded", "chunks", predictors, chunk_rows=chunk_rows, lookup=True)
     plain_lookup = ("SELECT file_row_number, " + ", ".join(f"{n} + {int(low[j])}" for j, n in enumerate(names))
                     + " FROM plain WHERE file_row_number = $row")
     probe = int(len(codes) * 0.6180339)
@@ -257,6 +270,12 @@ def sql_run(row: dict, out: Path, target_rows: int = 1_000_000) -> None:
     t_plain_one, t_decode_one = _best_of(con, plain_lookup, {"row": probe}), _best_of(con, lookup, {"row": probe})
     t_plain2, t_decode2 = _best_of(con, plain_sql), _best_of(con, decode)
     t_plain, t_decode = min(t_plain, t_plain2), min(t_decode, t_decode2)
+    n_prev = sum(p in cc.DIFFERENCE_PREDICTORS for p in predictors.values())
+    if not today:
+        print(f"| {chunk_rows} | {n_prev} | {t_plain:.4f} | {t_decode:.4f} | {t_decode / t_plain:.2f} | "
+              f"{t_plain_one:.4f} | {t_decode_one:.4f} | {t_decode_one / t_plain_one:.2f} |")
+        con.close()
+        return
     # today's archive of the same rows (the rounded values, a key column), read by rankfold_scan
     archive = out / "archive"
     shutil.rmtree(archive, ignore_errors=True)
@@ -269,9 +288,8 @@ def sql_run(row: dict, out: Path, target_rows: int = 1_000_000) -> None:
     scan_lookup = f"SELECT * FROM {source} WHERE id = $row"
     con.sql(scan_sql).fetchall()                                      # first use: integrity checks
     t_scan, t_scan_one = _best_of(con, scan_sql), _best_of(con, scan_lookup, {"row": probe})
-    n_prev = sum(p in cc.DIFFERENCE_PREDICTORS for p in predictors.values())
     print(f"\nSQL decode, {row['table']} codes at t={row['t']:g} repeated {repeat}x: {len(codes):,} rows x "
-          f"{len(names)} columns ({n_prev} under a difference predictor), chunk rows {cc.CHUNK_ROWS}; "
+          f"{len(names)} columns ({n_prev} under a difference predictor), chunk rows {chunk_rows}; "
           "DuckDB, best of 3, one run. Low-rank columns are timed under the row-to-row predictor of their "
           "own codes (the residual's prediction is not rebuilt here). 'rankfold today': rankfold_scan of "
           "an archive of the same rounded values, compressed now with the same max_abs_error.")
@@ -301,12 +319,20 @@ def main() -> None:
     rows = size_run(tables, tolerances, cc.CHUNK_ROWS, BASIS_SIZES)
     print(f"# Codec trial: {len(rows)} cases, {time.perf_counter() - started:.0f} s")
     print_sizes(rows, cc.CHUNK_ROWS)
-    for k in [int(x) for x in args.chunk_rows.split(",") if x]:
+    sizes = [int(x) for x in args.chunk_rows.split(",") if x]
+    for k in sizes:
         print_sizes(size_run(tables, tolerances, k, ()), k)
     if not args.no_sql:
         largest = max(rows, key=lambda r: (r["raw"], -r["t"]))
         mid = [r for r in rows if r["table"] == largest["table"]]
         sql_run(mid[len(mid) // 2], Path(args.out))
+        if sizes:
+            print("\nSQL decode time by chunk rows (same rows; seconds, best of 3):")
+            print("| chunk rows | difference columns | plain scan | codec scan | ratio | plain lookup | "
+                  "codec lookup | ratio |")
+            print("|---|---|---|---|---|---|---|---|")
+            for k in sorted({*sizes, cc.CHUNK_ROWS}):
+                sql_run(mid[len(mid) // 2], Path(args.out) / f"chunks-{k}", chunk_rows=k, today=False)
 
 
 if __name__ == "__main__":

@@ -41,10 +41,10 @@ def _chunk_slices(rows: int, k: int):
 
 
 @settings(max_examples=300, deadline=None)
-@given(columns(), st.sampled_from(cc.PREDICTORS))
-def test_round_trip_is_exact_for_every_predictor(column, predictor):
+@given(columns(), st.sampled_from(cc.PREDICTORS), st.sampled_from(cc.REFERENCES))
+def test_round_trip_is_exact_for_every_predictor(column, predictor, reference):
     codes, valid, k = column
-    coded = cc.encode_codes(codes, valid, predictor, chunk_rows=k)
+    coded = cc.encode_codes(codes, valid, predictor, chunk_rows=k, reference=reference)
     decoded, decoded_valid = cc.decode_codes(coded)
     assert decoded.dtype == np.int64 and decoded.shape == codes.shape
     np.testing.assert_array_equal(decoded_valid, valid)
@@ -54,10 +54,18 @@ def test_round_trip_is_exact_for_every_predictor(column, predictor):
 
 
 @settings(max_examples=200, deadline=None)
-@given(columns(), st.sampled_from(cc.PREDICTORS))
-def test_stored_parts_match_independent_numpy_computation(column, predictor):
+@given(columns(), st.sampled_from(cc.PREDICTORS), st.sampled_from(cc.REFERENCES))
+def test_stored_parts_match_independent_numpy_computation(column, predictor, which):
     codes, valid, k = column
-    coded = cc.encode_codes(codes, valid, predictor, chunk_rows=k)
+    coded = cc.encode_codes(codes, valid, predictor, chunk_rows=k, reference=which)
+    per_chunk = []
+    for c, rows in enumerate(_chunk_slices(codes.size, k)):
+        kept = codes[rows][valid[rows]]
+        if predictor in cc.DIFFERENCE_PREDICTORS and kept.size:
+            kept = np.concatenate([[0], np.diff(kept)])
+        per_chunk.append(kept)
+    everything = np.concatenate(per_chunk) if per_chunk else np.zeros(0, dtype=np.int64)
+    column_min = everything.min() if everything.size else 0
     stored_all = []
     for c, rows in enumerate(_chunk_slices(codes.size, k)):
         kept = codes[rows][valid[rows]]
@@ -68,7 +76,8 @@ def test_stored_parts_match_independent_numpy_computation(column, predictor):
         else:
             stored = kept
             assert coded.starts[c] == 0
-        reference = stored.min() if stored.size else 0     # the chunk's minimum (numpy.min)
+        # the chunk's minimum, or the column's (numpy.min)
+        reference = column_min if which == "column" else (stored.min() if stored.size else 0)
         assert coded.references[c] == reference
         np.testing.assert_array_equal(coded.offsets[rows][valid[rows]].astype(np.int64), stored - reference)
         assert not coded.offsets[rows][~valid[rows]].any()
@@ -79,10 +88,10 @@ def test_stored_parts_match_independent_numpy_computation(column, predictor):
 
 
 @settings(max_examples=150, deadline=None)
-@given(columns(), st.sampled_from(cc.PREDICTORS), st.data())
-def test_decode_rows_reads_only_its_own_chunks(column, predictor, data):
+@given(columns(), st.sampled_from(cc.PREDICTORS), st.sampled_from(cc.REFERENCES), st.data())
+def test_decode_rows_reads_only_its_own_chunks(column, predictor, reference, data):
     codes, valid, k = column
-    coded = cc.encode_codes(codes, valid, predictor, chunk_rows=k)
+    coded = cc.encode_codes(codes, valid, predictor, chunk_rows=k, reference=reference)
     start = data.draw(st.integers(0, codes.size))
     stop = data.draw(st.integers(start, codes.size))
     full, _ = cc.decode_codes(coded)
@@ -137,6 +146,8 @@ def test_bad_arguments_are_refused():
     codes, valid = np.arange(4), np.ones(4, dtype=bool)
     with pytest.raises(InvalidInputError, match="Unknown predictor 'seasonal'"):
         cc.encode_codes(codes, valid, "seasonal")
+    with pytest.raises(InvalidInputError, match="Unknown reference 'median'"):
+        cc.encode_codes(codes, valid, "none", reference="median")
     with pytest.raises(InvalidInputError, match="chunk_rows must be a positive integer"):
         cc.encode_codes(codes, valid, "none", chunk_rows=0)
     with pytest.raises(InvalidInputError, match="integer array"):
@@ -197,7 +208,8 @@ def test_sql_decoder_matches_numpy_cell_by_cell(con, first, second, data):
     other_valid = np.resize(second[1], codes.size) if second[1].size else np.zeros(codes.size, dtype=bool)
     coded = {}
     for name, (q, v) in {'x "1"': (codes, valid), "x;2": (other, other_valid)}.items():
-        coded[name] = cc.encode_codes(q, v, data.draw(st.sampled_from(cc.PREDICTORS)), chunk_rows=k)
+        coded[name] = cc.encode_codes(q, v, data.draw(st.sampled_from(cc.PREDICTORS)), chunk_rows=k,
+                                      reference=data.draw(st.sampled_from(cc.REFERENCES)))
     result = _sql_decode(con, coded, k)
     assert result.num_rows == codes.size
     np.testing.assert_array_equal(result["file_row_number"].to_numpy(), np.arange(codes.size))

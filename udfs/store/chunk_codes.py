@@ -17,7 +17,8 @@ stored form and back, exactly:
   - ``lowrank`` and ``lowrank+previous``: the same two codings, applied by the caller to residual
     codes ``r = q - p`` where ``p`` is an integer prediction from the basis columns. The codec
     codes ``r`` and records the name; adding ``p`` back is the caller's job;
-* per chunk, a **reference**, the chunk's smallest stored value ``min v``, and the values as
+* per chunk, a **reference**, the chunk's smallest stored value ``min v`` (or, by choice, the
+  column's smallest, the same for every chunk), and the values as
   **unsigned offsets** ``v - reference`` in the narrowest unsigned type (8, 16, 32 or 64 bits)
   that holds the column's largest offset. Offsets from the minimum take no more bits than the
   zigzag map of signed integers, and fewer when the values lean to one side.
@@ -57,6 +58,7 @@ __all__ = [
     "CODE_LIMIT",
     "PREDICTORS",
     "DIFFERENCE_PREDICTORS",
+    "REFERENCES",
     "CodedColumn",
     "encode_codes",
     "decode_codes",
@@ -74,6 +76,8 @@ CHUNK_ROWS = 8192
 CODE_LIMIT = 2**61
 
 PREDICTORS = ("none", "previous", "lowrank", "lowrank+previous")
+#: How a chunk's reference is chosen (see :func:`encode_codes`).
+REFERENCES = ("chunk", "column")
 DIFFERENCE_PREDICTORS = frozenset({"previous", "lowrank+previous"})
 
 _UNSIGNED = (np.uint8, np.uint16, np.uint32, np.uint64)
@@ -94,7 +98,8 @@ class CodedColumn:
     valid : ndarray, shape (rows,), bool
         True where the row holds a code.
     references : ndarray, shape (chunks,), int64
-        Smallest stored value of each chunk (0 for a chunk without valid rows).
+        Each chunk's smallest stored value (0 for a chunk without valid rows), or the column's
+        smallest for every chunk (``encode_codes(..., reference="column")``).
     starts : ndarray, shape (chunks,), int64
         First valid code of each chunk for the difference predictors; all 0 otherwise.
 
@@ -187,7 +192,7 @@ def _checked_codes(codes: np.ndarray, valid: np.ndarray, where: str) -> tuple[np
 
 
 def encode_codes(codes: np.ndarray, valid: np.ndarray, predictor: str,
-                 chunk_rows: int = CHUNK_ROWS) -> CodedColumn:
+                 chunk_rows: int = CHUNK_ROWS, reference: str = "chunk") -> CodedColumn:
     """Code one column's integer codes in restart chunks under ``predictor``.
 
     Parameters
@@ -201,6 +206,13 @@ def encode_codes(codes: np.ndarray, valid: np.ndarray, predictor: str,
         One of :data:`PREDICTORS`.
     chunk_rows : int
         Rows per restart chunk.
+    reference : {"chunk", "column"}
+        Each chunk's reference is its own minimum stored value (``"chunk"``), or the minimum
+        over the whole column, the same for every chunk (``"column"``). The stored form and the
+        decoder are the same; ``"column"`` keeps an equal value at an equal offset in every
+        chunk, which dictionary and zstd coding of a column with few distinct values need
+        (measured on real tables, ``benchmarks/codec_trial.py``), while ``"chunk"`` keeps the
+        offsets small in a column that drifts.
 
     Returns
     -------
@@ -209,6 +221,9 @@ def encode_codes(codes: np.ndarray, valid: np.ndarray, predictor: str,
     """
     _check_predictor(predictor)
     _check_chunk_rows(chunk_rows)
+    if reference not in REFERENCES:
+        raise InvalidInputError(f"Unknown reference {reference!r} for integer codes; choose one of "
+                                f"{', '.join(REFERENCES)}.")
     q, valid = _checked_codes(codes, valid, "encode_codes")
     rows = q.shape[0]
     chunks = -(-rows // chunk_rows)
@@ -230,6 +245,8 @@ def encode_codes(codes: np.ndarray, valid: np.ndarray, predictor: str,
         # smallest stored value per chunk: chunk_of is sorted, so each chunk is one run
         run_starts = np.flatnonzero(np.r_[True, chunk_of[1:] != chunk_of[:-1]])
         references[chunk_of[run_starts]] = np.minimum.reduceat(stored, run_starts)
+        if reference == "column":
+            references[:] = stored.min()
     shifted = stored - references[chunk_of]            # in [0, 2**63)
     dtype = _narrowest_unsigned(int(shifted.max()) if shifted.size else 0)
     offsets = np.zeros(rows, dtype=dtype)
