@@ -40,7 +40,7 @@ def _chunk_slices(rows: int, k: int):
     return [slice(s, min(s + k, rows)) for s in range(0, rows, k)]
 
 
-@settings(max_examples=300, deadline=None)
+@settings(max_examples=200, deadline=None)
 @given(columns(), st.sampled_from(cc.PREDICTORS), st.sampled_from(cc.REFERENCES))
 def test_round_trip_is_exact_for_every_predictor(column, predictor, reference):
     codes, valid, k = column
@@ -53,7 +53,7 @@ def test_round_trip_is_exact_for_every_predictor(column, predictor, reference):
     assert coded.chunks == -(-codes.size // k)
 
 
-@settings(max_examples=200, deadline=None)
+@settings(max_examples=120, deadline=None)
 @given(columns(), st.sampled_from(cc.PREDICTORS), st.sampled_from(cc.REFERENCES))
 def test_stored_parts_match_independent_numpy_computation(column, predictor, which):
     codes, valid, k = column
@@ -87,7 +87,7 @@ def test_stored_parts_match_independent_numpy_computation(column, predictor, whi
     assert coded.offsets.dtype == np.min_scalar_type(largest)
 
 
-@settings(max_examples=150, deadline=None)
+@settings(max_examples=100, deadline=None)
 @given(columns(), st.sampled_from(cc.PREDICTORS), st.sampled_from(cc.REFERENCES), st.data())
 def test_decode_rows_reads_only_its_own_chunks(column, predictor, reference, data):
     codes, valid, k = column
@@ -200,7 +200,7 @@ def _sql_decode(con, coded: dict[str, cc.CodedColumn], k: int, lookup_row: int |
         con.close()
 
 
-@settings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@settings(max_examples=40, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
 @given(columns(max_rows=60), columns(max_rows=60), st.data())
 def test_sql_decoder_matches_numpy_cell_by_cell(con, first, second, data):
     codes, valid, k = first
