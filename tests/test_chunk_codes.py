@@ -347,3 +347,14 @@ def test_layout_arguments_are_checked():
         cl.choose_layouts(coded, seed=0)
     assert cl.chunk_overhead_bytes(coded["walk|previous"]) == 16 * coded["walk|previous"].chunks
     assert cl.chunk_overhead_bytes(coded["walk|none"], chunks=2) == 16
+
+
+def test_trial_handles_empty_and_all_null_columns():
+    empty = cc.encode_codes(np.zeros(0, dtype=np.int64), np.zeros(0, dtype=bool), "none")
+    assert cl.choose_layouts({"e": empty}, seed=0)["e"].sampled_rows == 0
+    nulls = {"n": cc.encode_codes(np.zeros(5, dtype=np.int64), np.zeros(5, dtype=bool), "previous")}
+    choice = cl.choose_layouts(nulls, seed=0)["n"]
+    assert choice.sampled_rows == 5 and choice.sampled_bytes == min(choice.sizes.values())
+    sink = pa.BufferOutputStream()
+    pq.write_table(pa.table({"n": nulls["n"].offsets_array()}), sink, **cl.writer_options({"n": choice.layout}))
+    assert pq.read_table(pa.BufferReader(sink.getvalue()))["n"].null_count == 5
