@@ -1,0 +1,178 @@
+"""Parquet encoding and zstd level of coded columns, chosen by trial with the real writer.
+
+How well a column of offsets compresses depends on its values in ways no simple model
+predicts (runs of equal values, slowly drifting offsets, a few outliers). So the layout is
+chosen by measurement: a seeded sample of whole chunks of every column is written with the
+real pyarrow Parquet writer into memory (``pa.BufferOutputStream``), once per candidate layout
+(every encoding of :data:`ENCODINGS` at every level of :data:`ZSTD_LEVELS`), all columns in one
+file per layout; the compressed size of each column chunk is read back from the file's own
+metadata, and each column keeps the layout that made it smallest.
+
+``PLAIN``, ``DELTA_BINARY_PACKED`` and ``BYTE_STREAM_SPLIT`` are the Parquet encodings pyarrow
+writes for integer columns of every width (``BYTE_STREAM_SPLIT`` for integers since Parquet
+format 2.11); ``dictionary`` is pyarrow's dictionary encoding (falling back to plain when the
+dictionary grows too large). References: Apache Parquet format specification, "Encodings";
+zstd: Y. Collet, M. Kucherawy, RFC 8878 (2021).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+from ..errors import InvalidInputError
+from .chunk_codes import DIFFERENCE_PREDICTORS, CodedColumn
+
+__all__ = [
+    "ENCODINGS",
+    "ZSTD_LEVELS",
+    "SAMPLE_CHUNKS",
+    "ColumnLayout",
+    "LayoutChoice",
+    "sample_chunks",
+    "sampled_offsets",
+    "trial_sizes",
+    "choose_layouts",
+    "writer_options",
+    "chunk_overhead_bytes",
+]
+
+ENCODINGS = ("PLAIN", "DELTA_BINARY_PACKED", "BYTE_STREAM_SPLIT", "dictionary")
+#: zstd levels tried: 1 (fastest), 3 (zstd's default), 9 and 19 (slow to write, not to read).
+ZSTD_LEVELS = (1, 3, 9, 19)
+#: Whole chunks written per trial (all of them when a column has fewer).
+SAMPLE_CHUNKS = 8
+
+
+@dataclass(frozen=True)
+class ColumnLayout:
+    """How one column is written: a Parquet encoding of :data:`ENCODINGS` and a zstd level."""
+
+    encoding: str
+    zstd_level: int
+
+    def __post_init__(self) -> None:
+        if self.encoding not in ENCODINGS:
+            raise InvalidInputError(f"Unknown Parquet encoding {self.encoding!r} for coded columns; "
+                                    f"choose one of {', '.join(ENCODINGS)}.")
+        if isinstance(self.zstd_level, bool) or not isinstance(self.zstd_level, (int, np.integer)) \
+                or not 1 <= self.zstd_level <= 22:
+            raise InvalidInputError(f"zstd level must be an integer from 1 to 22; got {self.zstd_level!r}.")
+
+
+@dataclass(frozen=True)
+class LayoutChoice:
+    """The layout a trial chose for one column, with the bytes its sample took under it and
+    under every layout tried (``sizes``: layout -> compressed bytes of the sample)."""
+
+    layout: ColumnLayout
+    sampled_bytes: int
+    sampled_rows: int
+    sizes: Mapping[ColumnLayout, int]
+
+
+def sample_chunks(chunks: int, seed: int, count: int = SAMPLE_CHUNKS) -> np.ndarray:
+    """``min(count, chunks)`` distinct chunk indices drawn without replacement by
+    ``numpy.random.default_rng(seed)``, sorted (int64, shape ``(min(count, chunks),)``)."""
+    if chunks < 0 or count < 1:
+        raise InvalidInputError(f"sample_chunks needs chunks >= 0 and count >= 1; got {chunks} and {count}.")
+    rng = np.random.default_rng(seed)
+    return np.sort(rng.choice(chunks, size=min(count, chunks), replace=False)).astype(np.int64)
+
+
+def sampled_offsets(coded: CodedColumn, picked: np.ndarray) -> pa.Array:
+    """The offsets of the chunks ``picked`` (in order), NULL where not valid."""
+    k = coded.chunk_rows
+    rows = np.concatenate([np.arange(c * k, min((c + 1) * k, coded.rows)) for c in picked]) \
+        if len(picked) else np.zeros(0, dtype=np.int64)
+    return pa.array(coded.offsets[rows], mask=~coded.valid[rows])
+
+
+def _column_bytes(table: pa.Table, **writer: object) -> dict[str, int]:
+    sink = pa.BufferOutputStream()
+    pq.write_table(table, sink, **writer)
+    meta = pq.ParquetFile(pa.BufferReader(sink.getvalue())).metadata
+    sizes = dict.fromkeys(table.column_names, 0)
+    for g in range(meta.num_row_groups):
+        group = meta.row_group(g)
+        for j, name in enumerate(table.column_names):
+            sizes[name] += group.column(j).total_compressed_size
+    return sizes
+
+
+def trial_sizes(columns: Mapping[str, pa.Array], layouts: Mapping[str, ColumnLayout]
+                | Sequence[ColumnLayout]) -> dict[str, dict[ColumnLayout, int]]:
+    """Compressed bytes (data and dictionary pages with their headers, as the file's metadata
+    records them) of each column under each layout. ``layouts`` is either a sequence of
+    layouts, each tried on every column (one in-memory Parquet file per layout), or a mapping
+    column -> layout, tried in one file."""
+    table = pa.table(dict(columns))
+    out: dict[str, dict[ColumnLayout, int]] = {name: {} for name in table.column_names}
+    plans = [dict.fromkeys(table.column_names, lay) for lay in layouts] if not isinstance(layouts, Mapping) \
+        else [dict(layouts)]
+    for plan in plans:
+        for name, size in _column_bytes(table, **writer_options(plan)).items():
+            out[name][plan[name]] = size
+    return out
+
+
+def choose_layouts(columns: Mapping[str, CodedColumn], *, seed: int, sample: int = SAMPLE_CHUNKS,
+                   encodings: Sequence[str] = ENCODINGS, levels: Sequence[int] = ZSTD_LEVELS
+                   ) -> dict[str, LayoutChoice]:
+    """For each coded column, the layout under which a seeded sample of its chunks is smallest.
+
+    All columns must share rows and chunk size: the same chunks are sampled for every column,
+    so columns (and the candidate predictors of one column, given as separate entries) are
+    compared on the same rows. The search has two stages, each a few in-memory files holding
+    every column: every encoding at zstd level 3 (the level changes the sizes of the encodings
+    much less than the encoding does), then each column's best encoding at every other level
+    of ``levels``; ``len(encodings) + len(levels) - 1`` files in all, instead of the
+    ``len(encodings) * len(levels)`` of the full grid. Ties go to the earlier encoding, then
+    the earlier level.
+    """
+    if not columns:
+        raise InvalidInputError("choose_layouts needs at least one coded column.")
+    shapes = {(c.rows, c.chunk_rows) for c in columns.values()}
+    if len(shapes) != 1:
+        raise InvalidInputError(f"choose_layouts: the columns differ in rows or chunk size ({sorted(shapes)}); "
+                                "compare columns of one table, coded with one chunk size.")
+    first = next(iter(columns.values()))
+    picked = sample_chunks(first.chunks, seed, sample)
+    arrays = {name: sampled_offsets(c, picked) for name, c in columns.items()}
+    base_level = 3 if 3 in levels else int(levels[0])
+    sizes = trial_sizes(arrays, [ColumnLayout(e, base_level) for e in encodings])
+    best_encoding = {name: min(by.items(), key=lambda item: item[1])[0].encoding for name, by in sizes.items()}
+    for level in levels:
+        if level != base_level:
+            plan = {name: ColumnLayout(best_encoding[name], int(level)) for name in arrays}
+            for name, by in trial_sizes(arrays, plan).items():
+                sizes[name].update(by)
+    rows = len(arrays[next(iter(arrays))])
+    order = {ColumnLayout(e, int(level)): i for i, (e, level) in
+             enumerate((e, level) for e in encodings for level in levels)}
+    out = {}
+    for name, by_layout in sizes.items():
+        best = min(by_layout, key=lambda lay: (by_layout[lay], order[lay]))
+        out[name] = LayoutChoice(best, by_layout[best], rows, by_layout)
+    return out
+
+
+def writer_options(layouts: Mapping[str, ColumnLayout]) -> dict:
+    """Keyword arguments for ``pyarrow.parquet.write_table`` / ``ParquetWriter`` that write each
+    column with its layout (zstd at the column's level)."""
+    dictionary = [n for n, lay in layouts.items() if lay.encoding == "dictionary"]
+    encoding = {n: lay.encoding for n, lay in layouts.items() if lay.encoding != "dictionary"}
+    return dict(compression="zstd", use_dictionary=dictionary or False, column_encoding=encoding or None,
+                compression_level={n: int(lay.zstd_level) for n, lay in layouts.items()})
+
+
+def chunk_overhead_bytes(coded: CodedColumn, chunks: int | None = None) -> int:
+    """Bytes of the per-chunk integers of ``chunks`` chunks (all by default) before compression:
+    8 for the reference, 8 more for the start under a difference predictor. An upper estimate
+    used to compare predictors; the per-chunk table is written and measured by the caller."""
+    per_chunk = 16 if coded.predictor in DIFFERENCE_PREDICTORS else 8
+    return per_chunk * (coded.chunks if chunks is None else chunks)
