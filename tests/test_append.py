@@ -76,6 +76,26 @@ def test_drift_flags_a_refactor(tmp_path):
     assert "relative error" in drift["reason"]
 
 
+def test_error_figures_cover_the_appended_rows(tmp_path):
+    # After an append, every per-column figure of the errors record is restated over every row:
+    # checked against numpy (max |x - xhat| over numpy.std, the population std the profile
+    # uses) on the values as stored (ArchiveReader.rebuild(serve=False)), and a large error
+    # in the new rows raises the archive's warning.
+    first, bad = _rows(3000, 1), _rows(400, 3, drift=0.5)  # new structure the basis cannot explain
+    archive = rankfold.compress(first, tmp_path / "a.rankfold", rank=3, key="id")
+    assert archive.warnings == []
+    grown = archive.append(bad)
+    truth = np.vstack([_values(first), _values(bad)])
+    stored = ArchiveReader(grown.path).rebuild(serve=False).values
+    over_std = np.abs(stored - truth).max(axis=0) / truth.std(axis=0)
+    errors = grown.manifest["errors"]
+    # the ledger stores maxima rounded up, so the figure is at least numpy's and within 1e-6 of it
+    assert over_std.max() <= errors["largest_error_over_std"] <= over_std.max() * (1 + 1e-6)
+    assert errors["largest_error"] >= np.abs(stored - truth).max()
+    assert errors["largest_error_over_std"] > archive.manifest["errors"]["largest_error_over_std"] * 10
+    assert grown.warnings and "standard deviations" in grown.warnings[0]
+
+
 def test_new_version_is_atomic_and_old_readers_keep_working(tmp_path):
     first = _rows(2000, 1)
     archive = rankfold.compress(first, tmp_path / "a.rankfold", rank=3, key="id")

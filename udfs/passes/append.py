@@ -47,7 +47,7 @@ from .keys import check_unique_key
 from .profile import ColumnProfile, Transform, profile_block
 from .progress import Progress
 from .sources import block_from_batch, open_source
-from .encode import ColumnLedger, column_statistics, encode_pass
+from .encode import ColumnLedger, column_error_figures, column_statistics, encode_pass
 
 __all__ = ["append", "DRIFT_FACTOR"]
 
@@ -208,7 +208,7 @@ def _write_version(reader: ArchiveReader, src, batch_rows, progress, temp: Path)
     new["shape"] = [reader.rows_count + result.rows, width]
     new["row_parts"] = old_parts + list(writer.parts)
     new["tables"] = tables
-    new["errors"] = _errors(manifest, ledger, transform, result, width, reader.rows_count + result.rows,
+    new["errors"] = _errors(manifest, ledger, profile, transform, result, reader.rows_count + result.rows,
                             state["z_norm2"])
     new["drift"] = _drift(manifest, result, transform, state["z_norm2"], width)
     new["files"] = [f for f in manifest["files"] if f["name"] not in replaced] + [
@@ -219,21 +219,25 @@ def _write_version(reader: ArchiveReader, src, batch_rows, progress, temp: Path)
     return directory
 
 
-def _errors(manifest, ledger, transform, result, width, rows, z_norm2_new) -> dict:
+def _errors(manifest, ledger, profile, transform, result, rows, z_norm2_new) -> dict:
+    """The ``errors`` record after an append: every figure restated over every row (the merged
+    column ledger and statistics), except the optimum, which is that of the compressed rows."""
+    names = list(manifest["numeric_columns"])
+    width = len(names)
     errors = dict(manifest["errors"])
     previous = manifest.get("drift") or {}
     z_norm2 = float(np.sum(np.square(manifest["spectrum"]))) + previous.get("z_norm2", 0.0) + z_norm2_new
     z_err = float(np.sqrt(np.sum((ledger.err_l2 / transform.scale) ** 2)))
     errors["relative_frobenius"] = z_err / np.sqrt(z_norm2) if z_norm2 > 0 else 0.0
-    errors["largest_error"] = float(ledger.err_max.max()) if width else 0.0
+    errors.update(column_error_figures(names, profile.std, ledger))
     errors["cells_approximated"] = int(ledger.cells.sum())
     errors["cells_exact"] = int(rows * width - ledger.cells.sum())
     errors["cells_stored_exactly_outside_factors"] = int(
         errors.get("cells_stored_exactly_outside_factors", 0) + result.cells.count)
     optimum = errors.get("optimal_relative_frobenius")
     errors["ratio_to_optimum"] = (errors["relative_frobenius"] / optimum) if optimum else None
-    errors["note_append"] = ("after appends: relative_frobenius and the cell counts cover every row; "
-                             "the optimum and spectrum are those of the compressed rows")
+    errors["note_append"] = ("after appends: relative_frobenius, the column figures and the cell counts "
+                             "cover every row; the optimum and spectrum are those of the compressed rows")
     return errors
 
 

@@ -46,7 +46,7 @@ from .profile import (SUB_BLOCK_ROWS, ColumnProfile, Fingerprint, Transform, new
                       profile_rows)
 from .select import AnchorRows, AnchorScan, anchor_partial, merge_anchor_partials, sketch_of
 from .refit import KAPPA, OutlierScreen
-from .encode import EncodeResult, column_statistics, encode_pass
+from .encode import EncodeResult, column_error_figures, column_statistics, encode_pass
 from . import targets
 
 __all__ = ["compress"]
@@ -894,26 +894,16 @@ def _transformed_norm(profile: ColumnProfile, transform: Transform) -> float:
 
 def _error_summary(numeric, profile, transform, result, spectrum, rank, sampled=False) -> dict[str, Any]:
     ledger = result.ledger
-    std = profile.std
-    rms = ledger.err_l2 / np.sqrt(np.maximum(ledger.cells, 1))
-    with np.errstate(invalid="ignore", divide="ignore"):
-        rel_rms = np.where(std > 0, rms / np.where(std > 0, std, 1), np.nan)
-        max_over_std = np.where(std > 0, ledger.err_max / np.where(std > 0, std, 1), np.nan)
     # the spectrum of a sampled sketch estimates ||Z||_F; every row's statistics give it exactly
     total = _transformed_norm(profile, transform) if sampled else float(np.sqrt(np.sum(spectrum.values ** 2)))
     z_err = float(np.sqrt(np.sum((ledger.err_l2 / transform.scale) ** 2)))
-    worst = int(np.nanargmax(rel_rms)) if np.isfinite(rel_rms).any() else None
     optimum = spectrum.optimal_relative_error(rank)
     achieved = z_err / total if total > 0 else 0.0
     return {
         "relative_frobenius": _finite_or_none(achieved),
         "optimal_relative_frobenius": _finite_or_none(optimum),
         "ratio_to_optimum": _finite_or_none(achieved / optimum) if optimum > 0 else None,
-        "mean_column_relative_rms": _finite_or_none(np.nanmean(rel_rms)) if np.isfinite(rel_rms).any() else None,
-        "worst_column": numeric[worst] if worst is not None else None,
-        "worst_column_relative_rms": _finite_or_none(rel_rms[worst]) if worst is not None else None,
-        "largest_error_over_std": _finite_or_none(np.nanmax(max_over_std)) if np.isfinite(max_over_std).any() else None,
-        "largest_error": _finite_or_none(ledger.err_max.max()),
+        **column_error_figures(numeric, profile.std, ledger),
         "cells_approximated": int(ledger.cells.sum()),
         "cells_exact": int(result.rows * len(numeric) - ledger.cells.sum()),
         "cells_stored_exactly_outside_factors": result.cells.count,

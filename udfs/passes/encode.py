@@ -87,6 +87,31 @@ class ColumnLedger:
                             self.err_sum + other.err_sum, self.cells + other.cells)
 
 
+def _finite_or_none(value: float) -> float | None:
+    value = float(value)
+    return value if np.isfinite(value) else None
+
+
+def column_error_figures(names: list[str], std: np.ndarray, ledger: ColumnLedger) -> dict[str, Any]:
+    """The per-column error figures of the manifest's ``errors`` record, from the column ledger
+    and the columns' standard deviations (arrays (n,), over every row of the archive): the mean
+    and worst relative RMS (RMS of the residual / std), the largest error and the largest error
+    over std. One function for compress and append, so an append restates every figure."""
+    rms = ledger.err_l2 / np.sqrt(np.maximum(ledger.cells, 1))
+    with np.errstate(invalid="ignore", divide="ignore"):
+        rel_rms = np.where(std > 0, rms / np.where(std > 0, std, 1), np.nan)
+        max_over_std = np.where(std > 0, ledger.err_max / np.where(std > 0, std, 1), np.nan)
+    worst = int(np.nanargmax(rel_rms)) if np.isfinite(rel_rms).any() else None
+    return {
+        "mean_column_relative_rms": _finite_or_none(np.nanmean(rel_rms)) if worst is not None else None,
+        "worst_column": names[worst] if worst is not None else None,
+        "worst_column_relative_rms": _finite_or_none(rel_rms[worst]) if worst is not None else None,
+        "largest_error_over_std": (_finite_or_none(np.nanmax(max_over_std))
+                                   if np.isfinite(max_over_std).any() else None),
+        "largest_error": _finite_or_none(ledger.err_max.max()) if ledger.err_max.size else 0.0,
+    }
+
+
 def column_statistics(profile: ColumnProfile, ledger: ColumnLedger, rows: int) -> dict[str, np.ndarray]:
     """The measured fields of the columns table (``store.model.STATISTICS``) from the column
     statistics of every row and the column ledger of a table of ``rows`` rows."""
