@@ -99,7 +99,7 @@ def test_scan_row_bound_covers_every_cell(con, archives, kind):
         values = out.column(name).to_numpy(zero_copy_only=False).astype(float)
         ok = ~NULLS[:, j]
         assert np.all(np.abs(values[ok] - X[ok, j]) <= bound[ok])
-    anchors = ArchiveReader(archives[kind]).anchor_positions
+    anchors = ArchiveReader(archives[kind]).model.anchor_positions
     assert np.all(bound[anchors] == 0.0)
 
 

@@ -36,10 +36,10 @@ import pyarrow.parquet as pq
 from ..errors import InvalidInputError
 from ..store import aggregate as agg
 from ..store import layout
-from ..store.aggregate import basis_sql, rows_source_sql
+from ..store.aggregate import rows_source_sql
 from ..store.integrity import read_parquet_sql
 from ..store.reader import ArchiveReader
-from ..store.sql_rebuild import derived_value_sql, row_bound_sql, served_sql, stored_bound_sql
+from ..store.sql_rebuild import basis_value_sql, derived_value_sql, row_bound_sql, served_sql, stored_bound_sql
 from ..store.sql_text import quote_identifier
 
 __all__ = ["scan_sql", "table_sql", "column_errors_sql", "row_errors_sql", "ResultCache",
@@ -79,7 +79,7 @@ def scan_sql(reader: ArchiveReader, columns: Any = None, bounds: str = "row",
     derived = [s for s in range(len(names)) if not is_basis[s]]
     inner = [f"r.{layout.ROW_ID}"] + [f"r.{quote_identifier(n)}" for n in exact_cols]
     if derived and c:
-        fs = [basis_sql(reader, t) for t in range(c)]
+        fs = [basis_value_sql(reader.model, t) for t in range(c)]
         inner.append(f"[{', '.join(fs)}]::DOUBLE[{c}] AS __f")
         inner.append(f"[{', '.join(f'abs({e})' for e in fs)}]::DOUBLE[{c}] AS __fa")
     inner.append(f"r.{layout.ROW_ERR_MAX} AS __rowmax")

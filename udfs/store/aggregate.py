@@ -33,10 +33,11 @@ import pyarrow as pa
 from ..errors import InvalidInputError, UnknownColumnError
 from . import arithmetic, layout
 from .integrity import read_parquet_sql, read_small_table, sealed_rows_sql
-from .sql_text import checked_condition, quote_identifier, sql_literal
+from .sql_rebuild import basis_value_sql
+from .sql_text import checked_condition, quote_identifier
 
 __all__ = ["BLOCKS", "BlockSums", "aggregate", "covariance", "correlation", "FUNCS",
-           "basis_sql", "rows_source_sql", "check_where", "check_result_names"]
+           "rows_source_sql", "check_where", "check_result_names"]
 
 BLOCKS = "blocks.parquet"
 FUNCS = ("sum", "avg", "count")
@@ -246,19 +247,6 @@ def rows_source_sql(reader, sealed: str | None = None) -> str:
     return read_parquet_sql(paths)
 
 
-def basis_sql(reader, t: int) -> str:
-    """SQL of the filled value of basis entry t (code * step where stored as codes; the fill
-    where NULL or not finite), as DOUBLE: the same value ``ArchiveReader.basis_block`` gives."""
-    column = quote_identifier(reader.basis_stored[t])
-    fill = sql_literal(float(reader.fill[t]))
-    step = reader.basis_step[t]
-    if np.isfinite(step):
-        value = f"(CAST({column} AS DOUBLE) * {sql_literal(float(step))})"
-    else:
-        value = f"CAST({column} AS DOUBLE)"
-    return f"(CASE WHEN isfinite({value}) THEN {value} ELSE {fill} END)"
-
-
 # -- the partial sums of one row set -----------------------------------------------------------
 @dataclass
 class _Partial:
@@ -381,14 +369,14 @@ def _derived_overrides(reader, col_idx: np.ndarray, derived: np.ndarray) -> pa.T
     derived_slots = np.flatnonzero(derived)
     if derived_slots.size == 0:
         return None
-    if reader.anchor_positions.size:
-        a = reader.anchor_positions.size
+    if reader.model.anchor_positions.size:
+        a = reader.model.anchor_positions.size
         for s in derived_slots:
             j = col_idx[s]
-            rows.append(reader.anchor_positions.astype(np.int64))
+            rows.append(reader.model.anchor_positions.astype(np.int64))
             slots.append(np.full(a, s, np.int64))
-            values.append(reader.anchor_values[:, j])
-            nulls.append(reader.anchor_nulls[:, j])
+            values.append(reader.model.anchor_values[:, j])
+            nulls.append(reader.model.anchor_nulls[:, j])
     if reader.cell_rows.size:
         slot_of = np.full(len(reader.numeric_columns), -1, np.int64)
         slot_of[col_idx[derived_slots]] = derived_slots
@@ -414,7 +402,7 @@ def _scan_partials(reader, con, names, col_idx, by, where, row_range):
     """Grouped sums over the row files: (group key table, _Partial). One scan for the basis
     sums, one join for the overridden cells of derived columns."""
     global _REGISTERED
-    c = len(reader.basis_names)
+    c = len(reader.model.basis_names)
     q = len(names)
     source = rows_source_sql(reader)
     conds = []
@@ -424,14 +412,14 @@ def _scan_partials(reader, con, names, col_idx, by, where, row_range):
         conds.append(f"{layout.ROW_ID} >= {row_range[0]} AND {layout.ROW_ID} < {row_range[1]}")
     cond = (" WHERE " + " AND ".join(conds)) if conds else ""
     group = ", ".join(quote_identifier(b) for b in by)
-    steps = reader.residual_step[col_idx]
-    is_basis = reader.is_basis[col_idx]
+    steps = reader.model.residual_step[col_idx]
+    is_basis = reader.model.is_basis[col_idx]
     coded = np.isfinite(steps) & ~is_basis
-    f = [basis_sql(reader, t) for t in range(c)]
+    f = [basis_value_sql(reader.model, t) for t in range(c)]
     items = ["count(*) AS __n", f"sum({layout.ROW_ERR_MAX}) AS __rowmax"]
     items += [f"sum({e}) AS __f{t}" for t, e in enumerate(f)]
     items += [f"sum(abs({e})) AS __a{t}" for t, e in enumerate(f)]
-    basis_slot = {reader.basis_names[t]: t for t in range(c)}
+    basis_slot = {reader.model.basis_names[t]: t for t in range(c)}
     for s in range(q):
         if coded[s]:
             code = layout.code_sql(quote_identifier(layout.CODE_PATTERN.format(int(col_idx[s]))))
@@ -498,11 +486,11 @@ def _scan_partials(reader, con, names, col_idx, by, where, row_range):
             n_ov = onum("__n")
             fs = np.column_stack([onum(f"__f{t}") for t in range(c)]) if c else np.zeros((ov.num_rows, 0))
             fa = np.column_stack([onum(f"__a{t}") for t in range(c)]) if c else np.zeros((ov.num_rows, 0))
-            w = reader.weights[:, col_idx[si]]  # (c, k)
+            w = reader.model.weights[:, col_idx[si]]  # (c, k)
             st = np.where(np.isfinite(steps[si]), steps[si], 0.0)
-            xhat_sum = n_ov * reader.offset[col_idx[si]] + np.einsum("kc,ck->k", fs, w) + st * onum("__q")
+            xhat_sum = n_ov * reader.model.offset[col_idx[si]] + np.einsum("kc,ck->k", fs, w) + st * onum("__q")
             value_sum = ov.column("__v").fill_null(0.0).to_numpy(zero_copy_only=False).astype(np.float64)
-            mag = (n_ov * np.abs(reader.offset[col_idx[si]]) + np.einsum("kc,ck->k", fa, np.abs(w))
+            mag = (n_ov * np.abs(reader.model.offset[col_idx[si]]) + np.einsum("kc,ck->k", fa, np.abs(w))
                    + st * onum("__qa") + np.nan_to_num(onum("__va"), nan=0.0))
             np.add.at(part.corr, (gi, si), value_sum - xhat_sum)
             np.add.at(part.ov_abs, (gi, si), np.where(np.isfinite(mag), mag, 0.0))
@@ -519,7 +507,7 @@ def _group_index(main: pa.Table, ov: pa.Table, by: list[str]) -> np.ndarray:
 
 
 def _block_partials(reader, blocks: _Blocks, col_idx, sel) -> _Partial:
-    c = len(reader.basis_names)
+    c = len(reader.model.basis_names)
     q = col_idx.size
     part = _Partial.zeros(1, c, q)
     if not sel.any():
@@ -588,10 +576,10 @@ def aggregate(reader, columns: Any, func: str = "avg", by: Any = None, where: st
 
 
 def _finish(reader, names, col_idx, func, keys: pa.Table, part: _Partial, estimates, by) -> pa.Table:
-    c = len(reader.basis_names)
-    w = reader.weights[:, col_idx]
-    offset = reader.offset[col_idx]
-    steps = np.where(np.isfinite(reader.residual_step[col_idx]), reader.residual_step[col_idx], 0.0)
+    c = len(reader.model.basis_names)
+    w = reader.model.weights[:, col_idx]
+    offset = reader.model.offset[col_idx]
+    steps = np.where(np.isfinite(reader.model.residual_step[col_idx]), reader.model.residual_step[col_idx], 0.0)
     n = part.n[:, None]
     with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
         total = n * offset[None, :] + part.f_sum @ w + steps[None, :] * part.q_sum + part.corr
@@ -602,8 +590,8 @@ def _finish(reader, names, col_idx, func, keys: pa.Table, part: _Partial, estima
         cols = reader.columns_table
         err_l2 = cols.column("err_l2").to_numpy()[col_idx]
         err_cells = cols.column("err_cells").to_numpy()[col_idx].astype(np.float64)
-        colmax = reader.err_max_col[col_idx]
-        scale = reader.ledger_scale[col_idx]
+        colmax = reader.model.err_max[col_idx]
+        scale = reader.model.ledger_scale[col_idx]
         rows_term = _up(scale[None, :] * _up(part.rowmax[:, None] * (1.0 + _gamma(n.max() + 2 if n.size else 2))))
         ledger = np.minimum(np.minimum(rows_term, _up(approx * colmax[None, :])),
                             _up(np.sqrt(approx) * err_l2[None, :] * (1 + 4 * U)))
@@ -663,7 +651,7 @@ def _within_range(reader, col_idx, func: str, value: np.ndarray, bound: np.ndarr
     it never grows. Columns with NaN or infinite values (their sums are not finite) and
     empty intersections (which the bound's premise excludes) are left as they are. The ends
     count * lower_j are moved out by one ulp to cover their own rounding."""
-    lower, upper = reader.lower[col_idx][None, :], reader.upper[col_idx][None, :]
+    lower, upper = reader.model.lower[col_idx][None, :], reader.model.upper[col_idx][None, :]
     cols = reader.columns_table
     special = np.zeros(col_idx.size, bool)
     for name in ("nans", "infinities"):
@@ -718,9 +706,9 @@ def _covariance(reader, columns: Any = None):
     cells that weigh more than the residual) from one scan of the rebuilt values."""
     names, col_idx = _cov_columns(reader, columns)
     blocks = _blocks(reader)
-    if blocks is not None and len(reader.basis_names):
+    if blocks is not None and len(reader.model.basis_names):
         every = np.ones(blocks.first.size, bool)
-        coded = np.isfinite(reader.residual_step[col_idx]) & ~reader.is_basis[col_idx]
+        coded = np.isfinite(reader.model.residual_step[col_idx]) & ~reader.model.is_basis[col_idx]
         ov_sq = blocks.stack("ov_sq", every)[:, col_idx].sum(axis=0)
         err_l2 = reader.columns_table.column("err_l2").to_numpy()[col_idx]
         if not coded.any() and np.all(np.sqrt(ov_sq) <= err_l2):
@@ -762,7 +750,7 @@ def _stored_covariance(reader, names: list[str], col_idx: np.ndarray, *,
     fp = _up(8.0 * g * np.sqrt(np.outer(diag, diag)) / (mm - 1) * (1 + 8 * U))
     err_l2 = reader.columns_table.column("err_l2").to_numpy()[col_idx]
     delta = _up(err_l2 + np.sqrt(_up(slack_sq)) * (1 + 4 * U))
-    delta = np.where(reader.is_basis[col_idx], 0.0, delta)
+    delta = np.where(reader.model.is_basis[col_idx], 0.0, delta)
     spread = _up(np.sqrt(np.maximum(np.diag(cov) + np.diag(fp), 0.0) * (mm - 1)))
     bound = _up((np.outer(spread, delta) + np.outer(delta, spread) + np.outer(delta, delta)) / (mm - 1)
                 * (1 + 8 * U) + fp)
@@ -785,9 +773,9 @@ def _gram_covariance(reader, columns: Any = None):
     m = float(reader.rows_count)
     if m < 2:
         raise InvalidInputError(f"A sample covariance needs at least 2 rows; {reader.path} has {int(m)}.")
-    c = len(reader.basis_names)
+    c = len(reader.model.basis_names)
     every = np.ones(blocks.first.size, bool)
-    w = reader.weights[:, col_idx]
+    w = reader.model.weights[:, col_idx]
     if c:
         gram = blocks.stack("gram", every).sum(axis=0).reshape(c, c)
         gram_abs = blocks.stack("gram_abs", every).sum(axis=0).reshape(c, c)
@@ -802,7 +790,7 @@ def _gram_covariance(reader, columns: Any = None):
     cov = (cov + cov.T) / 2.0
     cols = reader.columns_table
     err_l2 = cols.column("err_l2").to_numpy()[col_idx]
-    steps = np.where(np.isfinite(reader.residual_step[col_idx]), reader.residual_step[col_idx], 0.0)
+    steps = np.where(np.isfinite(reader.model.residual_step[col_idx]), reader.model.residual_step[col_idx], 0.0)
     q_sq = blocks.stack("q_sq", every)[:, col_idx].sum(axis=0)
     ov_sq = blocks.stack("ov_sq", every)[:, col_idx].sum(axis=0)
     delta = _up(np.sqrt(_up(err_l2**2 + ov_sq)) + steps * np.sqrt(_up(q_sq)))

@@ -76,24 +76,6 @@ class ArchiveReader:
             raise CorruptArchiveError(f"{self.path} could not be read ({exc}); the archive is damaged.") from None
         self.seal = RowFileSeal(self.path, self.manifest, self._metadata)
 
-    # the fitted model's arrays under the names store/aggregate.py reads them by (new code:
-    # ``reader.model``; shapes and meanings in ``model.FittedModel``)
-    offset = property(lambda self: self.model.offset)
-    weights = property(lambda self: self.model.weights)
-    fill = property(lambda self: self.model.fill)
-    err_max_col = property(lambda self: self.model.err_max)
-    ledger_scale = property(lambda self: self.model.ledger_scale)
-    basis_names = property(lambda self: self.model.basis_names)
-    basis_stored = property(lambda self: self.model.basis_stored)
-    basis_step = property(lambda self: self.model.basis_step)
-    is_basis = property(lambda self: self.model.is_basis)
-    residual_step = property(lambda self: self.model.residual_step)
-    lower = property(lambda self: self.model.lower)
-    upper = property(lambda self: self.model.upper)
-    anchor_positions = property(lambda self: self.model.anchor_positions)
-    anchor_values = property(lambda self: self.model.anchor_values)
-    anchor_nulls = property(lambda self: self.model.anchor_nulls)
-
     @property
     def version(self) -> str:
         """This archive version's identity: the SHA-256 of its manifest (an append or an

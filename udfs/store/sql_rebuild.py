@@ -17,11 +17,24 @@ import numpy as np
 
 from . import arithmetic
 from .model import FittedModel
-from .sql_text import sql_literal
+from .sql_text import quote_identifier, sql_literal
 
-__all__ = ["double_list", "derived_value_sql", "stored_bound_sql", "served_sql", "row_bound_sql"]
+__all__ = ["double_list", "basis_value_sql", "derived_value_sql", "stored_bound_sql", "served_sql", "row_bound_sql"]
 
 U = arithmetic.UNIT_ROUNDOFF
+
+
+def basis_value_sql(model: FittedModel, t: int) -> str:
+    """SQL of the filled value of basis entry t (code * step where stored as codes; the fill
+    where NULL or not finite), as DOUBLE: the same value ``FittedModel.basis_values`` gives."""
+    column = quote_identifier(model.basis_stored[t])
+    fill = sql_literal(float(model.fill[t]))
+    step = model.basis_step[t]
+    if np.isfinite(step):
+        value = f"(CAST({column} AS DOUBLE) * {sql_literal(float(step))})"
+    else:
+        value = f"CAST({column} AS DOUBLE)"
+    return f"(CASE WHEN isfinite({value}) THEN {value} ELSE {fill} END)"
 
 
 def double_list(values) -> str:
