@@ -449,7 +449,8 @@ def _compress(src, new_writer, opts: CompressOptions) -> Path | str:
         written = _write(src, new_writer, opts, numeric, passthrough, rows, profile, fingerprint,
                          transform, sketch, build, passes, read)
         verdict = goal.verdict(written, transform, sketch)
-        last = attempt == _MAX_ATTEMPTS - 1 or build.n_columns >= width
+        last = (attempt == _MAX_ATTEMPTS - 1 or build.n_columns >= width
+                or (goal.target_bytes is not None and build.n_columns == 0))
         if verdict is not None and last and goal.target_bytes is None:
             written.abort()
             raise InvalidInputError(f"rankfold could not meet the target: {verdict}")
@@ -460,6 +461,12 @@ def _compress(src, new_writer, opts: CompressOptions) -> Path | str:
                 return written.commit(goal, attempt + 1)
             except SizeTargetMissedError as missed:
                 smallest = missed.total if smallest is None else min(smallest, missed.total)
+                if last and build.n_columns == 0:
+                    raise SizeTargetMissedError(
+                        f"target_bytes={goal.target_bytes} is below the smallest archive rankfold "
+                        f"can write for this source: {smallest} bytes, every file and the manifest "
+                        "counted (no basis columns: the exactly kept columns, row ids and column "
+                        f"offsets). Raise the target to at least {smallest}.", total=smallest) from None
                 if last:
                     raise SizeTargetMissedError(
                         f"target_bytes={goal.target_bytes} cannot be met: the smallest archive "
@@ -473,8 +480,6 @@ def _compress(src, new_writer, opts: CompressOptions) -> Path | str:
 
 
 _MAX_ATTEMPTS = 6
-# the least a manifest takes (measured 3.1 kB for one numeric column of 50 rows at rank 1)
-_MANIFEST_FLOOR_BYTES = 3_000
 
 
 def _beyond_float64(schema: pa.Schema, numeric: list[str], profile: ColumnProfile) -> list[str]:
@@ -633,14 +638,10 @@ def _first_build(opts, goal, rows, width, sketch, profile, transform, sample, nu
             res_svd=res_svd, exact_bytes=exact, fixed_bytes=fixed,
             methods=(opts.method,) if opts.method else ("cur", "svd"))
         if plan is None:
-            least = int(fixed + rows * exact.min()) + _MANIFEST_FLOOR_BYTES
-            raise SizeTargetMissedError(
-                f"target_bytes={goal.target_bytes} is below the smallest archive rankfold can "
-                f"write for this source: about {least} bytes by the size model (the exactly "
-                "kept columns and row ids alone need most of it, the manifest and small tables "
-                f"the rest). Raise the target to at least {least}; if that is still refused, "
-                "the refusal names the size of the smallest archive actually written."
-            )
+            # below the size model's least: write the smallest archive (no basis columns) and
+            # measure it, so that the refusal names a size that is true, not a model's guess
+            return _Build("cur", 0, 0, 0, None, "no basis columns: target_bytes is below the "
+                          "size model's smallest archive")
         return _Build(plan.method, plan.rank, plan.columns,
                       min(2 * plan.columns, rows) if plan.method == "cur" else 0, plan, plan.reason)
     if goal.max_abs_error is not None:
