@@ -83,7 +83,7 @@ def _summary_text(info: dict[str, Any]) -> str:
         f"sketch        {_sketch_text(info['sketch'])}",
         f"size          {info['archive_bytes']:,} bytes in {len(info['files'])} files and the manifest "
         f"(numeric block as raw float64: {info['raw_float64_bytes']:,} bytes)",
-        f"against source {cli_spelling(info['size_comparison'])}",
+        f"compared      {cli_spelling(info['size_comparison'])}",
         "kept exactly:",
         f"  other columns      {_names(info['exact_columns'])}",
         f"  basis columns      {len(info['basis_columns'])}: {_names(info['basis_columns'])}",
