@@ -33,6 +33,7 @@ from __future__ import annotations
 import argparse
 import gc
 import io
+import json
 import shutil
 import sys
 import time
@@ -174,7 +175,8 @@ def entropy_bytes(table: pa.Table, tol: np.ndarray) -> int:
 
 
 def float32_bytes(table: pa.Table) -> int:
-    cast = pa.table([table.column(j).cast(pa.float32()) for j in range(table.num_columns)],
+    # an unchecked cast: integers beyond 2^24 (a volume column) are rounded to float32 too
+    cast = pa.table([table.column(j).cast(pa.float32(), safe=False) for j in range(table.num_columns)],
                     names=table.column_names)
     sink = io.BytesIO()
     pq.write_table(cast, sink, compression="zstd", compression_level=ZSTD_LEVEL, use_dictionary=False,
@@ -393,11 +395,24 @@ def main() -> None:
     parser.add_argument("--keep", action="store_true", help="keep the archives under --out")
     parser.add_argument("--no-fixed-rank", action="store_true",
                         help="skip the fixed-rank comparison at equal RMS error")
+    parser.add_argument("--save", help="also write the measured rows to this JSON file")
+    parser.add_argument("--report-from", help="print the report of JSON files written by --save "
+                        "(comma-separated, e.g. runs of table subsets in parallel) and stop")
     args = parser.parse_args()
     out = Path(args.out)
     out.mkdir(parents=True, exist_ok=True)
     tolerances = tuple(float(t) for t in args.tolerances.split(","))
     variants = args.variants.split(",")
+    if args.report_from:
+        rows, fixed = [], []
+        for name in args.report_from.split(","):
+            saved = json.loads(Path(name).read_text())
+            rows += saved["rows"]
+            fixed += saved["fixed"]
+        report(rows, variants)
+        if fixed:
+            report_fixed_rank(fixed)
+        return
     for v in variants:
         if v not in VARIANTS:
             raise SystemExit(f"unknown variant {v!r}; choose from {', '.join(VARIANTS)}")
@@ -420,6 +435,8 @@ def main() -> None:
         rows += bench(name, table, out, tolerances, variants, args.keep)
         if not args.no_fixed_rank:
             fixed += bench_fixed_rank(name, table, out, args.keep)
+        if args.save:  # after every table, so a late failure keeps what was measured
+            Path(args.save).write_text(json.dumps({"rows": rows, "fixed": fixed}))
     print(f"\nTotal {time.perf_counter() - started:.0f} s")
     report(rows, variants)
     if fixed:
