@@ -111,6 +111,15 @@ MUTATIONS = {
         "udfs/passes/plan.py", "                if unknown:\n",
         "                if False:\n",
         ["tests/test_plan.py"]),
+    "archive size leaves the manifest out": (
+        "udfs/store/manifest.py", '        if data + len(text.encode("utf-8")) == total:',
+        '        if True:',
+        ["tests/test_sizes.py"]),
+    "target_bytes not checked as written": (
+        "udfs/passes/compress.py",
+        "            path = self.writer.commit(self.manifest, self.files, at_most=goal.target_bytes)",
+        "            path = self.writer.commit(self.manifest, self.files, at_most=None)",
+        ["tests/test_sizes.py"]),
 }
 
 

@@ -12,10 +12,12 @@ import pyarrow as pa
 from rankfold.udfs.errors import InvalidInputError, RankfoldError
 from rankfold.udfs.store import aggregate as _aggregate
 from rankfold.udfs.store import layout, remote
+from rankfold.udfs.store.manifest import manifest_text
 from rankfold.udfs.store.reader import ArchiveReader, Rebuilt
 from rankfold.udfs.store.rebuild_log import RebuildLog
 
-__all__ = ["Archive", "Cell", "Keys", "bound_column_names", "describe_guarantee", "error_warnings",
+__all__ = ["Archive", "Cell", "Keys", "bound_column_names", "describe_guarantee", "describe_sizes",
+           "error_warnings",
            "LARGE_ERROR_STD"]
 
 Cell = namedtuple("Cell", ["value", "bound"])
@@ -64,9 +66,25 @@ class Archive:
 
     @property
     def nbytes(self) -> int:
-        """Bytes of the archive's data files (those the manifest lists with their SHA-256; the
-        manifest itself, a few kilobytes, is not counted). ``target_bytes`` is met in this measure."""
-        return int(sum(f["bytes"] for f in self.manifest["files"]))
+        """Bytes of the whole archive version opened: every file the manifest lists plus
+        ``manifest.json`` itself (its text as written, one field per line). ``target_bytes``
+        is met in this measure, and ``manifest["achieved"]["bytes"]`` records it."""
+        return _data_bytes(self.manifest) + len(manifest_text(self.manifest).encode("utf-8"))
+
+    @property
+    def source_bytes(self) -> int | None:
+        """Size of the source this archive was compressed from, in bytes: its Parquet files
+        as stored, or else its numeric columns as raw values (rows x bytes per value of each
+        column's type); ``manifest["source_size"]["measure"]`` says which. None for archives
+        written before the source's size was recorded."""
+        recorded = self.manifest.get("source_size")
+        return int(recorded["bytes"]) if isinstance(recorded, dict) else None
+
+    @property
+    def size_comparison(self) -> str:
+        """One plain sentence: the archive's size beside its source's, and plainly whether
+        the archive is smaller."""
+        return describe_sizes(self.nbytes, self.manifest.get("source_size"))
 
     @property
     def numeric_columns(self) -> list[str]:
@@ -283,6 +301,33 @@ def describe_guarantee(manifest: dict[str, Any]) -> str:
                 f"its column's tolerance of the true value{tail}")
     return ("no tolerance was asked for (a rank or relative-error target only): each value "
             "comes with a bound, but no limit on the bounds was guaranteed")
+
+
+_SOURCE_MEASURES = {
+    "parquet_files": "its Parquet files as stored",
+    "raw_numeric": "its numeric columns as raw values (rows x bytes per value of each column's type)",
+}
+
+
+def describe_sizes(archive_bytes: int, source_size: dict[str, Any] | None) -> str:
+    """The sentence of :attr:`Archive.size_comparison` (``source_size``: the manifest's
+    record, ``{"bytes": int, "measure": "parquet_files" | "raw_numeric"}``, or None)."""
+    head = f"The archive takes {archive_bytes:,} bytes (every file and the manifest counted)"
+    if not isinstance(source_size, dict):
+        return head + "; the source's size was not recorded (an archive from an older rankfold)."
+    source = int(source_size["bytes"])
+    measure = _SOURCE_MEASURES.get(source_size.get("measure"), "as recorded")
+    head += f"; the source takes {source:,} bytes ({measure})"
+    if archive_bytes < source:
+        return head + f": the archive is {source / archive_bytes:.3g}x smaller."
+    larger = ("the same size" if archive_bytes == source else
+              f"{archive_bytes / source:.3g}x larger" if source > 0 else "larger")
+    return head + (f": the archive is NOT smaller than its source ({larger}); keeping the "
+                   "source as it is costs no more space and loses nothing.")
+
+
+def _data_bytes(manifest: dict[str, Any]) -> int:
+    return int(sum(f["bytes"] for f in manifest["files"]))
 
 
 def error_warnings(manifest: dict[str, Any]) -> list[str]:

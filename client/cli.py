@@ -81,8 +81,9 @@ def _summary_text(info: dict[str, Any]) -> str:
         f"method        {info['method']}, rank {info['rank']} ({info['rank_reason']}), "
         f"transform {info['transform']}",
         f"sketch        {_sketch_text(info['sketch'])}",
-        f"size          {info['archive_bytes']:,} bytes in {len(info['files'])} files "
+        f"size          {info['archive_bytes']:,} bytes in {len(info['files'])} files and the manifest "
         f"(numeric block as raw float64: {info['raw_float64_bytes']:,} bytes)",
+        f"compared      {cli_spelling(info['size_comparison'])}",
         "kept exactly:",
         f"  other columns      {_names(info['exact_columns'])}",
         f"  basis columns      {len(info['basis_columns'])}: {_names(info['basis_columns'])}",
@@ -229,6 +230,7 @@ def cmd_compress(args: argparse.Namespace) -> int:
     text = (f"compressed {info['shape'][0]} rows x {info['shape'][1]} numeric columns into "
             f"{info['archive']} in {elapsed:.2f} s: rank {info['rank']}, {info['archive_bytes']:,} bytes, "
             f"largest error {_fmt(e.get('largest_error_over_std'))} column standard deviations\n"
+            f"size: {cli_spelling(info['size_comparison'])}\n"
             f"guaranteed: {cli_spelling(info['guarantee'])}\n"
             + "".join(f"warning: {cli_spelling(w)}\n" for w in info["warnings"])
             + f"details: rankfold inspect {info['archive']}")

@@ -106,6 +106,9 @@ def summary(archive: Any) -> dict[str, Any]:
         "cells_stored_exactly_outside_factors": m["errors"].get("cells_stored_exactly_outside_factors"),
         "archive_bytes": arch.nbytes,
         "raw_float64_bytes": rows * width * 8,
+        "source_bytes": arch.source_bytes,
+        "source_measure": (m.get("source_size") or {}).get("measure"),
+        "size_comparison": arch.size_comparison,
         "files": files,
         "errors": arch.errors,
         "guarantee": arch.guarantee,
@@ -589,8 +592,9 @@ def _html(data: dict[str, Any], images: dict[str, str | None]) -> str:
         ["selection", f"column_method {_option(info['options'], 'column_method')}, row_method "
                       f"{_option(info['options'], 'row_method')}, "
                       f"link {info['options'].get('link')}, seed {info['seed']}"],
-        ["archive size", f"{info['archive_bytes']:,} bytes in {len(info['files'])} files "
+        ["archive size", f"{info['archive_bytes']:,} bytes in {len(info['files'])} files and the manifest "
                          f"(raw float64 numeric block: {info['raw_float64_bytes']:,} bytes)"],
+        ["against the source", info["size_comparison"]],
         ["relative Frobenius error", f"{_g(e.get('relative_frobenius'))} (best possible at rank "
                                      f"{info['rank']}: {_g(e.get('optimal_relative_frobenius'))})"],
         ["worst column", f"{e.get('worst_column')}: relative RMS {_g(e.get('worst_column_relative_rms'))}"],

@@ -121,10 +121,17 @@ def test_real_process_exit_codes(files, tmp_path):
 def test_compress_parquet_text_and_json(files, tmp_path, capsys):
     code, out, err = run(capsys, "compress", files["source"], tmp_path / "a.rankfold", "--rank", RANK, "--key", "id")
     assert code == 0 and err == ""
-    size = rankfold.open(tmp_path / "a.rankfold").manifest["files"]
+    # sizes as the file system reports them (os.stat): every file of the archive folder,
+    # manifest included, and the source Parquet file
+    size = sum(p.stat().st_size for p in (tmp_path / "a.rankfold").iterdir())
+    source = Path(files["source"]).stat().st_size
+    smaller = f"the archive is {source / size:.3g}x smaller" if size < source else "the archive is NOT smaller"
     assert re.fullmatch(rf"compressed {ROWS} rows x {COLS} numeric columns into {tmp_path / 'a.rankfold'} in "
-                        rf"\d+\.\d\d s: rank {RANK}, {sum(f['bytes'] for f in size):,} bytes, largest "
-                        rf"error \d\.\d+(e-\d+)? column standard deviations\nguaranteed: no tolerance was "
+                        rf"\d+\.\d\d s: rank {RANK}, {size:,} bytes, largest "
+                        rf"error \d\.\d+(e-\d+)? column standard deviations\n"
+                        rf"size: The archive takes {size:,} bytes \(every file and the manifest counted\); the "
+                        rf"source takes {source:,} bytes \(its Parquet files as stored\): {re.escape(smaller)}.*\n"
+                        rf"guaranteed: no tolerance was "
                         rf"asked for .*\n(warning: .*\n)?details: rankfold inspect {tmp_path / 'a.rankfold'}\n", out), out
     code, out, _ = run(capsys, "compress", files["source"], tmp_path / "b.rankfold", "--rank", RANK, "--json",
                        "--exact-columns", "m03", "--seed", 4)
@@ -239,8 +246,12 @@ def test_inspect_json_matches_the_manifest(archive, capsys):
     assert data["shape"] == manifest["shape"] and data["errors"] == manifest["errors"]
     assert data["basis_columns"] == [b["name"] for b in manifest["basis"]]
     assert data["anchor_rows"] == manifest["anchors"]
-    assert data["archive_bytes"] == sum(f["bytes"] for f in manifest["files"])
+    # every file of the archive as the file system reports it (os.stat), manifest.json included
+    on_disk = sum(p.stat().st_size for p in Path(archive).iterdir())
+    assert data["archive_bytes"] == on_disk == manifest["achieved"]["bytes"]
     assert data["raw_float64_bytes"] == ROWS * COLS * 8
+    assert data["source_bytes"] == manifest["source_size"]["bytes"] > 0
+    assert data["source_measure"] == manifest["source_size"]["measure"]
 
 
 def _damaged_copy(files, tmp_path) -> Path:

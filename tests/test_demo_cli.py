@@ -12,7 +12,7 @@ import numpy as np
 
 import rankfold
 from rankfold.cli import CAUTION, main
-from rankfold.demo import heat_network_readings, run_demo
+from rankfold.demo import DEMO_ARCHIVE, heat_network_readings, run_demo
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -31,9 +31,16 @@ def test_run_demo_reports_sizes_errors_and_sound_bounds(tmp_path):
     assert report["archive_bytes"] < report["lossless_parquet_bytes"]
     ex = report["example"]
     assert abs(ex["true"] - ex["rebuilt"]) <= ex["bound"]
-    # rerunning replaces the demo's own archive (it is an archive, so overwrite is allowed)
+    # rerunning replaces the demo's own archive (it is an archive, so overwrite is allowed):
+    # the same data files again; the whole size (os.stat of the listed files and manifest.json)
+    # grows only by the new version's longer file names in the manifest
+    folder = tmp_path / "demo" / DEMO_ARCHIVE
+    first = rankfold.open(folder).manifest["files"]
     again = run_demo(str(tmp_path / "demo"), rows=3000, quiet=True)
-    assert again["archive_bytes"] == report["archive_bytes"]
+    files = rankfold.open(folder).manifest["files"]
+    assert [f["bytes"] for f in files] == [f["bytes"] for f in first]
+    listed = sum((folder / f["name"]).stat().st_size for f in files)
+    assert again["archive_bytes"] == listed + (folder / "manifest.json").stat().st_size
 
 
 def _archive(tmp_path) -> Path:

@@ -10,6 +10,7 @@ built-in exception a caller would naturally catch, so ``except ValueError`` keep
     |   +-- RankTooLargeError                   rank or sample sizes exceed the table
     |   +-- UnknownOptionError (TypeError too)  a misspelled or unsupported option
     |   +-- ConditionRefusedError               a row condition that is not one plain expression
+    |   +-- SizeTargetMissedError               no archive within target_bytes (carries the size)
     +-- UnknownColumnError (LookupError)        a column name the archive does not hold
     +-- RowOutOfRangeError (IndexError)         a row position or key the archive does not hold
     +-- ArchiveExistsError (FileExistsError)    refusing to replace an existing archive
@@ -32,6 +33,7 @@ __all__ = [
     "RankTooLargeError",
     "UnknownOptionError",
     "ConditionRefusedError",
+    "SizeTargetMissedError",
     "UnknownColumnError",
     "RowOutOfRangeError",
     "ArchiveExistsError",
@@ -71,6 +73,16 @@ class ConditionRefusedError(InvalidInputError):
     """A row condition (``--where``, ``predicate :=``, ``where=``) that is not one expression
     over the allowed columns: a second statement, a subquery, a table or window function, a
     function outside the allow-list, or a column it may not use."""
+
+
+class SizeTargetMissedError(InvalidInputError):
+    """The archive cannot be written within ``target_bytes``. ``total`` is the size in bytes,
+    every file and the manifest counted, of the smallest archive that was written (None when
+    none was: the refusal came from the size model before any write)."""
+
+    def __init__(self, message: str, total: int | None = None):
+        super().__init__(message)
+        self.total = total
 
 
 class UnknownColumnError(RankfoldError, LookupError):

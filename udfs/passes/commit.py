@@ -275,8 +275,10 @@ class ArchiveWriter:
         write_small_table(self.temp / name, table, factor_columns)
 
     # -- finish ----------------------------------------------------------------------------
-    def commit(self, manifest: dict[str, Any], file_names: list[str]) -> Path:
+    def commit(self, manifest: dict[str, Any], file_names: list[str], *, at_most: int | None = None) -> Path:
         """Record files with sizes and SHA-256, write the manifest, publish (module docstring).
+        With ``at_most``, an archive larger than that (manifest included) is refused before
+        it is published (``write_manifest`` raises ``SizeTargetMissedError``).
 
         Into a folder that already holds files, every file name gets this version's token
         (``versions.versioned_name``), so no name of an older version is reused."""
@@ -309,7 +311,7 @@ class ArchiveWriter:
             names = [renamed[name] for name in names]
         keyed = [layout.ROW_ID] + list(manifest.get("exact_columns", []))
         manifest["files"] = [file_entry(self.temp, name, keyed) for name in names]
-        write_manifest(self.temp, manifest)
+        write_manifest(self.temp, manifest, at_most=at_most)
         if in_place:
             versions.publish_in_place(self.target, self.temp, names, expect=None)
         else:

@@ -27,7 +27,8 @@ import numpy as np
 import pyarrow as pa
 
 from ..version import __version__
-from ..errors import EmptySourceError, InvalidInputError, NoNumericColumnsError, SourceChangedError
+from ..errors import (EmptySourceError, InvalidInputError, NoNumericColumnsError,
+                      SizeTargetMissedError, SourceChangedError)
 from ..factor import cur as _cur
 from ..factor.svd import gavish_donoho_rank
 from ..store import layout, remote, versions
@@ -47,7 +48,7 @@ from .profile import (SUB_BLOCK_ROWS, ColumnProfile, Fingerprint, Transform, new
 from .select import AnchorRows, AnchorScan, anchor_partial, merge_anchor_partials, sketch_of
 from .refit import KAPPA, OutlierScreen
 from .encode import EncodeResult, column_error_figures, column_statistics, encode_pass
-from . import targets
+from . import sizes, targets
 
 __all__ = ["compress"]
 
@@ -429,21 +430,36 @@ def _compress(src, new_writer, opts: CompressPlan) -> Path | str:
     goal.serving(src.schema, numeric, profile)
     inputs = _Inputs(numeric, passthrough, rows, profile, fingerprint, transform, sketch, read)
     build = _first_build(opts, goal, inputs, sample)
+    smallest = None  # the smallest archive measured exactly (target_bytes), manifest included
     for attempt in range(_MAX_ATTEMPTS):
         written = _write(src, new_writer, opts, inputs, build, passes)
         verdict = goal.verdict(written, transform, sketch)
-        if verdict is None or attempt == _MAX_ATTEMPTS - 1 or build.n_columns >= width:
-            if verdict is not None and goal.target_bytes is None:
-                written.abort()
-                raise InvalidInputError(f"rankfold could not meet the target: {verdict}")
-            if verdict is not None:
-                written.abort()
-                raise InvalidInputError(
-                    f"target_bytes={goal.target_bytes} cannot be met: {verdict}. Raise the "
-                    "target, or ask for an error target instead."
-                )
-            return written.commit(goal, attempt + 1)
-        written.abort()
+        last = (attempt == _MAX_ATTEMPTS - 1 or build.n_columns >= width
+                or (goal.target_bytes is not None and build.n_columns == 0))
+        if verdict is not None and last and goal.target_bytes is None:
+            written.abort()
+            raise InvalidInputError(f"rankfold could not meet the target: {verdict}")
+        if verdict is None or last:
+            # target_bytes: the size is checked exactly as the manifest is written (every file
+            # and the manifest counted); the verdict above only steered by an estimate
+            try:
+                return written.commit(goal, attempt + 1)
+            except SizeTargetMissedError as missed:
+                smallest = missed.total if smallest is None else min(smallest, missed.total)
+                if last and build.n_columns == 0:
+                    raise SizeTargetMissedError(
+                        f"target_bytes={goal.target_bytes} is below the smallest archive rankfold "
+                        f"can write for this source: {smallest} bytes, every file and the manifest "
+                        "counted (no basis columns: the exactly kept columns, row ids and column "
+                        f"offsets). Raise the target to at least {smallest}.", total=smallest) from None
+                if last:
+                    raise SizeTargetMissedError(
+                        f"target_bytes={goal.target_bytes} cannot be met: the smallest archive "
+                        f"rankfold wrote for this source in {attempt + 1} attempts takes {smallest} "
+                        "bytes, every file and the manifest counted. Raise the target to at least "
+                        f"{smallest}, or ask for an error target instead.", total=smallest) from None
+        else:
+            written.abort()
         build = goal.next_build(build, width, rows, last=attempt == _MAX_ATTEMPTS - 2)
     raise AssertionError("unreachable")
 
@@ -608,11 +624,10 @@ def _first_build(opts, goal, inputs: _Inputs, sample) -> _Build:
                       for m in ((opts.method,) if opts.method else ("cur", "svd"))]
         plan = targets.plan_for_bytes(float(goal.target_bytes), candidates, exact, fixed)
         if plan is None:
-            raise InvalidInputError(
-                f"target_bytes={goal.target_bytes} is below the smallest archive rankfold can "
-                f"write for this source (about {int(fixed + rows * exact.min())} bytes: the "
-                "exactly kept columns and row ids alone need most of it). Raise the target."
-            )
+            # below the size model's least: write the smallest archive (no basis columns) and
+            # measure it, so that the refusal names a size that is true, not a model's guess
+            return _Build("cur", 0, 0, 0, None, "no basis columns: target_bytes is below the "
+                          "size model's smallest archive")
         return _Build(plan.method, plan.rank, plan.columns,
                       min(2 * plan.columns, rows) if plan.method == "cur" else 0, plan, plan.reason)
     if goal.max_abs_error is not None:
@@ -652,7 +667,9 @@ class _Written:
 
     def __init__(self, writer, result, manifest, files):
         self.writer, self.result, self.manifest, self.files = writer, result, manifest, files
-        self.bytes = sum(writer.size_of(f) for f in files)
+        # data files as written plus an estimate of the manifest (steers target_bytes attempts;
+        # the size recorded and checked is exact: ``commit``)
+        self.bytes = sum(writer.size_of(f) for f in files) + sizes.manifest_allowance(manifest, files)
 
     def abort(self) -> None:
         self.writer.abort()
@@ -660,14 +677,14 @@ class _Written:
     def commit(self, goal: _Goal, attempts: int) -> Path | str:
         self.manifest["targets"] = goal.recorded(self.manifest["numeric_columns"])
         self.manifest["achieved"] = {
-            "bytes": int(self.bytes),  # the data files; manifest.json comes on top
+            "bytes": int(self.bytes),  # made exact by write_manifest: every file + manifest.json
             "relative_frobenius": self.manifest["errors"]["relative_frobenius"],
             "largest_error": self.manifest["errors"]["largest_error"],
             "corrections": self.result.corrections,
             "attempts": attempts,
         }
         try:
-            path = self.writer.commit(self.manifest, self.files)
+            path = self.writer.commit(self.manifest, self.files, at_most=goal.target_bytes)
         except BaseException:
             self.writer.abort()
             raise
@@ -924,6 +941,7 @@ def _manifest(src, opts, inputs: _Inputs, build: _Build, model: FittedModel, pro
         "archive_id": str(uuid.uuid4()),
         "created_at": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
         "source": src.description,
+        "source_size": sizes.source_size(src.schema, numeric, rows, *sizes.parquet_files_of(src)),
         "shape": [rows, len(numeric)],
         "schema": [{"name": f.name, "type": str(f.type), "role": roles[f.name]} for f in src.schema],
         "numeric_columns": numeric,

@@ -100,9 +100,11 @@ class StoreArchiveWriter:
         """A small table, as ``ArchiveWriter.write_table`` writes it (``write_small_table``)."""
         write_small_table(self.temp / name, table, factor_columns)
 
-    def commit(self, manifest: dict[str, Any], file_names: list[str]) -> str:
+    def commit(self, manifest: dict[str, Any], file_names: list[str], *, at_most: int | None = None) -> str:
         """Move the row files into place, upload the small tables, then the manifest (the
-        commit point); returns the URL. On failure, removes what this writer created."""
+        commit point); returns the URL. On failure, removes what this writer created. With
+        ``at_most``, an archive larger than that (manifest included) is refused before the
+        manifest is uploaded (``write_manifest`` raises ``SizeTargetMissedError``)."""
         try:
             self._refuse_if_committed()
             entries = []
@@ -117,7 +119,7 @@ class StoreArchiveWriter:
                     entries.append(file_entry(self.temp, name))
                     self._written[name] = self.store.put(self.temp / name, name)
             manifest["files"] = entries
-            write_manifest(self.temp, manifest)
+            write_manifest(self.temp, manifest, at_most=at_most)
             self._refuse_if_committed()
             self.store.put(self.temp / layout.MANIFEST, layout.MANIFEST)  # the commit point
         except BaseException:

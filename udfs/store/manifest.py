@@ -17,12 +17,13 @@ import os
 from pathlib import Path
 from typing import Any
 
-from ..errors import CorruptArchiveError, UnsupportedVersionError
+from ..errors import CorruptArchiveError, SizeTargetMissedError, UnsupportedVersionError
 from . import layout
 from .integrity import check_listed_files, footer_sha256, part_digests, sha256_of
 from .manifest_schema import DIGEST_FIELD, older_format_rules, validate
 
-__all__ = ["sha256_of", "file_entry", "entry_of", "write_manifest", "read_manifest", "check_files",
+__all__ = ["sha256_of", "file_entry", "entry_of", "write_manifest", "sealed_manifest_text",
+           "read_manifest", "check_files",
            "manifest_digest", "DIGEST_FIELD"]
 
 REQUIRED_KEYS = ("format", "format_version", "writer", "archive_id", "shape", "schema",
@@ -71,17 +72,55 @@ def manifest_text(manifest: dict[str, Any]) -> str:
     return "{\n" + ",\n".join(lines) + "\n}\n"
 
 
-def write_manifest(directory: Path, manifest: dict[str, Any]) -> None:
+def sealed_manifest_text(manifest: dict[str, Any]) -> str:
+    """The text of ``manifest.json`` for ``manifest``, sealed with its digest.
+
+    When the manifest records ``achieved.bytes``, that figure is made the size of the whole
+    archive: every listed file plus this text itself. The text holds its own size, so the
+    figure is found as a fixed point: start from the data files' total, write the text, add
+    its length, repeat until the figure no longer changes. The text grows only when the
+    figure gains a digit, so the figures rise monotonically and settle within a few rounds
+    (two in practice). Chosen over "data files here, readers add the manifest" so that the
+    manifest alone tells the truth to anyone who reads it (``rankfold inspect --json``, a
+    script), whatever reads it. ``manifest["achieved"]`` is replaced by a new dict holding the
+    figure (a dict shared with an older manifest, as an append copies it, is left alone)."""
+    body = {k: v for k, v in manifest.items() if k != DIGEST_FIELD}
+    if not isinstance(body.get("achieved"), dict) or "bytes" not in body["achieved"]:
+        return manifest_text({DIGEST_FIELD: manifest_digest(body), **body})
+    achieved = body["achieved"] = manifest["achieved"] = dict(body["achieved"])
+    data = sum(int(f["bytes"]) for f in body.get("files", []))
+    total = data
+    for _ in range(64):  # each round adds at least one digit to the figure or ends the loop
+        achieved["bytes"] = total
+        text = manifest_text({DIGEST_FIELD: manifest_digest(body), **body})
+        if data + len(text.encode("utf-8")) == total:
+            return text
+        total = data + len(text.encode("utf-8"))
+    raise AssertionError("the manifest's size did not settle")  # pragma: no cover - see above
+
+
+def write_manifest(directory: Path, manifest: dict[str, Any], *, at_most: int | None = None) -> None:
     """Write ``manifest.json`` durably (write, flush, fsync) and atomically: into a temporary
     file that then replaces the manifest in one rename, so a reader sees the old or the new
-    version, never a mix (an append commits a new archive version this way)."""
+    version, never a mix (an append commits a new archive version this way).
+
+    ``achieved.bytes``, when the manifest records it, becomes the whole archive's size, this
+    manifest included (:func:`sealed_manifest_text`). With ``at_most`` (a size target in
+    bytes), an archive whose whole size exceeds it is refused before anything is written:
+    :class:`SizeTargetMissedError` carries the size."""
     path = directory / layout.MANIFEST
     temp = directory / f".{layout.MANIFEST}.{os.getpid()}.tmp"
-    body = {k: v for k, v in manifest.items() if k != DIGEST_FIELD}
-    sealed = {DIGEST_FIELD: manifest_digest(body), **body}
+    text = sealed_manifest_text(manifest)
+    if at_most is not None:
+        total = sum(int(f["bytes"]) for f in manifest.get("files", [])) + len(text.encode("utf-8"))
+        if total > at_most:
+            raise SizeTargetMissedError(
+                f"target_bytes={at_most} cannot be met: the archive as written takes {total} "
+                f"bytes ({len(text.encode('utf-8'))} of them its manifest). Raise the target to "
+                f"at least {total}, or ask for an error target instead.", total=total)
     try:
         with open(temp, "w", encoding="utf-8") as handle:
-            handle.write(manifest_text(sealed))
+            handle.write(text)
             handle.flush()
             os.fsync(handle.fileno())
         os.replace(temp, path)
