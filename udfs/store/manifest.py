@@ -72,6 +72,15 @@ def manifest_text(manifest: dict[str, Any]) -> str:
     return "{\n" + ",\n".join(lines) + "\n}\n"
 
 
+def _listed_bytes(manifest: dict[str, Any]) -> int:
+    """The total ``bytes`` of the manifest's ``files`` entries. A malformed entry counts 0:
+    writers list well-formed entries only, and tests that seal a damaged manifest on purpose
+    rely on the reader's schema check (``manifest_schema.validate``) to refuse it."""
+    files = manifest.get("files")
+    return sum(f["bytes"] for f in files if isinstance(f, dict) and type(f.get("bytes")) is int
+               ) if isinstance(files, list) else 0
+
+
 def sealed_manifest_text(manifest: dict[str, Any]) -> str:
     """The text of ``manifest.json`` for ``manifest``, sealed with its digest.
 
@@ -88,7 +97,7 @@ def sealed_manifest_text(manifest: dict[str, Any]) -> str:
     if not isinstance(body.get("achieved"), dict) or "bytes" not in body["achieved"]:
         return manifest_text({DIGEST_FIELD: manifest_digest(body), **body})
     achieved = body["achieved"] = manifest["achieved"] = dict(body["achieved"])
-    data = sum(int(f["bytes"]) for f in body.get("files", []))
+    data = _listed_bytes(body)
     total = data
     for _ in range(64):  # each round adds at least one digit to the figure or ends the loop
         achieved["bytes"] = total
@@ -112,7 +121,7 @@ def write_manifest(directory: Path, manifest: dict[str, Any], *, at_most: int | 
     temp = directory / f".{layout.MANIFEST}.{os.getpid()}.tmp"
     text = sealed_manifest_text(manifest)
     if at_most is not None:
-        total = sum(int(f["bytes"]) for f in manifest.get("files", [])) + len(text.encode("utf-8"))
+        total = _listed_bytes(manifest) + len(text.encode("utf-8"))
         if total > at_most:
             raise SizeTargetMissedError(
                 f"target_bytes={at_most} cannot be met: the archive as written takes {total} "
