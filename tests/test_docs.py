@@ -125,3 +125,36 @@ def test_the_command_line_tour_runs_as_written(tmp_path, monkeypatch, capsys):
         # the same output up to the figures (timings and last digits vary by machine)
         first = lambda text: re.sub(r"[0-9][0-9.,e+-]*", "#", text)  # noqa: E731
         assert first(printed[0]) == first(shown[0]) if shown else printed == [], lines[i]
+
+
+def _layout_block() -> str:
+    text = (ROOT / "DEVELOPERS.md").read_text(encoding="utf-8")
+    return text[text.index("## Layout"):text.index("## Layers and imports")]
+
+
+def _layout_entries() -> tuple[set[str], set[str]]:
+    """(every module path named on a line of the layout, the paths a line starts with), each
+    as folder/name under the folder heading the line sits under."""
+    named, leading, folder = set(), set(), None
+    for line in _layout_block().splitlines():
+        heading = re.match(r"^(client|udfs)/\s|^  (store|factor|passes|sql)/\s", line)
+        if heading:
+            folder = heading.group(1) or f"udfs/{heading.group(2)}"
+            continue
+        if folder is None:
+            continue
+        named.update(f"{folder}/{name}" for name in re.findall(r"(?<![/\w])(\w+\.py)\b", line))
+        first = re.match(r"^\s+(\w+\.py)\b", line)
+        if first:
+            leading.add(f"{folder}/{first.group(1)}")
+    return named, leading
+
+
+def test_the_developers_layout_matches_the_tree():
+    # every module of the two import roots is named in DEVELOPERS.md's layout under its own
+    # folder, and every module a layout line starts with exists: a newcomer can trust the map
+    named, leading = _layout_entries()
+    modules = {p.relative_to(ROOT).as_posix() for root in ("client", "udfs") for p in (ROOT / root).rglob("*.py")
+               if p.name != "__init__.py"}
+    assert sorted(modules - named) == []
+    assert sorted(leading - modules) == []
