@@ -168,7 +168,7 @@ class Archive:
         ``bounds=True`` puts a float64 column ``<column>_bound`` right after each rebuilt
         column (see :func:`bound_column_names` for a name the source already uses): per cell,
         a guaranteed limit on |true value - value as returned| (0 for cells stored exactly,
-        NULL where the value is NULL). For integer columns it covers the rounding: the true
+        NULL cells included, as in :meth:`cell_bounds` and SQL). For integer columns it covers the rounding: the true
         value is an integer within ``b`` of the unrounded value, so the rounded one is within
         ``floor(b + 1/2)``."""
         return self._table(self._rebuild("rebuild", rows, columns), bounds=bounds)
@@ -202,7 +202,8 @@ class Archive:
                     bound = result.bounds[:, t]
                     if pa.types.is_integer(_arrow_type(field["type"])):
                         bound = np.floor(bound + 0.5)  # rounding to the integer nearest the value
-                    arrays.append(pa.array(bound, pa.float64(), mask=null))
+                    # a NULL cell is stored exactly: bound 0, as in cell_bounds() and SQL
+                    arrays.append(pa.array(np.where(null, 0.0, bound), pa.float64()))
                     name = bound_name[name]
             else:
                 continue

@@ -20,8 +20,7 @@ What "the same" means, cell by cell (DEVELOPERS.md, "The bound contract" and "Se
   numpy narrows to float32 and takes as bound the farthest float32 in [v - b, v + b]
   (arithmetic.serve): the values agree within half a float32 unit in the last place (plus
   the slack), and numpy's bound is at most that half unit above SQL's;
-* NULL cells: NULL in both; the bound is NULL in Archive.rebuild and 0 in SQL (both as
-  documented).
+* NULL cells: NULL in both, with bound 0 in both (stored exactly).
 
 Outside references: the invented source itself (every served value within its bound of the
 true value), numpy.spacing (units in the last place of float32) and numpy.rint (integers).
@@ -156,7 +155,7 @@ def test_sql_and_numpy_serve_the_same_cells(case):
         # NULLs in the same cells. Their bound: NULL from Archive.rebuild (its docstring), 0 from
         # SQL (README: "NULL/NaN/inf cells have bound 0"); two documented conventions, both pinned
         assert np.array_equal(sql_side.column(name).is_null().to_numpy(zero_copy_only=False), null), where
-        assert np.array_equal(np.isnan(py_bound), null) and np.all(sq_bound[null] == 0), where
+        assert np.all(py_bound[null] == 0) and np.all(sq_bound[null] == 0), where
         # NaN, +-inf and every cell numpy serves exactly: bit for bit, bound 0 in both
         exact = ~null & ((py_bound == 0) | ~np.isfinite(truth))
         assert np.array_equal(py[exact], sq[exact], equal_nan=True), where
