@@ -223,3 +223,91 @@ def test_a_manifest_that_moves_a_basis_entry_is_refused(tmp_path):
     write_manifest(path, manifest)
     with pytest.raises(rankfold.CorruptArchiveError, match="stores the basis entries in the row-file columns"):
         ArchiveReader(path)
+
+
+def _narrowest_codes(table: pa.Table) -> pa.Table:
+    """Every residual-code column cast to the narrowest unsigned type holding its values."""
+    for i, name in enumerate(table.column_names):
+        if name.startswith(layout.CODE_PATTERN.format("")):
+            top = int(pa.compute.max(table.column(i)).as_py() or 0)
+            kind = pa.uint8() if top < 2**8 else pa.uint16() if top < 2**16 else pa.uint32()
+            table = table.set_column(i, name, table.column(i).cast(kind))
+    return table
+
+
+def _served(path) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    from rankfold.sql_view import query
+
+    arch = rankfold.open(path)
+    names = arch.numeric_columns
+    sql = query(arch, "SELECT " + ", ".join(f'"{n}"' for n in names) + " FROM archive ORDER BY id")
+    return (arch.to_numpy(), arch.cell_bounds(),
+            np.column_stack([sql.column(n).to_numpy(zero_copy_only=False) for n in names]).astype(float))
+
+
+def test_residual_codes_of_every_unsigned_width_read_alike_in_numpy_and_sql(tmp_path):
+    # zigzag codes (common practice) hold the same integers in uint8, uint16 and uint32; the
+    # numpy decoder and the SQL text (layout.code_sql) must give the same values from each
+    path = tmp_path / "a"
+    rankfold.compress(_table(), path, key="id", max_abs_error=0.05, seed=0)
+    values, bounds, sql = _served(path)
+    np.testing.assert_allclose(sql, values, rtol=1e-12, atol=1e-12)  # numpy and SQL agree
+    _rewrite_row_file(path, _narrowest_codes)
+    import pyarrow.parquet as pq
+
+    name = ArchiveReader(path).manifest["row_parts"][0]["name"]
+    kinds = {f.type for f in pq.read_schema(path / name) if f.name.startswith("_rf_q_")}
+    assert pa.uint8() in kinds or pa.uint16() in kinds  # the edit did narrow them
+    after_values, after_bounds, after_sql = _served(path)
+    np.testing.assert_array_equal(after_values, values)
+    np.testing.assert_array_equal(after_bounds, bounds)
+    np.testing.assert_array_equal(after_sql, sql)
+
+
+def test_residual_codes_wider_than_32_bits_are_refused(tmp_path):
+    path = tmp_path / "a"
+    rankfold.compress(_table(), path, key="id", max_abs_error=0.05, seed=0)
+    codes = [n for n in ArchiveReader(path).model.row_file_reserved() if n.startswith("_rf_q_")]
+
+    def widen(table):
+        i = table.schema.get_field_index(codes[0])
+        return table.set_column(i, codes[0], table.column(i).cast(pa.uint64()))
+
+    _rewrite_row_file(path, widen)
+    with pytest.raises(rankfold.CorruptArchiveError,
+                       match=f"stores '{codes[0]}' as uint64, where the format declares uint8 or uint16 or uint32"):
+        ArchiveReader(path)
+
+
+def test_an_append_writes_the_archives_code_types_and_keeps_every_bound(tmp_path):
+    # codes narrowed to uint8 by an edit: an append must write uint8 too (DuckDB reads all row
+    # files with the first one's types), storing a code that uint8 cannot hold as an exact cell
+    import pyarrow.parquet as pq
+
+    path = tmp_path / "a"
+    rankfold.compress(_table(), path, key="id", max_abs_error=0.05, seed=0)
+
+    def to_uint8(table):
+        table = _narrowest_codes(table)
+        for i, name in enumerate(table.column_names):
+            if name.startswith("_rf_q_"):
+                assert table.schema.field(i).type == pa.uint8()  # the residuals here are small
+        return table
+
+    _rewrite_row_file(path, to_uint8)
+    more = _table(seed=1, rows=300)
+    x = np.column_stack([more.column(f"c{j}").to_numpy() for j in range(8)])
+    coded = [int(n.removeprefix("_rf_q_")) for n in ArchiveReader(path).model.row_file_reserved()
+             if n.startswith("_rf_q_")]
+    x[::7, coded[0]] += 100.0  # invented shifts: codes near 1000, beyond uint8
+    more = pa.table({**{f"c{j}": x[:, j] for j in range(8)}, "id": np.arange(400, 700)})
+    appended = rankfold.open(path).append(more)
+    new_file = appended.manifest["row_parts"][-1]["name"]
+    kinds = {f.type for f in pq.read_schema(path / new_file) if f.name.startswith("_rf_q_")}
+    assert kinds == {pa.uint8()}
+    assert appended.manifest["errors"]["cells_stored_exactly_outside_factors"] >= 300 // 7  # the shifted cells
+    values, bounds, sql = _served(path)
+    truth = np.vstack([np.column_stack([_table().column(f"c{j}").to_numpy() for j in range(8)]), x])
+    assert np.all(np.abs(values - truth) <= bounds)
+    assert np.all(np.abs(values - truth) <= 0.05)
+    np.testing.assert_allclose(sql, values, rtol=1e-12, atol=1e-12)

@@ -10,6 +10,7 @@ import pytest
 
 from rankfold.udfs.passes.commit import ArchiveWriter, RowPartWriter
 from rankfold.udfs.store import layout
+from rankfold.udfs.store.integrity import WRITE_OPTIONS
 
 
 def _table(first: int, rows: int) -> pa.Table:
@@ -47,3 +48,42 @@ def test_abort_removes_the_temporary_directory_even_after_a_writer_error(tmp_pat
     writer.write_rows(pa.table({layout.ROW_ID: np.arange(10, 20), "x": np.array(["a"] * 10)}), 10)
     writer.abort()
     assert not writer.temp.exists() and not target.exists()
+
+
+def _column_bytes(path, name: str) -> int:
+    meta = pq.ParquetFile(path).metadata
+    j = meta.schema.names.index(name)
+    return sum(meta.row_group(g).column(j).total_compressed_size for g in range(meta.num_row_groups))
+
+
+def test_residual_codes_get_the_layout_a_trial_with_the_real_writer_finds_smallest(tmp_path):
+    # invented, seeded codes of three shapes: a slow ramp (delta coding wins), small zigzag
+    # codes, and mostly zeros in runs
+    rng = np.random.default_rng(14)
+    rows = 20_000
+    q = rng.normal(0.0, 3.0, rows).round().astype(np.int64)
+    codes = {layout.CODE_PATTERN.format(0): (np.arange(rows) // 3).astype(np.uint32),
+             layout.CODE_PATTERN.format(1): np.where(q >= 0, 2 * q, -2 * q - 1).astype(np.uint32),
+             layout.CODE_PATTERN.format(2): np.repeat(rng.integers(0, 2, rows // 500) * 7, 500).astype(np.uint32)}
+    table = pa.table({layout.ROW_ID: np.arange(rows, dtype=np.int64), **codes})
+    writer = RowPartWriter(tmp_path)
+    writer.write_rows(table, 0)
+    writer.close()
+    path = tmp_path / writer.parts[0]["name"]
+    assert pq.read_table(path).equals(table)
+    for name, values in codes.items():
+        # the layouts used before the trial: BSS or dictionary at zstd level 3, each column
+        # written alone by pyarrow.parquet.write_table (the reference writer), with the row
+        # files' own page options
+        before = []
+        for bss in (True, False):
+            alone = tmp_path / f"alone-{name}-{bss}.parquet"
+            pq.write_table(pa.table({name: values}), alone, compression="zstd", compression_level=3,
+                           use_dictionary=not bss, column_encoding={name: "BYTE_STREAM_SPLIT"} if bss else None,
+                           **WRITE_OPTIONS)
+            before.append(_column_bytes(alone, name))
+        assert _column_bytes(path, name) <= min(before), name
+    ramp = layout.CODE_PATTERN.format(0)
+    assert _column_bytes(path, ramp) < 0.5 * min(
+        _column_bytes(tmp_path / f"alone-{ramp}-{bss}.parquet", ramp) for bss in (True, False))
+    assert "DELTA_BINARY_PACKED" in pq.ParquetFile(path).metadata.row_group(0).column(1).encodings

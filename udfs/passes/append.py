@@ -135,6 +135,13 @@ def _append(directory, source, expected_id, expected_version, connection, batch_
         shutil.rmtree(temp, ignore_errors=True)  # empty after a commit
 
 
+def _code_types(reader: ArchiveReader, name: str) -> dict[str, pa.DataType]:
+    """The residual-code columns of the row file ``name`` and their unsigned types (every row
+    file of an archive holds the same: ``integrity`` checks it)."""
+    prefix = layout.CODE_PATTERN.format("")
+    return {f.name: f.type for f in reader.row_file_schema(name) if f.name.startswith(prefix)}
+
+
 def _write_version(reader: ArchiveReader, src, batch_rows, progress, temp: Path) -> Path:
     directory, manifest = reader.path, reader.manifest
     version = int(manifest.get("version", 0)) + 1
@@ -158,7 +165,8 @@ def _write_version(reader: ArchiveReader, src, batch_rows, progress, temp: Path)
     stream = _stream(src, names, passthrough, batch_rows, first_row, transform, state, report)
     try:
         with one_blas_thread():
-            result = encode_pass(stream, model, writer, block_sums=sums, cells_file=cells_temp)
+            result = encode_pass(stream, model, writer, block_sums=sums, cells_file=cells_temp,
+                                 code_types=_code_types(reader, old_parts[0]["name"]))
     finally:
         writer.close()
     report.finish()

@@ -340,6 +340,7 @@ class _Kernel:
     ledger_scale: np.ndarray    # (n,)
     block_sums: Any
     with_fingerprint: bool = True  # False: the pass is not compared with another one
+    code_limit: np.ndarray | float = _CODE_LIMIT  # (q,) largest |code| each column's type holds
 
     def __post_init__(self) -> None:
         # position of each column among the coded ones (-1: no residual code)
@@ -361,7 +362,7 @@ class _Kernel:
         with np.errstate(invalid="ignore", over="ignore"):
             if wr.size:
                 raw_codes = arithmetic.quantize(x[:, wr] - xhat[:, wr], self.steps)
-                usable = np.isfinite(raw_codes) & (np.abs(raw_codes) <= _CODE_LIMIT)
+                usable = np.isfinite(raw_codes) & (np.abs(raw_codes) <= self.code_limit)
                 codes = np.where(usable, raw_codes, 0.0)
                 codes_out[...] = codes
                 term = codes * self.steps[None, :]
@@ -486,7 +487,8 @@ class _Kernel:
 
 def encode_pass(stream: Stream, model: FittedModel, writer: ArchiveWriter, *, block_sums=None,
                 cells_file: Path | None = None, sub_rows: int | None = None,
-                profile_columns: bool = False) -> EncodeResult:
+                profile_columns: bool = False, code_types: dict[str, pa.DataType] | None = None
+                ) -> EncodeResult:
     """Run the encode pass with ``model`` (its numeric and exact columns, mixing, anchor rows,
     transform and scores' right factor, coding and ledger scale) and write the row files (see
     the module docstring).
@@ -496,7 +498,13 @@ def encode_pass(stream: Stream, model: FittedModel, writer: ArchiveWriter, *, bl
     group; the cell-by-cell work runs over sub-blocks of ``sub_rows`` rows (default
     ``sub_block_rows(n)``; any value gives the same results up to the order of floating-point
     summation in the ledger and the sums). With ``profile_columns``, the result also holds
-    every column's statistics (``profile.ColumnProfile``) of the rows read."""
+    every column's statistics (``profile.ColumnProfile``) of the rows read.
+
+    ``code_types``: the unsigned type of some residual-code columns (by row-file name; uint32
+    for the others), as the archive's earlier row files hold them (an append must write the
+    same types: DuckDB reads several files with the first one's types). A code that such a
+    type cannot hold in zigzag form is not stored: its cell goes to the exact cells, as any
+    code beyond 32 bits does."""
     names, passthrough, mixing = model.names, model.exact_columns, model.mixing
     transform = Transform(model.transform_kind, model.shift, model.scale)
     score_right, coding, ledger_scale = model.scores_right(), model.coding, model.ledger_scale
@@ -513,10 +521,13 @@ def encode_pass(stream: Stream, model: FittedModel, writer: ArchiveWriter, *, bl
     steps = coding.residual_step
     with_residual = np.flatnonzero(np.isfinite(steps) & ~is_basis)
     tolerance = coding.tolerance
+    stored_types = [(code_types or {}).get(layout.CODE_PATTERN.format(int(j)), pa.uint32()) for j in with_residual]
+    # zigzag keeps q in [-2^(w-1), 2^(w-1) - 1] within w bits; the symmetric limit 2^(w-1) - 1
+    code_limit = np.array([min(2.0 ** (t.bit_width - 1) - 1, _CODE_LIMIT) for t in stored_types])
     kernel = _Kernel(mixing, np.flatnonzero(is_basis), np.flatnonzero(~is_basis), with_residual,
                      steps[with_residual], tolerance, np.flatnonzero(np.isfinite(tolerance) & ~is_basis),
                      np.asarray(ledger_scale, dtype=np.float64), block_sums,
-                     with_fingerprint=not profile_columns)
+                     with_fingerprint=not profile_columns, code_limit=code_limit)
     step = int(sub_rows) if sub_rows is not None else sub_block_rows(width)
     if step < 1:
         raise InvalidInputError(f"sub_rows must be a positive number of rows; got {sub_rows}.")
@@ -592,7 +603,7 @@ def encode_pass(stream: Stream, model: FittedModel, writer: ArchiveWriter, *, bl
             for k, array in enumerate(basis_arrays):
                 columns[layout.SCORE_PATTERN.format(k)] = array
         for t, j in enumerate(with_residual):
-            columns[layout.CODE_PATTERN.format(j)] = pa.array(arithmetic.encode_codes(codes[:, t]))
+            columns[layout.CODE_PATTERN.format(j)] = pa.array(arithmetic.encode_codes(codes[:, t])).cast(stored_types[t])
         columns[layout.ROW_ERR_MAX] = pa.array(arithmetic.round_up_compact(row_max, ledger_bits))
         columns[layout.ROW_ERR_L2] = pa.array(arithmetic.round_up_compact(row_l2, ledger_bits))
         table = pa.table(columns)

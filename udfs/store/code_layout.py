@@ -37,6 +37,7 @@ __all__ = [
     "sampled_offsets",
     "trial_sizes",
     "choose_layouts",
+    "choose_sample_layouts",
     "writer_options",
     "chunk_overhead_bytes",
 ]
@@ -142,7 +143,17 @@ def choose_layouts(columns: Mapping[str, CodedColumn], *, seed: int, sample: int
                                 "compare columns of one table, coded with one chunk size.")
     first = next(iter(columns.values()))
     picked = sample_chunks(first.chunks, seed, sample)
-    arrays = {name: sampled_offsets(c, picked) for name, c in columns.items()}
+    return choose_sample_layouts({name: sampled_offsets(c, picked) for name, c in columns.items()},
+                                 encodings=encodings, levels=levels)
+
+
+def choose_sample_layouts(arrays: Mapping[str, pa.Array], *, encodings: Sequence[str] = ENCODINGS,
+                          levels: Sequence[int] = ZSTD_LEVELS) -> dict[str, LayoutChoice]:
+    """For each sampled integer column of ``arrays`` (all of one length: the same rows of one
+    table), the layout under which it is smallest: the two-stage search of
+    :func:`choose_layouts` on samples the caller drew."""
+    if not arrays:
+        raise InvalidInputError("choose_sample_layouts needs at least one sampled column.")
     base_level = 3 if 3 in levels else int(levels[0])
     sizes = trial_sizes(arrays, [ColumnLayout(e, base_level) for e in encodings])
     best_encoding = {name: min(by.items(), key=lambda item: item[1])[0].encoding for name, by in sizes.items()}

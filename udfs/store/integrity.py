@@ -246,6 +246,8 @@ def check_tables(reader) -> None:
             raise damaged(path / name, f"holds {int(starts[-1])} rows where the manifest records {count}")
         schema = reader.row_file_schema(name)
         check_row_schema(schema, reserved, path / name)
+        # codes may be any unsigned width, but one for all files (DuckDB reads them as one table)
+        reserved.update({n: schema.field(n).type for n, t in reserved.items() if isinstance(t, tuple)})
         for column, type_name in needed.items():
             if column not in schema.names:
                 raise damaged(path / name, f"lacks the column {column!r} the manifest implies")

@@ -40,7 +40,8 @@ CODE_PATTERN = "_rf_q_{}"        # quantized residual codes of numeric column {p
 
 
 def code_sql(column: str) -> str:
-    """SQL that turns a stored residual code (zigzag, UINTEGER) back into its signed integer.
+    """SQL that turns a stored residual code (zigzag, UTINYINT, USMALLINT or UINTEGER) back
+    into its signed integer.
 
     Codes q are stored as u = 2q for q >= 0 and u = -2q - 1 for q < 0 (zigzag, common
     practice): small magnitudes of either sign keep the high bytes zero, so byte-stream-split

@@ -24,7 +24,7 @@ from ..errors import CorruptArchiveError
 from . import layout
 
 __all__ = ["COLUMNS_SCHEMA", "CELLS_SCHEMA", "anchors_schema",
-           "row_file_reserved", "check_schema", "check_row_schema"]
+           "row_file_reserved", "check_schema", "check_row_schema", "CODE_TYPES"]
 
 COLUMNS_SCHEMA = pa.schema([
     ("name", pa.string()), ("position", pa.int32()), ("type", pa.string()), ("role", pa.string()),
@@ -56,18 +56,27 @@ def anchors_schema(numeric: list[str], with_rows: bool) -> pa.Schema:
                      + [(n, pa.float64()) for n in (numeric if with_rows else [])])
 
 
+#: Types a residual-code column may have: zigzag codes (``arithmetic.encode_codes``) in any
+#: unsigned width up to 32 bits. rankfold writes uint32; a narrower type stores the same bytes
+#: (Parquet's physical type of all three is INT32) and is read alike.
+CODE_TYPES = (pa.uint8(), pa.uint16(), pa.uint32())
+
+Reserved = pa.DataType | tuple[pa.DataType, ...] | None
+
+
 def row_file_reserved(basis_stored: dict[str, pa.DataType | None],
-                      code_columns: list[str]) -> dict[str, pa.DataType | None]:
-    """Reserved columns of every row file and their types (None: any of several).
+                      code_columns: list[str]) -> dict[str, Reserved]:
+    """Reserved columns of every row file and their types (None: any of several; a tuple:
+    one of these).
 
     ``basis_stored``: the stored basis columns by name (``_rf_basis_<k>`` codes are int32;
     scores float64 or float32; source columns keep the source's type, given as None here and
     checked against the manifest's schema by the caller). ``code_columns``: the residual
-    code columns (zigzag uint32, ``arithmetic.encode_codes``)."""
-    reserved: dict[str, pa.DataType | None] = {layout.ROW_ID: pa.int64(), layout.ROW_ERR_MAX: pa.float32(),
-                                               layout.ROW_ERR_L2: pa.float32()}
+    code columns (zigzag unsigned, one of :data:`CODE_TYPES`, ``arithmetic.encode_codes``)."""
+    reserved: dict[str, Reserved] = {layout.ROW_ID: pa.int64(), layout.ROW_ERR_MAX: pa.float32(),
+                                     layout.ROW_ERR_L2: pa.float32()}
     reserved.update(basis_stored)
-    reserved.update({name: pa.uint32() for name in code_columns})
+    reserved.update({name: CODE_TYPES for name in code_columns})
     return reserved
 
 
@@ -96,17 +105,20 @@ def check_schema(schema: pa.Schema, declared: pa.Schema, where: Any, *, ordered:
         )
 
 
-def check_row_schema(schema: pa.Schema, reserved: dict[str, pa.DataType | None], where: Any, *,
+def check_row_schema(schema: pa.Schema, reserved: dict[str, Reserved], where: Any, *,
                      writing: bool = False) -> None:
     """Refuse a row file's ``schema`` (of the file ``where``) unless it holds every reserved
     column of ``reserved`` (:func:`row_file_reserved`) with its type (None: any type; such a
-    column keeps the source's type, checked against the manifest by the reader)."""
+    column keeps the source's type, checked against the manifest by the reader; a tuple: any
+    of these)."""
     for column, wanted in reserved.items():
         problem = None
+        allowed = wanted if isinstance(wanted, tuple) else (wanted,)
         if column not in schema.names:
             problem = f"lacks the column {column!r} the manifest implies"
-        elif wanted is not None and schema.field(column).type != wanted:
-            problem = f"stores {column!r} as {schema.field(column).type}, where the format declares {wanted}"
+        elif wanted is not None and schema.field(column).type not in allowed:
+            declared = " or ".join(str(t) for t in allowed)
+            problem = f"stores {column!r} as {schema.field(column).type}, where the format declares {declared}"
         if problem is None:
             continue
         if writing:
