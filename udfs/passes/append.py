@@ -38,7 +38,6 @@ from ..store import layout, versions
 from ..store.aggregate import BLOCKS, BlockSums
 from ..store.integrity import read_small_table
 from ..store.manifest import file_entry, write_manifest
-from ..store.model import FACTOR_COLUMNS
 from ..store.reader import ArchiveReader
 from ..store.table_schemas import CELLS_SCHEMA
 from .commit import PART_ROWS, RowPartWriter, concat_parquet, write_small_table
@@ -196,8 +195,7 @@ def _write_version(reader: ArchiveReader, src, batch_rows, progress, temp: Path)
     profile = before.merge(state["profile"])
     measured = reader.model.with_statistics(column_statistics(profile, ledger, first_row + result.rows))
     columns_name = versions.versioned_name(f"columns.v{version}.parquet", token)
-    write_small_table(temp / columns_name, measured.to_tables()[layout.COLUMNS],
-                      factor_columns=list(FACTOR_COLUMNS))
+    write_small_table(temp / columns_name, measured.to_tables()[layout.COLUMNS])
     tables[layout.COLUMNS] = columns_name
     new_files.append(columns_name)
     # the manifest of the new version

@@ -34,7 +34,7 @@ from ..factor.svd import gavish_donoho_rank
 from ..store import layout, remote, versions
 from ..store.aggregate import BlockSums
 from ..store.arithmetic import trim_mantissa
-from ..store.model import FACTOR_COLUMNS, Coding, FittedModel, Mixing, mixing_for_columns, mixing_for_scores
+from ..store.model import Coding, FittedModel, Mixing, mixing_for_columns, mixing_for_scores
 from ..factor.sketch import GramSketch, RowSketch
 from .commit import ArchiveWriter, RowPartWriter, prepare_target
 from .executors import make_executor
@@ -890,7 +890,7 @@ def _write_small_tables(writer, model: FittedModel, result: EncodeResult, cell_f
     """The columns and anchors tables (``FittedModel.to_tables``) and the exact cells of the
     partitions, streamed into one file in row order."""
     tables = model.to_tables()
-    writer.write_table(layout.COLUMNS, tables[layout.COLUMNS], factor_columns=list(FACTOR_COLUMNS))
+    writer.write_table(layout.COLUMNS, tables[layout.COLUMNS])
     writer.write_table(layout.ANCHORS, tables[layout.ANCHORS])
     writer.concat_cells(list(cell_files), [result.cells.table()] if result.cells.rows else [])
     return [layout.COLUMNS, layout.ANCHORS, layout.CELLS]
