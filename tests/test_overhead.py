@@ -62,3 +62,17 @@ def test_small_tables_read_back_with_their_declared_types(small_archive, tmp_pat
     # and the archive reads with every page checksum checked
     reopened = rankfold.open(small_archive.path, checksums=True)
     np.testing.assert_array_equal(reopened.to_numpy(), small_archive.to_numpy())
+
+
+def test_manifest_does_not_repeat_the_tolerances_the_columns_table_holds(tmp_path):
+    x = _low_rank(200, 12, seed=4)
+    archive = rankfold.compress(x, tmp_path / "a.rankfold", max_std_error=0.02)
+    # the targets as asked: no per-column absolute tolerances derived from max_std_error
+    assert archive.manifest["targets"]["max_abs_error"] is None
+    assert archive.manifest["targets"]["max_std_error"] == 0.02
+    # those live in columns.parquet, once: 0.02 x each column's std (numpy.std, ddof=0)
+    columns = pq.read_table(archive.path / layout.table_file(archive.manifest, layout.COLUMNS))
+    np.testing.assert_allclose(columns.column("tolerance").to_numpy(), 0.02 * np.std(x, axis=0), rtol=1e-9)
+    # and a max_abs_error the user gives per column is recorded as given
+    named = rankfold.compress(x, tmp_path / "b.rankfold", max_abs_error={"x1": 0.5}, max_std_error=None)
+    assert named.manifest["targets"]["max_abs_error"] == {"x1": 0.5}
