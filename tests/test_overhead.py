@@ -8,17 +8,21 @@ uniform settings, the yardstick each small table must not exceed) and the file s
 from __future__ import annotations
 
 import io
+import json
 
+import duckdb
 import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 
 import rankfold
+import rankfold.udfs
 from rankfold.udfs.passes.commit import write_small_table
 from rankfold.udfs.store import layout
 from rankfold.udfs.store.aggregate import BLOCKS
-from rankfold.udfs.store.table_schemas import COLUMNS_SCHEMA
+from rankfold.udfs.store.manifest import file_entry, write_manifest
+from rankfold.udfs.store.table_schemas import CELLS_SCHEMA, COLUMNS_SCHEMA, anchors_schema
 
 
 def _low_rank(m: int, n: int, seed: int = 0) -> np.ndarray:
@@ -76,3 +80,103 @@ def test_manifest_does_not_repeat_the_tolerances_the_columns_table_holds(tmp_pat
     # and a max_abs_error the user gives per column is recorded as given
     named = rankfold.compress(x, tmp_path / "b.rankfold", max_abs_error={"x1": 0.5}, max_std_error=None)
     assert named.manifest["targets"]["max_abs_error"] == {"x1": 0.5}
+
+
+# -- no file that holds nothing ------------------------------------------------------------------
+def _columns(x: np.ndarray) -> pa.Table:
+    return pa.table({f"x{j}": x[:, j] for j in range(x.shape[1])})
+
+
+def _within_bounds(archive, truth: np.ndarray) -> None:
+    # every rebuilt value within its reported bound of the invented source (NaN stays NaN)
+    rebuilt, bounds = archive.to_numpy(), archive.cell_bounds()
+    finite = np.isfinite(truth)
+    assert np.array_equal(np.isnan(rebuilt), np.isnan(truth))
+    assert np.all(np.abs(rebuilt[finite] - truth[finite]) <= bounds[finite])
+
+
+def _sql_values(path) -> np.ndarray:
+    con = duckdb.connect()
+    rankfold.udfs.register(con)
+    try:  # the archive's path is bound as a parameter, never pasted into the SQL text
+        table = con.sql("SELECT * FROM rankfold_scan(?) ORDER BY _rf_row", params=[str(path)]).to_arrow_table()
+    finally:
+        con.close()
+    names = [n for n in table.column_names if not n.startswith("_rf_")]
+    return np.column_stack([table.column(n).to_numpy(zero_copy_only=False) for n in names]).astype(float)
+
+
+def _files(archive) -> set[str]:
+    return {f["name"] for f in archive.manifest["files"]}
+
+
+def test_empty_anchors_and_cells_tables_are_not_written(tmp_path):
+    x = _low_rank(400, 10, seed=5)
+    archive = rankfold.compress(_columns(x), tmp_path / "a.rankfold", rank=2)
+    assert archive.manifest["anchors"] == [] and archive.manifest["errors"]["cells_stored_exactly_outside_factors"] == 0
+    on_disk = {p.name for p in archive.path.iterdir()}
+    assert layout.ANCHORS not in on_disk | _files(archive) and layout.CELLS not in on_disk | _files(archive)
+    _within_bounds(archive, x)
+    np.testing.assert_array_equal(_sql_values(archive.path), archive.to_numpy())
+    # append rows with a NaN: the first exact cell brings the cells table
+    more = _low_rank(50, 10, seed=6)
+    more[3, 4] = np.nan
+    grown = archive.append(_columns(more))
+    assert any(n.startswith("cells.") for n in _files(grown))
+    _within_bounds(grown, np.vstack([x, more]))
+    np.testing.assert_array_equal(_sql_values(grown.path), grown.to_numpy())
+    # an append that adds no exact cell still writes no cells table
+    plain = rankfold.compress(_columns(x), tmp_path / "b.rankfold", rank=2).append(_columns(_low_rank(30, 10, 7)))
+    assert not any(n.startswith("cells.") for n in _files(plain))
+
+
+def test_tables_with_rows_are_still_written(tmp_path):
+    x = _low_rank(300, 8, seed=8)
+    x[5, 2] = np.nan  # an exact cell
+    archive = rankfold.compress(_columns(x), tmp_path / "a.rankfold", rank=2, link="optimal",
+                                row_method="leverage", column_method="leverage")
+    assert archive.manifest["anchors"] and {layout.ANCHORS, layout.CELLS} <= _files(archive)
+    _within_bounds(archive, x)
+    np.testing.assert_array_equal(_sql_values(archive.path), archive.to_numpy())
+
+
+def _reseal(path, manifest) -> None:
+    manifest = {k: v for k, v in manifest.items() if k != "manifest_sha256"}
+    write_manifest(path, manifest)
+
+
+def test_an_archive_with_empty_tables_written_before_still_reads_and_appends(tmp_path):
+    # the layout of earlier versions: empty anchors and cells tables, listed in the manifest
+    x = _low_rank(400, 10, seed=9)
+    path = rankfold.compress(_columns(x), tmp_path / "old.rankfold", rank=2).path
+    manifest = json.loads((path / layout.MANIFEST).read_text())
+    names = manifest["numeric_columns"]
+    pq.write_table(anchors_schema(names, False).empty_table(), path / layout.ANCHORS)
+    pq.write_table(CELLS_SCHEMA.empty_table(), path / layout.CELLS)
+    manifest["files"] += [file_entry(path, layout.ANCHORS), file_entry(path, layout.CELLS)]
+    _reseal(path, manifest)
+    old = rankfold.open(path, checksums=True)
+    assert {layout.ANCHORS, layout.CELLS} <= _files(old)
+    _within_bounds(old, x)
+    np.testing.assert_array_equal(_sql_values(path), old.to_numpy())
+    more = _low_rank(40, 10, seed=10)
+    grown = old.append(_columns(more))
+    _within_bounds(grown, np.vstack([x, more]))
+    np.testing.assert_array_equal(_sql_values(path), grown.to_numpy())
+
+
+def test_a_manifest_with_anchor_rows_but_no_anchors_table_is_refused(tmp_path):
+    x = _low_rank(300, 8, seed=11)
+    archive = rankfold.compress(_columns(x), tmp_path / "a.rankfold", rank=2, link="optimal",
+                                row_method="leverage", column_method="leverage")
+    manifest = dict(archive.manifest)
+    manifest["files"] = [f for f in manifest["files"] if f["name"] != layout.ANCHORS]
+    _reseal(archive.path, manifest)
+    with pytest.raises(rankfold.CorruptArchiveError, match=r"lists no anchors table for the \d+ anchor rows"):
+        rankfold.open(archive.path)
+    # a table the manifest names in "tables" must be listed too
+    manifest = dict(archive.manifest)
+    manifest["tables"] = {layout.CELLS: "cells.v1.parquet"}
+    _reseal(archive.path, manifest)
+    with pytest.raises(rankfold.CorruptArchiveError, match=r"does not list cells.v1.parquet"):
+        rankfold.open(archive.path)

@@ -38,6 +38,7 @@ from ..store import layout, versions
 from ..store.aggregate import BLOCKS, BlockSums
 from ..store.integrity import read_small_table
 from ..store.manifest import file_entry, write_manifest
+from ..store.manifest_schema import holds_table
 from ..store.reader import ArchiveReader
 from ..store.table_schemas import CELLS_SCHEMA
 from .commit import PART_ROWS, RowPartWriter, concat_parquet, write_small_table
@@ -169,14 +170,16 @@ def _write_version(reader: ArchiveReader, src, batch_rows, progress, temp: Path)
                          f"the archive {directory} with the appended rows of {src.description}")
     tables = dict(manifest.get("tables") or {})
     new_files: list[str] = [p["name"] for p in writer.parts]
-    # cells: the old table, then the new rows' cells
-    cells_name = versions.versioned_name(f"cells.v{version}.parquet", token)
-    old_cells = os.path.abspath(directory / layout.table_file(manifest, layout.CELLS))
-    concat_parquet(temp, [old_cells] + ([cells_temp.name] if result.cells.written else []),
-                   cells_name, CELLS_SCHEMA, remove=False)
+    # cells: the old table, then the new rows' cells (no table when neither holds any)
+    cells_sources = ([os.path.abspath(directory / layout.table_file(manifest, layout.CELLS))]
+                     if holds_table(manifest, layout.CELLS) else [])
+    cells_sources += [cells_temp.name] if result.cells.written else []
+    if cells_sources:
+        cells_name = versions.versioned_name(f"cells.v{version}.parquet", token)
+        concat_parquet(temp, cells_sources, cells_name, CELLS_SCHEMA, remove=False)
+        tables[layout.CELLS] = cells_name
+        new_files.append(cells_name)
     cells_temp.unlink(missing_ok=True)
-    tables[layout.CELLS] = cells_name
-    new_files.append(cells_name)
     # blocks (per row-group sums for aggregates), when the archive has them
     listed = {f["name"] for f in manifest["files"]}
     old_blocks = layout.table_file(manifest, BLOCKS)

@@ -896,12 +896,19 @@ def ledger_scale(profile: ColumnProfile) -> np.ndarray:
 
 def _write_small_tables(writer, model: FittedModel, result: EncodeResult, cell_files=()) -> list[str]:
     """The columns and anchors tables (``FittedModel.to_tables``) and the exact cells of the
-    partitions, streamed into one file in row order."""
+    partitions, streamed into one file in row order; the names of the files written. The
+    anchors and cells tables are written only when they hold rows
+    (``manifest_schema.OPTIONAL_TABLES``)."""
     tables = model.to_tables()
     writer.write_table(layout.COLUMNS, tables[layout.COLUMNS])
-    writer.write_table(layout.ANCHORS, tables[layout.ANCHORS])
-    writer.concat_cells(list(cell_files), [result.cells.table()] if result.cells.rows else [])
-    return [layout.COLUMNS, layout.ANCHORS, layout.CELLS]
+    written = [layout.COLUMNS]
+    if tables[layout.ANCHORS].num_rows:
+        writer.write_table(layout.ANCHORS, tables[layout.ANCHORS])
+        written.append(layout.ANCHORS)
+    if cell_files or result.cells.rows:  # a partition's cell file exists only when it holds cells
+        writer.concat_cells(list(cell_files), [result.cells.table()] if result.cells.rows else [])
+        written.append(layout.CELLS)
+    return written
 
 
 def _finite_or_none(value: float) -> float | None:
