@@ -20,7 +20,7 @@ import rankfold
 import rankfold.udfs
 from rankfold.udfs.passes.commit import write_small_table
 from rankfold.udfs.store import layout
-from rankfold.udfs.store.aggregate import BLOCKS
+from rankfold.udfs.store.aggregate import BLOCKS, pack_blocks, unpack_blocks
 from rankfold.udfs.store.manifest import file_entry, write_manifest
 from rankfold.udfs.store.table_schemas import CELLS_SCHEMA, COLUMNS_SCHEMA, anchors_schema
 
@@ -180,3 +180,57 @@ def test_a_manifest_with_anchor_rows_but_no_anchors_table_is_refused(tmp_path):
     _reseal(archive.path, manifest)
     with pytest.raises(rankfold.CorruptArchiveError, match=r"does not list cells.v1.parquet"):
         rankfold.open(archive.path)
+
+
+# -- the blocks table, packed ---------------------------------------------------------------------
+def _wide_blocks(blocks: int, basis: int, width: int, seed: int) -> pa.Table:
+    """A blocks table in the layout of BlockSums.table (one list column per field), random."""
+    rng = np.random.default_rng(seed)  # invented sums
+    lengths = {"f_sum": basis, "f_abs": basis, "d_sum": basis, "gram": basis * basis,
+               "gram_abs": basis * basis, **{n: width for n in ("q_sum", "q_abs", "q_sq", "ov_corr",
+                                                                  "ov_abs", "ov_sq")}}
+    columns = {"first_row": pa.array(np.arange(blocks) * 100, pa.int64()),
+               "rows": pa.array(np.full(blocks, 100), pa.int64()),
+               "rowmax_sum": pa.array(rng.random(blocks), pa.float64())}
+    for name, length in lengths.items():
+        columns[name] = pa.array(list(rng.standard_normal((blocks, length))), pa.list_(pa.float64()))
+    for name in ("ov_cells", "ov_nulls"):
+        columns[name] = pa.array(list(rng.integers(0, 2**40, (blocks, width))), pa.list_(pa.int64()))
+    return pa.table(columns)
+
+
+@pytest.mark.parametrize("blocks,basis,width", [(1, 0, 5), (3, 2, 7), (2, 4, 1)])
+def test_packed_blocks_unpack_to_the_same_table(blocks, basis, width):
+    # pack and unpack are inverse, cell for cell (common practice for a codec pair)
+    wide = _wide_blocks(blocks, basis, width, seed=blocks + basis)
+    packed = pack_blocks(wide, basis, width)
+    assert packed.column_names == ["first_row", "rows", "rowmax_sum", "sums"]
+    assert unpack_blocks(packed, basis, width, "blocks.parquet").equals(wide)
+    assert unpack_blocks(wide, basis, width, "blocks.parquet") is wide  # the layout written before
+    with pytest.raises(rankfold.CorruptArchiveError, match=r"blocks.parquet holds packed sums of other lengths"):
+        unpack_blocks(packed, basis, width + 1, "blocks.parquet")
+
+
+def test_an_archive_with_unpacked_blocks_written_before_still_aggregates(tmp_path):
+    x = _low_rank(500, 6, seed=12)
+    archive = rankfold.compress(_columns(x), tmp_path / "a.rankfold", rank=2)
+    packed = pq.read_table(archive.path / BLOCKS)
+    assert "sums" in packed.column_names
+    expected = archive.aggregate(list(archive.numeric_columns), "sum")
+    # rewrite blocks.parquet in the layout of earlier versions (one list column per field)
+    wide = unpack_blocks(packed, len(archive.manifest["basis"]), 6, BLOCKS)
+    pq.write_table(wide, archive.path / BLOCKS)
+    manifest = dict(archive.manifest)
+    manifest["files"] = [file_entry(archive.path, BLOCKS) if f["name"] == BLOCKS else f for f in manifest["files"]]
+    _reseal(archive.path, manifest)
+    old = rankfold.open(archive.path)
+    result = old.aggregate(list(old.numeric_columns), "sum")
+    assert result.equals(expected)
+    # the sums against numpy.sum of the invented source, within the reported bounds
+    for j, name in enumerate(old.numeric_columns):
+        assert abs(result.column(name)[0].as_py() - np.sum(x[:, j])) <= result.column(f"{name}_bound")[0].as_py()
+    # an append reads the old layout and writes the packed one
+    grown = old.append(_columns(_low_rank(20, 6, seed=13)))
+    blocks_name = layout.table_file(grown.manifest, BLOCKS)
+    assert "sums" in pq.read_table(grown.path / blocks_name).column_names
+    assert grown.aggregate(["x0"], "count").column("x0")[0].as_py() == 520

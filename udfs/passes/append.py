@@ -35,7 +35,7 @@ import pyarrow as pa
 
 from ..errors import ArchiveNotFoundError, EmptySourceError, InvalidInputError
 from ..store import layout, versions
-from ..store.aggregate import BLOCKS, BlockSums
+from ..store.aggregate import BLOCKS, BlockSums, pack_blocks, unpack_blocks
 from ..store.integrity import read_small_table
 from ..store.manifest import file_entry, write_manifest
 from ..store.manifest_schema import holds_table
@@ -185,8 +185,10 @@ def _write_version(reader: ArchiveReader, src, batch_rows, progress, temp: Path)
     old_blocks = layout.table_file(manifest, BLOCKS)
     if old_blocks in listed:
         blocks_name = versions.versioned_name(f"blocks.v{version}.parquet", token)
-        blocks = pa.concat_tables([read_small_table(directory, manifest, old_blocks), sums.table()])
-        write_small_table(temp / blocks_name, blocks)
+        old = unpack_blocks(read_small_table(directory, manifest, old_blocks), sums.basis, sums.width,
+                            directory / old_blocks)
+        write_small_table(temp / blocks_name, pack_blocks(pa.concat_tables([old, sums.table()]),
+                                                          sums.basis, sums.width))
         tables[BLOCKS] = blocks_name
         new_files.append(blocks_name)
     # columns: merged ledger and statistics
