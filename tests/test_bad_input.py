@@ -319,8 +319,8 @@ def test_a_folder_that_is_not_an_archive(tmp_path):
 
 
 def test_a_missing_archive_file(archive):
-    (archive.path / "cells.parquet").unlink()
-    with pytest.raises(rankfold.CorruptArchiveError, match=r"is missing cells\.parquet; the archive is damaged"):
+    (archive.path / "columns.parquet").unlink()
+    with pytest.raises(rankfold.CorruptArchiveError, match=r"is missing columns\.parquet; the archive is damaged"):
         rankfold.open(archive.path)
 
 

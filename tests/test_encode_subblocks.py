@@ -29,6 +29,7 @@ import rankfold
 from rankfold.udfs.passes import compress as compress_module
 from rankfold.udfs.passes import encode as encode_module
 from rankfold.udfs.store import layout
+from rankfold.udfs.store.aggregate import unpack_blocks
 from rankfold.udfs.store.reader import ArchiveReader
 
 ROWS, WIDTH, RANK = 600, 10, 3
@@ -163,11 +164,17 @@ def _zigzag_decode(stored: np.ndarray) -> np.ndarray:
     return (u >> 1) ^ -(u & 1)
 
 
+def _blocks(archive) -> pa.Table:
+    """blocks.parquet with one list column per field (it is written packed: unpack_blocks)."""
+    return unpack_blocks(pq.read_table(archive.path / "blocks.parquet"), len(archive.manifest["basis"]),
+                         archive.shape[1], "blocks.parquet")
+
+
 def test_blocks_have_one_record_per_row_group_with_numpy_sums(archives):
     archive, _ = archives
     truth, nulls = _truth(_table())
     overridden = _overridden(archive)
-    blocks = pq.read_table(archive.path / "blocks.parquet")
+    blocks = _blocks(archive)
     # one record per Parquet row group of the row files, in row order
     groups = [f.metadata.row_group(g).num_rows for f in map(pq.ParquetFile, _row_files(archive))
               for g in range(f.metadata.num_row_groups)]
@@ -214,7 +221,7 @@ def test_sub_blocks_change_only_the_summation_order(archives):
     cells, err_max = lb.column("err_cells").to_numpy(), lb.column("err_max").to_numpy()
     np.testing.assert_allclose(la.column("err_sum").to_numpy(), lb.column("err_sum").to_numpy(),
                                rtol=0, atol=(1e-13 * cells * err_max).max())
-    ba, bb = pq.read_table(small.path / "blocks.parquet"), pq.read_table(whole.path / "blocks.parquet")
+    ba, bb = _blocks(small), _blocks(whole)
     assert ba.column_names == bb.column_names
     stack = (lambda t, n: np.stack(t.column(n).to_numpy(zero_copy_only=False)))
     for name in ("first_row", "rows", "ov_cells", "ov_nulls"):

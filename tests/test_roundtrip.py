@@ -238,9 +238,9 @@ def test_checksums_detect_a_tampered_file(tmp_path):
 def test_a_truncated_file_is_refused_without_checksums(tmp_path):
     path = tmp_path / "short.rankfold"
     rankfold.compress(_float_table(), path, rank=2)
-    victim = path / "anchors.parquet"
+    victim = path / "columns.parquet"
     victim.write_bytes(victim.read_bytes()[:-10])
-    with pytest.raises(ValueError, match=r"anchors.parquet has \d+ bytes where the manifest records \d+"):
+    with pytest.raises(ValueError, match=r"columns.parquet has \d+ bytes where the manifest records \d+"):
         rankfold.open(path)
 
 

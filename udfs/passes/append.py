@@ -35,10 +35,10 @@ import pyarrow as pa
 
 from ..errors import ArchiveNotFoundError, EmptySourceError, InvalidInputError
 from ..store import layout, versions
-from ..store.aggregate import BLOCKS, BlockSums
+from ..store.aggregate import BLOCKS, BlockSums, pack_blocks, unpack_blocks
 from ..store.integrity import read_small_table
 from ..store.manifest import file_entry, write_manifest
-from ..store.model import FACTOR_COLUMNS
+from ..store.manifest_schema import holds_table
 from ..store.reader import ArchiveReader
 from ..store.table_schemas import CELLS_SCHEMA
 from .commit import PART_ROWS, RowPartWriter, concat_parquet, write_small_table
@@ -178,21 +178,25 @@ def _write_version(reader: ArchiveReader, src, batch_rows, progress, temp: Path)
                          f"the archive {directory} with the appended rows of {src.description}")
     tables = dict(manifest.get("tables") or {})
     new_files: list[str] = [p["name"] for p in writer.parts]
-    # cells: the old table, then the new rows' cells
-    cells_name = versions.versioned_name(f"cells.v{version}.parquet", token)
-    old_cells = os.path.abspath(directory / layout.table_file(manifest, layout.CELLS))
-    concat_parquet(temp, [old_cells] + ([cells_temp.name] if result.cells.written else []),
-                   cells_name, CELLS_SCHEMA, remove=False)
+    # cells: the old table, then the new rows' cells (no table when neither holds any)
+    cells_sources = ([os.path.abspath(directory / layout.table_file(manifest, layout.CELLS))]
+                     if holds_table(manifest, layout.CELLS) else [])
+    cells_sources += [cells_temp.name] if result.cells.written else []
+    if cells_sources:
+        cells_name = versions.versioned_name(f"cells.v{version}.parquet", token)
+        concat_parquet(temp, cells_sources, cells_name, CELLS_SCHEMA, remove=False)
+        tables[layout.CELLS] = cells_name
+        new_files.append(cells_name)
     cells_temp.unlink(missing_ok=True)
-    tables[layout.CELLS] = cells_name
-    new_files.append(cells_name)
     # blocks (per row-group sums for aggregates), when the archive has them
     listed = {f["name"] for f in manifest["files"]}
     old_blocks = layout.table_file(manifest, BLOCKS)
     if old_blocks in listed:
         blocks_name = versions.versioned_name(f"blocks.v{version}.parquet", token)
-        blocks = pa.concat_tables([read_small_table(directory, manifest, old_blocks), sums.table()])
-        write_small_table(temp / blocks_name, blocks)
+        old = unpack_blocks(read_small_table(directory, manifest, old_blocks), sums.basis, sums.width,
+                            directory / old_blocks)
+        write_small_table(temp / blocks_name, pack_blocks(pa.concat_tables([old, sums.table()]),
+                                                          sums.basis, sums.width))
         tables[BLOCKS] = blocks_name
         new_files.append(blocks_name)
     # columns: merged ledger and statistics
@@ -204,8 +208,7 @@ def _write_version(reader: ArchiveReader, src, batch_rows, progress, temp: Path)
     profile = before.merge(state["profile"])
     measured = reader.model.with_statistics(column_statistics(profile, ledger, first_row + result.rows))
     columns_name = versions.versioned_name(f"columns.v{version}.parquet", token)
-    write_small_table(temp / columns_name, measured.to_tables()[layout.COLUMNS],
-                      factor_columns=list(FACTOR_COLUMNS))
+    write_small_table(temp / columns_name, measured.to_tables()[layout.COLUMNS])
     tables[layout.COLUMNS] = columns_name
     new_files.append(columns_name)
     # the manifest of the new version

@@ -247,17 +247,70 @@ def concat_parquet(directory: Path, sources: list[str], target: str, schema: pa.
             (directory / name).unlink()
 
 
-def write_small_table(path: Path, table: pa.Table, factor_columns=()) -> None:
-    """Write a small table of an archive (columns, anchors, blocks) to ``path``: zstd, page
-    checksums; ``factor_columns`` are full-precision floats stored with BYTE_STREAM_SPLIT and
-    no dictionary (measured -8% size for such data), the other columns with a dictionary. No
-    column statistics: small tables are read whole, never pruned (measured 14% smaller:
-    13.9 -> 12.2 kB and 7.2 -> 6.0 kB for the columns and blocks tables at 64 columns)."""
-    encodings = {c: "BYTE_STREAM_SPLIT" for c in factor_columns}
-    dictionary = [f.name for f in table.schema if f.name not in encodings] if encodings else True
-    pq.write_table(table, path, compression="zstd", compression_level=ZSTD_LEVEL,
-                   use_dictionary=dictionary, column_encoding=encodings or None,
-                   write_statistics=False, **WRITE_OPTIONS)
+# zstd levels a small table's column may be written with, besides no compression; measured on
+# the columns and blocks tables of a 2,000 x 50 archive (benchmarks/overhead.py): levels 3 and 19
+# came within 10 bytes of trying every level 1..22, at a third of the trial time.
+SMALL_TABLE_LEVELS = (3, 19)
+
+
+def _in_memory(table: pa.Table, **options) -> io.BytesIO:
+    """``table`` written as a small table is (no Arrow schema, no statistics, page checksums)."""
+    sink = io.BytesIO()
+    pq.write_table(table, sink, store_schema=False, write_statistics=False, **WRITE_OPTIONS, **options)
+    return sink
+
+
+def _value_type(kind: pa.DataType) -> pa.DataType:
+    while pa.types.is_list(kind) or pa.types.is_large_list(kind):
+        kind = kind.value_type
+    return kind
+
+
+def _smallest_setting(table: pa.Table, name: str) -> tuple[str, str, str, int | None]:
+    """Write the column ``name`` alone with each candidate setting and keep the smallest:
+    returns (Parquet column path, encoding or "dictionary", codec, zstd level or None).
+    Candidates: dictionary, PLAIN, BYTE_STREAM_SPLIT for numbers of 4 or 8 bytes,
+    DELTA_BINARY_PACKED for integers of 4 or 8 bytes (measured: the integer fields of a
+    50-row columns table 11-64 bytes smaller each) and DELTA_LENGTH_BYTE_ARRAY for strings,
+    each with no compression or zstd at each of ``SMALL_TABLE_LEVELS``."""
+    one = table.select([name])
+    value = _value_type(one.schema.field(0).type)
+    path = pq.ParquetFile(_in_memory(one)).metadata.row_group(0).column(0).path_in_schema
+    encodings = ["dictionary", "PLAIN"]
+    if pa.types.is_floating(value) or (pa.types.is_integer(value) and value.bit_width >= 32):
+        encodings.append("BYTE_STREAM_SPLIT")
+    if pa.types.is_integer(value) and value.bit_width >= 32:
+        encodings.append("DELTA_BINARY_PACKED")
+    if pa.types.is_string(value):
+        encodings.append("DELTA_LENGTH_BYTE_ARRAY")
+    best = None
+    for encoding in encodings:
+        for level in (None, *SMALL_TABLE_LEVELS):
+            size = _in_memory(one, use_dictionary=encoding == "dictionary",
+                              column_encoding=None if encoding == "dictionary" else {name: encoding},
+                              compression="none" if level is None else "zstd",
+                              compression_level=level).tell()
+            if best is None or size < best[0]:
+                best = (size, encoding, "none" if level is None else "zstd", level)
+    return (path, *best[1:])
+
+
+def write_small_table(path: Path, table: pa.Table) -> None:
+    """Write a small table of an archive (columns, anchors, blocks) to ``path`` with page
+    checksums, each column with the encoding (dictionary, PLAIN, BYTE_STREAM_SPLIT) and
+    compression (none, zstd at ``SMALL_TABLE_LEVELS``) that wrote it smallest when tried alone
+    on this very table. No Arrow schema in the footer (the readers check the declared types,
+    ``table_schemas``) and no column statistics (small tables are read whole, never pruned).
+    Measured on a 2,000 x 50 archive (benchmarks/overhead.py): the columns table 11.5 -> 7.9 kB
+    and the blocks table 5.8 -> 2.9 kB against zstd 3 with dictionaries and the Arrow schema."""
+    settings = [_smallest_setting(table, name) for name in table.column_names]
+    names = table.column_names
+    pq.write_table(table, path, store_schema=False, write_statistics=False,
+                   use_dictionary=[n for n, s in zip(names, settings) if s[1] == "dictionary"],
+                   column_encoding={n: s[1] for n, s in zip(names, settings) if s[1] != "dictionary"} or None,
+                   compression={s[0]: s[2] for s in settings} or "none",
+                   compression_level={s[0]: s[3] for s in settings if s[3] is not None} or None,
+                   **WRITE_OPTIONS)
 
 
 class ArchiveWriter:
@@ -313,9 +366,9 @@ class ArchiveWriter:
         concat_parquet(self.temp, sources, layout.CELLS, CELLS_SCHEMA, extra=extra)
 
     # -- small tables ------------------------------------------------------------------------
-    def write_table(self, name: str, table: pa.Table, *, factor_columns: list[str] = ()) -> None:
+    def write_table(self, name: str, table: pa.Table) -> None:
         """Write a small table (see :func:`write_small_table`)."""
-        write_small_table(self.temp / name, table, factor_columns)
+        write_small_table(self.temp / name, table)
 
     # -- finish ----------------------------------------------------------------------------
     def commit(self, manifest: dict[str, Any], file_names: list[str], *, at_most: int | None = None) -> Path:

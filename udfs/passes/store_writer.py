@@ -96,9 +96,9 @@ class StoreArchiveWriter:
         concat_parquet(self.temp, sources, layout.CELLS, CELLS_SCHEMA, extra=extra, remove=False,
                        open_source=self.staging.open_parquet)
 
-    def write_table(self, name: str, table: pa.Table, *, factor_columns: list[str] = ()) -> None:
+    def write_table(self, name: str, table: pa.Table) -> None:
         """A small table, as ``ArchiveWriter.write_table`` writes it (``write_small_table``)."""
-        write_small_table(self.temp / name, table, factor_columns)
+        write_small_table(self.temp / name, table)
 
     def commit(self, manifest: dict[str, Any], file_names: list[str], *, at_most: int | None = None) -> str:
         """Move the row files into place, upload the small tables, then the manifest (the

@@ -32,12 +32,12 @@ import pyarrow as pa
 
 from ..errors import InvalidInputError, UnknownColumnError
 from . import arithmetic, layout
-from .integrity import read_parquet_sql, read_small_table, sealed_rows_sql
+from .integrity import damaged, read_parquet_sql, read_small_table, sealed_rows_sql
 from .sql_rebuild import basis_value_sql
 from .sql_text import checked_condition, quote_identifier
 
 __all__ = ["BLOCKS", "BlockSums", "aggregate", "covariance", "correlation", "FUNCS",
-           "rows_source_sql", "check_where", "check_result_names"]
+           "rows_source_sql", "check_where", "check_result_names", "pack_blocks", "unpack_blocks"]
 
 BLOCKS = "blocks.parquet"
 FUNCS = ("sum", "avg", "count")
@@ -198,9 +198,62 @@ class BlockSums:
         return pa.table(columns)
 
     def write(self, writer) -> str:
-        """Write ``blocks.parquet`` with ``writer`` (an ArchiveWriter); returns the file name."""
-        writer.write_table(BLOCKS, self.table())
+        """Write ``blocks.parquet`` with ``writer`` (an ArchiveWriter), packed
+        (:func:`pack_blocks`); returns the file name."""
+        writer.write_table(BLOCKS, pack_blocks(self.table(), self.basis, self.width))
         return BLOCKS
+
+
+# The per-block sums, in the order a packed blocks table holds them: (name, length in terms of
+# c basis entries and n numeric columns, integer counts?).
+_PACKED_FIELDS = (("f_sum", "c", False), ("f_abs", "c", False), ("d_sum", "c", False),
+                  ("gram", "cc", False), ("gram_abs", "cc", False), ("q_sum", "n", False),
+                  ("q_abs", "n", False), ("q_sq", "n", False), ("ov_corr", "n", False),
+                  ("ov_abs", "n", False), ("ov_sq", "n", False), ("ov_cells", "n", True),
+                  ("ov_nulls", "n", True))
+PACKED = "sums"
+
+
+def _lengths(basis: int, width: int) -> list[int]:
+    return [{"c": basis, "cc": basis * basis, "n": width}[size] for _, size, _ in _PACKED_FIELDS]
+
+
+def pack_blocks(table: pa.Table, basis: int, width: int) -> pa.Table:
+    """The blocks table as written: first_row, rows, rowmax_sum, and per block one list
+    ``sums`` holding the 13 list fields of :meth:`BlockSums.table` one after the other
+    (lengths c, c, c, c*c, c*c, then n eight times; the counts ov_cells and ov_nulls as
+    float64, exact below 2^53). One list column instead of 13 cuts the Parquet footer and
+    page headers: measured 2,850 -> 894 bytes for one block of 50 columns."""
+    flat = [np.asarray(table.column(name).combine_chunks().values.to_numpy(zero_copy_only=False),
+                       np.float64).reshape(table.num_rows, -1) for name, _, _ in _PACKED_FIELDS]
+    sums = np.hstack(flat) if table.num_rows else np.zeros((0, sum(_lengths(basis, width))))
+    offsets = pa.array(np.arange(table.num_rows + 1, dtype=np.int32) * sums.shape[1], pa.int32())
+    return pa.table({"first_row": table.column("first_row"), "rows": table.column("rows"),
+                     "rowmax_sum": table.column("rowmax_sum"),
+                     PACKED: pa.ListArray.from_arrays(offsets, pa.array(sums.ravel(), pa.float64()))})
+
+
+def unpack_blocks(table: pa.Table, basis: int, width: int, where: Any) -> pa.Table:
+    """The blocks table with one list column per field (:meth:`BlockSums.table`), from a
+    packed one (:func:`pack_blocks`), or as it is when written before packing (one column per
+    field). A packed list of another length than c basis entries and n columns imply is refused."""
+    if PACKED not in table.column_names:
+        return table
+    lengths = _lengths(basis, width)
+    packed = table.column(PACKED).combine_chunks()
+    sizes = pa.compute.list_value_length(packed).to_numpy(zero_copy_only=False)
+    if packed.null_count or np.any(sizes != sum(lengths)):
+        raise damaged(where, f"holds packed sums of other lengths than the {sum(lengths)} that "
+                             f"{basis} basis entries and {width} columns imply")
+    values = np.asarray(packed.values.to_numpy(zero_copy_only=False), np.float64).reshape(len(packed), -1)
+    columns: dict[str, Any] = {n: table.column(n) for n in ("first_row", "rows", "rowmax_sum")}
+    start = 0
+    for (name, _, counts), length in zip(_PACKED_FIELDS, lengths):
+        part = values[:, start:start + length]
+        start += length
+        kind = pa.int64() if counts else pa.float64()
+        columns[name] = pa.array([row.astype(np.int64) if counts else row for row in part], pa.list_(kind))
+    return pa.table(columns)
 
 
 @dataclass
@@ -224,8 +277,10 @@ def _blocks(reader) -> _Blocks | None:
     if layout.table_file(reader.manifest, BLOCKS) not in names:
         reader._rf_blocks = False  # archives written before blocks.parquet: scan instead
         return None
+    name = layout.table_file(reader.manifest, BLOCKS)
     with reader.version_files():
-        table = read_small_table(reader.path, reader.manifest, layout.table_file(reader.manifest, BLOCKS))
+        table = read_small_table(reader.path, reader.manifest, name)
+    table = unpack_blocks(table, reader.model.weights.shape[0], len(reader.numeric_columns), reader.path / name)
     blocks = _Blocks(table.column("first_row").to_numpy(), table.column("rows").to_numpy(), table)
     reader._rf_blocks = blocks
     return blocks

@@ -9,7 +9,9 @@ An archive is a directory::
     columns.parquet        one row per numeric column: transform, offset and weights of the
                            mixing matrix, profile counts, column ledger
     anchors.parquet        the anchor rows (R factor): _rf_row and every numeric column, exact
-    cells.parquet          cells stored exactly: _rf_row, _rf_column, value, reason
+                           (written only when there are anchor rows)
+    cells.parquet          cells stored exactly: _rf_row, _rf_column, value, reason (written
+                           only when there are such cells; ``manifest_schema.OPTIONAL_TABLES``)
 
 All of it is plain Parquet and JSON, readable by DuckDB or pyarrow without rankfold.
 These are the names of a folder's first version; every later version (append, overwrite)

@@ -36,10 +36,8 @@ from . import arithmetic, layout
 from .table_schemas import COLUMNS_SCHEMA, anchors_schema, check_schema, row_file_reserved
 
 __all__ = ["Mixing", "Coding", "FittedModel", "mixing_for_columns", "mixing_for_scores",
-           "FACTOR_COLUMNS", "STATISTICS"]
+           "STATISTICS"]
 
-# columns-table fields holding full-precision factors (written with BYTE_STREAM_SPLIT)
-FACTOR_COLUMNS = ("shift", "scale", "offset")
 # columns-table fields measured on the rows (profile and encode pass), not fitted
 STATISTICS = ("valid", "nulls", "nans", "infinities", "mean", "std", "min", "max",
               "err_max", "err_l2", "err_sum", "err_cells", "rel_rms")

@@ -23,9 +23,9 @@ from . import arithmetic, layout
 from .integrity import (RowFileSeal, check_tables, damaged, open_row_file, read_small_table,
                         verified_metadata)
 from .manifest import DIGEST_FIELD, check_files, read_manifest
-from .manifest_schema import older_row_file_rules
+from .manifest_schema import holds_table, older_row_file_rules
 from .model import FittedModel
-from .table_schemas import CELLS_SCHEMA, check_schema
+from .table_schemas import CELLS_SCHEMA, anchors_schema, check_schema
 
 __all__ = ["ArchiveReader", "Rebuilt"]
 
@@ -119,8 +119,10 @@ class ArchiveReader:
         self.column_index = {n: j for j, n in enumerate(self.numeric_columns)}
         self.rows_count = int(m["shape"][0])
         self.columns_table = read_small_table(self.path, m, layout.table_file(m, layout.COLUMNS))
-        anchors = read_small_table(self.path, m, layout.table_file(m, layout.ANCHORS))
-        cells = read_small_table(self.path, m, layout.table_file(m, layout.CELLS))
+        anchors = (read_small_table(self.path, m, layout.table_file(m, layout.ANCHORS))
+                   if holds_table(m, layout.ANCHORS) else anchors_schema(self.numeric_columns, False).empty_table())
+        cells = (read_small_table(self.path, m, layout.table_file(m, layout.CELLS))
+                 if holds_table(m, layout.CELLS) else CELLS_SCHEMA.empty_table())
         check_schema(cells.schema, CELLS_SCHEMA, self.path / layout.table_file(m, layout.CELLS))
         self.cell_rows = cells.column(layout.ROW_ID).to_numpy()
         self.cell_cols = cells.column(layout.COLUMN_ID).to_numpy()

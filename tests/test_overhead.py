@@ -1,0 +1,236 @@
+"""Fixed overhead of an archive (issue 14, item 3): how the small tables are written, and
+which files an archive holds.
+
+The outside measures are pyarrow's own Parquet writer (``pyarrow.parquet.write_table`` with
+uniform settings, the yardstick each small table must not exceed) and the file system.
+"""
+
+from __future__ import annotations
+
+import io
+import json
+
+import duckdb
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+import pytest
+
+import rankfold
+import rankfold.udfs
+from rankfold.udfs.passes.commit import write_small_table
+from rankfold.udfs.store import layout
+from rankfold.udfs.store.aggregate import BLOCKS, pack_blocks, unpack_blocks
+from rankfold.udfs.store.manifest import file_entry, write_manifest
+from rankfold.udfs.store.table_schemas import CELLS_SCHEMA, COLUMNS_SCHEMA, anchors_schema
+
+
+def _low_rank(m: int, n: int, seed: int = 0) -> np.ndarray:
+    rng = np.random.default_rng(seed)  # invented data
+    return rng.standard_normal((m, 3)) @ rng.standard_normal((3, n)) + 0.01 * rng.standard_normal((m, n))
+
+
+@pytest.fixture(scope="module")
+def small_archive(tmp_path_factory):
+    return rankfold.compress(_low_rank(300, 24), tmp_path_factory.mktemp("o") / "a.rankfold")
+
+
+def _uniform_size(table: pa.Table, dictionary: bool) -> int:
+    sink = io.BytesIO()  # pyarrow.parquet.write_table, one setting for every column
+    pq.write_table(table, sink, compression="zstd", compression_level=3, use_dictionary=dictionary,
+                   store_schema=False, write_statistics=False, write_page_checksum=True)
+    return sink.tell()
+
+
+@pytest.mark.parametrize("name", [layout.COLUMNS, BLOCKS])
+def test_small_tables_are_no_larger_than_any_uniform_setting(small_archive, tmp_path, name):
+    path = small_archive.path / layout.table_file(small_archive.manifest, name)
+    table = pq.read_table(path)
+    write_small_table(tmp_path / "t.parquet", table)
+    written = (tmp_path / "t.parquet").stat().st_size
+    # the per-column trial beats zstd 3 with or without dictionaries for every column
+    assert written <= min(_uniform_size(table, True), _uniform_size(table, False))
+    metadata = pq.ParquetFile(tmp_path / "t.parquet").metadata
+    assert b"ARROW:schema" not in (metadata.metadata or {})  # no Arrow schema stored
+    assert all(metadata.row_group(0).column(i).statistics is None for i in range(metadata.num_columns))
+    assert path.stat().st_size == written  # the archive's own file was written that way
+
+
+def test_small_tables_read_back_with_their_declared_types(small_archive, tmp_path):
+    # the declared schema (table_schemas.COLUMNS_SCHEMA) survives without the Arrow schema in
+    # the footer: list<element> reads back equal to the declared list type
+    table = pq.read_table(small_archive.path / layout.table_file(small_archive.manifest, layout.COLUMNS))
+    assert table.schema.equals(COLUMNS_SCHEMA)
+    write_small_table(tmp_path / "c.parquet", table.cast(COLUMNS_SCHEMA))
+    assert pq.read_table(tmp_path / "c.parquet").equals(table)
+    # and the archive reads with every page checksum checked
+    reopened = rankfold.open(small_archive.path, checksums=True)
+    np.testing.assert_array_equal(reopened.to_numpy(), small_archive.to_numpy())
+
+
+def test_manifest_does_not_repeat_the_tolerances_the_columns_table_holds(tmp_path):
+    x = _low_rank(200, 12, seed=4)
+    archive = rankfold.compress(x, tmp_path / "a.rankfold", max_std_error=0.02)
+    # the targets as asked: no per-column absolute tolerances derived from max_std_error
+    assert archive.manifest["targets"]["max_abs_error"] is None
+    assert archive.manifest["targets"]["max_std_error"] == 0.02
+    # those live in columns.parquet, once: 0.02 x each column's std (numpy.std, ddof=0)
+    columns = pq.read_table(archive.path / layout.table_file(archive.manifest, layout.COLUMNS))
+    np.testing.assert_allclose(columns.column("tolerance").to_numpy(), 0.02 * np.std(x, axis=0), rtol=1e-9)
+    # and a max_abs_error the user gives per column is recorded as given
+    named = rankfold.compress(x, tmp_path / "b.rankfold", max_abs_error={"x1": 0.5}, max_std_error=None)
+    assert named.manifest["targets"]["max_abs_error"] == {"x1": 0.5}
+
+
+# -- no file that holds nothing ------------------------------------------------------------------
+def _columns(x: np.ndarray) -> pa.Table:
+    return pa.table({f"x{j}": x[:, j] for j in range(x.shape[1])})
+
+
+def _within_bounds(archive, truth: np.ndarray) -> None:
+    # every rebuilt value within its reported bound of the invented source (NaN stays NaN)
+    rebuilt, bounds = archive.to_numpy(), archive.cell_bounds()
+    finite = np.isfinite(truth)
+    assert np.array_equal(np.isnan(rebuilt), np.isnan(truth))
+    assert np.all(np.abs(rebuilt[finite] - truth[finite]) <= bounds[finite])
+
+
+def _sql_values(path) -> np.ndarray:
+    con = duckdb.connect()
+    rankfold.udfs.register(con)
+    try:  # the archive's path is bound as a parameter, never pasted into the SQL text
+        table = con.sql("SELECT * FROM rankfold_scan(?) ORDER BY _rf_row", params=[str(path)]).to_arrow_table()
+    finally:
+        con.close()
+    names = [n for n in table.column_names if not n.startswith("_rf_")]
+    return np.column_stack([table.column(n).to_numpy(zero_copy_only=False) for n in names]).astype(float)
+
+
+def _files(archive) -> set[str]:
+    return {f["name"] for f in archive.manifest["files"]}
+
+
+def test_empty_anchors_and_cells_tables_are_not_written(tmp_path):
+    x = _low_rank(400, 10, seed=5)
+    archive = rankfold.compress(_columns(x), tmp_path / "a.rankfold", rank=2)
+    assert archive.manifest["anchors"] == [] and archive.manifest["errors"]["cells_stored_exactly_outside_factors"] == 0
+    on_disk = {p.name for p in archive.path.iterdir()}
+    assert layout.ANCHORS not in on_disk | _files(archive) and layout.CELLS not in on_disk | _files(archive)
+    _within_bounds(archive, x)
+    np.testing.assert_array_equal(_sql_values(archive.path), archive.to_numpy())
+    # append rows with a NaN: the first exact cell brings the cells table
+    more = _low_rank(50, 10, seed=6)
+    more[3, 4] = np.nan
+    grown = archive.append(_columns(more))
+    assert any(n.startswith("cells.") for n in _files(grown))
+    _within_bounds(grown, np.vstack([x, more]))
+    np.testing.assert_array_equal(_sql_values(grown.path), grown.to_numpy())
+    # an append that adds no exact cell still writes no cells table
+    plain = rankfold.compress(_columns(x), tmp_path / "b.rankfold", rank=2).append(_columns(_low_rank(30, 10, 7)))
+    assert not any(n.startswith("cells.") for n in _files(plain))
+
+
+def test_tables_with_rows_are_still_written(tmp_path):
+    x = _low_rank(300, 8, seed=8)
+    x[5, 2] = np.nan  # an exact cell
+    archive = rankfold.compress(_columns(x), tmp_path / "a.rankfold", rank=2, link="optimal",
+                                row_method="leverage", column_method="leverage")
+    assert archive.manifest["anchors"] and {layout.ANCHORS, layout.CELLS} <= _files(archive)
+    _within_bounds(archive, x)
+    np.testing.assert_array_equal(_sql_values(archive.path), archive.to_numpy())
+
+
+def _reseal(path, manifest) -> None:
+    manifest = {k: v for k, v in manifest.items() if k != "manifest_sha256"}
+    write_manifest(path, manifest)
+
+
+def test_an_archive_with_empty_tables_written_before_still_reads_and_appends(tmp_path):
+    # the layout of earlier versions: empty anchors and cells tables, listed in the manifest
+    x = _low_rank(400, 10, seed=9)
+    path = rankfold.compress(_columns(x), tmp_path / "old.rankfold", rank=2).path
+    manifest = json.loads((path / layout.MANIFEST).read_text())
+    names = manifest["numeric_columns"]
+    pq.write_table(anchors_schema(names, False).empty_table(), path / layout.ANCHORS)
+    pq.write_table(CELLS_SCHEMA.empty_table(), path / layout.CELLS)
+    manifest["files"] += [file_entry(path, layout.ANCHORS), file_entry(path, layout.CELLS)]
+    _reseal(path, manifest)
+    old = rankfold.open(path, checksums=True)
+    assert {layout.ANCHORS, layout.CELLS} <= _files(old)
+    _within_bounds(old, x)
+    np.testing.assert_array_equal(_sql_values(path), old.to_numpy())
+    more = _low_rank(40, 10, seed=10)
+    grown = old.append(_columns(more))
+    _within_bounds(grown, np.vstack([x, more]))
+    np.testing.assert_array_equal(_sql_values(path), grown.to_numpy())
+
+
+def test_a_manifest_with_anchor_rows_but_no_anchors_table_is_refused(tmp_path):
+    x = _low_rank(300, 8, seed=11)
+    archive = rankfold.compress(_columns(x), tmp_path / "a.rankfold", rank=2, link="optimal",
+                                row_method="leverage", column_method="leverage")
+    manifest = dict(archive.manifest)
+    manifest["files"] = [f for f in manifest["files"] if f["name"] != layout.ANCHORS]
+    _reseal(archive.path, manifest)
+    with pytest.raises(rankfold.CorruptArchiveError, match=r"lists no anchors table for the \d+ anchor rows"):
+        rankfold.open(archive.path)
+    # a table the manifest names in "tables" must be listed too
+    manifest = dict(archive.manifest)
+    manifest["tables"] = {layout.CELLS: "cells.v1.parquet"}
+    _reseal(archive.path, manifest)
+    with pytest.raises(rankfold.CorruptArchiveError, match=r"does not list cells.v1.parquet"):
+        rankfold.open(archive.path)
+
+
+# -- the blocks table, packed ---------------------------------------------------------------------
+def _wide_blocks(blocks: int, basis: int, width: int, seed: int) -> pa.Table:
+    """A blocks table in the layout of BlockSums.table (one list column per field), random."""
+    rng = np.random.default_rng(seed)  # invented sums
+    lengths = {"f_sum": basis, "f_abs": basis, "d_sum": basis, "gram": basis * basis,
+               "gram_abs": basis * basis, **{n: width for n in ("q_sum", "q_abs", "q_sq", "ov_corr",
+                                                                  "ov_abs", "ov_sq")}}
+    columns = {"first_row": pa.array(np.arange(blocks) * 100, pa.int64()),
+               "rows": pa.array(np.full(blocks, 100), pa.int64()),
+               "rowmax_sum": pa.array(rng.random(blocks), pa.float64())}
+    for name, length in lengths.items():
+        columns[name] = pa.array(list(rng.standard_normal((blocks, length))), pa.list_(pa.float64()))
+    for name in ("ov_cells", "ov_nulls"):
+        columns[name] = pa.array(list(rng.integers(0, 2**40, (blocks, width))), pa.list_(pa.int64()))
+    return pa.table(columns)
+
+
+@pytest.mark.parametrize("blocks,basis,width", [(1, 0, 5), (3, 2, 7), (2, 4, 1)])
+def test_packed_blocks_unpack_to_the_same_table(blocks, basis, width):
+    # pack and unpack are inverse, cell for cell (common practice for a codec pair)
+    wide = _wide_blocks(blocks, basis, width, seed=blocks + basis)
+    packed = pack_blocks(wide, basis, width)
+    assert packed.column_names == ["first_row", "rows", "rowmax_sum", "sums"]
+    assert unpack_blocks(packed, basis, width, "blocks.parquet").equals(wide)
+    assert unpack_blocks(wide, basis, width, "blocks.parquet") is wide  # the layout written before
+    with pytest.raises(rankfold.CorruptArchiveError, match=r"blocks.parquet holds packed sums of other lengths"):
+        unpack_blocks(packed, basis, width + 1, "blocks.parquet")
+
+
+def test_an_archive_with_unpacked_blocks_written_before_still_aggregates(tmp_path):
+    x = _low_rank(500, 6, seed=12)
+    archive = rankfold.compress(_columns(x), tmp_path / "a.rankfold", rank=2)
+    packed = pq.read_table(archive.path / BLOCKS)
+    assert "sums" in packed.column_names
+    expected = archive.aggregate(list(archive.numeric_columns), "sum")
+    # rewrite blocks.parquet in the layout of earlier versions (one list column per field)
+    wide = unpack_blocks(packed, len(archive.manifest["basis"]), 6, BLOCKS)
+    pq.write_table(wide, archive.path / BLOCKS)
+    manifest = dict(archive.manifest)
+    manifest["files"] = [file_entry(archive.path, BLOCKS) if f["name"] == BLOCKS else f for f in manifest["files"]]
+    _reseal(archive.path, manifest)
+    old = rankfold.open(archive.path)
+    result = old.aggregate(list(old.numeric_columns), "sum")
+    assert result.equals(expected)
+    # the sums against numpy.sum of the invented source, within the reported bounds
+    for j, name in enumerate(old.numeric_columns):
+        assert abs(result.column(name)[0].as_py() - np.sum(x[:, j])) <= result.column(f"{name}_bound")[0].as_py()
+    # an append reads the old layout and writes the packed one
+    grown = old.append(_columns(_low_rank(20, 6, seed=13)))
+    blocks_name = layout.table_file(grown.manifest, BLOCKS)
+    assert "sums" in pq.read_table(grown.path / blocks_name).column_names
+    assert grown.aggregate(["x0"], "count").column("x0")[0].as_py() == 520
