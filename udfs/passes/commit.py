@@ -28,7 +28,7 @@ from ..store.code_layout import ColumnLayout, choose_sample_layouts, sample_chun
 from ..store.table_schemas import CELLS_SCHEMA
 
 __all__ = ["prepare_target", "ArchiveWriter", "RowPartWriter", "PART_ROWS", "concat_parquet",
-           "write_small_table", "code_layouts", "CODE_LEVELS"]
+           "write_small_table", "code_layouts", "CODE_LEVELS", "close_parquet"]
 
 ZSTD_LEVEL = 3
 
@@ -63,23 +63,6 @@ def prepare_target(path: str | os.PathLike, overwrite: bool) -> Path:
     return target
 
 
-def _byte_stream_split_wins(column: pa.Array) -> bool:
-    """Measure on a sample: is BYTE_STREAM_SPLIT (no dictionary) smaller than the default
-    (dictionary, falling back to plain) under zstd? Full-precision floats favour BSS, short
-    decimals favour the default (duckdb-notes section 7: 85% vs 95%, and 84% vs 54%); small
-    unsigned residual codes mostly favour BSS (their high bytes are zero). The sample is the
-    first 16,384 values: 65,536 took 0.28 s of a 3.5 s compress of 1e6 x 100 (18 columns)."""
-    sample = pa.table({"v": column.slice(0, 16_384)})
-    sizes = []
-    for bss in (True, False):
-        sink = io.BytesIO()
-        pq.write_table(sample, sink, compression="zstd", compression_level=ZSTD_LEVEL,
-                       use_dictionary=not bss,
-                       column_encoding={"v": "BYTE_STREAM_SPLIT"} if bss else None)
-        sizes.append(sink.tell())
-    return sizes[0] < sizes[1]
-
-
 # zstd levels tried for residual codes in row files. Level 19 took a further 1.6-6% off the
 # codes of real tables at 0.1 and 0.01 std (weather, hfi, digits: 111.4 -> 109.6 kB,
 # 61.3 -> 57.6 kB, 42.6 -> 40.3 kB) but wrote 4-10x slower than levels 3-9 (2e6 codes: 0.20 s
@@ -108,10 +91,23 @@ def code_layouts(table: pa.Table) -> dict[str, ColumnLayout]:
     return {n: choice.layout for n, choice in chosen.items()}
 
 
+# Rows of the first table on which a row file's other columns choose their encoding: 65,536
+# took 0.28 s of a 3.5 s compress of 1e6 x 100 (18 columns), 16,384 a quarter of that.
+_ROW_SAMPLE = 16_384
+
 # Rows per row file: 8 row groups of layout.ROW_GROUP_ROWS. A row-range read opens only the
 # files that hold the range, and a distributed encode pass writes at least one file per
 # partition; files much larger than this only make such reads coarser.
 PART_ROWS = 1 << 20
+
+
+def close_parquet(writer: pq.ParquetWriter | None, file: Any = None) -> None:
+    """Close a Parquet writer (which writes the footer), then the file object it was given,
+    which pyarrow leaves open; either may be None. Returns None, for ``a = b = close_parquet(a, b)``."""
+    if writer is not None:
+        writer.close()
+    if file is not None:
+        file.close()
 
 
 class RowPartWriter:
@@ -177,18 +173,16 @@ class RowPartWriter:
         self._writer.write_table(table, row_group_size=layout.ROW_GROUP_ROWS)
 
     def _close_file(self) -> None:
-        if self._writer is not None:
-            self._writer.close()
-            self._writer = None
-        if self._file is not None:  # pyarrow leaves a file object it was given open
-            self._file.close()
-            self._file = None
+        self._writer = self._file = close_parquet(self._writer, self._file)
 
     def _choose_encodings(self, table: pa.Table) -> tuple[list[str], dict[str, str], dict[str, int]]:
         """Per column of the first table: dictionary or an encoding, and the zstd level.
         Residual codes get the layout (encoding and level) a trial with the real writer
         chooses on a seeded sample of whole chunks of this table (:func:`code_layouts`); the
-        other columns level ``ZSTD_LEVEL`` and BSS or dictionary (``_byte_stream_split_wins``)."""
+        other columns level ``ZSTD_LEVEL`` and BYTE_STREAM_SPLIT or dictionary, whichever
+        writes the first ``_ROW_SAMPLE`` rows smaller (:func:`_smallest_setting`, the trial
+        of the small tables). Full-precision floats favour BSS, short decimals the dictionary
+        (duckdb-notes section 7: 85% vs 95%, and 84% vs 54%)."""
         dictionary, encodings = [], {layout.ROW_ID: "DELTA_BINARY_PACKED"}  # consecutive ids
         levels = dict.fromkeys(table.column_names, ZSTD_LEVEL)
         codes = code_layouts(table)
@@ -198,15 +192,16 @@ class RowPartWriter:
                 dictionary.append(name)
             else:
                 encodings[name] = lay.encoding
-        for field in table.schema:
-            if field.name == layout.ROW_ID or field.name in codes:
+        sample = table.slice(0, _ROW_SAMPLE)
+        for name in table.column_names:
+            if name == layout.ROW_ID or name in codes:
                 continue
-            column = table.column(field.name).combine_chunks()
-            splittable = pa.types.is_floating(field.type) or pa.types.is_unsigned_integer(field.type)
-            if splittable and _byte_stream_split_wins(column):
-                encodings[field.name] = "BYTE_STREAM_SPLIT"
+            setting = _smallest_setting(sample, name, only=("dictionary", "BYTE_STREAM_SPLIT"),
+                                        levels=(ZSTD_LEVEL,))
+            if setting[1] == "dictionary":
+                dictionary.append(name)
             else:
-                dictionary.append(field.name)
+                encodings[name] = setting[1]
         return dictionary, encodings, levels
 
     def close(self) -> None:
@@ -266,13 +261,17 @@ def _value_type(kind: pa.DataType) -> pa.DataType:
     return kind
 
 
-def _smallest_setting(table: pa.Table, name: str) -> tuple[str, str, str, int | None]:
-    """Write the column ``name`` alone with each candidate setting and keep the smallest:
+def _smallest_setting(table: pa.Table, name: str, *, only: tuple[str, ...] | None = None,
+                      levels: tuple[int | None, ...] = (None, *SMALL_TABLE_LEVELS)
+                      ) -> tuple[str, str, str, int | None]:
+    """Write the column ``name`` of ``table`` (the whole table, or a sample the caller took)
+    alone with each candidate setting and keep the smallest (ties: the earlier candidate):
     returns (Parquet column path, encoding or "dictionary", codec, zstd level or None).
     Candidates: dictionary, PLAIN, BYTE_STREAM_SPLIT for numbers of 4 or 8 bytes,
     DELTA_BINARY_PACKED for integers of 4 or 8 bytes (measured: the integer fields of a
-    50-row columns table 11-64 bytes smaller each) and DELTA_LENGTH_BYTE_ARRAY for strings,
-    each with no compression or zstd at each of ``SMALL_TABLE_LEVELS``."""
+    50-row columns table 11-64 bytes smaller each) and DELTA_LENGTH_BYTE_ARRAY for strings
+    (``only``: just those of them named there), each with no compression (level None) or zstd
+    at each level of ``levels``."""
     one = table.select([name])
     value = _value_type(one.schema.field(0).type)
     path = pq.ParquetFile(_in_memory(one)).metadata.row_group(0).column(0).path_in_schema
@@ -283,9 +282,11 @@ def _smallest_setting(table: pa.Table, name: str) -> tuple[str, str, str, int | 
         encodings.append("DELTA_BINARY_PACKED")
     if pa.types.is_string(value):
         encodings.append("DELTA_LENGTH_BYTE_ARRAY")
+    if only is not None:
+        encodings = [e for e in encodings if e in only]
     best = None
     for encoding in encodings:
-        for level in (None, *SMALL_TABLE_LEVELS):
+        for level in levels:
             size = _in_memory(one, use_dictionary=encoding == "dictionary",
                               column_encoding=None if encoding == "dictionary" else {name: encoding},
                               compression="none" if level is None else "zstd",

@@ -32,7 +32,7 @@ from ..errors import InvalidInputError, SourceChangedError
 from ..store import arithmetic, layout
 from ..store.model import FittedModel, Mixing
 from ..store.table_schemas import CELLS_SCHEMA, check_row_schema
-from .commit import ArchiveWriter
+from .commit import ArchiveWriter, close_parquet
 from .profile import ColumnProfile, Fingerprint, Transform, profile_block
 
 __all__ = ["ColumnLedger", "ExactCells", "encode_pass", "column_statistics"]
@@ -169,12 +169,7 @@ class ExactCells:
         """Write what is buffered (with ``spill_to``) and close the file."""
         if self.spill_to is not None:
             self._spill()
-            if self._writer is not None:
-                self._writer.close()
-                self._writer = None
-            if self._file is not None:  # pyarrow leaves a file object it was given open
-                self._file.close()
-                self._file = None
+            self._writer = self._file = close_parquet(self._writer, self._file)
         return self
 
     def add(self, first: int, cells: np.ndarray, block: np.ndarray, mask: np.ndarray | None,
