@@ -145,7 +145,7 @@ def _tolerance(arch: Archive, ledger: dict[str, Any]) -> np.ndarray | None:
     """Per-column absolute tolerance, from the column ledger or the options; None when absent."""
     if ledger["tolerance"] is not None:
         return ledger["tolerance"]
-    value = arch.manifest["method"].get("options", {}).get("max_abs_error")
+    value = (arch.manifest.get("targets") or {}).get("max_abs_error")
     if isinstance(value, (int, float)) and not isinstance(value, bool):
         return np.full(arch.shape[1], float(value))
     return None

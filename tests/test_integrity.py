@@ -27,6 +27,7 @@ import rankfold
 from rankfold.cli import main
 from rankfold.udfs.sql import register
 from rankfold.udfs.store.manifest import manifest_digest, read_manifest, write_manifest
+from rankfold.udfs.store.manifest_schema import DERIVED_KEYS
 from rankfold.udfs.store.reader import ArchiveReader
 
 ROWS, COLS = 400, 6
@@ -308,6 +309,11 @@ def test_a_malformed_field_is_one_clear_error_in_python_sql_and_cli(archive, cap
     manifest = read_manifest(archive)
     if value == "absent":
         del manifest[field]
+        (archive / "manifest.json").write_text(json.dumps(manifest))
+    elif field in DERIVED_KEYS:  # not written any more, but an older manifest holds it: sealed by hand
+        manifest[field] = value
+        manifest.pop("manifest_sha256")
+        manifest = {"manifest_sha256": manifest_digest(manifest), **manifest}
         (archive / "manifest.json").write_text(json.dumps(manifest))
     else:
         manifest[field] = value
@@ -653,3 +659,25 @@ def test_a_footer_edited_after_open_is_refused_by_the_next_scan(grouped_copy):
     _flip(path, path.stat().st_size - 8 - footer // 2, 0)  # same size, new mtime
     with pytest.raises(duckdb.Error, match="CorruptArchiveError.*Parquet footer"):
         con.execute(lookup, [p]).fetchall()
+
+
+def test_the_manifest_stores_nothing_a_reader_derives(archive):
+    """``numeric_columns`` is the schema's numeric names (``manifest_schema.DERIVED_KEYS``): a new
+    manifest does not store it, the reader derives it, and the targets are not repeated among the
+    recorded options (nothing stored twice; issue 14)."""
+    text = (archive / "manifest.json").read_text()
+    assert '"numeric_columns"' not in text
+    manifest = read_manifest(archive)
+    assert manifest["numeric_columns"] == [f["name"] for f in manifest["schema"] if f["role"] == "numeric"]
+    assert not {"max_abs_error", "max_std_error", "rel_error", "target_bytes"} & set(manifest["method"]["options"])
+    assert rankfold.open(archive).numeric_columns == manifest["numeric_columns"]
+
+
+def test_an_older_manifest_that_stores_numeric_columns_still_reads(archive):
+    # written before the entry was derived on read: its own copy, sealed with it, is accepted
+    manifest = read_manifest(archive)
+    manifest.pop("manifest_sha256")
+    manifest = {"manifest_sha256": manifest_digest(manifest), **manifest}
+    assert "numeric_columns" in manifest
+    (archive / "manifest.json").write_text(json.dumps(manifest))
+    assert rankfold.open(archive, checksums=True).numeric_columns == manifest["numeric_columns"]

@@ -20,14 +20,14 @@ from typing import Any
 from ..errors import CorruptArchiveError, SizeTargetMissedError, UnsupportedVersionError
 from . import layout
 from .integrity import check_listed_files, footer_sha256, part_digests, sha256_of
-from .manifest_schema import DIGEST_FIELD, older_format_rules, validate
+from .manifest_schema import DERIVED_KEYS, DIGEST_FIELD, derived_entries, older_format_rules, validate
 
 __all__ = ["sha256_of", "file_entry", "entry_of", "write_manifest", "sealed_manifest_text",
            "read_manifest", "check_files",
            "manifest_digest", "DIGEST_FIELD"]
 
 REQUIRED_KEYS = ("format", "format_version", "writer", "archive_id", "shape", "schema",
-                 "numeric_columns", "method", "basis", "anchors", "files", "errors")
+                 "method", "basis", "anchors", "files", "errors")
 
 
 def file_entry(directory: Path, name: str, keyed: list[str] | None = None) -> dict[str, Any]:
@@ -66,9 +66,10 @@ def manifest_digest(manifest: dict[str, Any]) -> str:
 def manifest_text(manifest: dict[str, Any]) -> str:
     """The manifest as written: one line per top-level field, each value as compact JSON.
     Still readable line by line and diffable, and smaller than indented JSON (measured
-    11.8 kB -> 9.3 kB for the 64 columns of scikit-learn's digits; every byte counts)."""
+    11.8 kB -> 9.3 kB for the 64 columns of scikit-learn's digits; every byte counts).
+    Entries a reader derives (``manifest_schema.DERIVED_KEYS``) are not written."""
     lines = [f"{json.dumps(k)}: {json.dumps(v, separators=(',', ':'), allow_nan=False)}"
-             for k, v in manifest.items()]
+             for k, v in manifest.items() if k not in DERIVED_KEYS]
     return "{\n" + ",\n".join(lines) + "\n}\n"
 
 
@@ -93,7 +94,7 @@ def sealed_manifest_text(manifest: dict[str, Any]) -> str:
     manifest alone tells the truth to anyone who reads it (``rankfold inspect --json``, a
     script), whatever reads it. ``manifest["achieved"]`` is replaced by a new dict holding the
     figure (a dict shared with an older manifest, as an append copies it, is left alone)."""
-    body = {k: v for k, v in manifest.items() if k != DIGEST_FIELD}
+    body = {k: v for k, v in manifest.items() if k != DIGEST_FIELD and k not in DERIVED_KEYS}
     if not isinstance(body.get("achieved"), dict) or "bytes" not in body["achieved"]:
         return manifest_text({DIGEST_FIELD: manifest_digest(body), **body})
     achieved = body["achieved"] = manifest["achieved"] = dict(body["achieved"])
@@ -173,6 +174,7 @@ def read_manifest(directory: Path) -> dict[str, Any]:
     except (ValueError, RecursionError):  # NaN or infinity (JSON extensions), or absurd nesting
         digest = None
     older_format_rules(manifest, path)
+    derived_entries(manifest)
     if digest is None or manifest.get(DIGEST_FIELD) != digest:
         raise CorruptArchiveError(
             f"{path} does not match its own {DIGEST_FIELD}: the manifest was edited or damaged "

@@ -27,7 +27,7 @@ from ..errors import CorruptArchiveError
 from . import layout
 
 __all__ = ["MANIFEST_SCHEMA", "DIGEST_FIELD", "RENAMED_ERROR_KEYS", "MAX_ROWS", "MAX_COLUMNS", "validate",
-           "check_plain_name", "older_format_rules", "older_row_file_rules", "sealed_by_groups",
+           "check_plain_name", "older_format_rules", "older_row_file_rules", "DERIVED_KEYS", "derived_entries", "sealed_by_groups",
            "files_used", "OPTIONAL_TABLES", "holds_table"]
 
 DIGEST_FIELD = "manifest_sha256"
@@ -293,6 +293,23 @@ def older_format_rules(manifest: dict[str, Any], path: Any) -> None:
         for old, new in RENAMED_ERROR_KEYS.items():
             if old in record and new not in record:
                 record[new] = record.pop(old)
+
+
+#: Entries a reader derives from others and a writer does not store (nothing stored twice):
+#: ``numeric_columns`` is the schema's names with role "numeric", in schema order. Manifests
+#: written before kept it; their copy is checked against the schema (``_cross_check``).
+DERIVED_KEYS = ("numeric_columns",)
+
+
+def derived_entries(manifest: dict[str, Any]) -> None:
+    """Add :data:`DERIVED_KEYS` to a manifest as read (in place), from the entries they are
+    derived from; an older manifest's own copy is kept (and then checked by :func:`validate`).
+    A schema that is not a list of records is left for :func:`validate` to refuse."""
+    schema = manifest.get("schema")
+    if "numeric_columns" in manifest or not isinstance(schema, list):
+        return
+    if all(isinstance(f, dict) for f in schema):
+        manifest["numeric_columns"] = [f.get("name") for f in schema if f.get("role") == "numeric"]
 
 
 # older name -> name, in the manifest's ``errors`` and ``achieved`` records: the achieved error
