@@ -245,7 +245,8 @@ def test_cli_per_column_tolerances_as_pairs_or_json(source, tmp_path, capsys):
                        "--column-method", "pivoted_qr", "--json", "--quiet")
     data = json.loads(out)
     assert code == 0
-    assert data["manifest"]["method"]["options"]["max_abs_error"] == {"x2": 0.01, "x5": 0.5}
+    assert data["manifest"]["targets"]["max_abs_error"] == {"x2": 0.01, "x5": 0.5}
+    assert data["manifest"]["targets"]["max_std_error"] == {"x7": 0.001}
     assert data["manifest"]["method"]["options"]["refit_outliers"] is False
     archive = rankfold.open(tmp_path / "p.rankfold")
     bounds = archive.cell_bounds()

@@ -14,6 +14,7 @@ O((c + r) n + n^2 + block n), independent of the number of rows.
 from __future__ import annotations
 
 import copy
+import dataclasses
 import datetime as _dt
 import math
 import shutil
@@ -47,7 +48,8 @@ from .profile import (SUB_BLOCK_ROWS, ColumnProfile, Fingerprint, Transform, new
                       profile_rows)
 from .select import AnchorRows, AnchorScan, anchor_partial, merge_anchor_partials, sketch_of
 from .refit import KAPPA, OutlierScreen
-from .encode import EncodeResult, column_error_figures, column_statistics, encode_pass
+from .encode import EncodeResult, column_error_figures, column_statistics, encode_pass, stored_basis
+from .predictors import SampleRuns, choose_predictors, run_rows
 from . import sizes, targets
 
 __all__ = ["compress"]
@@ -58,17 +60,22 @@ _EXACT_INTEGER_LIMIT = 2.0**53
 
 
 # -- the passes as tasks over one partition's blocks (first row, batch, block, NULL mask) ---------
-def _profile_task(blocks, part, width: int, keep_sample: bool):
-    """Column statistics, the fingerprint and the co-moments (the sketch) of one partition."""
+def _profile_task(blocks, part, width: int, keep_sample: bool, seed: int = 0):
+    """Column statistics, the fingerprint and the co-moments (the sketch) of one partition;
+    with ``keep_sample``, also the measured bytes per value of each column and the sample of
+    runs of rows the predictor trial writes (``predictors.SampleRuns``)."""
     profile = ColumnProfile.empty(width)
     fingerprint = Fingerprint()
     gram = new_sketch(width)
     sample: dict[str, float] = {}
+    runs = SampleRuns(seed, run_rows(width)) if keep_sample else None
     for first, batch, block, mask in blocks:
         profile, gram = profile_rows(first, block, mask, profile, fingerprint, gram)
         if keep_sample and not sample:
             sample = targets.column_bytes(batch.slice(0, 65_536))
-    return profile, fingerprint, sample, gram
+        if runs is not None:
+            runs.add(first, block, mask)
+    return profile, fingerprint, sample, gram, runs
 
 
 def _sketch_task(blocks, part, screen, width: int):
@@ -163,24 +170,28 @@ class _Passes:
 
     def __init__(self, executor, opts: CompressOptions):
         self.ex, self.opts = executor, opts
+        self.trial_rows: np.ndarray | None = None  # (m, n) the predictor trial's sample, NaN = NULL
 
     def profile(self, numeric: list[str], keep_sample: bool, groups: list[RowGroup] | None = None):
         """Statistics, fingerprint, a sample of encoded sizes and the co-moments: of every
         row, or of the given row groups only."""
         kept = set(numeric)
         extra = [n for n in self.ex.schema.names if n not in kept] if keep_sample else []
+        task_args = (len(numeric), keep_sample, self.opts.seed)
         if groups is None:
-            parts = self.ex.run("profile", _profile_task, numeric, extra, None,
-                                (len(numeric), keep_sample))
+            parts = self.ex.run("profile", _profile_task, numeric, extra, None, task_args)
         else:
             parts = self.ex.run("sketch-sample", _profile_task, numeric, extra,
-                                sum(g.rows for g in groups), (len(numeric), keep_sample),
+                                sum(g.rows for g in groups), task_args,
                                 partitions=self.ex.sample_partitions(groups))
         profile, fingerprint, sample = ColumnProfile.empty(len(numeric)), Fingerprint(), {}
         gram = new_sketch(len(numeric))
-        for p, f, s, g in parts:
+        runs = None
+        for p, f, s, g, r in parts:
             profile, fingerprint, gram = profile.merge(p), fingerprint.merge(f), gram.merge(g)
             sample = sample or s
+            runs = r if runs is None else runs.merge(r)
+        self.trial_rows = runs.rows(len(numeric)) if runs is not None else None
         return profile, fingerprint, sample, gram
 
     def sketch(self, stage: str, numeric: list[str], rows: int, screen):
@@ -406,6 +417,8 @@ def _compress(src, new_writer, opts: CompressPlan) -> Path | str:
         profile = ColumnProfile(*(getattr(profile, f)[keep] for f in profile.__dataclass_fields__))
         fingerprint = fingerprint.select(keep)
         gram = gram.select(keep)
+        if passes.trial_rows is not None:
+            passes.trial_rows = passes.trial_rows[:, keep]
         numeric = [numeric[j] for j in keep]
         factored = set(numeric)
         passthrough = [n for n in src.schema.names if n not in factored]
@@ -739,6 +752,14 @@ def _write(src, new_writer, opts, inputs: _Inputs, build: _Build, passes: _Passe
     coding = _coding(plan, mixing, build) or Coding.plain(width, mixing.weights.shape[0])
     if np.isfinite(coding.tolerance).any():
         mixing = _trim_factors(mixing, coding.tolerance, profile)
+    if plan is not None and passes.trial_rows is not None and passes.trial_rows.shape[0]:
+        trial = _predictor_trial(passes.trial_rows, mixing, coding, transform, score_right, plan, build,
+                                 keep_basis=opts.fixed_basis)
+        if trial is not None:
+            mixing, coding, build = trial
+            if build.n_columns == 0:
+                anchors, basis_names = _no_anchors(width), []
+                score_right = None if score_right is None else score_right[:, :0]
     model = FittedModel(
         numeric, [str(src.schema.field(n).type) for n in numeric], passthrough, transform.kind,
         transform.shift, transform.scale, mixing, basis_names, coding,
@@ -862,6 +883,53 @@ def _coding(plan, mixing, build) -> Coding | None:
         steps[mixing.basis_columns] = np.nan
     return Coding(plan.tolerance, steps, basis_step,
                   float32_scores=build.method == "svd" and not np.isfinite(plan.tolerance).any())
+
+
+def _predictor_trial(sample: np.ndarray, mixing: Mixing, coding: Coding, transform: Transform,
+                     score_right: np.ndarray | None, plan, build: _Build, *, keep_basis: bool = False):
+    """The predictor of each coded column, and whether to keep the basis at all, by measured
+    trial on the profile pass's sample of runs of rows (``predictors.choose_predictors``).
+    Returns the mixing, coding and build to write, or None when the trial changes nothing.
+
+    A column that keeps ``none`` gets zero weights and its shift as offset (its codes are the
+    column rounded alone). Without the basis (every column rounded alone measured smaller),
+    the archive has no basis columns, no anchor rows and a step of twice its tolerance per
+    column; never with ``keep_basis`` (the user gave the basis size). The encode pass measures
+    whatever is chosen: no bound rests on the trial."""
+    c = mixing.weights.shape[0]
+    if c == 0:
+        return None
+    if mixing.basis_columns is not None:
+        stored, arrays = stored_basis(sample[:, mixing.basis_columns], coding.basis_step, False)
+    else:
+        scores = np.nan_to_num(transform.apply(sample), nan=0.0) @ score_right
+        stored, arrays = stored_basis(scores, coding.basis_step, coding.float32_scores)
+    choice = choose_predictors(sample, mixing, coding, transform.shift, stored, arrays)
+    rows = sample.shape[0]
+    if choice.drop_basis and plan.residual != "corrections" and not keep_basis:
+        width = mixing.weights.shape[1]
+        alone = Mixing(np.zeros((0, width)), transform.shift.copy(), np.zeros(0),
+                       None if mixing.basis_columns is None else np.zeros(0, np.int64))
+        tolerance = coding.tolerance
+        alone_coding = Coding(tolerance, 2.0 * tolerance, np.zeros(0))
+        reason = (f"{build.reason}; no basis: every column rounded alone measured smaller on a sample of "
+                  f"{rows} rows ({choice.alone_bytes} against {choice.basis_bytes} bytes)")
+        return alone, alone_coding, dataclasses.replace(build, rank=0, n_columns=0, n_rows=0, reason=reason)
+    coded = np.isfinite(coding.residual_step)
+    if mixing.basis_columns is not None:
+        coded[mixing.basis_columns] = False
+    alone_columns = coded & ~choice.lowrank
+    if not alone_columns.any():
+        return None
+    weights, offset = mixing.weights.copy(), mixing.offset.copy()
+    weights[:, alone_columns] = 0.0
+    offset[alone_columns] = transform.shift[alone_columns]
+    mixing = Mixing(weights, offset, mixing.fill, mixing.basis_columns)
+    if mixing.basis_columns is not None and np.isfinite(coding.basis_step).any():
+        coding = _coding(plan, mixing, build)  # the basis steps follow the remaining weights
+    reason = (f"{build.reason}; {int(alone_columns.sum())} of {int(coded.sum())} coded columns rounded "
+              f"alone (smaller than their low-rank residual on a sample of {rows} rows)")
+    return mixing, coding, dataclasses.replace(build, reason=reason)
 
 
 def _trim_factors(mixing: Mixing, tolerance: np.ndarray, profile: ColumnProfile) -> Mixing:

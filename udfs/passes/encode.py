@@ -32,10 +32,10 @@ from ..errors import InvalidInputError, SourceChangedError
 from ..store import arithmetic, layout
 from ..store.model import FittedModel, Mixing
 from ..store.table_schemas import CELLS_SCHEMA, check_row_schema
-from .commit import ArchiveWriter, close_parquet
+from .commit import ArchiveWriter, cell_encodings, close_parquet
 from .profile import ColumnProfile, Fingerprint, Transform, profile_block
 
-__all__ = ["ColumnLedger", "ExactCells", "encode_pass", "column_statistics"]
+__all__ = ["ColumnLedger", "ExactCells", "encode_pass", "column_statistics", "stored_basis"]
 
 Stream = Iterator[tuple[int, pa.RecordBatch, np.ndarray, "np.ndarray | None"]]
 
@@ -158,7 +158,8 @@ class ExactCells:
         if self._writer is None:  # spill_to: a path, or a callable opening a file object
             where = self.spill_to() if callable(self.spill_to) else self.spill_to
             self._file = None if isinstance(where, (str, Path)) else where
-            self._writer = pq.ParquetWriter(where, table.schema, compression="zstd")
+            self._writer = pq.ParquetWriter(where, table.schema, compression="zstd",
+                                            **cell_encodings(table.schema))
         self._writer.write_table(table)
         self.spilled += table.num_rows
         self.written = True
@@ -253,7 +254,7 @@ class EncodeResult:
 _CODE_LIMIT = 2.0**31 - 1  # residual codes are stored as int32
 
 
-def _stored_basis(raw: np.ndarray, step: np.ndarray, float32: bool):
+def stored_basis(raw: np.ndarray, step: np.ndarray, float32: bool):
     """Basis values as stored, and the Arrow arrays that store them (NaN = NULL)."""
     coded = np.isfinite(step)
     values = raw.copy()
@@ -549,13 +550,13 @@ def encode_pass(stream: Stream, model: FittedModel, writer: ArchiveWriter, *, bl
                     "time it is read: add an ORDER BY to the query, or compress a snapshot."
                 )
         if basis is not None:
-            stored, basis_arrays = (_stored_basis(block[:, basis], coding.basis_step, False)
+            stored, basis_arrays = (stored_basis(block[:, basis], coding.basis_step, False)
                                     if coded_basis.any() else (block[:, basis], None))
         else:
             scores = np.empty((b, score_right.shape[1]))
             for lo in range(0, b, score_rows):  # stored values: independent of sub_rows
                 scores[lo:lo + score_rows] = transform.apply(block[lo:lo + score_rows]) @ score_right
-            stored, basis_arrays = _stored_basis(scores, coding.basis_step, coding.float32_scores)
+            stored, basis_arrays = stored_basis(scores, coding.basis_step, coding.float32_scores)
         filled = arithmetic.fill_missing(stored, mixing.fill)
         codes = np.empty((with_residual.size, b)).T if with_residual.size else None
         row_max, row_l2 = np.empty(b), np.empty(b)

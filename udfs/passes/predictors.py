@@ -1,0 +1,186 @@
+"""Which prediction each coded column keeps, chosen by measured trial on a sample of rows.
+
+Under a tolerance t_j a column is stored as integer codes of step s_j (about 2 t_j) of what its
+prediction leaves over (``encode`` pass). Two predictions are on offer per column:
+
+* ``lowrank``: the CUR (or SVD) prediction from the basis, offset_j + basis @ weights[:, j];
+* ``none``: the column's shift alone (weights[:, j] = 0, offset_j = the transform's shift):
+  the codes are then the column rounded on its own, as per-column rounding by hand does.
+
+And for the whole archive, with the basis or without it (no basis columns: every column
+rounded alone, nothing kept exactly). A low-rank residual can cost more than the column it
+came from: it breaks runs of equal values and slowly changing values that zstd and Parquet's
+encodings feed on, and a basis column kept exactly costs full float64. No model predicts
+that well on real tables (issue 14: the Gaussian size model chose rank 13 where rank 0 was
+half the size), so it is measured: the codes of a sample of rows under each choice are written
+with the real Parquet writer (``store.code_layout.choose_sample_layouts``: every encoding and
+zstd level the row writer tries), and each column keeps the smaller.
+
+The sample (:class:`SampleRuns`) is a seeded uniform sample of whole runs of consecutive rows,
+so that what zstd sees inside a run is what it sees in the table: a bottom-k sample of runs by
+a counter-based uniform key per (seed, run) (``select.row_uniforms``), mergeable across
+partitions and independent of how the rows are split into blocks.
+
+References: bottom-k sampling: E. Cohen, H. Kaplan, "Summarizing data using bottom-k
+sketches", PODC 2007. Per-column rounding as the bar: issue 14 (common practice).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+import pyarrow as pa
+
+from ..store import arithmetic
+from ..store.code_layout import ColumnLayout, choose_sample_layouts, trial_sizes
+from ..store.model import Coding, Mixing
+from .commit import ZSTD_LEVEL
+from .select import row_uniforms
+
+__all__ = ["SampleRuns", "PredictorChoice", "choose_predictors", "RUNS", "RUN_ROWS", "SAMPLE_CELLS"]
+
+#: Runs of consecutive rows in the sample, and rows per run (fewer for wide tables, see
+#: :func:`run_rows`): 8 runs of 2,048 rows, 16,384 rows in all.
+RUNS = 8
+RUN_ROWS = 2048
+#: Cells kept at most (8 MB of float64): a wide table gets shorter runs.
+SAMPLE_CELLS = 1 << 20
+_STREAM = 23  # keys the sample's uniforms apart from other uses of row_uniforms
+
+
+def run_rows(width: int) -> int:
+    """Rows per run for ``width`` numeric columns: RUN_ROWS, fewer so that RUNS runs stay
+    within SAMPLE_CELLS cells, at least 16."""
+    return int(max(16, min(RUN_ROWS, SAMPLE_CELLS // max(RUNS * width, 1))))
+
+
+@dataclass
+class SampleRuns:
+    """A bottom-``RUNS`` sample of runs of ``length`` consecutive rows (run r holds rows
+    [r length, (r + 1) length)), keyed by ``row_uniforms(seed, _STREAM, r)``.
+
+    ``pieces`` maps a kept run to the (first row, values (b, n) with NaN where NULL) pieces of
+    it seen so far; a run split between blocks or partitions is joined in row order."""
+
+    seed: int
+    length: int
+    pieces: dict[int, list[tuple[int, np.ndarray]]] = field(default_factory=dict)
+
+    def _key(self, run: int) -> float:
+        return float(row_uniforms(self.seed, _STREAM, np.array([run]))[0])
+
+    def _trim(self) -> None:
+        if len(self.pieces) > RUNS:
+            kept = sorted(self.pieces, key=lambda r: (self._key(r), r))[:RUNS]
+            self.pieces = {r: self.pieces[r] for r in kept}
+
+    def add(self, first: int, block: np.ndarray, mask: np.ndarray | None) -> None:
+        """Offer the rows first .. first + b - 1 (block (b, n); mask (b, n) True at NULL)."""
+        b = block.shape[0]
+        if b == 0:
+            return
+        for run in range(first // self.length, (first + b - 1) // self.length + 1):
+            if run not in self.pieces and len(self.pieces) >= RUNS:
+                worst = max(self.pieces, key=lambda r: (self._key(r), r))
+                if (self._key(run), run) > (self._key(worst), worst):
+                    continue
+            lo = max(run * self.length, first) - first
+            hi = min((run + 1) * self.length, first + b) - first
+            values = np.array(block[lo:hi], dtype=np.float64)
+            if mask is not None:
+                values[mask[lo:hi]] = np.nan
+            self.pieces.setdefault(run, []).append((first + lo, values))
+            self._trim()
+
+    def merge(self, other: "SampleRuns") -> "SampleRuns":
+        merged = SampleRuns(self.seed, self.length, {r: list(p) for r, p in self.pieces.items()})
+        for run, pieces in other.pieces.items():
+            merged.pieces.setdefault(run, []).extend(pieces)
+        merged._trim()
+        return merged
+
+    def rows(self, width: int) -> np.ndarray:
+        """The sampled rows (m, n), runs in row order, NaN where NULL."""
+        blocks = [values for run in sorted(self.pieces)
+                  for _, values in sorted(self.pieces[run], key=lambda piece: piece[0])]
+        return np.vstack(blocks) if blocks else np.zeros((0, width))
+
+
+@dataclass(frozen=True)
+class PredictorChoice:
+    """What the trial chose: ``lowrank`` (n,) True where a coded column keeps the low-rank
+    prediction (False: ``none``); ``basis_bytes`` the sample's bytes with the basis (basis
+    columns as stored plus each coded column under its choice), ``alone_bytes`` without any
+    basis (every column rounded alone; None when that is not on offer)."""
+
+    lowrank: np.ndarray
+    basis_bytes: int
+    alone_bytes: int | None
+
+    @property
+    def drop_basis(self) -> bool:
+        return self.alone_bytes is not None and self.alone_bytes < self.basis_bytes
+
+
+def _stored_codes(values: np.ndarray, step: np.ndarray) -> np.ndarray:
+    """Residual codes (m, q) as the encode pass stores them: quantized, 0 where not finite or
+    beyond 32 bits (such cells are stored exactly), zigzag uint32."""
+    with np.errstate(invalid="ignore", over="ignore"):
+        codes = arithmetic.quantize(values, step[None, :])
+        codes = np.where(np.isfinite(codes) & (np.abs(codes) <= 2.0**31 - 1), codes, 0.0)
+    return arithmetic.encode_codes(codes)
+
+
+def _code_bytes(arrays: dict[str, pa.Array]) -> dict[str, int]:
+    if not arrays:
+        return {}
+    return {name: choice.sampled_bytes for name, choice in choose_sample_layouts(arrays).items()}
+
+
+def _value_bytes(arrays: dict[str, pa.Array]) -> int:
+    """Compressed bytes of stored basis columns (float or integer values) as the row writer
+    writes them: the smaller of dictionary and byte-stream-split at its zstd level."""
+    if not arrays:
+        return 0
+    tried = trial_sizes(arrays, [ColumnLayout("dictionary", ZSTD_LEVEL), ColumnLayout("BYTE_STREAM_SPLIT", ZSTD_LEVEL)])
+    return int(sum(min(by.values()) for by in tried.values()))
+
+
+def choose_predictors(sample: np.ndarray, mixing: Mixing, coding: Coding, shift: np.ndarray,
+                      stored_basis: np.ndarray, basis_arrays: list[pa.Array]) -> PredictorChoice:
+    """The trial (module docstring) on ``sample`` (m, n) raw rows, NaN where NULL.
+
+    ``mixing`` and ``coding`` are the fitted archive's (weights (c, n), residual steps (n,));
+    ``shift`` (n,) the transform's shift, the ``none`` prediction; ``stored_basis`` (m, c) the
+    sample's basis values as stored (NaN where missing) and ``basis_arrays`` the c Arrow arrays
+    that store them. Only columns with residual codes (a finite step, not a basis column) are
+    offered ``none``; dropping the basis is on offer only when every column has a finite step
+    of its own (2 t_j) so that each can be rounded alone."""
+    m, n = sample.shape
+    steps = coding.residual_step
+    in_basis = np.zeros(n, bool)
+    if mixing.basis_columns is not None:
+        in_basis[mixing.basis_columns] = True
+    coded = np.flatnonzero(np.isfinite(steps) & ~in_basis)
+    lowrank = np.ones(n, bool)
+    filled = arithmetic.fill_missing(stored_basis, mixing.fill)
+    predicted = arithmetic.approximate(filled, mixing.weights[:, coded], mixing.offset[coded])
+    candidates = {}
+    for t, j in enumerate(coded):
+        candidates[f"l{j}"] = pa.array(_stored_codes(sample[:, [j]] - predicted[:, [t]], steps[[j]])[:, 0])
+        candidates[f"n{j}"] = pa.array(_stored_codes(sample[:, [j]] - shift[j], steps[[j]])[:, 0])
+    sizes = _code_bytes(candidates)
+    coded_bytes = 0
+    for j in coded:
+        lowrank[j] = sizes[f"l{j}"] <= sizes[f"n{j}"]
+        coded_bytes += min(sizes[f"l{j}"], sizes[f"n{j}"])
+    basis_bytes = coded_bytes + _value_bytes({f"b{k}": a for k, a in enumerate(basis_arrays)})
+    alone = None
+    own_step = 2.0 * coding.tolerance
+    if stored_basis.shape[1] and np.isfinite(own_step).all() and np.all(own_step > 0):
+        reused = {f"n{j}": sizes[f"n{j}"] for j in coded if abs(steps[j] - own_step[j]) <= 0}
+        fresh = {f"a{j}": pa.array(_stored_codes(sample[:, [j]] - shift[j], own_step[[j]])[:, 0])
+                 for j in range(n) if f"n{j}" not in reused}
+        alone = int(sum(reused.values()) + sum(_code_bytes(fresh).values()))
+    return PredictorChoice(lowrank, int(basis_bytes), alone)
