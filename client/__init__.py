@@ -59,7 +59,7 @@ def compress(source: Any, path: str | Path, *, rank: int | None = None, seed: in
         ('qdeim' | 'leverage' | 'length_squared'; links other than cx; old name ``rows``),
         transform ('standardize' | 'center' | 'none'), n_columns (default 2 * rank), n_rows (default 2 * n_columns; links
         other than cx), replace (sample with replacement). Coding under a tolerance: residual
-        ('auto' | 'quantized' | 'corrections'), basis_precision ('exact' | 'tolerance'),
+        ('auto' | 'quantized' | 'corrections'), basis_precision ('auto' | 'exact' | 'tolerance'),
         refit_outliers. Data: key (a column to address rows by), exact_columns (numeric
         columns kept exactly), connection (DuckDB, for table or query sources). Running:
         executor ('local' | 'dask' | a dask.distributed Client), storage_options, batch_rows,

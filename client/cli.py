@@ -499,9 +499,10 @@ def build_parser() -> argparse.ArgumentParser:
     g = p.add_argument_group("coding under a tolerance")
     g.add_argument("--residual", choices=["auto", "quantized", "corrections"],
                    help="how the residual is kept: codes, exact corrections, or chosen per column (default auto)")
-    g.add_argument("--basis-precision", choices=["exact", "tolerance"], dest="basis_precision",
-                   help="keep the basis columns exactly (default) or rounded to steps of twice the tolerance "
-                        "(neither is smaller on every table: see the README)")
+    g.add_argument("--basis-precision", choices=["auto", "exact", "tolerance"], dest="basis_precision",
+                   help="keep the basis columns exactly, rounded to steps of twice the tolerance, or whichever "
+                        "a trial on a sample of rows measures smaller (default auto; neither is smaller on "
+                        "every table: see the README)")
     g.add_argument("--refit-outliers", action=argparse.BooleanOptionalAction, default=None, dest="refit_outliers",
                    help="refit once without outlier rows (default: with a tolerance)")
     g = p.add_argument_group("data")

@@ -218,7 +218,7 @@ def test_a_manifest_that_moves_a_basis_entry_is_refused(tmp_path):
     from rankfold.udfs.store.manifest import write_manifest
 
     path = tmp_path / "a"
-    rankfold.compress(_table(2), path, max_abs_error=0.01, basis_precision="tolerance", seed=0)
+    rankfold.compress(_table(2), path, max_abs_error=0.01, basis_precision="tolerance", seed=0, n_columns=2)
     manifest = json.loads((path / "manifest.json").read_text())
     coded = [b for b in manifest["basis"] if "stored_as" in b]
     assert coded  # basis values stored as integer codes in _rf_basis_<k>

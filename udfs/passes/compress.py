@@ -753,8 +753,12 @@ def _write(src, new_writer, opts, inputs: _Inputs, build: _Build, passes: _Passe
     if np.isfinite(coding.tolerance).any():
         mixing = _trim_factors(mixing, coding.tolerance, profile)
     if plan is not None and passes.trial_rows is not None and passes.trial_rows.shape[0]:
+        exact_basis = None
+        if opts.basis_precision == "auto" and build.method == "cur" and np.isfinite(coding.basis_step).any():
+            exact_basis = _coding(dataclasses.replace(plan, basis_step=np.full(plan.basis_step.size, np.nan)),
+                                  mixing, build)
         trial = _predictor_trial(passes.trial_rows, mixing, coding, transform, score_right, plan, build,
-                                 keep_basis=opts.fixed_basis)
+                                 keep_basis=opts.fixed_basis, exact_basis=exact_basis)
         if trial is not None:
             mixing, coding, build = trial
             if build.n_columns == 0:
@@ -866,13 +870,17 @@ def _coding(plan, mixing, build) -> Coding | None:
         # weights; the steps are scaled down until that spread (uniform rounding, RMS
         # sqrt(sum_k w_kj^2 step_k^2 / 12)) stays below 30% of the column's own residual step.
         tolerance = plan.tolerance[mixing.basis_columns]
-        basis_step = np.where(np.isfinite(tolerance), 2.0 * tolerance, np.nan)
+        basis_step = np.where(np.isfinite(tolerance) & (tolerance > 0), 2.0 * tolerance, np.nan)
         spread = np.sqrt(np.nansum((mixing.weights * basis_step[:, None]) ** 2, axis=0))
         derived = np.isfinite(plan.tolerance) & (spread > 0)
         derived[mixing.basis_columns] = False
         if derived.any():
-            shrink = np.min(0.3 * 2.0 * plan.tolerance[derived] / spread[derived])
-            basis_step = basis_step * min(1.0, float(shrink))
+            with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+                shrink = float(np.min(0.3 * 2.0 * plan.tolerance[derived] / spread[derived]))
+            # a derived column with a zero tolerance, or weights so large that the spread
+            # overflows, leaves no room to round the basis: it is kept exactly
+            basis_step = basis_step * min(1.0, shrink) if np.isfinite(shrink) and shrink > 0 \
+                else np.full(c, np.nan)
     # residual steps follow the basis as built too: a column the plan kept as basis that is
     # derived now (a refit may choose other columns) gets the residual coding of its tolerance
     steps = plan.residual_step.copy()
@@ -886,26 +894,37 @@ def _coding(plan, mixing, build) -> Coding | None:
 
 
 def _predictor_trial(sample: np.ndarray, mixing: Mixing, coding: Coding, transform: Transform,
-                     score_right: np.ndarray | None, plan, build: _Build, *, keep_basis: bool = False):
-    """The predictor of each coded column, and whether to keep the basis at all, by measured
-    trial on the profile pass's sample of runs of rows (``predictors.choose_predictors``).
-    Returns the mixing, coding and build to write, or None when the trial changes nothing.
+                     score_right: np.ndarray | None, plan, build: _Build, *, keep_basis: bool = False,
+                     exact_basis: Coding | None = None):
+    """The predictor of each coded column, whether the basis is rounded or kept exactly, and
+    whether to keep the basis at all, by measured trial on the profile pass's sample of runs of
+    rows (``predictors.choose_predictors``). Returns the mixing, coding and build to write, or
+    None when the trial changes nothing.
 
-    A column that keeps ``none`` gets zero weights and its shift as offset (its codes are the
-    column rounded alone). Without the basis (every column rounded alone measured smaller),
-    the archive has no basis columns, no anchor rows and a step of twice its tolerance per
-    column; never with ``keep_basis`` (the user gave the basis size). The encode pass measures
-    whatever is chosen: no bound rests on the trial."""
+    ``coding`` is the plan's; ``exact_basis`` (basis_precision 'auto'), the same coding with the
+    basis kept exactly, tried beside it. A column that keeps ``none`` gets zero weights and its
+    shift as offset (its codes are the column rounded alone). Without the basis (every column
+    rounded alone measured smaller), the archive has no basis columns, no anchor rows and a step
+    of twice its tolerance per column; never with ``keep_basis`` (the user gave the basis size).
+    The encode pass measures whatever is chosen: no bound rests on the trial."""
     c = mixing.weights.shape[0]
     if c == 0:
         return None
-    if mixing.basis_columns is not None:
-        stored, arrays = stored_basis(sample[:, mixing.basis_columns], coding.basis_step, False)
-    else:
-        scores = np.nan_to_num(transform.apply(sample), nan=0.0) @ score_right
-        stored, arrays = stored_basis(scores, coding.basis_step, coding.float32_scores)
-    choice = choose_predictors(sample, mixing, coding, transform.shift, stored, arrays)
+    tried = []
+    for candidate in (coding,) if exact_basis is None else (coding, exact_basis):
+        if mixing.basis_columns is not None:
+            stored, arrays = stored_basis(sample[:, mixing.basis_columns], candidate.basis_step, False)
+        else:
+            scores = np.nan_to_num(transform.apply(sample), nan=0.0) @ score_right
+            stored, arrays = stored_basis(scores, candidate.basis_step, candidate.float32_scores)
+        tried.append((choose_predictors(sample, mixing, candidate, transform.shift, stored, arrays), candidate))
+    choice, chosen = min(tried, key=lambda pair: pair[0].basis_bytes)
     rows = sample.shape[0]
+    notes = []
+    if len(tried) == 2:
+        rounded, exact = (t[0].basis_bytes for t in tried)
+        notes.append(f"basis {'kept exactly' if chosen is exact_basis else 'rounded to the tolerance'} "
+                     f"({min(rounded, exact)} against {max(rounded, exact)} bytes on a sample of {rows} rows)")
     if choice.drop_basis and plan.residual != "corrections" and not keep_basis:
         width = mixing.weights.shape[1]
         alone = Mixing(np.zeros((0, width)), transform.shift.copy(), np.zeros(0),
@@ -915,21 +934,22 @@ def _predictor_trial(sample: np.ndarray, mixing: Mixing, coding: Coding, transfo
         reason = (f"{build.reason}; no basis: every column rounded alone measured smaller on a sample of "
                   f"{rows} rows ({choice.alone_bytes} against {choice.basis_bytes} bytes)")
         return alone, alone_coding, dataclasses.replace(build, rank=0, n_columns=0, n_rows=0, reason=reason)
-    coded = np.isfinite(coding.residual_step)
+    coded = np.isfinite(chosen.residual_step)
     if mixing.basis_columns is not None:
         coded[mixing.basis_columns] = False
     alone_columns = coded & ~choice.lowrank
-    if not alone_columns.any():
+    if alone_columns.any():
+        weights, offset = mixing.weights.copy(), mixing.offset.copy()
+        weights[:, alone_columns] = 0.0
+        offset[alone_columns] = transform.shift[alone_columns]
+        mixing = Mixing(weights, offset, mixing.fill, mixing.basis_columns)
+        if mixing.basis_columns is not None and np.isfinite(chosen.basis_step).any():
+            chosen = _coding(plan, mixing, build)  # the basis steps follow the remaining weights
+        notes.append(f"{int(alone_columns.sum())} of {int(coded.sum())} coded columns rounded alone "
+                     f"(smaller than their low-rank residual on a sample of {rows} rows)")
+    if not notes:
         return None
-    weights, offset = mixing.weights.copy(), mixing.offset.copy()
-    weights[:, alone_columns] = 0.0
-    offset[alone_columns] = transform.shift[alone_columns]
-    mixing = Mixing(weights, offset, mixing.fill, mixing.basis_columns)
-    if mixing.basis_columns is not None and np.isfinite(coding.basis_step).any():
-        coding = _coding(plan, mixing, build)  # the basis steps follow the remaining weights
-    reason = (f"{build.reason}; {int(alone_columns.sum())} of {int(coded.sum())} coded columns rounded "
-              f"alone (smaller than their low-rank residual on a sample of {rows} rows)")
-    return mixing, coding, dataclasses.replace(build, reason=reason)
+    return mixing, chosen, dataclasses.replace(build, reason="; ".join([build.reason, *notes]))
 
 
 def _trim_factors(mixing: Mixing, tolerance: np.ndarray, profile: ColumnProfile) -> Mixing:

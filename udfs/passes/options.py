@@ -19,7 +19,7 @@ __all__ = ["CompressOptions", "METHODS", "TRANSFORMS", "DEFAULT_MAX_STD_ERROR", 
 
 METHODS = ("cur", "svd")
 RESIDUALS = ("auto", "quantized", "corrections")
-BASIS_PRECISIONS = ("exact", "tolerance")
+BASIS_PRECISIONS = ("auto", "exact", "tolerance")
 TRANSFORMS = ("standardize", "center", "none")
 
 # Rank chosen when neither a rank nor a target is set (compress no longer gets there: with
@@ -81,9 +81,11 @@ class CompressOptions:
     max_std_error: Any = None
     target_bytes: int | None = None
     residual: str = "auto"
-    # exact by default: rounding the basis to the tolerance was smaller on real tables but 37%
-    # larger on the demo table (README, "basis_precision"); no choice is smaller everywhere
-    basis_precision: str = "exact"
+    # auto: under a tolerance the basis columns are rounded to it or kept exactly, whichever a
+    # trial of the real writer on a sample of rows measures smaller (passes/predictors.py);
+    # rounding was smaller on real tables but 37% larger on the demo table, so neither fixed
+    # choice is smaller everywhere. Without a tolerance, exact.
+    basis_precision: str = "auto"
     refit_outliers: bool | None = None
     executor: Any = field(default="local", repr=False)
     storage_options: dict | None = field(default=None, repr=False)

@@ -133,9 +133,13 @@ def _stored_codes(values: np.ndarray, step: np.ndarray) -> np.ndarray:
 
 
 def _code_bytes(arrays: dict[str, pa.Array]) -> dict[str, int]:
+    """Compressed bytes of each sampled code column under its best Parquet encoding at the row
+    writer's zstd level (the level itself is chosen later, per column, by the row writer:
+    ``commit.code_layouts``; trying every level here tripled the trial's time)."""
     if not arrays:
         return {}
-    return {name: choice.sampled_bytes for name, choice in choose_sample_layouts(arrays).items()}
+    return {name: choice.sampled_bytes
+            for name, choice in choose_sample_layouts(arrays, levels=(ZSTD_LEVEL,)).items()}
 
 
 def _value_bytes(arrays: dict[str, pa.Array]) -> int:

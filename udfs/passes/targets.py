@@ -172,7 +172,7 @@ class PredictedResiduals:
 @dataclass(frozen=True)
 class ToleranceCoding:
     """How the residual and the basis are coded under a tolerance: ``residual`` ('auto',
-    'quantized', 'corrections') and ``basis_precision`` ('exact', 'tolerance'); ``std`` (n,)
+    'quantized', 'corrections') and ``basis_precision`` ('auto', 'exact', 'tolerance'); ``std`` (n,)
     the columns' standard deviations and ``exact_bytes`` (n,) the measured bytes per value of
     each column stored exactly."""
 
@@ -199,12 +199,15 @@ def plan_for_tolerance(predicted: PredictedResiduals, tolerance: np.ndarray, cod
             basis = predicted.order[:c]
             cost[basis] = 0.0
             step[basis] = np.nan
-            if coding.basis_precision == "tolerance":
-                finite = np.isfinite(tolerance[basis])
+            if coding.basis_precision in ("tolerance", "auto"):
+                # a zero tolerance (a constant column under max_std_error) keeps it exactly
+                finite = np.isfinite(tolerance[basis]) & (tolerance[basis] > 0)
                 basis_step = np.where(finite, 2.0 * tolerance[basis], np.nan)
                 ratio = np.where(finite, coding.std[basis] / np.where(finite, basis_step, 1.0), 0.0)
                 basis_cost = np.where(finite, rows * quantized_entropy_bits(ratio) / 8.0 * CODING_OVERHEAD,
                                       rows * coding.exact_bytes[basis])
+                if coding.basis_precision == "auto":  # the trial keeps the smaller (compress.py)
+                    basis_cost = np.minimum(basis_cost, rows * coding.exact_bytes[basis])
             else:
                 basis_cost = rows * coding.exact_bytes[basis]
             anchors = 2 * c * width * 8.0
