@@ -205,7 +205,7 @@ def _swap_names(path: Path) -> None:
 
 
 EDITS = {
-    "column type": lambda p: _edit_text(p, '"type":"double"', '"type":"float"'),
+    "column type": lambda p: _edit_text(p, '["double",', '["float",'),  # the schema's types are runs
     "two names swapped": _swap_names,
     "shape": lambda p: _edit_text(p, f'"shape": [{ROWS},', f'"shape": [{ROWS - 1},'),
 }
@@ -681,3 +681,37 @@ def test_an_older_manifest_that_stores_numeric_columns_still_reads(archive):
     assert "numeric_columns" in manifest
     (archive / "manifest.json").write_text(json.dumps(manifest))
     assert rankfold.open(archive, checksums=True).numeric_columns == manifest["numeric_columns"]
+
+
+@settings(max_examples=60, deadline=None, derandomize=True)
+@given(st.lists(st.tuples(st.sampled_from(["double", "float", "int64", "string"]),
+                          st.sampled_from(["numeric", "exact"])), min_size=1, max_size=12),
+       st.booleans(), st.booleans())
+def test_the_stored_form_of_a_manifest_reads_back_as_it_was(fields, every_column, with_numeric):
+    # written_form (schema by field, types and roles as runs, per-column targets as lists) and
+    # derived_entries are inverses: the manifest a reader gets is the one the writer had
+    from rankfold.udfs.store.manifest_schema import derived_entries, written_form
+
+    schema = [{"name": f"c{k}", "type": t, "role": r} for k, (t, r) in enumerate(fields)]
+    numeric = [f["name"] for f in schema if f["role"] == "numeric"]
+    named = numeric if every_column else numeric[:1]
+    manifest = {"schema": schema, "targets": {"max_abs_error": {n: 0.5 + k for k, n in enumerate(named)},
+                                              "max_std_error": 0.01, "rel_error": None}}
+    if with_numeric:
+        manifest["numeric_columns"] = numeric
+    stored = json.loads(json.dumps(written_form(manifest)))  # through JSON text, as on disk
+    assert "numeric_columns" not in stored and stored["schema"]["names"] == [f["name"] for f in schema]
+    derived_entries(stored)
+    assert stored == dict(manifest, numeric_columns=numeric)
+
+
+def test_a_schema_whose_runs_do_not_add_up_is_refused(archive):
+    text = (archive / "manifest.json").read_text()
+    manifest = json.loads(text)
+    runs = manifest["schema"]["types"]
+    runs[-1][1] += 1  # one type more than there are names
+    manifest.pop("manifest_sha256")
+    manifest = {"manifest_sha256": manifest_digest(manifest), **manifest}
+    (archive / "manifest.json").write_text(json.dumps(manifest))
+    with pytest.raises(rankfold.CorruptArchiveError, match="manifest.schema"):
+        rankfold.open(archive)

@@ -21,7 +21,7 @@ import rankfold.udfs
 from rankfold.udfs.passes.commit import write_small_table
 from rankfold.udfs.store import layout
 from rankfold.udfs.store.aggregate import BLOCKS, pack_blocks, unpack_blocks
-from rankfold.udfs.store.manifest import file_entry, write_manifest
+from rankfold.udfs.store.manifest import file_entry, read_manifest, write_manifest
 from rankfold.udfs.store.table_schemas import CELLS_SCHEMA, COLUMNS_SCHEMA, anchors_schema
 
 
@@ -150,7 +150,7 @@ def test_an_archive_with_empty_tables_written_before_still_reads_and_appends(tmp
     x = _low_rank(400, 10, seed=9)
     path = rankfold.compress(_columns(x), tmp_path / "old.rankfold", rank=2).path
     manifest = json.loads((path / layout.MANIFEST).read_text())
-    names = [f["name"] for f in manifest["schema"] if f["role"] == "numeric"]
+    names = read_manifest(path)["numeric_columns"]
     pq.write_table(anchors_schema(names, False).empty_table(), path / layout.ANCHORS)
     pq.write_table(CELLS_SCHEMA.empty_table(), path / layout.CELLS)
     manifest["files"] += [file_entry(path, layout.ANCHORS), file_entry(path, layout.CELLS)]

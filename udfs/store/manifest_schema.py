@@ -27,7 +27,7 @@ from ..errors import CorruptArchiveError
 from . import layout
 
 __all__ = ["MANIFEST_SCHEMA", "DIGEST_FIELD", "RENAMED_ERROR_KEYS", "MAX_ROWS", "MAX_COLUMNS", "validate",
-           "check_plain_name", "older_format_rules", "older_row_file_rules", "DERIVED_KEYS", "derived_entries", "sealed_by_groups",
+           "check_plain_name", "older_format_rules", "older_row_file_rules", "DERIVED_KEYS", "derived_entries", "written_form", "sealed_by_groups",
            "files_used", "OPTIONAL_TABLES", "holds_table"]
 
 DIGEST_FIELD = "manifest_sha256"
@@ -299,17 +299,79 @@ def older_format_rules(manifest: dict[str, Any], path: Any) -> None:
 #: ``numeric_columns`` is the schema's names with role "numeric", in schema order. Manifests
 #: written before kept it; their copy is checked against the schema (``_cross_check``).
 DERIVED_KEYS = ("numeric_columns",)
+#: Target options recorded per column (``targets``); see :func:`written_form`.
+_PER_COLUMN_TARGETS = ("rel_error", "max_abs_error", "max_std_error")
+
+
+def _runs(values: list[Any]) -> list[list[Any]]:
+    """Run-length form [[value, count], ...] of a list."""
+    runs: list[list[Any]] = []
+    for value in values:
+        if runs and runs[-1][0] == value:
+            runs[-1][1] += 1
+        else:
+            runs.append([value, 1])
+    return runs
+
+
+def _expanded(runs: Any, length: int) -> list[Any] | None:
+    """The list of a run-length form, or None when it is not one of ``length`` entries."""
+    if not isinstance(runs, list) or not all(isinstance(r, list) and len(r) == 2 and type(r[1]) is int
+                                             and r[1] > 0 for r in runs):
+        return None
+    values = [r[0] for r in runs for _ in range(r[1])] if sum(r[1] for r in runs) == length else None
+    return values
+
+
+def written_form(manifest: dict[str, Any]) -> dict[str, Any]:
+    """The manifest as a writer stores it (a new dict; ``manifest`` is left alone), the inverse of
+    :func:`derived_entries`. Nothing is stored twice, and what repeats is stored once:
+
+    * :data:`DERIVED_KEYS` are left out;
+    * ``schema`` is stored by field, ``{"names": [...], "types": runs, "roles": runs}`` with
+      types and roles as runs ``[[value, count], ...]`` (a 751-column schema: 49 kB as one
+      record per column, 16 kB so);
+    * a per-column target of ``targets`` that names every numeric column in schema order is
+      stored as a list of its values (the names are the schema's)."""
+    body = {k: v for k, v in manifest.items() if k not in DERIVED_KEYS}
+    schema = body.get("schema")
+    if isinstance(schema, list) and all(isinstance(f, dict) and set(f) == {"name", "type", "role"} for f in schema):
+        body["schema"] = {"names": [f["name"] for f in schema], "types": _runs([f["type"] for f in schema]),
+                          "roles": _runs([f["role"] for f in schema])}
+        numeric = [f["name"] for f in schema if f["role"] == "numeric"]
+        targets = body.get("targets")
+        if isinstance(targets, dict):
+            targets = dict(targets)
+            for key in _PER_COLUMN_TARGETS:
+                value = targets.get(key)
+                if isinstance(value, dict) and list(value) == numeric:
+                    targets[key] = list(value.values())
+            body["targets"] = targets
+    return body
 
 
 def derived_entries(manifest: dict[str, Any]) -> None:
-    """Add :data:`DERIVED_KEYS` to a manifest as read (in place), from the entries they are
-    derived from; an older manifest's own copy is kept (and then checked by :func:`validate`).
-    A schema that is not a list of records is left for :func:`validate` to refuse."""
+    """Undo :func:`written_form` on a manifest as read (in place): the schema by field back to
+    one record per column, per-column targets stored as lists back to mappings, and
+    :data:`DERIVED_KEYS` added (an older manifest's own copy is kept, and then checked by
+    :func:`validate`). A form that does not fit together is left as it is, for :func:`validate`
+    to refuse with its place named."""
     schema = manifest.get("schema")
-    if "numeric_columns" in manifest or not isinstance(schema, list):
+    if isinstance(schema, dict) and set(schema) == {"names", "types", "roles"} and isinstance(schema["names"], list):
+        names = schema["names"]
+        types, roles = _expanded(schema["types"], len(names)), _expanded(schema["roles"], len(names))
+        if types is not None and roles is not None:
+            manifest["schema"] = schema = [{"name": n, "type": t, "role": r} for n, t, r in zip(names, types, roles)]
+    if not isinstance(schema, list) or not all(isinstance(f, dict) for f in schema):
         return
-    if all(isinstance(f, dict) for f in schema):
-        manifest["numeric_columns"] = [f.get("name") for f in schema if f.get("role") == "numeric"]
+    numeric = [f.get("name") for f in schema if f.get("role") == "numeric"]
+    targets = manifest.get("targets")
+    if isinstance(targets, dict):
+        for key in _PER_COLUMN_TARGETS:
+            value = targets.get(key)
+            if isinstance(value, list) and len(value) == len(numeric):
+                targets[key] = dict(zip(numeric, value))
+    manifest.setdefault("numeric_columns", numeric)
 
 
 # older name -> name, in the manifest's ``errors`` and ``achieved`` records: the achieved error
