@@ -504,7 +504,7 @@ def build_parser() -> argparse.ArgumentParser:
                         "a trial on a sample of rows measures smaller (default auto; neither is smaller on "
                         "every table: see the README)")
     g.add_argument("--refit-outliers", action=argparse.BooleanOptionalAction, default=None, dest="refit_outliers",
-                   help="refit once without outlier rows (default: with a tolerance)")
+                   help="refit once without outlier rows (default: with a tolerance, when a sample of rows shows outliers)")
     g = p.add_argument_group("data")
     g.add_argument("--key", help="column to address rows by (kept exactly)")
     g.add_argument("--exact-columns", metavar="A,B", dest="exact_columns", help="numeric columns to keep exactly, comma separated")

@@ -109,3 +109,23 @@ def test_a_basis_of_a_size_the_user_gave_is_kept(tmp_path):
     archive = rankfold.compress(x, tmp_path / "a.rankfold", max_std_error=0.01, n_columns=3)
     assert archive.manifest["method"]["n_columns"] == 3
     _within(archive, x, 0.01 * x.std(axis=0) * (1 + 1e-9))
+
+
+def test_the_default_refit_runs_only_when_the_sample_shows_an_outlier(tmp_path):
+    # the spiky panel of tests/test_targets.py (invented): rank 6, 1% noise, 150 spikes of 30 std
+    rng = np.random.default_rng(5)
+    x = rng.standard_normal((8000, 6)) @ rng.standard_normal((6, 60))
+    x = (x + 0.01 * x.std() * rng.standard_normal(x.shape)) * np.logspace(-3, 3, 60)[None, :]
+    spiky = x.copy()
+    for _ in range(150):
+        i, j = rng.integers(8000), rng.integers(60)
+        spiky[i, j] += 30 * spiky[:, j].std()
+    options = dict(rank=6, max_std_error=0.1, basis_precision="exact")
+    calm = rankfold.compress(x, tmp_path / "calm.rankfold", **options)
+    assert "skipped" in calm.manifest["refit"] and calm.manifest["refit"]["cells_screened"] == 0
+    refitted = rankfold.compress(spiky, tmp_path / "spiky.rankfold", **options)
+    assert "skipped" not in refitted.manifest["refit"] and refitted.manifest["refit"]["cells_screened"] >= 100
+    asked = rankfold.compress(x, tmp_path / "asked.rankfold", refit_outliers=True, **options)
+    assert "skipped" not in asked.manifest["refit"]  # asked for: always runs
+    for archive, truth in ((calm, x), (refitted, spiky), (asked, x)):
+        _within(archive, truth, 0.1 * truth.std(axis=0) * (1 + 1e-9))
