@@ -61,6 +61,12 @@ _EXACT_INTEGER_LIMIT = 2.0**53
 
 
 # -- the passes as tasks over one partition's blocks (first row, batch, block, NULL mask) ---------
+# rows of the first batch whose Parquet bytes per value feed the size model (exact_bytes):
+# 16,384 rows measured within 5% of 20,000 (the whole demo table) per column of the demo table,
+# and 65,536 rows took 0.31 s of a compress at 1e6 x 100
+_BYTES_SAMPLE_ROWS = 16_384
+
+
 def _profile_task(blocks, part, width: int, keep_sample: bool, seed: int = 0):
     """Column statistics, the fingerprint and the co-moments (the sketch) of one partition;
     with ``keep_sample``, also the measured bytes per value of each column and the sample of
@@ -73,7 +79,7 @@ def _profile_task(blocks, part, width: int, keep_sample: bool, seed: int = 0):
     for first, batch, block, mask in blocks:
         profile, gram = profile_rows(first, block, mask, profile, fingerprint, gram)
         if keep_sample and not sample:
-            sample = targets.column_bytes(batch.slice(0, 65_536))
+            sample = targets.column_bytes(batch.slice(0, _BYTES_SAMPLE_ROWS))
         if runs is not None:
             runs.add(first, block, mask)
     return profile, fingerprint, sample, gram, runs

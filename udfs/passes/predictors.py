@@ -66,9 +66,15 @@ class SampleRuns:
     seed: int
     length: int
     pieces: dict[int, list[tuple[int, np.ndarray]]] = field(default_factory=dict)
+    _keys: dict[int, float] = field(default_factory=dict, repr=False)
 
     def _key(self, run: int) -> float:
-        return float(row_uniforms(self.seed, _STREAM, np.array([run]))[0])
+        key = self._keys.get(run)
+        if key is None:
+            key = self._keys[run] = float(row_uniforms(self.seed, _STREAM, np.array([run]))[0])
+            if len(self._keys) > 4 * RUNS:  # keep the keys of kept runs only
+                self._keys = {r: self._keys[r] for r in (*self.pieces, run) if r in self._keys}
+        return key
 
     def _trim(self) -> None:
         if len(self.pieces) > RUNS:
@@ -94,7 +100,8 @@ class SampleRuns:
             self._trim()
 
     def merge(self, other: "SampleRuns") -> "SampleRuns":
-        merged = SampleRuns(self.seed, self.length, {r: list(p) for r, p in self.pieces.items()})
+        merged = SampleRuns(self.seed, self.length, {r: list(p) for r, p in self.pieces.items()},
+                            {**self._keys, **other._keys})
         for run, pieces in other.pieces.items():
             merged.pieces.setdefault(run, []).extend(pieces)
         merged._trim()
