@@ -48,6 +48,7 @@ from .profile import (SUB_BLOCK_ROWS, ColumnProfile, Fingerprint, Transform, new
 from .select import AnchorRows, AnchorScan, anchor_partial, merge_anchor_partials, sketch_of
 from .refit import KAPPA, OutlierScreen
 from .encode import EncodeResult, column_error_figures, column_statistics, encode_pass
+from .forced_differences import apply_forced_differences
 from . import sizes, targets
 
 __all__ = ["compress"]
@@ -737,6 +738,7 @@ def _write(src, new_writer, opts, inputs: _Inputs, build: _Build, passes: _Passe
         score_right = None
         basis_names = [numeric[k] for k in mixing.basis_columns]
     coding = _coding(plan, mixing, build) or Coding.plain(width, mixing.weights.shape[0])
+    coding = apply_forced_differences(coding, numeric)  # off unless forced (forced_differences.py)
     if np.isfinite(coding.tolerance).any():
         mixing = _trim_factors(mixing, coding.tolerance, profile)
     model = FittedModel(

@@ -92,7 +92,9 @@ class _ScanReader(ArchiveReader):
 
     def read_rows(self, positions: np.ndarray, columns: list[str] | None = None) -> pa.Table:
         positions = np.asarray(positions, dtype=np.int64)
-        if positions.size == 0:
+        if positions.size == 0 or self.reads_differences(columns):
+            # difference-coded codes decode over whole chunks, which may span row groups:
+            # the parent reads them (not cached)
             return super().read_rows(positions, columns)
         order = np.argsort(positions, kind="stable")
         sorted_pos = positions[order]

@@ -19,7 +19,7 @@ import pyarrow.parquet as pq
 
 from ..errors import (ArchiveNotFoundError, CorruptArchiveError, InvalidInputError, RowOutOfRangeError,
                       UnknownColumnError)
-from . import arithmetic, layout
+from . import arithmetic, layout, row_differences
 from .integrity import (RowFileSeal, check_tables, damaged, open_row_file, read_small_table,
                         verified_metadata)
 from .manifest import DIGEST_FIELD, check_files, read_manifest
@@ -45,6 +45,15 @@ class Rebuilt:
     nulls: np.ndarray
     rows: pa.Table
     slack: np.ndarray | None = None
+
+
+def _last_per(keys: np.ndarray, values: np.ndarray) -> np.ndarray:
+    """The largest of ``values`` for each distinct key of ``keys`` (in the order of
+    ``np.unique(keys)``)."""
+    unique, inverse = np.unique(keys, return_inverse=True)
+    out = np.full(unique.size, np.iinfo(np.int64).min, dtype=np.int64)
+    np.maximum.at(out, inverse, values)
+    return out
 
 
 def _short(value: Any) -> str:
@@ -265,14 +274,20 @@ class ArchiveReader:
         order = np.argsort(positions, kind="stable")
         sorted_pos = positions[order]
         pieces = []
+        differenced = self.reads_differences(columns)
         for first, count, name, starts in self.parts:
             lo, hi = np.searchsorted(sorted_pos, [first, first + count])
             if lo == hi:
                 continue
             local = sorted_pos[lo:hi] - first
             groups = np.unique(np.searchsorted(starts, local, side="right") - 1)
+            if differenced:  # whole chunks: a difference-coded code needs its chunk's rows before it
+                groups = self._chunk_groups(first, local, starts)
             wanted = groups.tolist()
             table = self._read(name, lambda f, wanted=wanted: f.read_row_groups(wanted, columns=columns))
+            if differenced:
+                rows = np.concatenate([np.arange(starts[g], starts[g + 1]) for g in groups]) + first
+                table = self.model.undifference(table, row_differences.chunk_starts(rows, first))
             group_first = starts[groups]
             offsets = np.cumsum([0] + [starts[g + 1] - starts[g] for g in groups])
             index_in_read = offsets[np.searchsorted(group_first, local, side="right") - 1] + (
@@ -282,6 +297,22 @@ class ArchiveReader:
         inverse = np.empty_like(order)
         inverse[order] = np.arange(order.size)
         return table.take(pa.array(inverse))
+
+    def reads_differences(self, columns: list[str] | None) -> bool:
+        """Whether reading the row-file columns ``columns`` (None: all) reads a residual-code
+        column stored as row differences (``row_differences``)."""
+        names = {layout.CODE_PATTERN.format(int(j)) for j in np.flatnonzero(self.model.difference)}
+        return bool(names) and (columns is None or not names.isdisjoint(columns))
+
+    @staticmethod
+    def _chunk_groups(first: int, local: np.ndarray, starts: np.ndarray) -> np.ndarray:
+        """Row groups (sorted) of a row file starting at row ``first`` with row-group starts
+        ``starts`` that hold every row of the chunks of the file positions ``local`` up to
+        them (a chunk of ``row_differences`` may span row groups)."""
+        chunk_first = row_differences.chunk_starts(local + first, first) - first
+        lo = np.searchsorted(starts, chunk_first, side="right") - 1
+        hi = np.searchsorted(starts, local, side="right") - 1
+        return np.unique(np.concatenate([np.arange(a, z + 1) for a, z in zip(np.unique(lo), _last_per(lo, hi))]))
 
     def _read(self, name: str, how) -> pa.Table:
         """``how(row file)`` with a damaged page (checksum, encoding) refused as corruption and
