@@ -159,9 +159,11 @@ def scan_sql(reader: ArchiveReader, columns: Any = None, bounds: str = "row",
         outer += [f"CAST({b} AS DOUBLE) AS {quote_identifier(n + '_bound')}" for n, b in zip(names, bound_exprs)]
     outer.append(layout.ROW_ID)
     # codes stored as row differences decode over whole chunks: before the predicate filters
-    source, _ = agg.decoded_rows_sql(reader, col_idx[derived] if derived else col_idx[:0], sealed)
-    if predicate is not None:
-        condition = agg.check_where(reader, con, predicate)
+    # (which then picks the chunks to decode)
+    condition = agg.check_where(reader, con, predicate) if predicate is not None else None
+    source, _ = agg.decoded_rows_sql(reader, col_idx[derived] if derived else col_idx[:0], sealed,
+                                     condition, con)
+    if condition is not None:
         source = f"(SELECT * FROM {source} WHERE {condition})"
     stored = f"(SELECT {', '.join(inner)} FROM {source} r{joins})"
     if middle:

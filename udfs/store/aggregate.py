@@ -303,18 +303,44 @@ def rows_source_sql(reader, sealed: str | None = None, file_row_number: bool = F
     return read_parquet_sql(paths, file_row_number)
 
 
-def decoded_rows_sql(reader, col_idx: np.ndarray, sealed: str | None = None) -> tuple[str, np.ndarray]:
+# Most restart chunks a filtered read decodes by name (row ranges as constants, which DuckDB
+# prunes row groups with); a condition that touches more decodes every row.
+MAX_NAMED_CHUNKS = 256
+
+
+def decoded_rows_sql(reader, col_idx: np.ndarray, sealed: str | None = None, where: str | None = None,
+                     con=None) -> tuple[str, np.ndarray]:
     """The row files as SQL (``rows_source_sql``) with the residual codes of the columns
     ``col_idx`` (q,) that are stored as row differences decoded (``row_differences``), and
     which of the q columns those are ((q,) bool; read their codes with
     ``row_differences.signed_code_sql``). Filter the rows only after this: a chunk decodes
-    whole."""
+    whole.
+
+    ``where`` (a checked condition on key columns and ``_rf_row``, ``check_where``) and a
+    cursor ``con``: the rows the caller will keep. Their chunks are found first (one query on
+    the key columns, pushed into the Parquet scan) and, when there are at most
+    ``MAX_NAMED_CHUNKS``, only those chunks' rows are read and decoded (a point lookup decodes
+    one chunk instead of the table). The rows returned are then a superset of those that
+    pass ``where``, each decoded correctly; the caller still filters by ``where``."""
     col_idx = np.asarray(col_idx, dtype=np.int64)
     differenced = reader.model.difference[col_idx] if col_idx.size else np.zeros(0, bool)
     if not differenced.any():
         return rows_source_sql(reader, sealed), differenced
     names = list(dict.fromkeys(layout.CODE_PATTERN.format(int(j)) for j in col_idx[differenced]))
-    return row_differences.decoded_codes_sql(rows_source_sql(reader, sealed, True), names), differenced
+    source = rows_source_sql(reader, sealed, True)
+    if where is not None and con is not None:
+        found = con.sql(f"SELECT DISTINCT {row_differences.chunk_sql()} AS c FROM {source} "
+                        f"WHERE {where} ORDER BY c LIMIT {MAX_NAMED_CHUNKS + 1}").fetchnumpy()["c"]
+        if found.size <= MAX_NAMED_CHUNKS:
+            # a chunk starting at c ends before c + K; rows of a later chunk (another file)
+            # inside that range start their own chunk, so they decode correctly too
+            k = row_differences.CHUNK_ROWS
+            ranges = " OR ".join(f"({layout.ROW_ID} >= {int(c)} AND {layout.ROW_ID} < {int(c) + k})"
+                                 for c in found) or "false"
+            span = (f"{layout.ROW_ID} >= {int(found.min())} AND {layout.ROW_ID} < {int(found.max()) + k} AND "
+                    if found.size else "")
+            source = f"(SELECT * FROM {source} WHERE {span}({ranges}))"
+    return row_differences.decoded_codes_sql(source, names), differenced
 
 
 # -- the partial sums of one row set -----------------------------------------------------------
@@ -478,7 +504,13 @@ def _scan_partials(reader, con, names, col_idx, by, where, row_range):
     is_basis = reader.model.is_basis[col_idx]
     coded = np.isfinite(steps) & ~is_basis
     # codes stored as row differences are decoded before any row is filtered out
-    source, differenced = decoded_rows_sql(reader, np.asarray(col_idx)[coded])
+    conds = []
+    if where:
+        conds.append(f"({where})")
+    if row_range is not None:
+        conds.append(f"{layout.ROW_ID} >= {row_range[0]} AND {layout.ROW_ID} < {row_range[1]}")
+    source, differenced = decoded_rows_sql(reader, np.asarray(col_idx)[coded],
+                                           where=" AND ".join(conds) or None, con=con)
     differenced_at = np.zeros(q, bool)
     differenced_at[np.flatnonzero(coded)] = differenced
 
@@ -486,11 +518,6 @@ def _scan_partials(reader, con, names, col_idx, by, where, row_range):
         column = prefix + quote_identifier(layout.CODE_PATTERN.format(int(col_idx[s])))
         return row_differences.signed_code_sql(column, bool(differenced_at[s]))
 
-    conds = []
-    if where:
-        conds.append(f"({where})")
-    if row_range is not None:
-        conds.append(f"{layout.ROW_ID} >= {row_range[0]} AND {layout.ROW_ID} < {row_range[1]}")
     cond = (" WHERE " + " AND ".join(conds)) if conds else ""
     group = ", ".join(quote_identifier(b) for b in by)
     f = [basis_value_sql(reader.model, t) for t in range(c)]
