@@ -319,8 +319,8 @@ def decoded_rows_sql(reader, col_idx: np.ndarray, sealed: str | None = None, whe
     ``where`` (a checked condition on key columns and ``_rf_row``, ``check_where``) and a
     cursor ``con``: the rows the caller will keep. Their chunks are found first (one query on
     the key columns, pushed into the Parquet scan) and, when there are at most
-    ``MAX_NAMED_CHUNKS``, only those chunks' rows are read and decoded (a point lookup decodes
-    one chunk instead of the table). The rows returned are then a superset of those that
+    ``MAX_NAMED_CHUNKS`` holding at most half the rows, only those chunks' rows are read and
+    decoded (a point lookup decodes one chunk instead of the table). The rows returned are then a superset of those that
     pass ``where``, each decoded correctly; the caller still filters by ``where``."""
     col_idx = np.asarray(col_idx, dtype=np.int64)
     differenced = reader.model.difference[col_idx] if col_idx.size else np.zeros(0, bool)
@@ -331,7 +331,7 @@ def decoded_rows_sql(reader, col_idx: np.ndarray, sealed: str | None = None, whe
     if where is not None and con is not None:
         found = con.sql(f"SELECT DISTINCT {row_differences.chunk_sql()} AS c FROM {source} "
                         f"WHERE {where} ORDER BY c LIMIT {MAX_NAMED_CHUNKS + 1}").fetchnumpy()["c"]
-        if found.size <= MAX_NAMED_CHUNKS:
+        if found.size <= MAX_NAMED_CHUNKS and found.size * row_differences.CHUNK_ROWS <= reader.rows_count // 2:
             # a chunk starting at c ends before c + K; rows of a later chunk (another file)
             # inside that range start their own chunk, so they decode correctly too
             k = row_differences.CHUNK_ROWS
