@@ -24,8 +24,8 @@ Usage: python benchmarks/row_differences.py [--rows 50000] [--cols 8] [--tol 0.0
 
 Results
 -------
-See the end of this docstring's module note in DEVELOPERS.md ("Row differences") for the last
-run's figures and the command.
+DEVELOPERS.md, "Row differences", holds the last run's figures (sizes at 50,000 x 8 for
+--tol 0.1, 0.01, 0.001 and at 1,000,000 x 8; times at 1,000,000 x 8, --repeat 3).
 """
 
 from __future__ import annotations
