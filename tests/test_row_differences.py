@@ -94,8 +94,8 @@ def _truth(table: pa.Table, names: list[str]) -> np.ndarray:
 
 
 def _walks(seed: int, m: int, n: int, specials: bool, first: int = 0) -> pa.Table:
-    """Invented random walks (numpy Generator), an int32 walk, a key, and with ``specials``
-    NULL, NaN and +-inf cells."""
+    """Invented random walks (numpy Generator), an int32 and a float32 walk, a key, and with
+    ``specials`` NULL, NaN and +-inf cells in the float64 walks."""
     rng = np.random.default_rng(seed)
     x = np.cumsum(rng.normal(size=(m, n)), axis=0) + rng.normal(size=n) * 10
     columns = {"id": pa.array(np.arange(first, first + m, dtype=np.int64))}
@@ -110,6 +110,7 @@ def _walks(seed: int, m: int, n: int, specials: bool, first: int = 0) -> pa.Tabl
             nulls = (u >= 0.03) & (u < 0.04)
         columns[f"w{j}"] = pa.array(values, mask=nulls)
     columns["steps"] = pa.array(np.cumsum(rng.integers(-3, 4, m)).astype(np.int32))
+    columns["narrow"] = pa.array((np.cumsum(rng.normal(size=m)) * 0.1).astype(np.float32))
     return pa.table(columns)
 
 
