@@ -19,7 +19,9 @@ this process, DuckDB's threads included), and the ratio with / without:
   python full scan     rankfold.open(path).to_numpy()
   python point lookup  archive.cell(K, 'w3') on an open archive, a new K each run
 
-Usage: python benchmarks/row_differences.py [--rows 50000] [--cols 8] [--tol 0.01]
+With ``--extra N``, N columns of rank-4 structure are added and only the walks are forced.
+
+Usage: python benchmarks/row_differences.py [--rows 50000] [--cols 8] [--extra 0] [--tol 0.01]
        [--repeat 5] [--out /tmp/rf_rowdiff]
 
 Results
@@ -46,11 +48,16 @@ from rankfold.udfs.passes.forced_differences import forced_differences
 from rankfold.udfs.store import layout
 
 
-def make_table(rows: int, cols: int, seed: int = 0) -> pa.Table:
+def make_table(rows: int, cols: int, extra: int = 0, seed: int = 0) -> pa.Table:
+    """``cols`` random walks w0.. and ``extra`` columns x0.. of rank-4 structure plus 1% noise
+    (invented, numpy Generator)."""
     rng = np.random.default_rng(seed)
     walks = np.cumsum(rng.normal(size=(rows, cols)), axis=0)
     columns = {"id": pa.array(np.arange(rows, dtype=np.int64))}
     columns.update({f"w{j}": pa.array(walks[:, j]) for j in range(cols)})
+    if extra:
+        low = rng.normal(size=(rows, 4)) @ rng.normal(size=(4, extra)) + 0.01 * rng.normal(size=(rows, extra))
+        columns.update({f"x{j}": pa.array(low[:, j]) for j in range(extra)})
     return pa.table(columns)
 
 
@@ -92,6 +99,8 @@ def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     parser.add_argument("--rows", type=int, default=50_000)
     parser.add_argument("--cols", type=int, default=8)
+    parser.add_argument("--extra", type=int, default=0,
+                        help="also this many low-rank columns, not forced (only the walks are)")
     parser.add_argument("--tol", type=float, default=0.01)
     parser.add_argument("--repeat", type=int, default=5)
     parser.add_argument("--out", default="/tmp/rf_rowdiff")
@@ -99,16 +108,16 @@ def main() -> None:
     out = Path(args.out)
     shutil.rmtree(out, ignore_errors=True)
     out.mkdir(parents=True)
-    table = make_table(args.rows, args.cols)
+    table = make_table(args.rows, args.cols, args.extra)
     options = dict(key="id", max_std_error=args.tol)
     t0 = time.perf_counter()
     rankfold.compress(table, out / "without", **options)
     t1 = time.perf_counter()
-    with forced_differences("all"):
+    with forced_differences([f"w{j}" for j in range(args.cols)]):
         rankfold.compress(table, out / "with", **options)
     t2 = time.perf_counter()
     paths = {"with": out / "with", "without": out / "without"}
-    print(f"{args.rows} x {args.cols} random walks, max_std_error {args.tol}; compress "
+    print(f"{args.rows} x {args.cols} random walks (+ {args.extra} low-rank), max_std_error {args.tol}; compress "
           f"{t2 - t1:.2f} s with / {t1 - t0:.2f} s without")
     measured = {name: sizes(p) for name, p in paths.items()}
     for t, label in enumerate(("archive bytes", "row files bytes", "code chunks bytes")):
