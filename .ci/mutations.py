@@ -120,6 +120,16 @@ MUTATIONS = {
         "            path = self.writer.commit(self.manifest, self.files, at_most=goal.target_bytes)",
         "            path = self.writer.commit(self.manifest, self.files, at_most=None)",
         ["tests/test_sizes.py"]),
+    "row-difference chunks of SQL ignore where row files start": (
+        "udfs/store/row_differences.py",
+        '    return f"greatest({r} // {CHUNK_ROWS} * {CHUNK_ROWS}, {r} - {p})"',
+        '    return f"({r} // {CHUNK_ROWS} * {CHUNK_ROWS})"',
+        ["tests/test_row_differences.py"]),
+    "python reads of row differences not widened to whole chunks": (
+        "udfs/store/reader.py",
+        "                groups = self._chunk_groups(first, local, starts)",
+        "                groups = groups",
+        ["tests/test_row_differences.py"]),
 }
 
 

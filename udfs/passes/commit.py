@@ -141,6 +141,11 @@ class RowPartWriter:
         self._thread: ThreadPoolExecutor | None = None
         self._pending: list[Future] = []
 
+    def starts_file(self) -> bool:
+        """Whether the next ``write_rows`` starts a new row file (the encode pass restarts
+        difference-coded chunks there: ``store/row_differences.py``)."""
+        return not self.parts or self._part_rows_written >= self.part_rows
+
     def write_rows(self, table: pa.Table, first_row: int) -> None:
         if self._encodings is None:
             self._encodings = self._choose_encodings(table)
@@ -343,6 +348,9 @@ class ArchiveWriter:
     # -- row parts -------------------------------------------------------------------------
     def write_rows(self, table: pa.Table, first_row: int) -> None:
         self._rows.write_rows(table, first_row)
+
+    def starts_file(self) -> bool:
+        return self._rows.starts_file()
 
     def adopt_parts(self, parts: list[dict[str, Any]]) -> None:
         """Take the row files written by partitions: sorted by first row, renamed

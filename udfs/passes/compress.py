@@ -50,6 +50,7 @@ from .profile import (SUB_BLOCK_ROWS, ColumnProfile, Fingerprint, Transform, new
 from .select import AnchorRows, AnchorScan, anchor_partial, merge_anchor_partials, sketch_of
 from .refit import KAPPA, OutlierScreen
 from .encode import EncodeResult, column_error_figures, column_statistics, encode_pass, stored_basis
+from .forced_differences import apply_forced_differences
 from .predictors import SampleRuns, choose_predictors, run_rows
 from . import sizes, targets
 
@@ -773,6 +774,7 @@ def _write(src, new_writer, opts, inputs: _Inputs, build: _Build, passes: _Passe
             if build.n_columns == 0:
                 anchors, basis_names = _no_anchors(width), []
                 score_right = None if score_right is None else score_right[:, :0]
+    coding = apply_forced_differences(coding, numeric)  # off unless forced (forced_differences.py)
     model = FittedModel(
         numeric, [str(src.schema.field(n).type) for n in numeric], passthrough, transform.kind,
         transform.shift, transform.scale, mixing, basis_names, coding,

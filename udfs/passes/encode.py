@@ -29,7 +29,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from ..errors import InvalidInputError, SourceChangedError
-from ..store import arithmetic, layout
+from ..store import arithmetic, layout, row_differences
 from ..store.model import FittedModel, Mixing
 from ..store.table_schemas import CELLS_SCHEMA, check_row_schema
 from .commit import ArchiveWriter, cell_encodings, close_parquet
@@ -481,6 +481,41 @@ class _Kernel:
         return np.concatenate(rows).astype(np.intp), np.concatenate(cols).astype(np.intp)
 
 
+class _DifferenceCarry:
+    """The stored form of difference-coded residual codes across the batches of one encode
+    pass (``store/row_differences.py``): remembers the last row's codes and the row file it
+    went to, so that a chunk may continue across batches of one file."""
+
+    def __init__(self, slots: np.ndarray):
+        self.slots = slots          # positions among the coded columns of the differenced ones
+        self.previous: np.ndarray | None = None
+        self.file_first = -1        # first row of the row file being written
+        self.next_row = -1          # the row after the last one coded
+
+    def stored(self, codes: np.ndarray, first: int, writer) -> np.ndarray:
+        """``codes`` (b, q) of rows first .. first + b - 1, with the differenced columns'
+        entries replaced by what is stored: the code at each chunk's first row, else the
+        difference from the previous row. ``writer`` (``commit.RowPartWriter``) tells whether
+        this batch starts a new row file (asked before the batch is handed to it)."""
+        b = codes.shape[0]
+        if writer.starts_file():
+            self.file_first = first
+        elif first != self.next_row:
+            raise InvalidInputError(
+                f"The rows from {first} on continue a row file whose chunk this encode pass did not "
+                "write (difference-coded codes need the previous row). This is a defect of rankfold: "
+                "please report it.")
+        rows = np.arange(first, first + b, dtype=np.int64)
+        restart = row_differences.chunk_starts(rows, self.file_first) == rows
+        previous = self.previous if self.previous is not None else np.zeros(self.slots.size)
+        out = codes.copy()
+        out[:, self.slots] = row_differences.difference(codes[:, self.slots], restart, previous)
+        if b:
+            self.previous = codes[-1, self.slots].copy()
+        self.next_row = first + b
+        return out
+
+
 def encode_pass(stream: Stream, model: FittedModel, writer: ArchiveWriter, *, block_sums=None,
                 cells_file: Path | None = None, sub_rows: int | None = None,
                 profile_columns: bool = False, code_types: dict[str, pa.DataType] | None = None
@@ -520,6 +555,11 @@ def encode_pass(stream: Stream, model: FittedModel, writer: ArchiveWriter, *, bl
     stored_types = [(code_types or {}).get(layout.CODE_PATTERN.format(int(j)), pa.uint32()) for j in with_residual]
     # zigzag keeps q in [-2^(w-1), 2^(w-1) - 1] within w bits; the symmetric limit 2^(w-1) - 1
     code_limit = np.array([min(2.0 ** (t.bit_width - 1) - 1, _CODE_LIMIT) for t in stored_types])
+    # difference-coded columns keep |code| within half the type's limit, so that every stored
+    # difference of two codes fits the type too (store/row_differences.py)
+    differenced = model.difference[with_residual]
+    code_limit = np.where(differenced, [row_differences.code_limit(v) for v in code_limit], code_limit)
+    carry = _DifferenceCarry(np.flatnonzero(differenced)) if differenced.any() else None
     kernel = _Kernel(mixing, np.flatnonzero(is_basis), np.flatnonzero(~is_basis), with_residual,
                      steps[with_residual], tolerance, np.flatnonzero(np.isfinite(tolerance) & ~is_basis),
                      np.asarray(ledger_scale, dtype=np.float64), block_sums,
@@ -598,8 +638,11 @@ def encode_pass(stream: Stream, model: FittedModel, writer: ArchiveWriter, *, bl
         else:
             for k, array in enumerate(basis_arrays):
                 columns[layout.SCORE_PATTERN.format(k)] = array
+        stored_codes = codes
+        if carry is not None:
+            stored_codes = carry.stored(codes, first, writer)
         for t, j in enumerate(with_residual):
-            columns[layout.CODE_PATTERN.format(j)] = pa.array(arithmetic.encode_codes(codes[:, t])).cast(stored_types[t])
+            columns[layout.CODE_PATTERN.format(j)] = pa.array(arithmetic.encode_codes(stored_codes[:, t])).cast(stored_types[t])
         columns[layout.ROW_ERR_MAX] = pa.array(arithmetic.round_up_compact(row_max, ledger_bits))
         columns[layout.ROW_ERR_L2] = pa.array(arithmetic.round_up_compact(row_l2, ledger_bits))
         table = pa.table(columns)

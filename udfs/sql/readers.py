@@ -84,15 +84,24 @@ class _ScanReader(ArchiveReader):
         super().__init__(path)
         self._groups = groups
         self._sha = {f["name"]: f["sha256"] for f in self.manifest["files"]}
+        self._part_of = {p[2]: k for k, p in enumerate(self.parts)}
 
     def _group(self, part: int, group: int) -> pa.Table:
         name = self.parts[part][2]
         return self._groups.get((str(self.path), name, self._sha[name], group),
                                 lambda: self._read(name, lambda f: f.read_row_group(group)))
 
+    def _read_groups(self, name: str, groups: list[int], columns: list[str] | None) -> pa.Table:
+        part = self._part_of[name]
+        tables = [self._group(part, g) for g in groups]
+        table = pa.concat_tables(tables) if len(tables) > 1 else tables[0]
+        return table.select(columns) if columns is not None else table
+
     def read_rows(self, positions: np.ndarray, columns: list[str] | None = None) -> pa.Table:
         positions = np.asarray(positions, dtype=np.int64)
-        if positions.size == 0:
+        if positions.size == 0 or self.reads_differences(columns):
+            # difference-coded codes decode over whole chunks, which may span row groups: the
+            # parent widens the read to them (through the cached groups, ``_read_groups``)
             return super().read_rows(positions, columns)
         order = np.argsort(positions, kind="stable")
         sorted_pos = positions[order]

@@ -36,9 +36,9 @@ import pyarrow.parquet as pq
 from ..errors import InvalidInputError
 from ..store import aggregate as agg
 from ..store import layout
-from ..store.aggregate import rows_source_sql
 from ..store.integrity import read_parquet_sql
 from ..store.reader import ArchiveReader
+from ..store.row_differences import signed_code_sql
 from ..store.sql_rebuild import basis_value_sql, derived_value_sql, row_bound_sql, served_sql, stored_bound_sql
 from ..store.sql_text import quote_identifier
 
@@ -87,7 +87,9 @@ def scan_sql(reader: ArchiveReader, columns: Any = None, bounds: str = "row",
         if is_basis[s]:
             inner.append(f"r.{quote_identifier(names[s])} AS __b{s}")
         elif np.isfinite(model.residual_step[col_idx[s]]):
-            inner.append(f"{layout.code_sql('r.' + quote_identifier(layout.CODE_PATTERN.format(int(col_idx[s]))))} AS __q{s}")
+            code = signed_code_sql('r.' + quote_identifier(layout.CODE_PATTERN.format(int(col_idx[s]))),
+                                   bool(model.difference[col_idx[s]]))
+            inner.append(f"{code} AS __q{s}")
     joins = ""
     use_anchors = bool(model.anchor_positions.size) and bool(derived)
     if use_anchors:
@@ -156,9 +158,12 @@ def scan_sql(reader: ArchiveReader, columns: Any = None, bounds: str = "row",
     elif bounds == "cell":
         outer += [f"CAST({b} AS DOUBLE) AS {quote_identifier(n + '_bound')}" for n, b in zip(names, bound_exprs)]
     outer.append(layout.ROW_ID)
-    source = rows_source_sql(reader, sealed)
-    if predicate is not None:
-        condition = agg.check_where(reader, con, predicate)
+    # codes stored as row differences decode over whole chunks: before the predicate filters
+    # (which then picks the chunks to decode)
+    condition = agg.check_where(reader, con, predicate) if predicate is not None else None
+    source, _ = agg.decoded_rows_sql(reader, col_idx[derived] if derived else col_idx[:0], sealed,
+                                     condition, con)
+    if condition is not None:
         source = f"(SELECT * FROM {source} WHERE {condition})"
     stored = f"(SELECT {', '.join(inner)} FROM {source} r{joins})"
     if middle:
@@ -179,7 +184,7 @@ def row_errors_sql(reader: ArchiveReader) -> str:
     key = reader.manifest.get("key")
     keys = f"{quote_identifier(key)}, " if key else ""
     return (f"SELECT {layout.ROW_ID}, {keys}{layout.ROW_ERR_MAX} AS err_max_scaled, "
-            f"{layout.ROW_ERR_L2} AS err_l2_scaled FROM {rows_source_sql(reader)}")
+            f"{layout.ROW_ERR_L2} AS err_l2_scaled FROM {agg.rows_source_sql(reader)}")
 
 
 _SPOOL: dict[str, Any] = {}

@@ -31,7 +31,7 @@ import numpy as np
 import pyarrow as pa
 
 from ..errors import InvalidInputError, UnknownColumnError
-from . import arithmetic, layout
+from . import arithmetic, layout, row_differences
 from .integrity import damaged, read_parquet_sql, read_small_table, sealed_rows_sql
 from .sql_rebuild import basis_value_sql
 from .sql_text import checked_condition, quote_identifier
@@ -287,19 +287,60 @@ def _blocks(reader) -> _Blocks | None:
 
 
 # -- SQL pieces shared with the scan ----------------------------------------------------------
-def rows_source_sql(reader, sealed: str | None = None) -> str:
+def rows_source_sql(reader, sealed: str | None = None, file_row_number: bool = False) -> str:
     """``read_parquet`` of exactly this archive version's row files (names from the manifest,
     never a glob), after checking their SHA-256: DuckDB does not verify page checksums.
 
     ``sealed``: the name of the SQL function that checks row groups as DuckDB reads them
     (``integrity.sealed_rows_sql``; registered by ``sql.register``). With it, and row files
     that carry row-group digests, only the key columns are checked before the query
-    (``ArchiveReader.check_for_scan``); otherwise the whole files."""
+    (``ArchiveReader.check_for_scan``); otherwise the whole files. ``file_row_number``: each
+    row also carries its position in its file (``integrity.read_parquet_sql``)."""
     paths = [reader.path / p[2] for p in reader.parts]
     if sealed is not None and reader.check_for_scan():
-        return sealed_rows_sql(paths, sealed, reader.seal.token)
+        return sealed_rows_sql(paths, sealed, reader.seal.token, file_row_number)
     reader.check_row_files()
-    return read_parquet_sql(paths)
+    return read_parquet_sql(paths, file_row_number)
+
+
+# Most restart chunks a filtered read decodes by name (row ranges as constants, which DuckDB
+# prunes row groups with); a condition that touches more decodes every row.
+MAX_NAMED_CHUNKS = 256
+
+
+def decoded_rows_sql(reader, col_idx: np.ndarray, sealed: str | None = None, where: str | None = None,
+                     con=None) -> tuple[str, np.ndarray]:
+    """The row files as SQL (``rows_source_sql``) with the residual codes of the columns
+    ``col_idx`` (q,) that are stored as row differences decoded (``row_differences``), and
+    which of the q columns those are ((q,) bool; read their codes with
+    ``row_differences.signed_code_sql``). Filter the rows only after this: a chunk decodes
+    whole.
+
+    ``where`` (a checked condition on key columns and ``_rf_row``, ``check_where``) and a
+    cursor ``con``: the rows the caller will keep. Their chunks are found first (one query on
+    the key columns, pushed into the Parquet scan) and, when there are at most
+    ``MAX_NAMED_CHUNKS`` holding at most half the rows, only those chunks' rows are read and
+    decoded (a point lookup decodes one chunk instead of the table). The rows returned are then a superset of those that
+    pass ``where``, each decoded correctly; the caller still filters by ``where``."""
+    col_idx = np.asarray(col_idx, dtype=np.int64)
+    differenced = reader.model.difference[col_idx] if col_idx.size else np.zeros(0, bool)
+    if not differenced.any():
+        return rows_source_sql(reader, sealed), differenced
+    names = list(dict.fromkeys(layout.CODE_PATTERN.format(int(j)) for j in col_idx[differenced]))
+    source = rows_source_sql(reader, sealed, True)
+    if where is not None and con is not None:
+        found = con.sql(f"SELECT DISTINCT {row_differences.chunk_sql()} AS c FROM {source} "
+                        f"WHERE {where} ORDER BY c LIMIT {MAX_NAMED_CHUNKS + 1}").fetchnumpy()["c"]
+        if found.size <= MAX_NAMED_CHUNKS and found.size * row_differences.CHUNK_ROWS <= reader.rows_count // 2:
+            # a chunk starting at c ends before c + K; rows of a later chunk (another file)
+            # inside that range start their own chunk, so they decode correctly too
+            k = row_differences.CHUNK_ROWS
+            ranges = " OR ".join(f"({layout.ROW_ID} >= {int(c)} AND {layout.ROW_ID} < {int(c) + k})"
+                                 for c in found) or "false"
+            span = (f"{layout.ROW_ID} >= {int(found.min())} AND {layout.ROW_ID} < {int(found.max()) + k} AND "
+                    if found.size else "")
+            source = f"(SELECT * FROM {source} WHERE {span}({ranges}))"
+    return row_differences.decoded_codes_sql(source, names), differenced
 
 
 # -- the partial sums of one row set -----------------------------------------------------------
@@ -459,17 +500,26 @@ def _scan_partials(reader, con, names, col_idx, by, where, row_range):
     global _REGISTERED
     c = len(reader.model.basis_names)
     q = len(names)
-    source = rows_source_sql(reader)
+    steps = reader.model.residual_step[col_idx]
+    is_basis = reader.model.is_basis[col_idx]
+    coded = np.isfinite(steps) & ~is_basis
+    # codes stored as row differences are decoded before any row is filtered out
     conds = []
     if where:
         conds.append(f"({where})")
     if row_range is not None:
         conds.append(f"{layout.ROW_ID} >= {row_range[0]} AND {layout.ROW_ID} < {row_range[1]}")
+    source, differenced = decoded_rows_sql(reader, np.asarray(col_idx)[coded],
+                                           where=" AND ".join(conds) or None, con=con)
+    differenced_at = np.zeros(q, bool)
+    differenced_at[np.flatnonzero(coded)] = differenced
+
+    def code_of(s: int, prefix: str = "") -> str:
+        column = prefix + quote_identifier(layout.CODE_PATTERN.format(int(col_idx[s])))
+        return row_differences.signed_code_sql(column, bool(differenced_at[s]))
+
     cond = (" WHERE " + " AND ".join(conds)) if conds else ""
     group = ", ".join(quote_identifier(b) for b in by)
-    steps = reader.model.residual_step[col_idx]
-    is_basis = reader.model.is_basis[col_idx]
-    coded = np.isfinite(steps) & ~is_basis
     f = [basis_value_sql(reader.model, t) for t in range(c)]
     items = ["count(*) AS __n", f"sum({layout.ROW_ERR_MAX}) AS __rowmax"]
     items += [f"sum({e}) AS __f{t}" for t, e in enumerate(f)]
@@ -477,7 +527,7 @@ def _scan_partials(reader, con, names, col_idx, by, where, row_range):
     basis_slot = {reader.model.basis_names[t]: t for t in range(c)}
     for s in range(q):
         if coded[s]:
-            code = layout.code_sql(quote_identifier(layout.CODE_PATTERN.format(int(col_idx[s]))))
+            code = code_of(s)
             items += [f"sum({code})::DOUBLE AS __q{s}", f"sum(abs({code}))::DOUBLE AS __qa{s}"]
         if is_basis[s]:
             col = f"CAST({quote_identifier(names[s])} AS DOUBLE)"
@@ -516,7 +566,7 @@ def _scan_partials(reader, con, names, col_idx, by, where, row_range):
         con.register(view, overrides)
         try:
             code_case = " ".join(
-                f"WHEN {s} THEN {layout.code_sql('r.' + quote_identifier(layout.CODE_PATTERN.format(int(col_idx[s]))))}"
+                f"WHEN {s} THEN {code_of(s, 'r.')}"
                 for s in range(q) if coded[s])
             code_expr = f"CAST(CASE o._rf_slot {code_case} ELSE 0 END AS DOUBLE)" if code_case else "0.0"
             inner = [layout.ROW_ID] + [quote_identifier(b) for b in by]

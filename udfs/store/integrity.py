@@ -433,14 +433,14 @@ def seal_for_token(token: str) -> RowFileSeal:
     return seal
 
 
-def sealed_rows_sql(paths: list[Path], function: str, token: str) -> str:
+def sealed_rows_sql(paths: list[Path], function: str, token: str, file_row_number: bool = False) -> str:
     """The rows of these row files, each passing the SQL function ``function(token, _rf_row)``
     (a Python UDF with side effects that calls :meth:`RowFileSeal.check_rows` and returns
     true) before anything above reads it. DuckDB keeps a filter with side effects below every
     filter it cannot push into the Parquet scan (measured with DuckDB 2.0.1); filters it pushes
     into the scan (a column compared with constants) run before it, which is why
     :meth:`RowFileSeal.check_before_scan` checks the columns they may name."""
-    return (f"(SELECT * FROM {read_parquet_sql(paths)} "
+    return (f"(SELECT * FROM {read_parquet_sql(paths, file_row_number)} "
             f"WHERE {function}({sql_literal(token)}, {layout.ROW_ID}))")
 
 
@@ -538,10 +538,13 @@ def sha256_of(path: Path, chunk: int = 1 << 22) -> str:
     return digest.hexdigest()
 
 
-def read_parquet_sql(paths: list[Path]) -> str:
+def read_parquet_sql(paths: list[Path], file_row_number: bool = False) -> str:
     """``read_parquet([...])`` over exactly these files. DuckDB expands glob patterns in every
     file name it is given (``*``, ``?``, ``[...]``), so each absolute path is escaped
     (``glob.escape``: a metacharacter becomes a one-character class) and matches only itself:
-    an archive under a folder named ``a[ab]`` must not read ``aa`` or ``ab``."""
+    an archive under a folder named ``a[ab]`` must not read ``aa`` or ``ab``. With
+    ``file_row_number``, each row also carries its 0-based position in its file
+    (``file_row_number``, which difference-coded codes need: ``row_differences``)."""
     literals = [sql_literal(glob.escape(str(Path(p).resolve()))) for p in paths]
-    return f"read_parquet([{', '.join(literals)}])"
+    extra = ", file_row_number = true" if file_row_number else ""
+    return f"read_parquet([{', '.join(literals)}]{extra})"

@@ -32,8 +32,8 @@ import numpy as np
 import pyarrow as pa
 
 from ..errors import CorruptArchiveError
-from . import arithmetic, layout
-from .table_schemas import COLUMNS_SCHEMA, anchors_schema, check_schema, row_file_reserved
+from . import arithmetic, layout, row_differences
+from .table_schemas import COLUMNS_OPTIONAL, anchors_schema, check_schema, columns_schema, row_file_reserved
 
 __all__ = ["Mixing", "Coding", "FittedModel", "mixing_for_columns", "mixing_for_scores",
            "STATISTICS"]
@@ -88,12 +88,16 @@ class Coding:
     residual_step: step of the quantized residual per column (NaN: no residual stored).
     basis_step: step of stored basis values or scores (NaN: stored exactly / as float64).
     float32_scores: SVD scores stored as float32 (when no step is set).
+    difference: (n,) bool, columns whose residual codes are stored as the difference from the
+        previous row's code in restart chunks (``row_differences``); None: none. Only columns
+        with residual codes can be; the flag is ignored elsewhere.
     """
 
     tolerance: np.ndarray
     residual_step: np.ndarray
     basis_step: np.ndarray
     float32_scores: bool = False
+    difference: np.ndarray | None = None
 
     @classmethod
     def plain(cls, width: int, basis: int) -> "Coding":
@@ -180,6 +184,32 @@ class FittedModel:
     def residual_step(self) -> np.ndarray:
         """(n,) step of each column's residual codes as stored (NaN: none; never at basis columns)."""
         return np.where(self.in_basis, np.nan, self.coding.residual_step)
+
+    @cached_property
+    def difference(self) -> np.ndarray:
+        """(n,) True at the columns whose residual codes are stored as differences from the
+        previous row's code (``row_differences``); only columns with residual codes."""
+        flags = np.zeros(self.width, bool)
+        if self.coding.difference is not None:
+            flags[:] = np.asarray(self.coding.difference, dtype=bool)
+        return flags & np.isfinite(self.residual_step)
+
+    def undifference(self, rows: pa.Table, chunks: np.ndarray) -> pa.Table:
+        """``rows`` (a row-file table of consecutive rows of one row file, holding whole
+        chunks up to its last row) with every difference-coded column's stored differences
+        replaced by the residual codes themselves (zigzag, the column's type), as columns
+        without differences store them. ``chunks`` (b,): each row's chunk start
+        (``row_differences.chunk_starts``)."""
+        for j in np.flatnonzero(self.difference):
+            name = layout.CODE_PATTERN.format(int(j))
+            if name not in rows.column_names:
+                continue
+            column = rows.column(name)
+            signed = arithmetic.decode_codes(column.to_numpy(zero_copy_only=False)).astype(np.int64)
+            codes = row_differences.undifference(signed, chunks)
+            rows = rows.set_column(rows.column_names.index(name), name,
+                                   pa.array(arithmetic.encode_codes(codes)).cast(column.type))
+        return rows
 
     @cached_property
     def basis_step(self) -> np.ndarray:
@@ -347,10 +377,15 @@ class FittedModel:
             "tolerance": pa.array(coding.tolerance, pa.float64(), mask=~np.isfinite(coding.tolerance)),
             "residual_step": pa.array(residual_step, pa.float64(), mask=~np.isfinite(residual_step)),
         }
-        schema = pa.schema([f for f in COLUMNS_SCHEMA if f.name in data])
+        optional = []
+        if self.difference.any():  # optional field: only archives that use it carry it
+            data["difference"] = self.difference
+            optional.append("difference")
+        declared = columns_schema(optional)
+        schema = pa.schema([f for f in declared if f.name in data])
         columns = pa.table({f.name: pa.array(data[f.name], f.type) if not isinstance(data[f.name], pa.Array)
                             else data[f.name] for f in schema}, schema=schema)
-        check_schema(columns.schema, COLUMNS_SCHEMA, layout.COLUMNS, writing=True)
+        check_schema(columns.schema, declared, layout.COLUMNS, writing=True)
         with_rows = bool(self.anchor_positions.size)
         anchor_cols = {layout.ROW_ID: pa.array(self.anchor_positions, pa.int64())}
         for j, name in enumerate(self.names if with_rows else []):
@@ -370,7 +405,8 @@ class FittedModel:
         names = list(manifest["numeric_columns"])
         width = len(names)
         where = Path(directory or "")
-        check_schema(columns.schema, COLUMNS_SCHEMA, where / layout.table_file(manifest, layout.COLUMNS))
+        check_schema(columns.schema, columns_schema([n for n in COLUMNS_OPTIONAL.names if n in columns.schema.names]),
+                     where / layout.table_file(manifest, layout.COLUMNS))
         check_schema(anchors.schema, anchors_schema(names, anchors.num_rows > 0),
                      where / layout.table_file(manifest, layout.ANCHORS), ordered=False)
         basis = manifest["basis"]
@@ -389,7 +425,9 @@ class FittedModel:
         coding = Coding(columns.column("tolerance").fill_null(np.inf).to_numpy(),
                         columns.column("residual_step").fill_null(np.nan).to_numpy(),
                         np.array([b.get("step", np.nan) for b in basis], dtype=np.float64),
-                        float32_scores=float32)
+                        float32_scores=float32,
+                        difference=(columns.column("difference").fill_null(False).to_numpy(zero_copy_only=False)
+                                    if "difference" in columns.column_names else None))
         statistics = {n: columns.column(n).to_numpy(zero_copy_only=False) for n in STATISTICS}
         types = {f["name"]: f["type"] for f in manifest["schema"]}
         positions = anchors.column(layout.ROW_ID).to_numpy()
@@ -403,6 +441,12 @@ class FittedModel:
                     columns.column("scale").to_numpy(), mixing, basis_names, coding,
                     columns.column("ledger_scale").to_numpy(), positions, values, nulls,
                     statistics=statistics)
+        if coding.difference is not None and not np.array_equal(model.difference, coding.difference):
+            raise CorruptArchiveError(
+                f"The columns table of {where} marks columns "
+                f"{[names[j] for j in np.flatnonzero(coding.difference & ~model.difference)]} as stored as "
+                "row differences, but they have no residual codes; the archive is damaged or was edited: "
+                "restore it from a copy or compress the source again.")
         if [b.get("stored_as", b["name"]) for b in basis] != model.basis_stored:
             raise CorruptArchiveError(
                 f"The manifest of {where} stores the basis entries in the row-file columns "

@@ -19,7 +19,7 @@ import pyarrow.parquet as pq
 
 from ..errors import (ArchiveNotFoundError, CorruptArchiveError, InvalidInputError, RowOutOfRangeError,
                       UnknownColumnError)
-from . import arithmetic, layout
+from . import arithmetic, layout, row_differences
 from .integrity import (RowFileSeal, check_tables, damaged, open_row_file, read_small_table,
                         verified_metadata)
 from .manifest import DIGEST_FIELD, check_files, read_manifest
@@ -45,6 +45,15 @@ class Rebuilt:
     nulls: np.ndarray
     rows: pa.Table
     slack: np.ndarray | None = None
+
+
+def _chunk_spans(first: int, local: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """For sorted file positions ``local`` of a row file starting at row ``first``: the first
+    position of each chunk they touch (``row_differences.chunk_starts``) and the last position
+    asked for in it, each (k,) sorted."""
+    heads = row_differences.chunk_starts(local + first, first) - first
+    cut = np.flatnonzero(np.diff(heads)) + 1
+    return heads[np.r_[0, cut]], local[np.r_[cut - 1, local.size - 1]]
 
 
 def _short(value: Any) -> str:
@@ -265,14 +274,19 @@ class ArchiveReader:
         order = np.argsort(positions, kind="stable")
         sorted_pos = positions[order]
         pieces = []
+        differenced = self.reads_differences(columns)
         for first, count, name, starts in self.parts:
             lo, hi = np.searchsorted(sorted_pos, [first, first + count])
             if lo == hi:
                 continue
             local = sorted_pos[lo:hi] - first
             groups = np.unique(np.searchsorted(starts, local, side="right") - 1)
-            wanted = groups.tolist()
-            table = self._read(name, lambda f, wanted=wanted: f.read_row_groups(wanted, columns=columns))
+            if differenced:  # whole chunks: a difference-coded code needs its chunk's rows before it
+                groups = self._chunk_groups(first, local, starts)
+            table = self._read_groups(name, groups.tolist(), columns)
+            if differenced:
+                pieces.append(self._undifferenced(table, first, local, starts, groups))
+                continue
             group_first = starts[groups]
             offsets = np.cumsum([0] + [starts[g + 1] - starts[g] for g in groups])
             index_in_read = offsets[np.searchsorted(group_first, local, side="right") - 1] + (
@@ -282,6 +296,41 @@ class ArchiveReader:
         inverse = np.empty_like(order)
         inverse[order] = np.arange(order.size)
         return table.take(pa.array(inverse))
+
+    def _read_groups(self, name: str, groups: list[int], columns: list[str] | None) -> pa.Table:
+        """The row groups ``groups`` (sorted) of the row file ``name``, columns ``columns``
+        (None: all), in order."""
+        return self._read(name, lambda f: f.read_row_groups(groups, columns=columns))
+
+    def reads_differences(self, columns: list[str] | None) -> bool:
+        """Whether reading the row-file columns ``columns`` (None: all) reads a residual-code
+        column stored as row differences (``row_differences``)."""
+        names = {layout.CODE_PATTERN.format(int(j)) for j in np.flatnonzero(self.model.difference)}
+        return bool(names) and (columns is None or not names.isdisjoint(columns))
+
+    def _undifferenced(self, table: pa.Table, first: int, local: np.ndarray, starts: np.ndarray,
+                       groups: np.ndarray) -> pa.Table:
+        """The rows at the sorted file positions ``local`` of ``table`` (the row groups
+        ``groups`` of a file starting at row ``first``, ``starts`` its row-group starts), with
+        difference-coded codes decoded: only each chunk's rows up to the last one asked for are
+        decoded (a point read: at most one chunk, not the row groups)."""
+        read = np.concatenate([np.arange(starts[g], starts[g + 1]) for g in groups])
+        heads, lasts = _chunk_spans(first, local)
+        needed = np.concatenate([np.arange(a, z + 1) for a, z in zip(heads, lasts)])
+        if needed.size != read.size:  # else the same rows (needed is a sorted subset of read)
+            table = table.take(pa.array(np.searchsorted(read, needed)))
+        decoded = self.model.undifference(table, row_differences.chunk_starts(needed + first, first))
+        return decoded.take(pa.array(np.searchsorted(needed, local)))
+
+    @staticmethod
+    def _chunk_groups(first: int, local: np.ndarray, starts: np.ndarray) -> np.ndarray:
+        """Row groups (sorted) of a row file starting at row ``first`` with row-group starts
+        ``starts`` that hold every row of the chunks of the file positions ``local`` up to
+        them (a chunk of ``row_differences`` may span row groups)."""
+        heads, lasts = _chunk_spans(first, local)
+        lo = np.searchsorted(starts, heads, side="right") - 1
+        hi = np.searchsorted(starts, lasts, side="right") - 1
+        return np.unique(np.concatenate([np.arange(a, z + 1) for a, z in zip(lo, hi)]))
 
     def _read(self, name: str, how) -> pa.Table:
         """``how(row file)`` with a damaged page (checksum, encoding) refused as corruption and

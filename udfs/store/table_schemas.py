@@ -23,7 +23,7 @@ import pyarrow as pa
 from ..errors import CorruptArchiveError
 from . import layout
 
-__all__ = ["COLUMNS_SCHEMA", "CELLS_SCHEMA", "anchors_schema",
+__all__ = ["COLUMNS_SCHEMA", "COLUMNS_OPTIONAL", "columns_schema", "CELLS_SCHEMA", "anchors_schema",
            "row_file_reserved", "check_schema", "check_row_schema", "CODE_TYPES"]
 
 COLUMNS_SCHEMA = pa.schema([
@@ -44,6 +44,18 @@ COLUMNS_SCHEMA = pa.schema([
 
 # Every field is required: each was written before manifests carried their own digest, and
 # archives from before then are refused (``manifest_schema.older_format_rules``).
+
+#: Optional fields of the columns table, appended after :data:`COLUMNS_SCHEMA` only when a
+#: column uses them (a table without them reads as their default): ``difference`` (bool),
+#: the column's residual codes are stored as differences from the previous row's code
+#: (``row_differences``; absent: all False).
+COLUMNS_OPTIONAL = pa.schema([("difference", pa.bool_())])
+
+
+def columns_schema(optional: list[str] | tuple[str, ...] = ()) -> pa.Schema:
+    """The columns table's declared schema with the optional fields ``optional`` (names of
+    :data:`COLUMNS_OPTIONAL`, in its order)."""
+    return pa.schema(list(COLUMNS_SCHEMA) + [f for f in COLUMNS_OPTIONAL if f.name in optional])
 
 CELLS_SCHEMA = pa.schema([(layout.ROW_ID, pa.int64()), (layout.COLUMN_ID, pa.int32()),
                           ("value", pa.float64()), ("reason", pa.dictionary(pa.int32(), pa.string()))])
