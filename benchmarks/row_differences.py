@@ -4,7 +4,7 @@ times with and without it, side by side in one run.
 Invented data (fixed seed): ROWS x COLS independent Gaussian random walks (a smooth series
 table: low rank explains little, the previous row a lot) plus an ``id`` key, compressed twice
 by the same run at ``max_std_error`` (every column within TOL of its standard deviation): once
-as is, once with every coded column forced to row differences (``forced_differences("all")``).
+as is, once with every coded column forced to row differences (``row_differences=[...]``).
 
 Printed: bytes of the whole archive, of the row files and of the residual-code column chunks
 (Parquet footers: compressed sizes), then times, best of N alternated runs (wall and CPU of
@@ -44,7 +44,6 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 import rankfold
-from rankfold.udfs.passes.forced_differences import forced_differences
 from rankfold.udfs.store import layout
 
 
@@ -113,8 +112,7 @@ def main() -> None:
     t0 = time.perf_counter()
     rankfold.compress(table, out / "without", **options)
     t1 = time.perf_counter()
-    with forced_differences([f"w{j}" for j in range(args.cols)]):
-        rankfold.compress(table, out / "with", **options)
+    rankfold.compress(table, out / "with", row_differences=[f"w{j}" for j in range(args.cols)], **options)
     t2 = time.perf_counter()
     paths = {"with": out / "with", "without": out / "without"}
     print(f"{args.rows} x {args.cols} random walks (+ {args.extra} low-rank), max_std_error {args.tol}; compress "

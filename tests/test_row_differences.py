@@ -22,7 +22,6 @@ from hypothesis import strategies as st
 import rankfold
 from rankfold.udfs.errors import CorruptArchiveError, InvalidInputError
 from rankfold.udfs.passes import commit
-from rankfold.udfs.passes.forced_differences import forced_differences
 from rankfold.udfs.store import layout, row_differences
 from rankfold.udfs.store.manifest import file_entry, read_manifest, write_manifest
 from rankfold.udfs.store.reader import ArchiveReader
@@ -123,8 +122,7 @@ def _compress_pair(tmp_path, table, part_rows, batch_rows, tolerance):
     """The same compress run without and with every coded column difference-coded."""
     options = dict(key="id", max_abs_error=tolerance, batch_rows=batch_rows, overwrite=True)
     plain = rankfold.compress(table, tmp_path / "plain", **options)
-    with forced_differences("all"):
-        coded = rankfold.compress(table, tmp_path / "coded", **options)
+    coded = rankfold.compress(table, tmp_path / "coded", row_differences="all", **options)
     return rankfold.open(getattr(plain, "path", plain)), rankfold.open(getattr(coded, "path", coded))
 
 
@@ -255,8 +253,7 @@ def test_codes_beyond_half_the_type_go_to_exact_cells(tmp_path):
     table = pa.table(columns)
     options = dict(key="id", max_abs_error=0.01, rank=1, overwrite=True)
     plain = rankfold.compress(table, tmp_path / "plain", **options)
-    with forced_differences("all"):
-        coded = rankfold.compress(table, tmp_path / "coded", **options)
+    coded = rankfold.compress(table, tmp_path / "coded", row_differences="all", **options)
     assert coded._reader.model.difference.any()
     assert coded._reader.cell_rows.size > plain._reader.cell_rows.size
     values = coded._reader.rebuild()
@@ -284,14 +281,20 @@ def test_flag_on_a_column_without_codes_is_refused(tmp_path):
         ArchiveReader(path)
 
 
-def test_forced_differences_names_are_checked(tmp_path):
+def test_row_differences_option_is_checked(tmp_path):
     table = _walks(1, 500, 2, False)
     with pytest.raises(InvalidInputError, match="not numeric columns"):
-        with forced_differences(["nope"]):
-            rankfold.compress(table, tmp_path / "a", key="id", max_abs_error=0.05)
-    with pytest.raises(InvalidInputError, match="list of column names"):
-        with forced_differences("w0"):
-            pass
+        rankfold.compress(table, tmp_path / "a", key="id", max_abs_error=0.05, row_differences=["nope"])
+    with pytest.raises(InvalidInputError, match="non-empty list of numeric column names"):
+        rankfold.compress(table, tmp_path / "b", key="id", max_abs_error=0.05, row_differences=[1])
+    with pytest.raises(rankfold.UnknownOptionError, match="'row_differences' option of compress must be one of"):
+        rankfold.compress(table, tmp_path / "c", key="id", max_abs_error=0.05, row_differences="w0")
+    with pytest.raises(InvalidInputError, match="needs max_abs_error or max_std_error"):
+        rankfold.compress(table, tmp_path / "d", key="id", rank=1, row_differences="all")
+    named = rankfold.compress(table, tmp_path / "e", key="id", max_abs_error=0.05, row_differences=["w0"])
+    model = named._reader.model
+    assert model.difference.tolist() == [n == "w0" and np.isfinite(model.residual_step[j])
+                                         for j, n in enumerate(model.names)]
 
 
 def test_filtered_reads_decode_only_their_chunks(tmp_path, small_parts):
@@ -340,8 +343,7 @@ def test_every_bound_holds_on_invented_tables(tmp_path_factory, invented_table, 
     tmp_path = tmp_path_factory.mktemp("invented")
     options = dict(max_std_error=tolerance, batch_rows=batch_rows)
     plain = rankfold.compress(table, tmp_path / "plain", **options)
-    with forced_differences("all"):
-        coded = rankfold.compress(table, tmp_path / "coded", **options)
+    coded = rankfold.compress(table, tmp_path / "coded", row_differences="all", **options)
     model = coded._reader.model
     assert np.array_equal(model.difference, np.isfinite(model.residual_step))
     truth, _ = table_truth(table)
@@ -358,3 +360,25 @@ def test_every_bound_holds_on_invented_tables(tmp_path_factory, invented_table, 
     b = con.sql(f"SELECT * FROM rankfold_scan('{coded.path}') ORDER BY _rf_row").fetchnumpy()
     for name in coded.numeric_columns + ["_rf_bound"]:
         np.testing.assert_array_equal(b[name], a[name])
+
+
+def test_auto_keeps_row_differences_where_the_trial_measures_them_smaller(tmp_path):
+    # random walks change slowly from row to row: their codes' differences are small (delta
+    # coding of series: D. Salomon, "Data Compression: The Complete Reference", section 1.3.1);
+    # independent draws gain nothing from them
+    walks = _walks(3, 20_000, 3, False)
+    rng = np.random.default_rng(4)  # invented, independent draws
+    noise = pa.table({"id": np.arange(20_000), **{f"u{j}": rng.normal(size=20_000) for j in range(3)}})
+    table = pa.table({**{n: walks.column(n) for n in walks.column_names},
+                      **{n: noise.column(n) for n in noise.column_names if n != "id"}})
+    archive = rankfold.compress(table, tmp_path / "a", key="id", max_std_error=0.001, row_differences="auto")
+    model = archive._reader.model
+    flagged = {n for n, f in zip(model.names, model.difference) if f}
+    assert {"w0", "w1", "w2"} <= flagged and not flagged & {"u0", "u1", "u2"}, flagged
+    off = rankfold.compress(table, tmp_path / "b", key="id", max_std_error=0.001)
+    assert not off._reader.model.difference.any()  # off by default
+    assert archive.nbytes < off.nbytes
+    truth = _truth(table, archive.numeric_columns)
+    rebuilt = archive._reader.rebuild()
+    assert np.all(np.abs(rebuilt.values - truth) <= rebuilt.bounds)
+    np.testing.assert_array_equal(rebuilt.values, archive.to_numpy())

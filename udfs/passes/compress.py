@@ -50,8 +50,7 @@ from .profile import (SUB_BLOCK_ROWS, ColumnProfile, Fingerprint, Transform, new
 from .select import AnchorRows, AnchorScan, anchor_partial, merge_anchor_partials, sketch_of
 from .refit import KAPPA, OutlierScreen
 from .encode import EncodeResult, column_error_figures, column_statistics, encode_pass, stored_basis
-from .forced_differences import apply_forced_differences
-from .predictors import SampleRuns, choose_predictors, run_rows
+from .predictors import SampleRuns, choose_differences, choose_predictors, run_rows
 from . import sizes, targets
 
 __all__ = ["compress"]
@@ -179,6 +178,7 @@ class _Passes:
     def __init__(self, executor, opts: CompressOptions):
         self.ex, self.opts = executor, opts
         self.trial_rows: np.ndarray | None = None  # (m, n) the predictor trial's sample, NaN = NULL
+        self.trial_starts: np.ndarray | None = None  # (r,) where each run of the sample starts
 
     def profile(self, numeric: list[str], keep_sample: bool, groups: list[RowGroup] | None = None):
         """Statistics, fingerprint, a sample of encoded sizes and the co-moments: of every
@@ -200,6 +200,7 @@ class _Passes:
             sample = sample or s
             runs = r if runs is None else runs.merge(r)
         self.trial_rows = runs.rows(len(numeric)) if runs is not None else None
+        self.trial_starts = runs.run_starts() if runs is not None else None
         return profile, fingerprint, sample, gram
 
     def sketch(self, stage: str, numeric: list[str], rows: int, screen):
@@ -774,7 +775,7 @@ def _write(src, new_writer, opts, inputs: _Inputs, build: _Build, passes: _Passe
             if build.n_columns == 0:
                 anchors, basis_names = _no_anchors(width), []
                 score_right = None if score_right is None else score_right[:, :0]
-    coding = apply_forced_differences(coding, numeric)  # off unless forced (forced_differences.py)
+    coding = _row_differences(opts, coding, numeric, passes, mixing, transform, score_right)
     model = FittedModel(
         numeric, [str(src.schema.field(n).type) for n in numeric], passthrough, transform.kind,
         transform.shift, transform.scale, mixing, basis_names, coding,
@@ -904,6 +905,40 @@ def _coding(plan, mixing, build) -> Coding | None:
                   float32_scores=build.method == "svd" and not np.isfinite(plan.tolerance).any())
 
 
+def _sample_basis(sample: np.ndarray, mixing: Mixing, coding: Coding, transform: Transform,
+                  score_right: np.ndarray | None):
+    """The sample's basis values as the encode pass stores them (m, c) and their Arrow arrays."""
+    if mixing.basis_columns is not None:
+        return stored_basis(sample[:, mixing.basis_columns], coding.basis_step, False)
+    scores = np.nan_to_num(transform.apply(sample), nan=0.0) @ score_right
+    return stored_basis(scores, coding.basis_step, coding.float32_scores)
+
+
+def _row_differences(opts, coding: Coding, numeric: list[str], passes, mixing: Mixing,
+                     transform: Transform, score_right: np.ndarray | None) -> Coding:
+    """``coding`` with the columns whose residual codes are stored as row differences
+    (``Coding.difference``): none ('off', the default), every coded column ('all'), the named
+    ones, or ('auto') those a trial on the sample measures ``predictors.DIFFERENCE_GAIN``
+    smaller (``predictors.choose_differences``). Columns without codes never are."""
+    choice = opts.row_differences
+    coded = np.isfinite(coding.residual_step)
+    if mixing.basis_columns is not None:
+        coded[mixing.basis_columns] = False
+    if choice == "off" or not coded.any():
+        return coding
+    if choice == "all":
+        flags = coded
+    elif choice == "auto":
+        sample = passes.trial_rows
+        if sample is None or not sample.shape[0]:
+            return coding
+        stored, _ = _sample_basis(sample, mixing, coding, transform, score_right)
+        flags = choose_differences(sample, passes.trial_starts, mixing, coding, stored)
+    else:
+        flags = np.isin(np.array(numeric, dtype=object), np.array(list(choice), dtype=object)) & coded
+    return dataclasses.replace(coding, difference=flags) if flags.any() else coding
+
+
 def _refit_skipped(screen: OutlierScreen | None, sample: np.ndarray | None, opts) -> dict | None:
     """The manifest's ``refit`` record of a refit left out, or None when the refit pass runs
     (or none was asked for: ``screen`` None).
@@ -947,11 +982,7 @@ def _predictor_trial(sample: np.ndarray, mixing: Mixing, coding: Coding, transfo
         return None
     tried = []
     for candidate in (coding,) if exact_basis is None else (coding, exact_basis):
-        if mixing.basis_columns is not None:
-            stored, arrays = stored_basis(sample[:, mixing.basis_columns], candidate.basis_step, False)
-        else:
-            scores = np.nan_to_num(transform.apply(sample), nan=0.0) @ score_right
-            stored, arrays = stored_basis(scores, candidate.basis_step, candidate.float32_scores)
+        stored, arrays = _sample_basis(sample, mixing, candidate, transform, score_right)
         tried.append((choose_predictors(sample, mixing, candidate, transform.shift, stored, arrays), candidate))
     choice, chosen = min(tried, key=lambda pair: pair[0].basis_bytes)
     rows = sample.shape[0]

@@ -20,6 +20,7 @@ __all__ = ["CompressOptions", "METHODS", "TRANSFORMS", "DEFAULT_MAX_STD_ERROR", 
 METHODS = ("cur", "svd")
 RESIDUALS = ("auto", "quantized", "corrections")
 BASIS_PRECISIONS = ("auto", "exact", "tolerance")
+ROW_DIFFERENCES = ("off", "auto", "all")
 TRANSFORMS = ("standardize", "center", "none")
 
 # Rank chosen when neither a rank nor a target is set (compress no longer gets there: with
@@ -86,6 +87,10 @@ class CompressOptions:
     # rounding was smaller on real tables but 37% larger on the demo table, so neither fixed
     # choice is smaller everywhere. Without a tolerance, exact.
     basis_precision: str = "auto"
+    # residual codes stored as differences from the previous row's: off by default (a SQL
+    # filter written outside rankfold_scan then decodes whole chunks: DEVELOPERS.md, "Row
+    # differences"); "auto": per column, where a trial measures it 10% smaller; "all"; or names
+    row_differences: Any = "off"
     refit_outliers: bool | None = None
     executor: Any = field(default="local", repr=False)
     storage_options: dict | None = field(default=None, repr=False)
@@ -143,6 +148,14 @@ class CompressOptions:
             _choice("method", self.method, METHODS)
         _choice("residual", self.residual, RESIDUALS)
         _choice("basis_precision", self.basis_precision, BASIS_PRECISIONS)
+        if isinstance(self.row_differences, (list, tuple)):
+            if not self.row_differences or not all(isinstance(n, str) for n in self.row_differences):
+                raise InvalidInputError(
+                    f"The 'row_differences' option of compress takes {', '.join(map(repr, ROW_DIFFERENCES))} "
+                    f"or a non-empty list of numeric column names; got {self.row_differences!r}.")
+            self.row_differences = list(self.row_differences)
+        else:
+            _choice("row_differences", self.row_differences, ROW_DIFFERENCES)
         self.target_bytes = _positive_int("target_bytes", self.target_bytes, allow_none=True)
         for option in ("max_abs_error", "max_std_error", "rel_error"):
             setattr(self, option, _target(option, getattr(self, option)))

@@ -45,6 +45,10 @@ link 'textbook' + column_method pivoted_qr  R   its 1/sqrt(s p) rescaling needs 
 replace, with nothing drawn at random       R   pivoted_qr columns and qdeim rows draw nothing
 residual other than 'auto', no tolerance    R   the residual coding exists to meet a tolerance
 basis_precision 'tolerance', no tolerance   R   the basis step is twice the tolerance
+row_differences other than 'off', no        R   only residual codes are stored as differences
+tolerance
+row_differences naming a column that is     R   before reading: the schema gives the names
+not numeric
 sketch_rows a number + any target (the      R   targets and the refit need every row's
 default tolerance too) or refit_outliers        statistics before the encode pass
 storage_options, no URL source or path      R   fsspec options of a URL: no effect on local files
@@ -144,6 +148,11 @@ class CompressPlan(CompressOptions):
                 "basis_precision='tolerance' needs max_abs_error or max_std_error: the basis "
                 "columns are rounded to steps of twice the tolerance."
             )
+        if self.row_differences != "off" and not self.has_tolerance:
+            raise InvalidInputError(
+                f"row_differences={self.row_differences!r} needs max_abs_error or max_std_error: only "
+                "residual codes, which a tolerance brings, are stored as row differences. Add a "
+                "tolerance, or drop 'row_differences'.")
         if self.residual != "auto" and not self.has_tolerance:
             raise InvalidInputError(
                 f"residual={self.residual!r} needs max_abs_error or max_std_error: the residual "
@@ -231,6 +240,13 @@ class CompressPlan(CompressOptions):
                 f"{names}). rankfold compresses integer and floating-point columns."
             )
         factored = set(numeric)  # a set: wide tables have 10^5 columns
+        if isinstance(self.row_differences, list):
+            unknown = [n for n in self.row_differences if n not in factored]
+            if unknown:
+                raise InvalidInputError(
+                    f"The 'row_differences' option of compress names columns that are not numeric "
+                    f"columns of the source {description}: {_listed(unknown)}. Numeric columns: "
+                    f"{_listed(numeric)}. Name only these.")
         for option in PER_COLUMN_TARGETS:
             value = getattr(self, option)
             if isinstance(value, dict):

@@ -38,7 +38,8 @@ from ..store.model import Coding, Mixing
 from .commit import ZSTD_LEVEL
 from .select import row_uniforms
 
-__all__ = ["SampleRuns", "PredictorChoice", "choose_predictors", "RUNS", "RUN_ROWS", "SAMPLE_CELLS"]
+__all__ = ["SampleRuns", "PredictorChoice", "choose_predictors", "choose_differences", "RUNS", "RUN_ROWS",
+           "SAMPLE_CELLS", "DIFFERENCE_GAIN"]
 
 #: Runs of consecutive rows in the sample, and rows per run (fewer for wide tables, see
 #: :func:`run_rows`): 8 runs of 2,048 rows, 16,384 rows in all.
@@ -106,6 +107,11 @@ class SampleRuns:
             merged.pieces.setdefault(run, []).extend(pieces)
         merged._trim()
         return merged
+
+    def run_starts(self) -> np.ndarray:
+        """(r,) the first position of each run within :meth:`rows` (int64)."""
+        lengths = [sum(values.shape[0] for _, values in self.pieces[run]) for run in sorted(self.pieces)]
+        return np.concatenate([[0], np.cumsum(lengths)[:-1]]).astype(np.int64) if lengths else np.zeros(0, np.int64)
 
     def rows(self, width: int) -> np.ndarray:
         """The sampled rows (m, n), runs in row order, NaN where NULL."""
@@ -195,3 +201,46 @@ def choose_predictors(sample: np.ndarray, mixing: Mixing, coding: Coding, shift:
                  for j in range(n) if f"n{j}" not in reused}
         alone = int(sum(reused.values()) + sum(_code_bytes(fresh).values()))
     return PredictorChoice(lowrank, int(basis_bytes), alone)
+
+
+#: Row differences are kept for a column only when they measure at least this much smaller
+#: than its plain codes: they make SQL filters outside rankfold_scan decode whole chunks
+#: (DEVELOPERS.md, "Row differences"), which a few percent do not pay for.
+DIFFERENCE_GAIN = 0.10
+
+
+def choose_differences(sample: np.ndarray, run_starts: np.ndarray, mixing: Mixing, coding: Coding,
+                       stored_basis: np.ndarray) -> np.ndarray:
+    """(n,) True where a coded column's residual codes measure at least ``DIFFERENCE_GAIN``
+    smaller stored as differences from the previous row's code (``store.row_differences``)
+    than as they are, on ``sample`` (m, n) raw rows (NaN where NULL) under the archive's final
+    ``mixing`` and ``coding``; differences restart at each run of the sample (``run_starts``
+    (r,)), as the archive's restart chunks make them restart (every 8,192 rows and at each row
+    file's start). Both forms are written with the real writer (``_code_bytes``)."""
+    m, n = sample.shape
+    in_basis = np.zeros(n, bool)
+    if mixing.basis_columns is not None:
+        in_basis[mixing.basis_columns] = True
+    coded = np.flatnonzero(np.isfinite(coding.residual_step) & ~in_basis)
+    flags = np.zeros(n, bool)
+    if not coded.size or m < 2:
+        return flags
+    filled = arithmetic.fill_missing(stored_basis, mixing.fill)
+    predicted = arithmetic.approximate(filled, mixing.weights[:, coded], mixing.offset[coded])
+    with np.errstate(invalid="ignore", over="ignore"):
+        codes = arithmetic.quantize(sample[:, coded] - predicted, coding.residual_step[coded][None, :])
+    codes = np.where(np.isfinite(codes) & (np.abs(codes) <= 2.0**30 - 1), codes, 0.0)
+    differences = codes.copy()
+    differences[1:] -= codes[:-1]
+    first = np.zeros(m, bool)
+    first[run_starts[run_starts < m]] = True
+    first[0] = True
+    differences[first] = codes[first]
+    arrays = {}
+    for t, j in enumerate(coded):
+        arrays[f"p{j}"] = pa.array(arithmetic.encode_codes(codes[:, t]))
+        arrays[f"d{j}"] = pa.array(arithmetic.encode_codes(differences[:, t]))
+    sizes = _code_bytes(arrays)
+    for j in coded:
+        flags[j] = sizes[f"d{j}"] <= (1.0 - DIFFERENCE_GAIN) * sizes[f"p{j}"]
+    return flags
