@@ -82,7 +82,8 @@ def scan_sql(reader: ArchiveReader, columns: Any = None, bounds: str = "row",
         fs = [basis_value_sql(reader.model, t) for t in range(c)]
         inner.append(f"[{', '.join(fs)}]::DOUBLE[{c}] AS __f")
         inner.append(f"[{', '.join(f'abs({e})' for e in fs)}]::DOUBLE[{c}] AS __fa")
-    inner.append(f"r.{layout.ROW_ERR_MAX} AS __rowmax")
+    if model.row_ledger:  # without: every bound is the column's (FittedModel.row_ledger)
+        inner.append(f"r.{layout.ROW_ERR_MAX} AS __rowmax")
     for s in range(len(names)):
         if is_basis[s]:
             inner.append(f"r.{quote_identifier(names[s])} AS __b{s}")
@@ -178,8 +179,11 @@ def column_errors_sql(reader: ArchiveReader) -> str:
 def row_errors_sql(reader: ArchiveReader) -> str:
     key = reader.manifest.get("key")
     keys = f"{quote_identifier(key)}, " if key else ""
-    return (f"SELECT {layout.ROW_ID}, {keys}{layout.ROW_ERR_MAX} AS err_max_scaled, "
-            f"{layout.ROW_ERR_L2} AS err_l2_scaled FROM {rows_source_sql(reader)}")
+    figures = [layout.ROW_ERR_MAX, layout.ROW_ERR_L2]
+    if not reader.model.row_ledger:  # no row figures stored: every bound is the column's
+        figures = ["CAST(NULL AS FLOAT)"] * 2
+    return (f"SELECT {layout.ROW_ID}, {keys}{figures[0]} AS err_max_scaled, "
+            f"{figures[1]} AS err_l2_scaled FROM {rows_source_sql(reader)}")
 
 
 _SPOOL: dict[str, Any] = {}

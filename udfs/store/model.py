@@ -125,6 +125,12 @@ class FittedModel:
     derived from the weights (``scores_right``).
     statistics: the measured fields of the columns table (``STATISTICS``; None before the
     encode pass). err_max, lower, upper and special come from them.
+    row_ledger: the row files carry the row ledger (``_rf_err_max``, ``_rf_err_l2``). None
+    (a new model) decides: no ledger when every approximated column has a finite tolerance
+    (:attr:`bounded_by_tolerance`); each bound is then min(err_max_j + slack, tolerance_j),
+    and the row figures could only tighten it below a tolerance the user already accepted.
+    Recorded as the manifest's ``row_ledger`` (archives written before it carry a ledger,
+    and an append keeps what the archive has).
     """
 
     names: list[str]
@@ -142,6 +148,11 @@ class FittedModel:
     anchor_nulls: np.ndarray
     score_right: np.ndarray | None = None
     statistics: dict[str, np.ndarray] | None = None
+    row_ledger: bool | None = None
+
+    def __post_init__(self) -> None:
+        if self.row_ledger is None:  # a new model: no row ledger when the tolerances bound every cell
+            object.__setattr__(self, "row_ledger", not self.bounded_by_tolerance)
 
     # -- shapes and the arrays of the rebuild formula ----------------------------------------
     @property
@@ -211,6 +222,12 @@ class FittedModel:
         """(n,) how a served value is typed: 'i' integer, 'f' float32, 'e' float16, 'd' float64."""
         return np.array([_kind(t) for t in self.types], dtype="<U1")
 
+    @cached_property
+    def bounded_by_tolerance(self) -> bool:
+        """Whether every column that is approximated (all but basis columns stored exactly)
+        has a finite tolerance, so that no cell's bound needs a row figure."""
+        return bool(np.all(np.isfinite(self.tolerance) | self.is_basis))
+
     def row_file_reserved(self) -> dict[str, pa.DataType | None]:
         """The reserved columns of this model's row files and their types
         (``table_schemas.row_file_reserved``): the row id and ledger, the stored basis (codes
@@ -225,7 +242,7 @@ class FittedModel:
             else:
                 basis[name] = None
         codes = [layout.CODE_PATTERN.format(int(j)) for j in np.flatnonzero(np.isfinite(self.residual_step))]
-        return row_file_reserved(basis, codes)
+        return row_file_reserved(basis, codes, row_ledger=self.row_ledger)
 
     def scores_right(self) -> np.ndarray | None:
         """(n, c) the right factor that turns transformed rows into scores (None: basis columns)."""
@@ -298,7 +315,8 @@ class FittedModel:
         rows, their bounds (b, q) and the floating-point part of the bounds, the slack (b, q):
         value = offset + basis @ weights + code * step (``arithmetic``), bound =
         min(round_up(rowmax * ledger_scale), err_max) + slack, capped at the tolerance (the
-        encode pass stored every cell whose error plus slack exceeded it). Basis columns,
+        encode pass stored every cell whose error plus slack exceeded it); without a row
+        ledger (``row_ledger``), err_max + slack capped at the tolerance. Basis columns,
         anchor rows, exact cells and serving are the reader's (``ArchiveReader.rebuild``)."""
         filled = self.basis_values(rows)
         weights = self.weights[:, col_idx]
@@ -311,9 +329,12 @@ class FittedModel:
             residual_term = codes * np.where(np.isfinite(steps), steps, 0.0)[None, :]
             values = arithmetic.add_residual(values, codes, steps)
         slack = arithmetic.slack(filled, weights, offset, residual_term)
-        row_max = rows.column(layout.ROW_ERR_MAX).to_numpy()
-        by_row = arithmetic.round_up(row_max[:, None] * self.ledger_scale[col_idx][None, :])
-        bounds = np.minimum(by_row, self.err_max[col_idx][None, :]) + slack
+        bounds = np.broadcast_to(self.err_max[col_idx][None, :], slack.shape)
+        if self.row_ledger:
+            row_max = rows.column(layout.ROW_ERR_MAX).to_numpy()
+            by_row = arithmetic.round_up(row_max[:, None] * self.ledger_scale[col_idx][None, :])
+            bounds = np.minimum(by_row, bounds)
+        bounds = bounds + slack
         bounds = np.minimum(bounds, self.tolerance[col_idx][None, :])
         return values, bounds, slack
 
@@ -402,7 +423,7 @@ class FittedModel:
                     manifest["transform"], columns.column("shift").to_numpy(),
                     columns.column("scale").to_numpy(), mixing, basis_names, coding,
                     columns.column("ledger_scale").to_numpy(), positions, values, nulls,
-                    statistics=statistics)
+                    statistics=statistics, row_ledger=bool(manifest.get("row_ledger", True)))
         if [b.get("stored_as", b["name"]) for b in basis] != model.basis_stored:
             raise CorruptArchiveError(
                 f"The manifest of {where} stores the basis entries in the row-file columns "

@@ -353,13 +353,15 @@ class ArchiveReader:
 
     def _row_file_columns(self, col_idx: np.ndarray) -> list[str]:
         """Row-file columns a rebuild of ``col_idx`` reads: the exact (key and non-numeric)
-        columns, every stored basis column, the row ledger and only the requested columns'
+        columns, every stored basis column, the row ledger (when there is one) and only the requested columns'
         residual codes (a narrow request on a wide archive skips the other codes)."""
         model = self.model
         codes = [layout.CODE_PATTERN.format(int(j)) for j in col_idx
                  if np.isfinite(model.residual_step[j])]
         wanted = list(self.manifest.get("exact_columns", [])) + model.basis_stored + codes
-        return list(dict.fromkeys(wanted + [layout.ROW_ERR_MAX]))
+        wanted += [layout.ROW_ERR_MAX] if model.row_ledger else []
+        # a read of no column gives no rows: then the row ids (every row file has them)
+        return list(dict.fromkeys(wanted)) or [layout.ROW_ID]
 
     def iter_rebuild(self, rows: Any = None, columns: Any = None, *,
                      batch_rows: int = layout.ROW_GROUP_ROWS):
