@@ -352,3 +352,38 @@ def test_a_compact_manifest_that_disagrees_with_its_columns_table_is_refused(tmp
     write_manifest(archive.path, written)  # resealed: only the cross-checks can refuse it
     with pytest.raises(rankfold.CorruptArchiveError, match=message):
         rankfold.open(archive.path)
+
+
+# -- shift, scale and ledger_scale stored once where they repeat mean and std -----------------
+def test_transform_fields_equal_to_the_statistics_are_stored_once(tmp_path):
+    x = _low_rank(300, 8, seed=6)
+    archive = rankfold.compress(_columns(x), tmp_path / "a", seed=0, rank=2)
+    raw = pq.read_table(archive.path / layout.table_file(archive.manifest, layout.COLUMNS))
+    for name in ("shift", "scale", "ledger_scale"):  # the standardize transform: all repeat
+        assert raw.column(name).null_count == raw.num_rows, name
+    ledger = archive.column_ledger()  # as read: filled in, bit for bit
+    assert ledger.column("shift").equals(ledger.column("mean"))
+    assert ledger.column("scale").equals(ledger.column("std"))
+    assert ledger.column("ledger_scale").equals(ledger.column("std"))
+    # the mean the reader gives back is numpy's mean of the source (numpy.mean)
+    np.testing.assert_allclose(ledger.column("shift").to_numpy(), x.mean(axis=0), rtol=1e-12, atol=1e-15)
+    con = duckdb.connect()
+    rankfold.udfs.register(con)
+    sql = con.sql("SELECT name, ledger_scale FROM rankfold_column_errors(?) ORDER BY position",
+                  params=[str(archive.path)]).to_arrow_table()
+    assert sql.column("ledger_scale").equals(ledger.column("std"))
+    # an append moves the statistics, not the transform: the fields are then stored as they are
+    shift = ledger.column("shift").to_numpy().copy()
+    grown = archive.append(_columns(_low_rank(60, 8, seed=7) + 3.0))
+    raw = pq.read_table(grown.path / layout.table_file(grown.manifest, layout.COLUMNS))
+    assert raw.column("shift").null_count == 0
+    np.testing.assert_array_equal(grown.column_ledger().column("shift").to_numpy(), shift)
+    assert not np.array_equal(grown.column_ledger().column("mean").to_numpy(), shift)
+
+
+def test_a_columns_table_holding_every_value_reads_as_it_is(small_archive):
+    from rankfold.udfs.store.model import FittedModel
+
+    table = small_archive.column_ledger()  # filled: every value present, as written before
+    assert all(table.column(n).null_count == 0 for n in ("shift", "scale", "ledger_scale"))
+    assert FittedModel.filled_columns_table(table).equals(table)

@@ -38,6 +38,7 @@ from ..store import aggregate as agg
 from ..store import layout
 from ..store.aggregate import rows_source_sql
 from ..store.integrity import read_parquet_sql
+from ..store.model import REPEATED
 from ..store.reader import ArchiveReader
 from ..store.sql_rebuild import basis_value_sql, derived_value_sql, row_bound_sql, served_sql, stored_bound_sql
 from ..store.sql_text import quote_identifier
@@ -171,7 +172,8 @@ def column_errors_sql(reader: ArchiveReader) -> str:
     wanted = ["name", "position", "type", "role", "valid", "nulls", "mean", "std", "ledger_scale",
               "err_max", "err_l2", "err_sum", "err_cells", "rel_rms", "tolerance", "residual_step"]
     have = set(reader.columns_table.column_names)
-    cols = ", ".join(n for n in wanted if n in have)
+    # shift, scale and ledger_scale are stored once where they repeat mean or std (model.REPEATED)
+    cols = ", ".join(f"coalesce({n}, {REPEATED[n]}) AS {n}" if n in REPEATED else n for n in wanted if n in have)
     reader.check_table(layout.COLUMNS)  # DuckDB reads the columns table again: unchanged?
     return f"SELECT {cols} FROM {read_parquet_sql([reader.path / layout.table_file(reader.manifest, layout.COLUMNS)])}"
 

@@ -24,7 +24,7 @@ from .integrity import (RowFileSeal, check_tables, damaged, open_row_file, read_
                         verified_metadata)
 from .manifest import DIGEST_FIELD, check_files, read_manifest
 from .manifest_schema import expand_columns, holds_table, older_row_file_rules
-from .model import FittedModel
+from .model import REPEATED, FittedModel
 from .table_schemas import CELLS_SCHEMA, COLUMNS_SCHEMA, anchors_schema, check_schema
 
 __all__ = ["ArchiveReader", "Rebuilt"]
@@ -116,6 +116,8 @@ class ArchiveReader:
     def _load(self) -> None:
         m = self.manifest
         self.columns_table = read_small_table(self.path, m, layout.table_file(m, layout.COLUMNS))
+        if set(REPEATED) <= set(self.columns_table.column_names):  # else refused below, by its schema
+            self.columns_table = FittedModel.filled_columns_table(self.columns_table)
         if m.get("columns_in_table") and "numeric_columns" not in m:  # names and types: the table's
             check_schema(self.columns_table.schema, COLUMNS_SCHEMA, self.path / layout.table_file(m, layout.COLUMNS))
             expand_columns(m, self.columns_table.column("name").to_pylist(),
