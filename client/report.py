@@ -634,10 +634,13 @@ def _html(data: dict[str, Any], images: dict[str, str | None]) -> str:
     heat_text = ("True absolute error of each sampled cell, measured against the source given to "
                  "the report, in units of the column's standard deviation." if h["kind"] == "error" else
                  "The archive alone does not hold the true values, so this map shows each sampled "
-                 "cell's guaranteed bound: min(row ledger x column std, column max error) plus the "
-                 "floating-point slack, in units of the column's standard deviation. The true error "
-                 "is at most this. Pass the source (--source) to see the true error instead.") + (
-                 " Rows are evenly spaced plus the rows with the largest ledger error.")
+                 "cell's guaranteed bound: " + ("min(row ledger x column std, column max error)"
+                                                if data["rows"]["row_ledger"] else "the column max error") +
+                 " plus the floating-point slack (capped at the tolerance, if any), in units of the "
+                 "column's standard deviation. The true error is at most this. Pass the source "
+                 "(--source) to see the true error instead.") + (
+                 " Rows are evenly spaced plus the rows with the largest ledger error."
+                 if data["rows"]["row_ledger"] else " Rows are evenly spaced.")
     r = data["rows"]
     row_table = _table(["figure", "value"], [
         ["rows", r["count"]], ["anchor rows (exact, error 0)", r["anchor_rows"]],

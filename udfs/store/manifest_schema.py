@@ -298,6 +298,10 @@ def older_format_rules(manifest: dict[str, Any], path: Any) -> None:
     :data:`RENAMED_ERROR_KEYS`' new names. The caller computes the manifest's digest before
     this renaming (it seals the manifest as written).
 
+    Manifests written before ``columns_in_table`` list every column in ``schema`` and
+    ``numeric_columns``: they are read as they are (:func:`compact_columns` and
+    :func:`expand_columns` leave them alone).
+
     Archives written before the manifest's ``row_ledger`` entry carry the row ledger in
     every row file: an absent entry reads as true (``model.FittedModel.from_tables``), so
     their bounds keep using the row figures, and an append to them keeps writing them.
