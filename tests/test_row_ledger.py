@@ -17,6 +17,8 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
 
 import rankfold
 import rankfold.udfs
@@ -230,3 +232,46 @@ def test_a_row_file_without_the_ledger_its_manifest_implies_is_refused(tmp_path,
     write_manifest(path, manifest)
     with pytest.raises(rankfold.CorruptArchiveError, match="lacks the column '_rf_err_max'"):
         ArchiveReader(path)
+
+
+# -- property: bounds hold on both kinds of archive, in numpy and in SQL ----------------------
+@st.composite
+def _ledger_cases(draw):
+    m, n = draw(st.integers(2, 50)), draw(st.integers(1, 7))
+    spec = (draw(st.integers(0, 2**32 - 1)), m, n, draw(st.sampled_from(("unit", "decades", "huge_mean"))),
+            draw(st.booleans()))  # conftest.invent: NULL, NaN, +-inf cells, integer and float32 columns
+    kind = draw(st.sampled_from(("every column", "some columns", "none")))
+    options = {"seed": draw(st.integers(0, 2**16)), "batch_rows": draw(st.sampled_from([None, 7]))}
+    if kind == "every column":
+        options["max_std_error"] = draw(st.sampled_from([0.3, 0.05, 0.01]))
+    elif kind == "some columns":
+        options["max_abs_error"] = {"c0": draw(st.sampled_from([0.5, 0.05]))}
+        options["rank"] = draw(st.integers(1, min(m, n)))
+    else:
+        options["rank"] = draw(st.integers(1, min(m, n)))
+    return spec, {k: v for k, v in options.items() if v is not None}
+
+
+@settings(max_examples=25, deadline=None, derandomize=True,
+          suppress_health_check=[HealthCheck.too_slow, HealthCheck.function_scoped_fixture])
+@given(case=_ledger_cases())
+def test_bounds_hold_with_and_without_a_row_ledger(tmp_path_factory, invented_table, table_truth,
+                                                   assert_tight, case):
+    spec, options = case
+    table = invented_table(*spec)
+    archive = rankfold.compress(table, tmp_path_factory.mktemp("prop") / "a.rankfold", **options)
+    model = ArchiveReader(archive.path).model
+    assert model.row_ledger is not model.bounded_by_tolerance
+    assert (LEDGER <= _row_columns(archive)) is model.row_ledger
+    truth, nulls = table_truth(table)
+    values, bounds = archive.to_numpy(), archive.cell_bounds()
+    finite = np.isfinite(truth)
+    assert np.all(np.abs(truth[finite] - values[finite]) <= bounds[finite])
+    assert np.array_equal(np.isnan(values), np.isnan(truth) | nulls)
+    assert_tight(archive, table, truth, values, bounds)
+    sql = _sql(archive.path, "SELECT * FROM rankfold_scan(?, bounds := 'cell') ORDER BY _rf_row")
+    for j, name in enumerate(archive.numeric_columns):
+        v = sql.column(name).cast(pa.float64()).fill_null(np.nan).to_numpy()
+        b = sql.column(f"{name}_bound").to_numpy()
+        ok = finite[:, j]
+        assert np.all(np.abs(truth[ok, j] - v[ok]) <= b[ok]), name
