@@ -387,3 +387,14 @@ def test_a_columns_table_holding_every_value_reads_as_it_is(small_archive):
     table = small_archive.column_ledger()  # filled: every value present, as written before
     assert all(table.column(n).null_count == 0 for n in ("shift", "scale", "ledger_scale"))
     assert FittedModel.filled_columns_table(table).equals(table)
+
+
+def test_a_compact_manifest_with_an_empty_numeric_list_reads(tmp_path):
+    # a reader that derives numeric_columns from the schema's numeric entries finds none in a
+    # compact manifest: an empty list is the compact form too, filled from the columns table
+    archive = rankfold.compress(_exact_and_numeric(), tmp_path / "a", key="id", seed=0)
+    written = json.loads((archive.path / layout.MANIFEST).read_text())
+    write_manifest(archive.path, dict(written, numeric_columns=[]))
+    opened = rankfold.open(archive.path)
+    assert opened.numeric_columns == archive.numeric_columns
+    np.testing.assert_array_equal(opened.to_numpy(), archive.to_numpy())

@@ -27,7 +27,7 @@ from ..errors import CorruptArchiveError
 from . import layout
 
 __all__ = ["MANIFEST_SCHEMA", "DIGEST_FIELD", "RENAMED_ERROR_KEYS", "MAX_ROWS", "MAX_COLUMNS", "validate",
-           "compact_columns", "expand_columns",
+           "compact_columns", "expand_columns", "is_compact",
            "check_plain_name", "older_format_rules", "older_row_file_rules", "sealed_by_groups",
            "files_used", "OPTIONAL_TABLES", "holds_table"]
 
@@ -229,8 +229,8 @@ MANIFEST_SCHEMA = Record(
         # False: the row files carry no row ledger (absent: they do, as every archive written
         # before it; model.FittedModel.row_ledger)
         "row_ledger": Flag(),
-        # required without ``columns_in_table``; absent with it
-        "numeric_columns": Seq(_COLUMN, min_len=1, unique=True),
+        # required without ``columns_in_table``; with it, absent (or empty: is_compact)
+        "numeric_columns": Seq(_COLUMN, unique=True),
         # True: the numeric columns' names and types are those of the columns table, not
         # repeated here (compact_columns / expand_columns)
         "columns_in_table": Flag(),
@@ -366,7 +366,7 @@ def _cross_check(m: dict[str, Any]) -> None:
         raise _Bad("manifest.shape[0]", f"is {rows}; an archive holds at least one row")
     if not 1 <= width <= MAX_COLUMNS:
         raise _Bad("manifest.shape[1]", f"is {width}, outside 1..{MAX_COLUMNS}")
-    if m.get("columns_in_table") and "numeric_columns" not in m:
+    if is_compact(m):
         _check_compact_schema(m)  # the numeric columns are checked when the columns table is read
     else:
         _check_columns(m)
@@ -393,14 +393,25 @@ def _check_compact_schema(m: dict[str, Any]) -> None:
         raise _Bad("manifest.key", f"is {_show(m['key'])}, not one of the exact columns")
 
 
+def is_compact(manifest: dict[str, Any]) -> bool:
+    """Whether ``manifest`` is in the form :func:`compact_columns` writes: ``columns_in_table``
+    and no numeric column in its schema (nor in ``numeric_columns``, absent or empty)."""
+    schema = manifest.get("schema")
+    return (manifest.get("columns_in_table") is True and not manifest.get("numeric_columns")
+            and isinstance(schema, list)
+            and not any(isinstance(f, dict) and f.get("role") == "numeric" for f in schema))
+
+
 def compact_columns(manifest: dict[str, Any]) -> dict[str, Any]:
     """The manifest as written: with ``columns_in_table`` and the numeric columns listed
     (a manifest being written, or one :func:`expand_columns` filled in), a shallow copy
     whose ``schema`` keeps the exact columns alone, each with its source position ``at``,
     and without ``numeric_columns`` (the columns table holds their names and types: about
     3 kB of a 50-column manifest). Any other manifest is returned as it is."""
-    if not manifest.get("columns_in_table") or "numeric_columns" not in manifest:
-        return manifest
+    schema = manifest.get("schema")
+    if (not manifest.get("columns_in_table") or is_compact(manifest) or not isinstance(schema, list)
+            or not all(isinstance(f, dict) and {"name", "type", "role"} <= f.keys() for f in schema)):
+        return manifest  # written as it is (a malformed one is refused on read, by validate)
     compact = {k: v for k, v in manifest.items() if k != "numeric_columns"}
     compact["schema"] = [{"name": f["name"], "type": f["type"], "role": "exact", "at": at}
                          for at, f in enumerate(manifest["schema"]) if f["role"] == "exact"]
@@ -413,7 +424,7 @@ def expand_columns(manifest: dict[str, Any], names: list[str], types: list[str],
     its order, the numeric columns' order), and check what :func:`validate` checks of them
     on a full manifest. ``compact_columns`` of the result gives the manifest back as read.
     Any other manifest is left alone."""
-    if not manifest.get("columns_in_table") or "numeric_columns" in manifest:
+    if not is_compact(manifest):
         return
     try:
         width = manifest["shape"][1]
