@@ -150,7 +150,7 @@ def test_an_archive_with_empty_tables_written_before_still_reads_and_appends(tmp
     x = _low_rank(400, 10, seed=9)
     path = rankfold.compress(_columns(x), tmp_path / "old.rankfold", rank=2).path
     manifest = json.loads((path / layout.MANIFEST).read_text())
-    names = rankfold.open(path).numeric_columns
+    names = manifest["numeric_columns"]
     pq.write_table(anchors_schema(names, False).empty_table(), path / layout.ANCHORS)
     pq.write_table(CELLS_SCHEMA.empty_table(), path / layout.CELLS)
     manifest["files"] += [file_entry(path, layout.ANCHORS), file_entry(path, layout.CELLS)]
@@ -297,63 +297,6 @@ def test_parquet_types_suffice_is_pyarrows_round_trip(kind, suffices):
     assert parquet_types_suffice(pa.schema([("_rf_row", pa.int64()), ("c", kind)])) is suffices
 
 
-# -- the manifest does not repeat the numeric columns the columns table holds ----------------
-def _exact_and_numeric(m: int = 200) -> pa.Table:
-    x = _low_rank(m, 6, seed=5)
-    return pa.table({"x0": x[:, 0], "id": pa.array(np.arange(m)), "x1": x[:, 1], "site": pa.array(["tor", "fell"] * (m // 2)),
-                     **{f"x{j}": x[:, j] for j in range(2, 6)}})
-
-
-def test_the_manifest_leaves_numeric_names_and_types_to_the_columns_table(tmp_path):
-    table = _exact_and_numeric()
-    archive = rankfold.compress(table, tmp_path / "a", key="id", seed=0)
-    written = json.loads((archive.path / layout.MANIFEST).read_text())
-    assert written["columns_in_table"] is True and "numeric_columns" not in written
-    assert written["schema"] == [{"name": "id", "type": "int64", "role": "exact", "at": 1},
-                                 {"name": "site", "type": "string", "role": "exact", "at": 3}]
-    # as opened: the source order, names and types as the source schema has them (pyarrow)
-    assert [(f["name"], f["type"]) for f in archive.manifest["schema"]] == [
-        (f.name, str(f.type)) for f in table.schema]
-    assert archive.numeric_columns == ["x0", "x1", "x2", "x3", "x4", "x5"]
-    assert archive.rebuild().column_names[:4] == ["x0", "id", "x1", "site"]
-    assert archive.nbytes == sum(p.stat().st_size for p in archive.path.iterdir())
-    grown = archive.append(_exact_and_numeric(40).set_column(1, "id", pa.array(np.arange(200, 240))))
-    again = json.loads((grown.path / layout.MANIFEST).read_text())
-    assert "numeric_columns" not in again and again["schema"] == written["schema"]
-    assert grown.nbytes == sum(p.stat().st_size for p in grown.path.iterdir()
-                               if p.name in {f["name"] for f in again["files"]} | {layout.MANIFEST})
-
-
-def test_a_manifest_that_lists_the_numeric_columns_still_reads(tmp_path):
-    # as written before columns_in_table: every column in the schema, and numeric_columns
-    archive = rankfold.compress(_exact_and_numeric(), tmp_path / "a", key="id", seed=0)
-    values = archive.to_numpy()
-    full = {k: v for k, v in archive.manifest.items() if k != "columns_in_table"}
-    write_manifest(archive.path, full)
-    written = json.loads((archive.path / layout.MANIFEST).read_text())
-    assert written["numeric_columns"] == archive.numeric_columns and len(written["schema"]) == 8
-    old = rankfold.open(archive.path, checksums=True)
-    np.testing.assert_array_equal(old.to_numpy(), values)
-    assert old.manifest["schema"] == archive.manifest["schema"]
-    assert old.nbytes == sum(p.stat().st_size for p in old.path.iterdir())
-
-
-@pytest.mark.parametrize("edit, message", [
-    (lambda m: m.update(shape=[m["shape"][0], 5]), r"shape\[1\] is 5 where the columns table holds 6"),
-    (lambda m: m["schema"][1].update(at=9), "places two columns at one position or one beyond the 8"),
-    (lambda m: m["schema"][1].pop("at"), "without its position 'at'"),
-    (lambda m: (m["schema"][1].update(name="x2"), m.update(exact_columns=["id", "x2"])),
-     "names a column of the columns table"),
-])
-def test_a_compact_manifest_that_disagrees_with_its_columns_table_is_refused(tmp_path, edit, message):
-    archive = rankfold.compress(_exact_and_numeric(), tmp_path / "a", key="id", seed=0)
-    written = json.loads((archive.path / layout.MANIFEST).read_text())
-    edit(written)
-    write_manifest(archive.path, written)  # resealed: only the cross-checks can refuse it
-    with pytest.raises(rankfold.CorruptArchiveError, match=message):
-        rankfold.open(archive.path)
-
-
 # -- shift, scale and ledger_scale stored once where they repeat mean and std -----------------
 def test_transform_fields_equal_to_the_statistics_are_stored_once(tmp_path):
     x = _low_rank(300, 8, seed=6)
@@ -387,14 +330,3 @@ def test_a_columns_table_holding_every_value_reads_as_it_is(small_archive):
     table = small_archive.column_ledger()  # filled: every value present, as written before
     assert all(table.column(n).null_count == 0 for n in ("shift", "scale", "ledger_scale"))
     assert FittedModel.filled_columns_table(table).equals(table)
-
-
-def test_a_compact_manifest_with_an_empty_numeric_list_reads(tmp_path):
-    # a reader that derives numeric_columns from the schema's numeric entries finds none in a
-    # compact manifest: an empty list is the compact form too, filled from the columns table
-    archive = rankfold.compress(_exact_and_numeric(), tmp_path / "a", key="id", seed=0)
-    written = json.loads((archive.path / layout.MANIFEST).read_text())
-    write_manifest(archive.path, dict(written, numeric_columns=[]))
-    opened = rankfold.open(archive.path)
-    assert opened.numeric_columns == archive.numeric_columns
-    np.testing.assert_array_equal(opened.to_numpy(), archive.to_numpy())

@@ -960,9 +960,6 @@ def _manifest(src, opts, inputs: _Inputs, build: _Build, model: FittedModel, pro
         "shape": [rows, len(numeric)],
         "schema": [{"name": f.name, "type": str(f.type), "role": roles[f.name]} for f in src.schema],
         "numeric_columns": numeric,
-        # written without the numeric columns' entries: columns.parquet holds their names and
-        # types (store.manifest_schema.compact_columns; readers fill them in again)
-        "columns_in_table": True,
         "exact_columns": passthrough,
         "key": opts.key,
         "method": {"kind": build.method, "rank": build.rank, "rank_reason": build.reason,

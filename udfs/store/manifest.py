@@ -20,15 +20,14 @@ from typing import Any
 from ..errors import CorruptArchiveError, SizeTargetMissedError, UnsupportedVersionError
 from . import layout
 from .integrity import check_listed_files, footer_sha256, part_digests, sha256_of
-from .manifest_schema import DIGEST_FIELD, compact_columns, older_format_rules, validate
+from .manifest_schema import DIGEST_FIELD, older_format_rules, validate
 
 __all__ = ["sha256_of", "file_entry", "entry_of", "write_manifest", "sealed_manifest_text",
            "read_manifest", "check_files",
            "manifest_digest", "DIGEST_FIELD"]
 
-# ``numeric_columns`` too, unless ``columns_in_table`` (manifest_schema.compact_columns)
 REQUIRED_KEYS = ("format", "format_version", "writer", "archive_id", "shape", "schema",
-                 "method", "basis", "anchors", "files", "errors")
+                 "numeric_columns", "method", "basis", "anchors", "files", "errors")
 
 
 def file_entry(directory: Path, name: str, keyed: list[str] | None = None) -> dict[str, Any]:
@@ -58,9 +57,8 @@ def entry_of(name: str, size: int, sha256: str, footer: str | None = None) -> di
 
 def manifest_digest(manifest: dict[str, Any]) -> str:
     """SHA-256 of the canonical JSON of ``manifest`` without its ``manifest_sha256`` entry
-    (keys sorted, no spaces, ASCII only: the same bytes whatever the writer's layout), as
-    written (``manifest_schema.compact_columns``)."""
-    body = {k: v for k, v in compact_columns(manifest).items() if k != DIGEST_FIELD}
+    (keys sorted, no spaces, ASCII only: the same bytes whatever the writer's layout)."""
+    body = {k: v for k, v in manifest.items() if k != DIGEST_FIELD}
     text = json.dumps(body, sort_keys=True, separators=(",", ":"), ensure_ascii=True, allow_nan=False)
     return hashlib.sha256(text.encode("ascii")).hexdigest()
 
@@ -68,11 +66,9 @@ def manifest_digest(manifest: dict[str, Any]) -> str:
 def manifest_text(manifest: dict[str, Any]) -> str:
     """The manifest as written: one line per top-level field, each value as compact JSON.
     Still readable line by line and diffable, and smaller than indented JSON (measured
-    11.8 kB -> 9.3 kB for the 64 columns of scikit-learn's digits; every byte counts). The
-    numeric columns are left to the columns table when the manifest says so
-    (``manifest_schema.compact_columns``)."""
+    11.8 kB -> 9.3 kB for the 64 columns of scikit-learn's digits; every byte counts)."""
     lines = [f"{json.dumps(k)}: {json.dumps(v, separators=(',', ':'), allow_nan=False)}"
-             for k, v in compact_columns(manifest).items()]
+             for k, v in manifest.items()]
     return "{\n" + ",\n".join(lines) + "\n}\n"
 
 
@@ -97,7 +93,7 @@ def sealed_manifest_text(manifest: dict[str, Any]) -> str:
     manifest alone tells the truth to anyone who reads it (``rankfold inspect --json``, a
     script), whatever reads it. ``manifest["achieved"]`` is replaced by a new dict holding the
     figure (a dict shared with an older manifest, as an append copies it, is left alone)."""
-    body = {k: v for k, v in compact_columns(manifest).items() if k != DIGEST_FIELD}
+    body = {k: v for k, v in manifest.items() if k != DIGEST_FIELD}
     if not isinstance(body.get("achieved"), dict) or "bytes" not in body["achieved"]:
         return manifest_text({DIGEST_FIELD: manifest_digest(body), **body})
     achieved = body["achieved"] = manifest["achieved"] = dict(body["achieved"])

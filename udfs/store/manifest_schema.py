@@ -27,7 +27,6 @@ from ..errors import CorruptArchiveError
 from . import layout
 
 __all__ = ["MANIFEST_SCHEMA", "DIGEST_FIELD", "RENAMED_ERROR_KEYS", "MAX_ROWS", "MAX_COLUMNS", "validate",
-           "compact_columns", "expand_columns", "is_compact",
            "check_plain_name", "older_format_rules", "older_row_file_rules", "sealed_by_groups",
            "files_used", "OPTIONAL_TABLES", "holds_table"]
 
@@ -198,11 +197,9 @@ MANIFEST_SCHEMA = Record(
         "writer": Record({"name": Text(max_len=200), "version": Text(max_len=200)}),
         "archive_id": Text(max_len=200),
         "shape": Seq(Int(), length=2),
-        # with ``columns_in_table``: the exact columns alone, each with its source position
-        # ``at`` (the numeric ones are the columns table's: expand_columns)
         "schema": Seq(Record({"name": _COLUMN, "type": Text(max_len=2000),
-                              "role": Text(choices=("numeric", "exact"))},
-                             {"at": Int(0, MAX_COLUMNS)})),
+                              "role": Text(choices=("numeric", "exact"))}), min_len=1),
+        "numeric_columns": Seq(_COLUMN, min_len=1, unique=True),
         "method": Record({"kind": Text(max_len=100), "rank": Int(0, MAX_COLUMNS)}),
         "basis": Seq(Record({"name": _COLUMN, "fill": Num()},
                             {"stored_as": _COLUMN, "step": Num(positive=True)})),
@@ -229,11 +226,6 @@ MANIFEST_SCHEMA = Record(
         # False: the row files carry no row ledger (absent: they do, as every archive written
         # before it; model.FittedModel.row_ledger)
         "row_ledger": Flag(),
-        # required without ``columns_in_table``; with it, absent (or empty: is_compact)
-        "numeric_columns": Seq(_COLUMN, unique=True),
-        # True: the numeric columns' names and types are those of the columns table, not
-        # repeated here (compact_columns / expand_columns)
-        "columns_in_table": Flag(),
     },
 )
 
@@ -297,10 +289,6 @@ def older_format_rules(manifest: dict[str, Any], path: Any) -> None:
     ``achieved.max_abs_error`` are renamed here, in ``manifest`` (in place), to
     :data:`RENAMED_ERROR_KEYS`' new names. The caller computes the manifest's digest before
     this renaming (it seals the manifest as written).
-
-    Manifests written before ``columns_in_table`` list every column in ``schema`` and
-    ``numeric_columns``: they are read as they are (:func:`compact_columns` and
-    :func:`expand_columns` leave them alone).
 
     Archives written before the manifest's ``row_ledger`` entry carry the row ledger in
     every row file: an absent entry reads as true (``model.FittedModel.from_tables``), so
@@ -366,97 +354,7 @@ def _cross_check(m: dict[str, Any]) -> None:
         raise _Bad("manifest.shape[0]", f"is {rows}; an archive holds at least one row")
     if not 1 <= width <= MAX_COLUMNS:
         raise _Bad("manifest.shape[1]", f"is {width}, outside 1..{MAX_COLUMNS}")
-    if is_compact(m):
-        _check_compact_schema(m)  # the numeric columns are checked when the columns table is read
-    else:
-        _check_columns(m)
-    _check_parts(m)
-
-
-def _check_compact_schema(m: dict[str, Any]) -> None:
-    """The schema of a manifest whose numeric columns are the columns table's: exact columns
-    only, each at its own source position among shape[1] + len(schema) columns."""
-    total = m["shape"][1] + len(m["schema"])
-    places = [f.get("at") for f in m["schema"]]
-    if any(f["role"] != "exact" for f in m["schema"]) or None in places:
-        raise _Bad("manifest.schema", "lists a numeric column, or an exact one without its position 'at', "
-                                      "where columns_in_table says the columns table holds them")
-    if len(set(places)) != len(places) or any(p >= total for p in places):
-        raise _Bad("manifest.schema", f"places two columns at one position or one beyond the {total} columns")
     names = [f["name"] for f in m["schema"]]
-    if len(set(names)) != len(names):
-        raise _Bad("manifest.schema", "names a column twice")
-    exact = set(names)
-    if "exact_columns" in m and set(m["exact_columns"]) != exact:
-        raise _Bad("manifest.exact_columns", "differs from the schema's exact columns")
-    if m.get("key") is not None and m["key"] not in exact:
-        raise _Bad("manifest.key", f"is {_show(m['key'])}, not one of the exact columns")
-
-
-def is_compact(manifest: dict[str, Any]) -> bool:
-    """Whether ``manifest`` is in the form :func:`compact_columns` writes: ``columns_in_table``
-    and no numeric column in its schema (nor in ``numeric_columns``, absent or empty)."""
-    schema = manifest.get("schema")
-    return (manifest.get("columns_in_table") is True and not manifest.get("numeric_columns")
-            and isinstance(schema, list)
-            and not any(isinstance(f, dict) and f.get("role") == "numeric" for f in schema))
-
-
-def compact_columns(manifest: dict[str, Any]) -> dict[str, Any]:
-    """The manifest as written: with ``columns_in_table`` and the numeric columns listed
-    (a manifest being written, or one :func:`expand_columns` filled in), a shallow copy
-    whose ``schema`` keeps the exact columns alone, each with its source position ``at``,
-    and without ``numeric_columns`` (the columns table holds their names and types: about
-    3 kB of a 50-column manifest). Any other manifest is returned as it is."""
-    schema = manifest.get("schema")
-    if (not manifest.get("columns_in_table") or is_compact(manifest) or not isinstance(schema, list)
-            or not all(isinstance(f, dict) and {"name", "type", "role"} <= f.keys() for f in schema)):
-        return manifest  # written as it is (a malformed one is refused on read, by validate)
-    compact = {k: v for k, v in manifest.items() if k != "numeric_columns"}
-    compact["schema"] = [{"name": f["name"], "type": f["type"], "role": "exact", "at": at}
-                         for at, f in enumerate(manifest["schema"]) if f["role"] == "exact"]
-    return compact
-
-
-def expand_columns(manifest: dict[str, Any], names: list[str], types: list[str], path: Any) -> None:
-    """Fill in, in place, the ``schema`` (source order) and ``numeric_columns`` of a manifest
-    written by :func:`compact_columns` from the columns table's ``names`` and ``types`` (in
-    its order, the numeric columns' order), and check what :func:`validate` checks of them
-    on a full manifest. ``compact_columns`` of the result gives the manifest back as read.
-    Any other manifest is left alone."""
-    if not is_compact(manifest):
-        return
-    try:
-        width = manifest["shape"][1]
-        if len(names) != width:
-            raise _Bad("manifest.shape[1]", f"is {width} where the columns table holds {len(names)} columns")
-        exact = {f["name"]: f for f in manifest["schema"]}
-        if len(set(names)) != len(names) or set(names) & set(exact):
-            raise _Bad("manifest.schema", "names a column of the columns table, or the table names one twice")
-        slots: list[dict[str, Any] | None] = [None] * (width + len(exact))
-        for f in exact.values():
-            slots[f["at"]] = {"name": f["name"], "type": f["type"], "role": "exact"}
-        numeric = iter(zip(names, types))
-        schema = [f if f is not None else dict(zip(("name", "type"), next(numeric)), role="numeric")
-                  for f in slots]
-        full = dict(manifest, schema=schema, numeric_columns=list(names))
-        _check_columns(full)
-    except _Bad as bad:
-        raise CorruptArchiveError(
-            f"{path}: {bad.where} {bad.what}; the archive is damaged or was edited: restore "
-            "it from a copy or compress the source again.") from None
-    manifest["schema"] = schema
-    manifest["numeric_columns"] = list(names)
-
-
-def _check_columns(m: dict[str, Any]) -> None:
-    """The rules tying a full schema to the numeric columns, the exact ones and the basis."""
-    width = m["shape"][1]
-    if "numeric_columns" not in m:
-        raise _Bad("manifest", "lacks the entry 'numeric_columns'")
-    names = [f["name"] for f in m["schema"]]
-    if not names:
-        raise _Bad("manifest.schema", "lists no column")
     if len(set(names)) != len(names):
         raise _Bad("manifest.schema", "names a column twice")
     numeric = [f["name"] for f in m["schema"] if f["role"] == "numeric"]
@@ -476,10 +374,6 @@ def _check_columns(m: dict[str, Any]) -> None:
     stored = [b.get("stored_as", b["name"]) for b in m["basis"]]
     if len(set(stored)) != len(stored) or set(stored) & exact:
         raise _Bad("manifest.basis", "stores two entries, or an exact column, in one row-file column")
-
-
-def _check_parts(m: dict[str, Any]) -> None:
-    rows = m["shape"][0]
     if any(a >= rows for a in m["anchors"]):
         raise _Bad("manifest.anchors", f"holds a row position beyond the {rows} rows")
     if m["anchors"] and not holds_table(m, layout.ANCHORS):

@@ -23,9 +23,9 @@ from . import arithmetic, layout
 from .integrity import (RowFileSeal, check_tables, damaged, open_row_file, read_small_table,
                         verified_metadata)
 from .manifest import DIGEST_FIELD, check_files, read_manifest
-from .manifest_schema import expand_columns, holds_table, is_compact, older_row_file_rules
+from .manifest_schema import holds_table, older_row_file_rules
 from .model import REPEATED, FittedModel
-from .table_schemas import CELLS_SCHEMA, COLUMNS_SCHEMA, anchors_schema, check_schema
+from .table_schemas import CELLS_SCHEMA, anchors_schema, check_schema
 
 __all__ = ["ArchiveReader", "Rebuilt"]
 
@@ -115,16 +115,12 @@ class ArchiveReader:
 
     def _load(self) -> None:
         m = self.manifest
-        self.columns_table = read_small_table(self.path, m, layout.table_file(m, layout.COLUMNS))
-        if set(REPEATED) <= set(self.columns_table.column_names):  # else refused below, by its schema
-            self.columns_table = FittedModel.filled_columns_table(self.columns_table)
-        if is_compact(m):  # the numeric columns' names and types: the columns table's
-            check_schema(self.columns_table.schema, COLUMNS_SCHEMA, self.path / layout.table_file(m, layout.COLUMNS))
-            expand_columns(m, self.columns_table.column("name").to_pylist(),
-                           self.columns_table.column("type").to_pylist(), self.path / layout.MANIFEST)
         self.numeric_columns: list[str] = list(m["numeric_columns"])
         self.column_index = {n: j for j, n in enumerate(self.numeric_columns)}
         self.rows_count = int(m["shape"][0])
+        self.columns_table = read_small_table(self.path, m, layout.table_file(m, layout.COLUMNS))
+        if set(REPEATED) <= set(self.columns_table.column_names):  # else refused below, by its schema
+            self.columns_table = FittedModel.filled_columns_table(self.columns_table)
         anchors = (read_small_table(self.path, m, layout.table_file(m, layout.ANCHORS))
                    if holds_table(m, layout.ANCHORS) else anchors_schema(self.numeric_columns, False).empty_table())
         cells = (read_small_table(self.path, m, layout.table_file(m, layout.CELLS))
