@@ -111,6 +111,15 @@ MUTATIONS = {
         "udfs/passes/plan.py", "                if unknown:\n",
         "                if False:\n",
         ["tests/test_plan.py"]),
+    "no row ledger: cell bounds a tenth of the column's": (
+        "udfs/store/model.py", "        bounds = np.broadcast_to(self.err_max[col_idx][None, :], slack.shape)\n",
+        "        bounds = np.broadcast_to(self.err_max[col_idx][None, :] * (0.1 if not self.row_ledger else 1.0),"
+        " slack.shape)\n",
+        ["tests/test_row_ledger.py"]),
+    "no row ledger: SQL scan bound a tenth of the column's": (
+        "udfs/store/sql_rebuild.py", "    ledger = sql_literal(float(model.err_max[j]))\n",
+        "    ledger = sql_literal(float(model.err_max[j]) * (0.1 if not model.row_ledger else 1.0))\n",
+        ["tests/test_row_ledger.py"]),
     "archive size leaves the manifest out": (
         "udfs/store/manifest.py", '        if data + len(text.encode("utf-8")) == total:',
         '        if True:',

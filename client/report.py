@@ -236,6 +236,10 @@ def _sample_positions(arch: Archive, row_max: np.ndarray, count: int) -> np.ndar
 
 
 def _row_ledger(arch: Archive) -> np.ndarray:
+    """The row figures (m,), NaN when the archive keeps no row ledger (every column has a
+    tolerance: ``FittedModel.row_ledger``)."""
+    if not arch._reader.model.row_ledger:
+        return np.full(arch.shape[0], np.nan)
     parts = [arch._reader.row_file(p["name"]).read(columns=[layout.ROW_ERR_MAX])
              .column(0).to_numpy(zero_copy_only=False) for p in arch.manifest["row_parts"]]
     return np.concatenate(parts).astype(np.float64) if parts else np.zeros(0)
@@ -335,7 +339,7 @@ def report_data(archive: Any, *, source: Any = None, connection: Any = None,
 
     finite_rows = row_max[np.isfinite(row_max)]
     anchors = set(arch.anchor_rows)
-    worst_rows = np.argsort(-np.nan_to_num(row_max, nan=-1.0), kind="stable")[:5]
+    worst_rows = np.argsort(-np.nan_to_num(row_max, nan=-1.0), kind="stable")[:5 if finite_rows.size else 0]
     selection = column_selection(arch)
     data = {
         "summary": info,
@@ -359,6 +363,7 @@ def report_data(archive: Any, *, source: Any = None, connection: Any = None,
                     "median": _num(np.median(visible)) if visible.size else None,
                     "max": _num(visible.max()) if visible.size else None, "top": top},
         "rows": {"count": int(row_max.size), "anchor_rows": len(anchors),
+                 "row_ledger": bool(arch._reader.model.row_ledger),
                  "median": _num(np.median(finite_rows)) if finite_rows.size else None,
                  "p99": _num(np.percentile(finite_rows, 99)) if finite_rows.size else None,
                  "max": _num(finite_rows.max()) if finite_rows.size else None,
@@ -629,10 +634,13 @@ def _html(data: dict[str, Any], images: dict[str, str | None]) -> str:
     heat_text = ("True absolute error of each sampled cell, measured against the source given to "
                  "the report, in units of the column's standard deviation." if h["kind"] == "error" else
                  "The archive alone does not hold the true values, so this map shows each sampled "
-                 "cell's guaranteed bound: min(row ledger x column std, column max error) plus the "
-                 "floating-point slack, in units of the column's standard deviation. The true error "
-                 "is at most this. Pass the source (--source) to see the true error instead.") + (
-                 " Rows are evenly spaced plus the rows with the largest ledger error.")
+                 "cell's guaranteed bound: " + ("min(row ledger x column std, column max error)"
+                                                if data["rows"]["row_ledger"] else "the column max error") +
+                 " plus the floating-point slack (capped at the tolerance, if any), in units of the "
+                 "column's standard deviation. The true error is at most this. Pass the source "
+                 "(--source) to see the true error instead.") + (
+                 " Rows are evenly spaced plus the rows with the largest ledger error."
+                 if data["rows"]["row_ledger"] else " Rows are evenly spaced.")
     r = data["rows"]
     row_table = _table(["figure", "value"], [
         ["rows", r["count"]], ["anchor rows (exact, error 0)", r["anchor_rows"]],
@@ -690,9 +698,12 @@ def _html(data: dict[str, Any], images: dict[str, str | None]) -> str:
                  "relative error of each rebuilt column, sorted"),
         _section("3. Error on a sample of rows", esc(heat_text), images["heatmap"], heat_table,
                  "row by column heatmap of the error on sampled rows"),
-        _section("4. Error per row", "From the row ledger: the largest error in each row, in units "
+        _section("4. Error per row", ("From the row ledger: the largest error in each row, in units "
                  "of each column's standard deviation, measured when the archive was written. "
-                 "Anchor rows are exact.", images["rows"], row_table, "largest error in each row"),
+                 "Anchor rows are exact.") if data["rows"]["row_ledger"] else (
+                 "This archive keeps no row ledger: every column has a tolerance, so each cell's "
+                 "bound is its column's largest error (section 2) plus the floating-point slack, "
+                 "capped at the tolerance."), images["rows"], row_table, "largest error in each row"),
         _section("5. Kept exactly, and why", sel_text, images["selection"], sel_table,
                  "leverage of each column with the basis columns highlighted"),
         f'<script type="application/json" id="rankfold-report-data">{blob}</script>',

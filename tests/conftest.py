@@ -149,6 +149,7 @@ def table_truth():
 #   column: max_i bound_ij <= max_i |e_ij| + ALLOWANCE scale_j
 #   cell:   bound_ij <= (1 + 2^-7) min(s_j max_j' |e_ij'| / s_j', max_i |e_ij|) + ALLOWANCE scale_j
 #           (1 + 2^-3 when every column has a tolerance)
+#           bound_ij <= max_i |e_ij| + ALLOWANCE scale_j without a row ledger (manifest row_ledger false)
 # with scale_j the column's largest finite |value| (true, served or stored: a stored value may lie
 # far outside the column's range, e.g. a spike in a basis column carried by the weights into a
 # derived one, and the slack grows with it; serving clamps it back). ALLOWANCE covers the slack:
@@ -206,6 +207,10 @@ def bounds_are_tight(archive, table: pa.Table, truth: np.ndarray,
         per_scale = np.where(finite, error / s[None, :], 0.0)
         row_figure = np.where(np.isfinite(per_scale), per_scale, np.inf).max(axis=1)
         reference = np.minimum(s[None, :] * row_figure[:, None], error.max(axis=0)[None, :])
+    if not archive.manifest.get("row_ledger", True):
+        # no row ledger (every column has a tolerance): a cell's bound is its column's
+        # (DEVELOPERS.md, "The bound contract"), tight against the column's largest error
+        reference = np.broadcast_to(error.max(axis=0)[None, :], reference.shape)
     loose = approximated & (stored.bounds > rounding * reference + allowed[None, :])
     assert not loose.any(), (
         f"cell bounds not tight: cell {np.argwhere(loose)[0]} has bound {stored.bounds[loose][0]!r} "

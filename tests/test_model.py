@@ -132,10 +132,11 @@ def _rewrite_row_file(path, change):
 
 def test_a_row_file_with_another_reserved_type_is_refused(tmp_path):
     # the row ledger is float32 by the format (arithmetic.round_up_compact): a float64 one,
-    # though its values are the same, is not a file this format wrote
+    # though its values are the same, is not a file this format wrote (a fixed rank: no
+    # tolerance, so the row files carry the row ledger)
     path = tmp_path / "a"
-    rankfold.compress(_table(), path, key="id", max_abs_error=0.05, seed=0)
-    ArchiveReader(path)  # reads before the edit
+    rankfold.compress(_table(), path, key="id", rank=2, seed=0)
+    assert ArchiveReader(path).model.row_ledger  # reads before the edit
 
     def widen(table):
         i = table.schema.get_field_index(layout.ROW_ERR_L2)

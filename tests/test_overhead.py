@@ -234,3 +234,99 @@ def test_an_archive_with_unpacked_blocks_written_before_still_aggregates(tmp_pat
     blocks_name = layout.table_file(grown.manifest, BLOCKS)
     assert "sums" in pq.read_table(grown.path / blocks_name).column_names
     assert grown.aggregate(["x0"], "count").column("x0")[0].as_py() == 520
+
+
+# -- row-file footers: statistics only where DuckDB filters, the Arrow schema only when needed --
+def _row_footer(archive) -> pq.FileMetaData:
+    return pq.ParquetFile(archive.path / archive.manifest["row_parts"][0]["name"]).metadata
+
+
+def _with_key(m: int, n: int, **extra) -> pa.Table:
+    x = _low_rank(m, n, seed=3)
+    return pa.table({"id": pa.array(np.arange(m) * 3), **extra, **{f"x{j}": x[:, j] for j in range(n)}})
+
+
+@pytest.mark.parametrize("options", [{"max_abs_error": 0.01}, {"rank": 3}])
+def test_row_files_keep_statistics_only_on_row_ids_and_named_columns(tmp_path, options):
+    archive = rankfold.compress(_with_key(400, 10), tmp_path / "a", key="id", seed=0, **options)
+    meta = _row_footer(archive)
+    group = meta.row_group(0)
+    with_stats = {group.column(i).path_in_schema for i in range(meta.num_columns) if group.column(i).is_stats_set}
+    names = set(meta.schema.names)
+    # the row ids and the key (DuckDB prunes row groups with them), and basis columns kept
+    # under their own names; no residual codes, stored basis codes or row ledger
+    assert {layout.ROW_ID, "id"} <= with_stats
+    assert with_stats == {n for n in names if n == layout.ROW_ID or not n.startswith(layout.RESERVED_PREFIX)}
+    assert any(n.startswith(layout.RESERVED_PREFIX) and n != layout.ROW_ID for n in names)
+    assert b"ARROW:schema" not in (meta.metadata or {})  # plain types: Parquet's own suffice
+    # the key's statistics are the true extremes (numpy), so DuckDB's pruning keeps the right groups
+    stats = group.column(meta.schema.names.index("id")).statistics
+    assert (stats.min, stats.max) == (0, 3 * 399)
+    con = duckdb.connect()
+    rankfold.udfs.register(con)
+    got = con.sql("SELECT id, x4 FROM rankfold_scan(?) WHERE id = 27", params=[str(archive.path)]).fetchall()
+    assert len(got) == 1 and got[0][0] == 27
+
+
+@pytest.mark.parametrize("column", [
+    pa.array(["fen", "moor"] * 150).dictionary_encode(),                        # dictionary
+    pa.array(np.arange(300) * 10**9, pa.timestamp("ns", tz="Pacific/Chatham")),  # a time zone
+    pa.array(["a", "bb", "ccc"] * 100, pa.large_string()),                       # large_string
+])
+def test_row_files_keep_the_arrow_schema_when_an_exact_column_needs_it(tmp_path, column):
+    table = _with_key(300, 8, label=column)
+    archive = rankfold.compress(table, tmp_path / "a", key="id", seed=0, max_abs_error=0.01)
+    assert b"ARROW:schema" in (_row_footer(archive).metadata or {})
+    rebuilt = archive.rebuild()
+    assert rebuilt.column("label").type == column.type
+    assert rebuilt.column("label").to_pylist() == column.to_pylist()
+
+
+@pytest.mark.parametrize("kind, suffices", [
+    # Parquet logical types (Apache Parquet LogicalTypes.md): INT(bits, signed) and the float
+    # types carry these Arrow types back; dictionary encoding, time zones other than UTC and
+    # 64-bit string offsets are Arrow's own (pyarrow.parquet.read_schema)
+    (pa.uint8(), True), (pa.uint16(), True), (pa.uint32(), True), (pa.int64(), True),
+    (pa.float32(), True), (pa.float64(), True), (pa.string(), True),
+    (pa.dictionary(pa.int32(), pa.string()), False), (pa.timestamp("us", tz="Pacific/Chatham"), False),
+    (pa.large_string(), False),
+])
+def test_parquet_types_suffice_is_pyarrows_round_trip(kind, suffices):
+    from rankfold.udfs.passes.commit import parquet_types_suffice
+
+    assert parquet_types_suffice(pa.schema([("_rf_row", pa.int64()), ("c", kind)])) is suffices
+
+
+# -- shift, scale and ledger_scale stored once where they repeat mean and std -----------------
+def test_transform_fields_equal_to_the_statistics_are_stored_once(tmp_path):
+    x = _low_rank(300, 8, seed=6)
+    archive = rankfold.compress(_columns(x), tmp_path / "a", seed=0, rank=2)
+    raw = pq.read_table(archive.path / layout.table_file(archive.manifest, layout.COLUMNS))
+    for name in ("shift", "scale", "ledger_scale"):  # the standardize transform: all repeat
+        assert raw.column(name).null_count == raw.num_rows, name
+    ledger = archive.column_ledger()  # as read: filled in, bit for bit
+    assert ledger.column("shift").equals(ledger.column("mean"))
+    assert ledger.column("scale").equals(ledger.column("std"))
+    assert ledger.column("ledger_scale").equals(ledger.column("std"))
+    # the mean the reader gives back is numpy's mean of the source (numpy.mean)
+    np.testing.assert_allclose(ledger.column("shift").to_numpy(), x.mean(axis=0), rtol=1e-12, atol=1e-15)
+    con = duckdb.connect()
+    rankfold.udfs.register(con)
+    sql = con.sql("SELECT name, ledger_scale FROM rankfold_column_errors(?) ORDER BY position",
+                  params=[str(archive.path)]).to_arrow_table()
+    assert sql.column("ledger_scale").equals(ledger.column("std"))
+    # an append moves the statistics, not the transform: the fields are then stored as they are
+    shift = ledger.column("shift").to_numpy().copy()
+    grown = archive.append(_columns(_low_rank(60, 8, seed=7) + 3.0))
+    raw = pq.read_table(grown.path / layout.table_file(grown.manifest, layout.COLUMNS))
+    assert raw.column("shift").null_count == 0
+    np.testing.assert_array_equal(grown.column_ledger().column("shift").to_numpy(), shift)
+    assert not np.array_equal(grown.column_ledger().column("mean").to_numpy(), shift)
+
+
+def test_a_columns_table_holding_every_value_reads_as_it_is(small_archive):
+    from rankfold.udfs.store.model import FittedModel
+
+    table = small_archive.column_ledger()  # filled: every value present, as written before
+    assert all(table.column(n).null_count == 0 for n in ("shift", "scale", "ledger_scale"))
+    assert FittedModel.filled_columns_table(table).equals(table)

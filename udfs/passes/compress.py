@@ -1121,6 +1121,7 @@ def _manifest(src, opts, inputs: _Inputs, build: _Build, model: FittedModel, pro
                    "seed": opts.seed, "options": opts.recorded()},
         "transform": model.transform_kind,
         "basis": model.basis_entries(),
+        "row_ledger": model.row_ledger,  # False: the row files carry no row ledger
         "anchors": [int(p) for p in model.anchor_positions],
         "row_parts": parts,
         "spectrum": [float(s) for s in spectrum.values],

@@ -643,8 +643,9 @@ def encode_pass(stream: Stream, model: FittedModel, writer: ArchiveWriter, *, bl
             stored_codes = carry.stored(codes, first, writer)
         for t, j in enumerate(with_residual):
             columns[layout.CODE_PATTERN.format(j)] = pa.array(arithmetic.encode_codes(stored_codes[:, t])).cast(stored_types[t])
-        columns[layout.ROW_ERR_MAX] = pa.array(arithmetic.round_up_compact(row_max, ledger_bits))
-        columns[layout.ROW_ERR_L2] = pa.array(arithmetic.round_up_compact(row_l2, ledger_bits))
+        if model.row_ledger:  # without: every bound is the column's (FittedModel.row_ledger)
+            columns[layout.ROW_ERR_MAX] = pa.array(arithmetic.round_up_compact(row_max, ledger_bits))
+            columns[layout.ROW_ERR_L2] = pa.array(arithmetic.round_up_compact(row_l2, ledger_bits))
         table = pa.table(columns)
         if reserved is not None:  # the format's columns, checked once per pass (table_schemas)
             check_row_schema(table.schema, reserved, f"rows from {first} on", writing=True)

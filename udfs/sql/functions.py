@@ -84,7 +84,8 @@ FUNCTIONS = {
                     "table (column_a, column_b, value, bound): Pearson correlation from the factors"),
     "column_errors": ("column_errors(path)", "table: the column error ledger (columns.parquet)"),
     "row_errors": ("row_errors(path)",
-                   "table: per-row error figures, in units of each column's ledger_scale"),
+                   "table: per-row error figures, in units of each column's ledger_scale "
+                   "(NULL when every column has a tolerance: no row ledger is kept then)"),
 }
 
 

@@ -37,6 +37,7 @@ from ..errors import InvalidInputError
 from ..store import aggregate as agg
 from ..store import layout
 from ..store.integrity import read_parquet_sql
+from ..store.model import REPEATED
 from ..store.reader import ArchiveReader
 from ..store.row_differences import signed_code_sql
 from ..store.sql_rebuild import basis_value_sql, derived_value_sql, row_bound_sql, served_sql, stored_bound_sql
@@ -82,7 +83,8 @@ def scan_sql(reader: ArchiveReader, columns: Any = None, bounds: str = "row",
         fs = [basis_value_sql(reader.model, t) for t in range(c)]
         inner.append(f"[{', '.join(fs)}]::DOUBLE[{c}] AS __f")
         inner.append(f"[{', '.join(f'abs({e})' for e in fs)}]::DOUBLE[{c}] AS __fa")
-    inner.append(f"r.{layout.ROW_ERR_MAX} AS __rowmax")
+    if model.row_ledger:  # without: every bound is the column's (FittedModel.row_ledger)
+        inner.append(f"r.{layout.ROW_ERR_MAX} AS __rowmax")
     for s in range(len(names)):
         if is_basis[s]:
             inner.append(f"r.{quote_identifier(names[s])} AS __b{s}")
@@ -175,7 +177,8 @@ def column_errors_sql(reader: ArchiveReader) -> str:
     wanted = ["name", "position", "type", "role", "valid", "nulls", "mean", "std", "ledger_scale",
               "err_max", "err_l2", "err_sum", "err_cells", "rel_rms", "tolerance", "residual_step"]
     have = set(reader.columns_table.column_names)
-    cols = ", ".join(n for n in wanted if n in have)
+    # shift, scale and ledger_scale are stored once where they repeat mean or std (model.REPEATED)
+    cols = ", ".join(f"coalesce({n}, {REPEATED[n]}) AS {n}" if n in REPEATED else n for n in wanted if n in have)
     reader.check_table(layout.COLUMNS)  # DuckDB reads the columns table again: unchanged?
     return f"SELECT {cols} FROM {read_parquet_sql([reader.path / layout.table_file(reader.manifest, layout.COLUMNS)])}"
 
@@ -183,8 +186,11 @@ def column_errors_sql(reader: ArchiveReader) -> str:
 def row_errors_sql(reader: ArchiveReader) -> str:
     key = reader.manifest.get("key")
     keys = f"{quote_identifier(key)}, " if key else ""
-    return (f"SELECT {layout.ROW_ID}, {keys}{layout.ROW_ERR_MAX} AS err_max_scaled, "
-            f"{layout.ROW_ERR_L2} AS err_l2_scaled FROM {agg.rows_source_sql(reader)}")
+    figures = [layout.ROW_ERR_MAX, layout.ROW_ERR_L2]
+    if not reader.model.row_ledger:  # no row figures stored: every bound is the column's
+        figures = ["CAST(NULL AS FLOAT)"] * 2
+    return (f"SELECT {layout.ROW_ID}, {keys}{figures[0]} AS err_max_scaled, "
+            f"{figures[1]} AS err_l2_scaled FROM {agg.rows_source_sql(reader)}")
 
 
 _SPOOL: dict[str, Any] = {}

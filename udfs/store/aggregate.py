@@ -76,7 +76,8 @@ class BlockSums:
     """Per row-group sums gathered by the encode pass (one record per Parquet row group of the
     row files: each verify batch is cut at ``layout.ROW_GROUP_ROWS`` like the writer cuts it).
 
-    Per block: first_row, rows, rowmax_sum (sum of the stored row figures), and as lists:
+    Per block: first_row, rows, rowmax_sum (sum of the row figures, rounded up; kept when
+    the row files carry no row ledger, ``FittedModel.row_ledger``), and as lists:
     f_sum, f_abs (c: sums of filled basis values and of their absolute values), d_sum (c: sums
     of f - shift), gram, gram_abs (c*c, row-major: sums of (f - shift)(f - shift)^T and of its
     absolute values), q_sum, q_abs, q_sq (n: residual codes), ov_cells, ov_nulls (n: cells
@@ -521,7 +522,9 @@ def _scan_partials(reader, con, names, col_idx, by, where, row_range):
     cond = (" WHERE " + " AND ".join(conds)) if conds else ""
     group = ", ".join(quote_identifier(b) for b in by)
     f = [basis_value_sql(reader.model, t) for t in range(c)]
-    items = ["count(*) AS __n", f"sum({layout.ROW_ERR_MAX}) AS __rowmax"]
+    # without a row ledger no row figures are stored: the rows term is +inf, the other terms bound
+    rowmax = f"sum({layout.ROW_ERR_MAX})" if reader.model.row_ledger else "CAST('inf' AS DOUBLE)"
+    items = ["count(*) AS __n", f"{rowmax} AS __rowmax"]
     items += [f"sum({e}) AS __f{t}" for t, e in enumerate(f)]
     items += [f"sum(abs({e})) AS __a{t}" for t, e in enumerate(f)]
     basis_slot = {reader.model.basis_names[t]: t for t in range(c)}
@@ -543,7 +546,7 @@ def _scan_partials(reader, con, names, col_idx, by, where, row_range):
     if g == 0:
         return main.select(by), part
     part.n = num("__n")
-    part.rowmax = np.nan_to_num(num("__rowmax"))
+    part.rowmax = np.nan_to_num(num("__rowmax"), posinf=np.inf)
     if c:
         part.f_sum = np.nan_to_num(np.column_stack([num(f"__f{t}") for t in range(c)]))
         part.f_abs = np.nan_to_num(np.column_stack([num(f"__a{t}") for t in range(c)]))

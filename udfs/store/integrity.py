@@ -206,6 +206,8 @@ def open_row_file(path: Path, metadata: pq.FileMetaData | None = None) -> pq.Par
 def _types_match(stored: pa.DataType, declared: str) -> bool:
     """The row file's type is the declared source type, up to what Parquet storage changes:
     dictionary encoding, and the unit of temporal types (seconds are stored as milliseconds)."""
+    if str(stored) == declared:  # a dictionary column declared as one
+        return True
     if pa.types.is_dictionary(stored):
         stored = stored.value_type
     text = str(stored)

@@ -5,7 +5,8 @@ An archive is a directory::
     manifest.json          format version, schema, options, seed, files with SHA-256, errors
     rows-00000.parquet     one row per source row, in source order: _rf_row, key columns,
                            basis columns (exact), _rf_err_max, _rf_err_l2 (row ledger, in
-                           units of each column's ledger_scale, i.e. its standard deviation)
+                           units of each column's ledger_scale, i.e. its standard deviation;
+                           absent when every column has a tolerance: manifest row_ledger)
     columns.parquet        one row per numeric column: transform, offset and weights of the
                            mixing matrix, profile counts, column ledger
     anchors.parquet        the anchor rows (R factor): _rf_row and every numeric column, exact

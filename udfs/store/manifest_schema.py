@@ -127,6 +127,13 @@ class Nullable:
 
 
 @dataclass(frozen=True)
+class Flag:
+    def check(self, value: Any, where: str) -> None:
+        if not isinstance(value, bool):
+            raise _Bad(where, f"is {_kind(value)} ({_show(value)}), not true or false")
+
+
+@dataclass(frozen=True)
 class Anything:
     def check(self, value: Any, where: str) -> None:
         return None
@@ -216,6 +223,9 @@ MANIFEST_SCHEMA = Record(
         "spectrum": Nullable(Seq(Num())),
         "drift": Nullable(Record({})),
         "transform": Anything(),
+        # False: the row files carry no row ledger (absent: they do, as every archive written
+        # before it; model.FittedModel.row_ledger)
+        "row_ledger": Flag(),
     },
 )
 
@@ -279,6 +289,10 @@ def older_format_rules(manifest: dict[str, Any], path: Any) -> None:
     ``achieved.max_abs_error`` are renamed here, in ``manifest`` (in place), to
     :data:`RENAMED_ERROR_KEYS`' new names. The caller computes the manifest's digest before
     this renaming (it seals the manifest as written).
+
+    Archives written before the manifest's ``row_ledger`` entry carry the row ledger in
+    every row file: an absent entry reads as true (``model.FittedModel.from_tables``), so
+    their bounds keep using the row figures, and an append to them keeps writing them.
     """
     if DIGEST_FIELD not in manifest:
         raise CorruptArchiveError(

@@ -30,6 +30,7 @@ from typing import Any
 
 import numpy as np
 import pyarrow as pa
+import pyarrow.compute as pc
 
 from ..errors import CorruptArchiveError
 from . import arithmetic, layout, row_differences
@@ -104,6 +105,27 @@ class Coding:
         return cls(np.full(width, np.inf), np.full(width, np.nan), np.full(basis, np.nan))
 
 
+# Fields of the columns table that the standardize transform makes equal to a measured one:
+# stored as NULL where equal (bit for bit) to it, filled back on read. Measured on the
+# 2,000 x 50 table of benchmarks/overhead.py: columns.parquet 7,769 -> 6,582 bytes.
+REPEATED = {"shift": "mean", "scale": "std", "ledger_scale": "std"}
+
+
+def repeated_fields(shift: np.ndarray, scale: np.ndarray, ledger_scale: np.ndarray,
+                    statistics: dict[str, np.ndarray]) -> dict[str, pa.Array]:
+    """``shift``, ``scale`` and ``ledger_scale`` (n,) as columns-table arrays: NULL where the
+    value equals the measured field it repeats (:data:`REPEATED`; NaN never equals), so the
+    table stores it once. ``FittedModel.filled_columns_table`` puts the value back exactly."""
+    given = {"shift": shift, "scale": scale, "ledger_scale": ledger_scale}
+    out = {}
+    for name, values in given.items():
+        values = np.asarray(values, dtype=np.float64)
+        source = statistics.get(REPEATED[name])
+        same = (np.asarray(source, dtype=np.float64) == values) if source is not None else np.zeros(values.shape, bool)
+        out[name] = pa.array(values, pa.float64(), mask=same)
+    return out
+
+
 def _kind(type_name: str) -> str:
     """How a served value is typed: 'i' integer, 'f' float32, 'e' float16, 'd' float64."""
     if type_name.startswith(("int", "uint")):
@@ -129,6 +151,12 @@ class FittedModel:
     derived from the weights (``scores_right``).
     statistics: the measured fields of the columns table (``STATISTICS``; None before the
     encode pass). err_max, lower, upper and special come from them.
+    row_ledger: the row files carry the row ledger (``_rf_err_max``, ``_rf_err_l2``). None
+    (a new model) decides: no ledger when every approximated column has a finite tolerance
+    (:attr:`bounded_by_tolerance`); each bound is then min(err_max_j + slack, tolerance_j),
+    and the row figures could only tighten it below a tolerance the user already accepted.
+    Recorded as the manifest's ``row_ledger`` (archives written before it carry a ledger,
+    and an append keeps what the archive has).
     """
 
     names: list[str]
@@ -146,6 +174,11 @@ class FittedModel:
     anchor_nulls: np.ndarray
     score_right: np.ndarray | None = None
     statistics: dict[str, np.ndarray] | None = None
+    row_ledger: bool | None = None
+
+    def __post_init__(self) -> None:
+        if self.row_ledger is None:  # a new model: no row ledger when the tolerances bound every cell
+            object.__setattr__(self, "row_ledger", not self.bounded_by_tolerance)
 
     # -- shapes and the arrays of the rebuild formula ----------------------------------------
     @property
@@ -241,6 +274,12 @@ class FittedModel:
         """(n,) how a served value is typed: 'i' integer, 'f' float32, 'e' float16, 'd' float64."""
         return np.array([_kind(t) for t in self.types], dtype="<U1")
 
+    @cached_property
+    def bounded_by_tolerance(self) -> bool:
+        """Whether every column that is approximated (all but basis columns stored exactly)
+        has a finite tolerance, so that no cell's bound needs a row figure."""
+        return bool(np.all(np.isfinite(self.tolerance) | self.is_basis))
+
     def row_file_reserved(self) -> dict[str, pa.DataType | None]:
         """The reserved columns of this model's row files and their types
         (``table_schemas.row_file_reserved``): the row id and ledger, the stored basis (codes
@@ -255,7 +294,7 @@ class FittedModel:
             else:
                 basis[name] = None
         codes = [layout.CODE_PATTERN.format(int(j)) for j in np.flatnonzero(np.isfinite(self.residual_step))]
-        return row_file_reserved(basis, codes)
+        return row_file_reserved(basis, codes, row_ledger=self.row_ledger)
 
     def scores_right(self) -> np.ndarray | None:
         """(n, c) the right factor that turns transformed rows into scores (None: basis columns)."""
@@ -328,7 +367,8 @@ class FittedModel:
         rows, their bounds (b, q) and the floating-point part of the bounds, the slack (b, q):
         value = offset + basis @ weights + code * step (``arithmetic``), bound =
         min(round_up(rowmax * ledger_scale), err_max) + slack, capped at the tolerance (the
-        encode pass stored every cell whose error plus slack exceeded it). Basis columns,
+        encode pass stored every cell whose error plus slack exceeded it); without a row
+        ledger (``row_ledger``), err_max + slack capped at the tolerance. Basis columns,
         anchor rows, exact cells and serving are the reader's (``ArchiveReader.rebuild``)."""
         filled = self.basis_values(rows)
         weights = self.weights[:, col_idx]
@@ -341,9 +381,12 @@ class FittedModel:
             residual_term = codes * np.where(np.isfinite(steps), steps, 0.0)[None, :]
             values = arithmetic.add_residual(values, codes, steps)
         slack = arithmetic.slack(filled, weights, offset, residual_term)
-        row_max = rows.column(layout.ROW_ERR_MAX).to_numpy()
-        by_row = arithmetic.round_up(row_max[:, None] * self.ledger_scale[col_idx][None, :])
-        bounds = np.minimum(by_row, self.err_max[col_idx][None, :]) + slack
+        bounds = np.broadcast_to(self.err_max[col_idx][None, :], slack.shape)
+        if self.row_ledger:
+            row_max = rows.column(layout.ROW_ERR_MAX).to_numpy()
+            by_row = arithmetic.round_up(row_max[:, None] * self.ledger_scale[col_idx][None, :])
+            bounds = np.minimum(by_row, bounds)
+        bounds = bounds + slack
         bounds = np.minimum(bounds, self.tolerance[col_idx][None, :])
         return values, bounds, slack
 
@@ -370,7 +413,7 @@ class FittedModel:
             "position": np.arange(self.width, dtype=np.int32),
             "type": self.types,
             "role": np.where(self.in_basis, "basis", "derived").tolist(),
-            "shift": self.shift, "scale": self.scale, "ledger_scale": self.ledger_scale,
+            **repeated_fields(self.shift, self.scale, self.ledger_scale, stats),
             "offset": self.offset,
             "weights": list(np.ascontiguousarray(self.weights.T)),
             **{n: stats[n] for n in STATISTICS if n in stats},  # a field missing is refused below
@@ -394,6 +437,19 @@ class FittedModel:
         return {layout.COLUMNS: columns, layout.ANCHORS: anchors}
 
     # -- the decoder -------------------------------------------------------------------------
+    @staticmethod
+    def filled_columns_table(columns: pa.Table) -> pa.Table:
+        """The columns table with the fields :func:`repeated_fields` left NULL filled in:
+        ``shift`` from ``mean``, ``scale`` and ``ledger_scale`` from ``std`` (tables written
+        before hold every value, and are returned as they are)."""
+        for name, source in REPEATED.items():
+            field = columns.column(name)
+            if field.null_count:
+                i = columns.schema.get_field_index(name)
+                filled = pc.coalesce(field, columns.column(source))
+                columns = columns.set_column(i, columns.schema.field(i), filled)
+        return columns
+
     @classmethod
     def from_tables(cls, manifest: dict[str, Any], columns: pa.Table, anchors: pa.Table,
                     row_schema: pa.Schema | None = None, directory: Path | None = None) -> "FittedModel":
@@ -428,6 +484,7 @@ class FittedModel:
                         float32_scores=float32,
                         difference=(columns.column("difference").fill_null(False).to_numpy(zero_copy_only=False)
                                     if "difference" in columns.column_names else None))
+        columns = cls.filled_columns_table(columns)
         statistics = {n: columns.column(n).to_numpy(zero_copy_only=False) for n in STATISTICS}
         types = {f["name"]: f["type"] for f in manifest["schema"]}
         positions = anchors.column(layout.ROW_ID).to_numpy()
@@ -440,7 +497,7 @@ class FittedModel:
                     manifest["transform"], columns.column("shift").to_numpy(),
                     columns.column("scale").to_numpy(), mixing, basis_names, coding,
                     columns.column("ledger_scale").to_numpy(), positions, values, nulls,
-                    statistics=statistics)
+                    statistics=statistics, row_ledger=bool(manifest.get("row_ledger", True)))
         if coding.difference is not None and not np.array_equal(model.difference, coding.difference):
             raise CorruptArchiveError(
                 f"The columns table of {where} marks columns "

@@ -24,7 +24,7 @@ from .integrity import (RowFileSeal, check_tables, damaged, open_row_file, read_
                         verified_metadata)
 from .manifest import DIGEST_FIELD, check_files, read_manifest
 from .manifest_schema import holds_table, older_row_file_rules
-from .model import FittedModel
+from .model import REPEATED, FittedModel
 from .table_schemas import CELLS_SCHEMA, anchors_schema, check_schema
 
 __all__ = ["ArchiveReader", "Rebuilt"]
@@ -128,6 +128,8 @@ class ArchiveReader:
         self.column_index = {n: j for j, n in enumerate(self.numeric_columns)}
         self.rows_count = int(m["shape"][0])
         self.columns_table = read_small_table(self.path, m, layout.table_file(m, layout.COLUMNS))
+        if set(REPEATED) <= set(self.columns_table.column_names):  # else refused below, by its schema
+            self.columns_table = FittedModel.filled_columns_table(self.columns_table)
         anchors = (read_small_table(self.path, m, layout.table_file(m, layout.ANCHORS))
                    if holds_table(m, layout.ANCHORS) else anchors_schema(self.numeric_columns, False).empty_table())
         cells = (read_small_table(self.path, m, layout.table_file(m, layout.CELLS))
@@ -402,13 +404,15 @@ class ArchiveReader:
 
     def _row_file_columns(self, col_idx: np.ndarray) -> list[str]:
         """Row-file columns a rebuild of ``col_idx`` reads: the exact (key and non-numeric)
-        columns, every stored basis column, the row ledger and only the requested columns'
+        columns, every stored basis column, the row ledger (when there is one) and only the requested columns'
         residual codes (a narrow request on a wide archive skips the other codes)."""
         model = self.model
         codes = [layout.CODE_PATTERN.format(int(j)) for j in col_idx
                  if np.isfinite(model.residual_step[j])]
         wanted = list(self.manifest.get("exact_columns", [])) + model.basis_stored + codes
-        return list(dict.fromkeys(wanted + [layout.ROW_ERR_MAX]))
+        wanted += [layout.ROW_ERR_MAX] if model.row_ledger else []
+        # a read of no column gives no rows: then the row ids (every row file has them)
+        return list(dict.fromkeys(wanted)) or [layout.ROW_ID]
 
     def iter_rebuild(self, rows: Any = None, columns: Any = None, *,
                      batch_rows: int = layout.ROW_GROUP_ROWS):

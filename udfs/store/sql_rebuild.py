@@ -8,7 +8,8 @@ digits (``sql_text.sql_literal``), so it is the same double.
 
 The expressions name the columns of the scan's inner select (``udfs/sql/tables.py``):
 ``__f`` the filled basis values of the row as DOUBLE[c] and ``__fa`` their absolute values,
-``__rowmax`` the row figure, ``__q<s>`` the residual code of the s-th requested column.
+``__rowmax`` the row figure (only when the archive keeps a row ledger,
+``FittedModel.row_ledger``), ``__q<s>`` the residual code of the s-th requested column.
 """
 
 from __future__ import annotations
@@ -64,9 +65,12 @@ def derived_value_sql(model: FittedModel, j: int, slot: int) -> tuple[str, str]:
 def stored_bound_sql(model: FittedModel, j: int, magnitude: str) -> str:
     """SQL of the bound of a stored value of derived column j, as ``ArchiveReader.rebuild``
     computes it: min(round_up(rowmax * scale_j), colmax_j) + slack, capped at the tolerance;
-    the factor (1 + 16u) more than covers round_up and this expression's own rounding."""
-    raw = (f"(least(__rowmax * {sql_literal(float(model.ledger_scale[j]))}, "
-           f"{sql_literal(float(model.err_max[j]))}) + "
+    the factor (1 + 16u) more than covers round_up and this expression's own rounding.
+    Without a row ledger: colmax_j + slack, capped at the tolerance."""
+    ledger = sql_literal(float(model.err_max[j]))
+    if model.row_ledger:
+        ledger = f"least(__rowmax * {sql_literal(float(model.ledger_scale[j]))}, {ledger})"
+    raw = (f"({ledger} + "
            f"{sql_literal(arithmetic.slack_factor(len(model.basis_names)))} * ({magnitude})) * "
            f"{sql_literal(1.0 + 16 * U)}")
     tol = float(model.tolerance[j])
@@ -110,7 +114,8 @@ def row_bound_sql(model: FittedModel, cols: np.ndarray, slots: list[int], use_an
     colmax_j) (r: the row figure) is a non-decreasing piecewise linear function of r,
     evaluated over the columns not dominated by another (larger scale and larger colmax); the
     slack uses, per basis entry, the largest |weight| of the requested columns, which can
-    only raise it; the cap is the largest tolerance."""
+    only raise it; the cap is the largest tolerance. Without a row ledger the ledger part
+    is the largest colmax_j."""
     if cols.size == 0:
         return "0.0::DOUBLE"
     scale = model.ledger_scale[cols]
@@ -132,6 +137,8 @@ def row_bound_sql(model: FittedModel, cols: np.ndarray, slots: list[int], use_an
         expr = f"greatest({lower}, {term})" if lower else term
         whens.append(f"WHEN {r} * {sql_literal(float(a[i]))} < {sql_literal(float(b[i]))} THEN {expr}")
     ledger = f"CASE {' '.join(whens)} ELSE {sql_literal(float(b[-1]))} END"
+    if not model.row_ledger:
+        ledger = sql_literal(float(b[-1]))  # the largest colmax (the front ends at it)
     c = len(model.basis_names)
     mag = sql_literal(float(np.max(np.abs(model.offset[cols]))))
     if c:

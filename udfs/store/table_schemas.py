@@ -77,16 +77,19 @@ Reserved = pa.DataType | tuple[pa.DataType, ...] | None
 
 
 def row_file_reserved(basis_stored: dict[str, pa.DataType | None],
-                      code_columns: list[str]) -> dict[str, Reserved]:
+                      code_columns: list[str], *, row_ledger: bool = True) -> dict[str, Reserved]:
     """Reserved columns of every row file and their types (None: any of several; a tuple:
     one of these).
 
     ``basis_stored``: the stored basis columns by name (``_rf_basis_<k>`` codes are int32;
     scores float64 or float32; source columns keep the source's type, given as None here and
     checked against the manifest's schema by the caller). ``code_columns``: the residual
-    code columns (zigzag unsigned, one of :data:`CODE_TYPES`, ``arithmetic.encode_codes``)."""
-    reserved: dict[str, Reserved] = {layout.ROW_ID: pa.int64(), layout.ROW_ERR_MAX: pa.float32(),
-                                     layout.ROW_ERR_L2: pa.float32()}
+    code columns (zigzag unsigned, one of :data:`CODE_TYPES`, ``arithmetic.encode_codes``).
+    ``row_ledger``: the row files carry the row ledger (float32 row figures; left out when
+    every approximated column has a tolerance, ``model.FittedModel.row_ledger``)."""
+    reserved: dict[str, Reserved] = {layout.ROW_ID: pa.int64()}
+    if row_ledger:
+        reserved.update({layout.ROW_ERR_MAX: pa.float32(), layout.ROW_ERR_L2: pa.float32()})
     reserved.update(basis_stored)
     reserved.update({name: CODE_TYPES for name in code_columns})
     return reserved
