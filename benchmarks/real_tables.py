@@ -59,6 +59,8 @@ VARIANTS = {
     "basis_tol": {"basis_precision": "tolerance"},
     "quantized": {"residual": "quantized"},
     "corrections": {"residual": "corrections"},
+    "exact_basis": {"basis_precision": "exact"},
+    "row_diff": {"row_differences": "auto"},
 }
 TOLERANCES = (1e-1, 1e-2, 1e-3)
 # issue 14's bar for the default: never more than 5% + 8 kB larger than the better hand method

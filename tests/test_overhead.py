@@ -330,3 +330,37 @@ def test_a_columns_table_holding_every_value_reads_as_it_is(small_archive):
     table = small_archive.column_ledger()  # filled: every value present, as written before
     assert all(table.column(n).null_count == 0 for n in ("shift", "scale", "ledger_scale"))
     assert FittedModel.filled_columns_table(table).equals(table)
+
+
+@pytest.mark.parametrize("runs_in", ["rows", "columns"])
+def test_exact_cells_are_written_in_the_smaller_order(tmp_path, runs_in):
+    # NULL cells in runs down one column, or across whole rows: the cells file is whichever of
+    # the two orders (row-major, column-major) pyarrow writes smaller, and reads back whole
+    from rankfold.udfs.passes.encode import ExactCells, _written_bytes
+
+    rng = np.random.default_rng(3)  # invented data
+    x = rng.standard_normal((3000, 8))
+    mask = np.zeros(x.shape, bool)
+    if runs_in == "columns":
+        mask[500:2500, 2] = True
+        mask[1000:3000, 5] = True
+        mask[rng.random(3000) < 0.5, 7] = True
+    else:
+        mask[rng.random(3000) < 0.3, :] = True
+    cells = ExactCells()
+    cells.add(0, mask, x, mask)
+    written = cells.table()
+    rows, cols = np.nonzero(mask)
+    orders = {"rows": np.lexsort((cols, rows)), "columns": np.lexsort((rows, cols))}
+    sizes = {}
+    for name, order in orders.items():
+        table = pa.table({"_rf_row": pa.array(rows[order].astype(np.int64)),
+                          "_rf_column": pa.array(cols[order].astype(np.int32)),
+                          "value": pa.array(np.zeros(order.size), mask=np.ones(order.size, bool)),
+                          "reason": pa.array(["null"] * order.size).dictionary_encode()},
+                         schema=written.schema)
+        sizes[name] = _written_bytes(table)
+    assert _written_bytes(written) == min(sizes.values())
+    assert sizes[runs_in] < max(sizes.values())  # the order that follows the runs wins
+    got = set(zip(written.column("_rf_row").to_pylist(), written.column("_rf_column").to_pylist()))
+    assert got == set(zip(rows.tolist(), cols.tolist()))
