@@ -696,7 +696,8 @@ def test_the_stored_form_of_a_manifest_reads_back_as_it_was(fields, every_column
     numeric = [f["name"] for f in schema if f["role"] == "numeric"]
     named = numeric if every_column else numeric[:1]
     manifest = {"schema": schema, "targets": {"max_abs_error": {n: 0.5 + k for k, n in enumerate(named)},
-                                              "max_std_error": 0.01, "rel_error": None}}
+                                              "max_std_error": 0.01, "rel_error": None},
+                "spectrum": [3.0, 1.5] + [0.0] * len(fields)}
     if with_numeric:
         manifest["numeric_columns"] = numeric
     stored = json.loads(json.dumps(written_form(manifest)))  # through JSON text, as on disk

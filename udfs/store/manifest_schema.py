@@ -346,8 +346,16 @@ def written_form(manifest: dict[str, Any]) -> dict[str, Any]:
       types and roles as runs ``[[value, count], ...]`` (a 751-column schema: 49 kB as one
       record per column, 16 kB so);
     * a per-column target of ``targets`` that names every numeric column in schema order is
-      stored as a list of its values (the names are the schema's)."""
+      stored as a list of its values (the names are the schema's);
+    * the zeros that end ``spectrum`` (beyond the table's rank: a 64-row table of 6,830
+      columns has 6,766) are stored as their count, ``{"values": [...], "zeros": k}``."""
     body = {k: v for k, v in manifest.items() if k not in DERIVED_KEYS}
+    spectrum = body.get("spectrum")
+    if isinstance(spectrum, list) and len(spectrum) > 1 and spectrum[-1] == 0 and spectrum[-2] == 0:
+        kept = len(spectrum)
+        while kept and spectrum[kept - 1] == 0:
+            kept -= 1
+        body["spectrum"] = {"values": spectrum[:kept], "zeros": len(spectrum) - kept}
     schema = body.get("schema")
     if isinstance(schema, list) and all(isinstance(f, dict) and set(f) == {"name", "type", "role"} for f in schema):
         body["schema"] = {"names": [f["name"] for f in schema], "types": _runs([f["type"] for f in schema]),
@@ -366,10 +374,15 @@ def written_form(manifest: dict[str, Any]) -> dict[str, Any]:
 
 def derived_entries(manifest: dict[str, Any]) -> None:
     """Undo :func:`written_form` on a manifest as read (in place): the schema by field back to
-    one record per column, per-column targets stored as lists back to mappings, and
+    one record per column, per-column targets stored as lists back to mappings, the spectrum's
+    count of final zeros back to zeros, and
     :data:`DERIVED_KEYS` added (an older manifest's own copy is kept, and then checked by
     :func:`validate`). A form that does not fit together is left as it is, for :func:`validate`
     to refuse with its place named."""
+    spectrum = manifest.get("spectrum")
+    if (isinstance(spectrum, dict) and set(spectrum) == {"values", "zeros"} and isinstance(spectrum["values"], list)
+            and type(spectrum["zeros"]) is int and 0 <= spectrum["zeros"] <= MAX_COLUMNS):
+        manifest["spectrum"] = spectrum["values"] + [0.0] * spectrum["zeros"]
     schema = manifest.get("schema")
     if isinstance(schema, dict) and set(schema) == {"names", "types", "roles"} and isinstance(schema["names"], list):
         names = schema["names"]
