@@ -129,3 +129,19 @@ def test_the_default_refit_runs_only_when_the_sample_shows_an_outlier(tmp_path):
     assert "skipped" not in asked.manifest["refit"]  # asked for: always runs
     for archive, truth in ((calm, x), (refitted, spiky), (asked, x)):
         _within(archive, truth, 0.1 * truth.std(axis=0) * (1 + 1e-9))
+
+
+def test_dropping_the_basis_weighs_the_sample_scaled_to_the_table_and_the_fixed_costs():
+    from rankfold.udfs.passes.predictors import PredictorChoice, values_bytes
+
+    choice = PredictorChoice(np.ones(3, bool), basis_bytes=1000, alone_bytes=1100, sampled_rows=100)
+    assert not choice.drop_basis(rows=100, fixed_bytes=0)
+    assert choice.drop_basis(rows=100, fixed_bytes=200)        # the weights tip it
+    assert not choice.drop_basis(rows=10_000, fixed_bytes=200)  # not over a long table
+    assert not PredictorChoice(np.ones(3, bool), 1000, None, 100).drop_basis(100, 1e9)  # not on offer
+    # fixed costs are measured with the writer: trimmed weights compress, random ones do not
+    rng = np.random.default_rng(0)  # invented weights
+    assert values_bytes(np.round(rng.standard_normal((4, 50)), 1)) < values_bytes(rng.standard_normal((4, 50)))
+    assert values_bytes(np.zeros((0, 5))) == 0
+    two = values_bytes(np.ones((2, 3)), np.ones((7, 3)))  # blocks of different sizes, measured apart
+    assert two == values_bytes(np.ones((2, 3))) + values_bytes(np.ones((7, 3)))

@@ -50,7 +50,7 @@ from .profile import (SUB_BLOCK_ROWS, ColumnProfile, Fingerprint, Transform, new
 from .select import AnchorRows, AnchorScan, anchor_partial, merge_anchor_partials, sketch_of
 from .refit import KAPPA, OutlierScreen
 from .encode import EncodeResult, column_error_figures, column_statistics, encode_pass, stored_basis
-from .predictors import SampleRuns, choose_differences, choose_predictors, run_rows
+from .predictors import SampleRuns, choose_differences, choose_predictors, run_rows, values_bytes
 from . import sizes, targets
 
 __all__ = ["compress"]
@@ -769,7 +769,7 @@ def _write(src, new_writer, opts, inputs: _Inputs, build: _Build, passes: _Passe
             exact_basis = _coding(dataclasses.replace(plan, basis_step=np.full(plan.basis_step.size, np.nan)),
                                   mixing, build)
         trial = _predictor_trial(passes.trial_rows, mixing, coding, transform, score_right, plan, build,
-                                 keep_basis=opts.fixed_basis, exact_basis=exact_basis)
+                                 rows, anchors.values, keep_basis=opts.fixed_basis, exact_basis=exact_basis)
         if trial is not None:
             mixing, coding, build = trial
             if build.n_columns == 0:
@@ -964,7 +964,8 @@ def _refit_skipped(screen: OutlierScreen | None, sample: np.ndarray | None, opts
 
 
 def _predictor_trial(sample: np.ndarray, mixing: Mixing, coding: Coding, transform: Transform,
-                     score_right: np.ndarray | None, plan, build: _Build, *, keep_basis: bool = False,
+                     score_right: np.ndarray | None, plan, build: _Build, table_rows: int,
+                     anchor_values: np.ndarray, *, keep_basis: bool = False,
                      exact_basis: Coding | None = None):
     """The predictor of each coded column, whether the basis is rounded or kept exactly, and
     whether to keep the basis at all, by measured trial on the profile pass's sample of runs of
@@ -974,7 +975,8 @@ def _predictor_trial(sample: np.ndarray, mixing: Mixing, coding: Coding, transfo
     ``coding`` is the plan's; ``exact_basis`` (basis_precision 'auto'), the same coding with the
     basis kept exactly, tried beside it. A column that keeps ``none`` gets zero weights and its
     shift as offset (its codes are the column rounded alone). Without the basis (every column
-    rounded alone measured smaller), the archive has no basis columns, no anchor rows and a step
+    rounded alone measured smaller on the sample, scaled to the table's ``table_rows``, than
+    with it plus the measured bytes of its weights and ``anchor_values``), the archive has no basis columns, no anchor rows and a step
     of twice its tolerance per column; never with ``keep_basis`` (the user gave the basis size).
     The encode pass measures whatever is chosen: no bound rests on the trial."""
     c = mixing.weights.shape[0]
@@ -991,14 +993,17 @@ def _predictor_trial(sample: np.ndarray, mixing: Mixing, coding: Coding, transfo
         rounded, exact = (t[0].basis_bytes for t in tried)
         notes.append(f"basis {'kept exactly' if chosen is exact_basis else 'rounded to the tolerance'} "
                      f"({min(rounded, exact)} against {max(rounded, exact)} bytes on a sample of {rows} rows)")
-    if choice.drop_basis and plan.residual != "corrections" and not keep_basis:
-        width = mixing.weights.shape[1]
+    width = mixing.weights.shape[1]
+    # a basis also costs what no sample shows: its weights and its anchor rows, measured
+    fixed = values_bytes(mixing.weights, anchor_values)
+    if choice.drop_basis(table_rows, fixed) and plan.residual != "corrections" and not keep_basis:
         alone = Mixing(np.zeros((0, width)), transform.shift.copy(), np.zeros(0),
                        None if mixing.basis_columns is None else np.zeros(0, np.int64))
         tolerance = coding.tolerance
         alone_coding = Coding(tolerance, 2.0 * tolerance, np.zeros(0))
         reason = (f"{build.reason}; no basis: every column rounded alone measured smaller on a sample of "
-                  f"{rows} rows ({choice.alone_bytes} against {choice.basis_bytes} bytes)")
+                  f"{rows} rows ({choice.alone_bytes} against {choice.basis_bytes} bytes, and "
+                  f"{int(fixed)} bytes of weights and anchor rows)")
         return alone, alone_coding, dataclasses.replace(build, rank=0, n_columns=0, n_rows=0, reason=reason)
     coded = np.isfinite(chosen.residual_step)
     if mixing.basis_columns is not None:
@@ -1050,7 +1055,7 @@ def ledger_scale(profile: ColumnProfile) -> np.ndarray:
 
 def _write_small_tables(writer, model: FittedModel, result: EncodeResult, cell_files=()) -> list[str]:
     """The columns and anchors tables (``FittedModel.to_tables``) and the exact cells of the
-    partitions, streamed into one file in row order; the names of the files written. The
+    partitions, streamed into one file; the names of the files written. The
     anchors and cells tables are written only when they hold rows
     (``manifest_schema.OPTIONAL_TABLES``)."""
     tables = model.to_tables()

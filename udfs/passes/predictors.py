@@ -38,7 +38,8 @@ from ..store.model import Coding, Mixing
 from .commit import ZSTD_LEVEL
 from .select import row_uniforms
 
-__all__ = ["SampleRuns", "PredictorChoice", "choose_predictors", "choose_differences", "RUNS", "RUN_ROWS",
+__all__ = ["SampleRuns", "PredictorChoice", "choose_predictors", "choose_differences", "values_bytes", "RUNS",
+           "RUN_ROWS",
            "SAMPLE_CELLS", "DIFFERENCE_GAIN"]
 
 #: Runs of consecutive rows in the sample, and rows per run (fewer for wide tables, see
@@ -130,10 +131,16 @@ class PredictorChoice:
     lowrank: np.ndarray
     basis_bytes: int
     alone_bytes: int | None
+    sampled_rows: int = 0
 
-    @property
-    def drop_basis(self) -> bool:
-        return self.alone_bytes is not None and self.alone_bytes < self.basis_bytes
+    def drop_basis(self, rows: int, fixed_bytes: float) -> bool:
+        """Whether the archive without a basis is the smaller for a table of ``rows`` rows: the
+        sample's bytes scaled to the table, the basis charged ``fixed_bytes`` besides (what a
+        basis adds whatever the rows: weights, anchor rows)."""
+        if self.alone_bytes is None:
+            return False
+        scale = rows / max(self.sampled_rows, 1)
+        return self.alone_bytes * scale < self.basis_bytes * scale + fixed_bytes
 
 
 def _stored_codes(values: np.ndarray, step: np.ndarray) -> np.ndarray:
@@ -153,6 +160,13 @@ def _code_bytes(arrays: dict[str, pa.Array]) -> dict[str, int]:
         return {}
     return {name: choice.sampled_bytes
             for name, choice in choose_sample_layouts(arrays, levels=(ZSTD_LEVEL,)).items()}
+
+
+def values_bytes(*blocks: np.ndarray) -> int:
+    """Compressed bytes of float64 blocks (each flattened: weights, anchor rows) written as the
+    small tables write numbers: the smaller of dictionary and byte-stream-split at zstd level 3
+    (``commit.write_small_table`` also tries other levels; this is a close upper estimate)."""
+    return sum(_value_bytes({"v": pa.array(np.ravel(b).astype(np.float64))}) for b in blocks if np.size(b))
 
 
 def _value_bytes(arrays: dict[str, pa.Array]) -> int:
@@ -200,7 +214,7 @@ def choose_predictors(sample: np.ndarray, mixing: Mixing, coding: Coding, shift:
         fresh = {f"a{j}": pa.array(_stored_codes(sample[:, [j]] - shift[j], own_step[[j]])[:, 0])
                  for j in range(n) if f"n{j}" not in reused}
         alone = int(sum(reused.values()) + sum(_code_bytes(fresh).values()))
-    return PredictorChoice(lowrank, int(basis_bytes), alone)
+    return PredictorChoice(lowrank, int(basis_bytes), alone, m)
 
 
 #: Row differences are kept for a column only when they measure at least this much smaller
