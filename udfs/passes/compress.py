@@ -26,7 +26,6 @@ from typing import Any
 
 import numpy as np
 import pyarrow as pa
-from scipy.special import ndtr  # standard normal CDF
 
 from ..version import __version__
 from ..errors import (EmptySourceError, InvalidInputError, NoNumericColumnsError,
@@ -35,7 +34,6 @@ from ..factor import cur as _cur
 from ..factor.svd import gavish_donoho_rank
 from ..store import layout, remote, versions
 from ..store.aggregate import BlockSums
-from ..store.arithmetic import trim_mantissa
 from ..store.model import Coding, FittedModel, Mixing, mixing_for_columns, mixing_for_scores
 from ..factor.sketch import GramSketch, RowSketch
 from .commit import ArchiveWriter, RowPartWriter, prepare_target
@@ -48,9 +46,10 @@ from .row_groups import RowGroup, choose_row_groups
 from .profile import (SUB_BLOCK_ROWS, ColumnProfile, Fingerprint, Transform, new_sketch,
                       profile_rows)
 from .select import AnchorRows, AnchorScan, anchor_partial, merge_anchor_partials, sketch_of
-from .refit import KAPPA, OutlierScreen
-from .encode import EncodeResult, column_error_figures, column_statistics, encode_pass, stored_basis
-from .predictors import SampleRuns, choose_differences, choose_predictors, run_rows, values_bytes
+from .refit import KAPPA, OutlierScreen, refit_left_out
+from .encode import EncodeResult, column_error_figures, column_statistics, encode_pass
+from .predictors import SampleRuns, run_rows
+from .coding import coding_for_plan, predictor_trial, trim_factors, with_row_differences
 from . import sizes, targets
 
 __all__ = ["compress"]
@@ -736,7 +735,7 @@ def _write(src, new_writer, opts, inputs: _Inputs, build: _Build, passes: _Passe
         score_right = sketch.spectrum.right[:, :rank]
         mixing = mixing_for_scores(sketch.spectrum.right, rank, transform)
         screen = OutlierScreen(transform, mixing, sketch.r, None, rows, score_right) if opts.refits and rank else None
-        refit = _refit_skipped(screen, passes.trial_rows, opts)
+        refit = refit_left_out(screen, passes.trial_rows, opts.refit_outliers)
         if screen is not None and refit is None:
             cleaned = passes.sketch("refit", numeric, rows, screen)
             refit = {"kappa": KAPPA, "cells_screened": screen.replaced,
@@ -752,7 +751,7 @@ def _write(src, new_writer, opts, inputs: _Inputs, build: _Build, passes: _Passe
     else:
         mixing, anchors, m_transformed = _fit_cur(passes, opts, build, inputs, sketch, transform, rng, False)
         screen = OutlierScreen(transform, mixing, sketch.r, m_transformed, rows) if opts.refits else None
-        refit = _refit_skipped(screen, passes.trial_rows, opts)
+        refit = refit_left_out(screen, passes.trial_rows, opts.refit_outliers)
         if screen is not None and refit is None:
             cleaned = passes.sketch("refit", numeric, rows, screen)
             refit = {"kappa": KAPPA, "cells_screened": screen.replaced,
@@ -760,22 +759,23 @@ def _write(src, new_writer, opts, inputs: _Inputs, build: _Build, passes: _Passe
             mixing, anchors, _ = _fit_cur(passes, opts, build, inputs, cleaned, screen, rng, True)
         score_right = None
         basis_names = [numeric[k] for k in mixing.basis_columns]
-    coding = _coding(plan, mixing, build) or Coding.plain(width, mixing.weights.shape[0])
+    coding = coding_for_plan(plan, mixing, build) or Coding.plain(width, mixing.weights.shape[0])
     if np.isfinite(coding.tolerance).any():
-        mixing = _trim_factors(mixing, coding.tolerance, profile)
+        mixing = trim_factors(mixing, coding.tolerance, profile)
     if plan is not None and passes.trial_rows is not None and passes.trial_rows.shape[0]:
         exact_basis = None
         if opts.basis_precision == "auto" and build.method == "cur" and np.isfinite(coding.basis_step).any():
-            exact_basis = _coding(dataclasses.replace(plan, basis_step=np.full(plan.basis_step.size, np.nan)),
+            exact_basis = coding_for_plan(dataclasses.replace(plan, basis_step=np.full(plan.basis_step.size, np.nan)),
                                   mixing, build)
-        trial = _predictor_trial(passes.trial_rows, mixing, coding, transform, score_right, plan, build,
+        trial = predictor_trial(passes.trial_rows, mixing, coding, transform, score_right, plan, build,
                                  rows, anchors.values, keep_basis=opts.fixed_basis, exact_basis=exact_basis)
         if trial is not None:
             mixing, coding, build = trial
             if build.n_columns == 0:
                 anchors, basis_names = _no_anchors(width), []
                 score_right = None if score_right is None else score_right[:, :0]
-    coding = _row_differences(opts, coding, numeric, passes, mixing, transform, score_right)
+    coding = with_row_differences(opts.row_differences, coding, numeric, passes.trial_rows, passes.trial_starts,
+                                  mixing, transform, score_right)
     model = FittedModel(
         numeric, [str(src.schema.field(n).type) for n in numeric], passthrough, transform.kind,
         transform.shift, transform.scale, mixing, basis_names, coding,
@@ -861,190 +861,6 @@ def _fit_cur(passes, opts, build, inputs: _Inputs, sketch, screen, rng, refit: b
                                  request)
     columns, m_transformed = _cur.build_mixing(opts.link, choice, sketch.r, screen.apply(anchors.values))
     return mixing_for_columns(columns, m_transformed, inputs.transform), anchors, m_transformed
-
-
-def _coding(plan, mixing, build) -> Coding | None:
-    """The encode pass's coding for a plan (None: plain factors, no tolerance)."""
-    if plan is None:
-        return None
-    c = mixing.weights.shape[0]
-    basis_step = np.full(c, np.nan)
-    if build.method == "svd" and np.isfinite(plan.tolerance).any() and c:
-        # scores rounded finely: their rounding error, spread over the columns by the weights,
-        # stays a quarter of the finest residual step (the residual codes absorb it)
-        finite = np.isfinite(plan.tolerance)
-        weight_norm = np.sqrt(np.sum(mixing.weights**2, axis=0))
-        finest = np.min(2.0 * plan.tolerance[finite] / np.maximum(weight_norm[finite], 1e-300))
-        basis_step = np.full(c, 0.25 * finest / np.sqrt(c))
-    elif build.method == "cur" and c and np.isfinite(plan.basis_step).any():
-        # steps follow the basis as built (sorted source positions), not the plan's order.
-        # Rounding the basis by up to step/2 also moves every derived value through the
-        # weights; the steps are scaled down until that spread (uniform rounding, RMS
-        # sqrt(sum_k w_kj^2 step_k^2 / 12)) stays below 30% of the column's own residual step.
-        tolerance = plan.tolerance[mixing.basis_columns]
-        basis_step = np.where(np.isfinite(tolerance) & (tolerance > 0), 2.0 * tolerance, np.nan)
-        spread = np.sqrt(np.nansum((mixing.weights * basis_step[:, None]) ** 2, axis=0))
-        derived = np.isfinite(plan.tolerance) & (spread > 0)
-        derived[mixing.basis_columns] = False
-        if derived.any():
-            with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-                shrink = float(np.min(0.3 * 2.0 * plan.tolerance[derived] / spread[derived]))
-            # a derived column with a zero tolerance, or weights so large that the spread
-            # overflows, leaves no room to round the basis: it is kept exactly
-            basis_step = basis_step * min(1.0, shrink) if np.isfinite(shrink) and shrink > 0 \
-                else np.full(c, np.nan)
-    # residual steps follow the basis as built too: a column the plan kept as basis that is
-    # derived now (a refit may choose other columns) gets the residual coding of its tolerance
-    steps = plan.residual_step.copy()
-    if mixing.basis_columns is not None:
-        moved = np.setdiff1d(plan.basis, mixing.basis_columns)
-        if plan.residual != "corrections":
-            steps[moved] = 2.0 * plan.tolerance[moved]
-        steps[mixing.basis_columns] = np.nan
-    return Coding(plan.tolerance, steps, basis_step,
-                  float32_scores=build.method == "svd" and not np.isfinite(plan.tolerance).any())
-
-
-def _sample_basis(sample: np.ndarray, mixing: Mixing, coding: Coding, transform: Transform,
-                  score_right: np.ndarray | None):
-    """The sample's basis values as the encode pass stores them (m, c) and their Arrow arrays."""
-    if mixing.basis_columns is not None:
-        return stored_basis(sample[:, mixing.basis_columns], coding.basis_step, False)
-    scores = np.nan_to_num(transform.apply(sample), nan=0.0) @ score_right
-    return stored_basis(scores, coding.basis_step, coding.float32_scores)
-
-
-def _row_differences(opts, coding: Coding, numeric: list[str], passes, mixing: Mixing,
-                     transform: Transform, score_right: np.ndarray | None) -> Coding:
-    """``coding`` with the columns whose residual codes are stored as row differences
-    (``Coding.difference``): none ('off', the default), every coded column ('all'), the named
-    ones, or ('auto') those a trial on the sample measures ``predictors.DIFFERENCE_GAIN``
-    smaller (``predictors.choose_differences``). Columns without codes never are."""
-    choice = opts.row_differences
-    coded = np.isfinite(coding.residual_step)
-    if mixing.basis_columns is not None:
-        coded[mixing.basis_columns] = False
-    if choice == "off" or not coded.any():
-        return coding
-    if choice == "all":
-        flags = coded
-    elif choice == "auto":
-        sample = passes.trial_rows
-        if sample is None or not sample.shape[0]:
-            return coding
-        stored, _ = _sample_basis(sample, mixing, coding, transform, score_right)
-        flags = choose_differences(sample, passes.trial_starts, mixing, coding, stored)
-    else:
-        flags = np.isin(np.array(numeric, dtype=object), np.array(list(choice), dtype=object)) & coded
-    return dataclasses.replace(coding, difference=flags) if flags.any() else coding
-
-
-def _refit_skipped(screen: OutlierScreen | None, sample: np.ndarray | None, opts) -> dict | None:
-    """The manifest's ``refit`` record of a refit left out, or None when the refit pass runs
-    (or none was asked for: ``screen`` None).
-
-    The default refit (``refit_outliers`` not given, a tolerance) costs a pass over every row
-    (measured at 1e6 x 100: 5.5 s of a 14 s compress, three DuckDB scans' time). It can only
-    change the fit where the screen replaces cells, so it is left out when the screen, run on
-    the predictor trial's sample of runs of rows, replaces no more cells than Gaussian noise
-    would put beyond ``KAPPA`` residual RMS (2 Phi(-KAPPA), 5.7e-7 of the cells; at most 2 plus
-    ten times that): then no spike is frequent enough to show in the sample, and rarer ones
-    pull the fit little. Asked for explicitly (``refit_outliers=True``), it always runs."""
-    if screen is None or opts.refit_outliers or sample is None or not sample.shape[0]:
-        return None
-    probe = copy.copy(screen)
-    probe.replaced = probe.rows_left_out = 0
-    probe.apply(sample)
-    gaussian = 2.0 * ndtr(-KAPPA) * sample.size
-    if probe.replaced > 2 + 10 * gaussian:
-        return None
-    return {"kappa": KAPPA, "cells_screened": 0, "rows_left_out": 0,
-            "skipped": f"{probe.replaced} cells beyond {KAPPA:g} residual RMS in a sample of {sample.shape[0]} "
-                       "rows, no more than noise gives"}
-
-
-def _predictor_trial(sample: np.ndarray, mixing: Mixing, coding: Coding, transform: Transform,
-                     score_right: np.ndarray | None, plan, build: _Build, table_rows: int,
-                     anchor_values: np.ndarray, *, keep_basis: bool = False,
-                     exact_basis: Coding | None = None):
-    """The predictor of each coded column, whether the basis is rounded or kept exactly, and
-    whether to keep the basis at all, by measured trial on the profile pass's sample of runs of
-    rows (``predictors.choose_predictors``). Returns the mixing, coding and build to write, or
-    None when the trial changes nothing.
-
-    ``coding`` is the plan's; ``exact_basis`` (basis_precision 'auto'), the same coding with the
-    basis kept exactly, tried beside it. A column that keeps ``none`` gets zero weights and its
-    shift as offset (its codes are the column rounded alone). Without the basis (every column
-    rounded alone measured smaller on the sample, scaled to the table's ``table_rows``, than
-    with it plus the measured bytes of its weights and ``anchor_values``), the archive has no basis columns, no anchor rows and a step
-    of twice its tolerance per column; never with ``keep_basis`` (the user gave the basis size).
-    The encode pass measures whatever is chosen: no bound rests on the trial."""
-    c = mixing.weights.shape[0]
-    if c == 0:
-        return None
-    tried = []
-    for candidate in (coding,) if exact_basis is None else (coding, exact_basis):
-        stored, arrays = _sample_basis(sample, mixing, candidate, transform, score_right)
-        tried.append((choose_predictors(sample, mixing, candidate, transform.shift, stored, arrays), candidate))
-    choice, chosen = min(tried, key=lambda pair: pair[0].basis_bytes)
-    rows = sample.shape[0]
-    notes = []
-    if len(tried) == 2:
-        rounded, exact = (t[0].basis_bytes for t in tried)
-        notes.append(f"basis {'kept exactly' if chosen is exact_basis else 'rounded to the tolerance'} "
-                     f"({min(rounded, exact)} against {max(rounded, exact)} bytes on a sample of {rows} rows)")
-    width = mixing.weights.shape[1]
-    # a basis also costs what no sample shows: its weights and its anchor rows, measured
-    fixed = values_bytes(mixing.weights, anchor_values)
-    if choice.drop_basis(table_rows, fixed) and plan.residual != "corrections" and not keep_basis:
-        alone = Mixing(np.zeros((0, width)), transform.shift.copy(), np.zeros(0),
-                       None if mixing.basis_columns is None else np.zeros(0, np.int64))
-        tolerance = coding.tolerance
-        alone_coding = Coding(tolerance, 2.0 * tolerance, np.zeros(0))
-        reason = (f"{build.reason}; no basis: every column rounded alone measured smaller on a sample of "
-                  f"{rows} rows ({choice.alone_bytes} against {choice.basis_bytes} bytes, and "
-                  f"{int(fixed)} bytes of weights and anchor rows)")
-        return alone, alone_coding, dataclasses.replace(build, rank=0, n_columns=0, n_rows=0, reason=reason)
-    coded = np.isfinite(chosen.residual_step)
-    if mixing.basis_columns is not None:
-        coded[mixing.basis_columns] = False
-    alone_columns = coded & ~choice.lowrank
-    if alone_columns.any():
-        weights, offset = mixing.weights.copy(), mixing.offset.copy()
-        weights[:, alone_columns] = 0.0
-        offset[alone_columns] = transform.shift[alone_columns]
-        mixing = Mixing(weights, offset, mixing.fill, mixing.basis_columns)
-        if mixing.basis_columns is not None and np.isfinite(chosen.basis_step).any():
-            chosen = _coding(plan, mixing, build)  # the basis steps follow the remaining weights
-        notes.append(f"{int(alone_columns.sum())} of {int(coded.sum())} coded columns rounded alone "
-                     f"(smaller than their low-rank residual on a sample of {rows} rows)")
-    if not notes:
-        return None
-    return mixing, chosen, dataclasses.replace(build, reason="; ".join([build.reason, *notes]))
-
-
-def _trim_factors(mixing: Mixing, tolerance: np.ndarray, profile: ColumnProfile) -> Mixing:
-    """Trim the mantissas of offsets and weights so that their rounding moves no rebuilt value
-    by more than 5% of its column's tolerance: |dw| <= |w| 2^-bits, so a value moves at most
-    2^-bits (|offset_j| + sum_k |w_kj| max|x_k|). The encode pass measures with the trimmed
-    factors, so bounds hold whatever the trimming did."""
-    c = mixing.weights.shape[0]
-    if mixing.basis_columns is not None and mixing.basis_columns.size == c:
-        reach = np.maximum(np.abs(profile.minimum), np.abs(profile.maximum))[mixing.basis_columns]
-        reach = np.where(np.isfinite(reach), reach, 0.0)
-    else:
-        return mixing  # synthetic scores: keep full precision
-    magnitude = np.abs(mixing.offset) + reach @ np.abs(mixing.weights)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        needed = np.ceil(np.log2(np.where(np.isfinite(tolerance) & (magnitude > 0),
-                                          magnitude / (0.05 * tolerance), 2.0**52)))
-    bits = np.clip(np.nan_to_num(needed, nan=52), 12, 52).astype(np.int64)
-    weights = trim_mantissa(mixing.weights, bits) if c else mixing.weights
-    offset = trim_mantissa(mixing.offset[None, :], bits)[0]
-    if mixing.basis_columns is not None and c:
-        weights[:, mixing.basis_columns] = np.eye(c)
-        offset[mixing.basis_columns] = 0.0
-    return Mixing(weights, offset, mixing.fill, mixing.basis_columns)
 
 
 def ledger_scale(profile: ColumnProfile) -> np.ndarray:

@@ -206,7 +206,7 @@ def plan_for_tolerance(predicted: PredictedResiduals, tolerance: np.ndarray, cod
                 ratio = np.where(finite, coding.std[basis] / np.where(finite, basis_step, 1.0), 0.0)
                 basis_cost = np.where(finite, rows * quantized_entropy_bits(ratio) / 8.0 * CODING_OVERHEAD,
                                       rows * coding.exact_bytes[basis])
-                if coding.basis_precision == "auto":  # the trial keeps the smaller (compress.py)
+                if coding.basis_precision == "auto":  # the trial keeps the smaller (coding.predictor_trial)
                     basis_cost = np.minimum(basis_cost, rows * coding.exact_bytes[basis])
             else:
                 basis_cost = rows * coding.exact_bytes[basis]

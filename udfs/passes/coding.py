@@ -1,0 +1,180 @@
+"""The coding of one compress attempt: residual and basis steps for a tolerance plan, factors
+trimmed to what the tolerance needs, and what the trial on a sample of rows chooses (the
+predictor of each coded column, the basis rounded or exact or none at all, row differences).
+
+Every choice here only steers sizes: the encode pass measures the archive as written, and no
+bound rests on a choice made here (``encode`` module docstring).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+
+import numpy as np
+
+from ..store.arithmetic import trim_mantissa
+from ..store.model import Coding, Mixing
+from .encode import stored_basis
+from .predictors import choose_differences, choose_predictors, values_bytes
+from .profile import ColumnProfile, Transform
+
+__all__ = ["coding_for_plan", "trim_factors", "sample_basis", "predictor_trial", "with_row_differences"]
+
+
+def coding_for_plan(plan, mixing, build) -> Coding | None:
+    """The encode pass's coding for a plan (None: plain factors, no tolerance)."""
+    if plan is None:
+        return None
+    c = mixing.weights.shape[0]
+    basis_step = np.full(c, np.nan)
+    if build.method == "svd" and np.isfinite(plan.tolerance).any() and c:
+        # scores rounded finely: their rounding error, spread over the columns by the weights,
+        # stays a quarter of the finest residual step (the residual codes absorb it)
+        finite = np.isfinite(plan.tolerance)
+        weight_norm = np.sqrt(np.sum(mixing.weights**2, axis=0))
+        finest = np.min(2.0 * plan.tolerance[finite] / np.maximum(weight_norm[finite], 1e-300))
+        basis_step = np.full(c, 0.25 * finest / np.sqrt(c))
+    elif build.method == "cur" and c and np.isfinite(plan.basis_step).any():
+        # steps follow the basis as built (sorted source positions), not the plan's order.
+        # Rounding the basis by up to step/2 also moves every derived value through the
+        # weights; the steps are scaled down until that spread (uniform rounding, RMS
+        # sqrt(sum_k w_kj^2 step_k^2 / 12)) stays below 30% of the column's own residual step.
+        tolerance = plan.tolerance[mixing.basis_columns]
+        basis_step = np.where(np.isfinite(tolerance) & (tolerance > 0), 2.0 * tolerance, np.nan)
+        spread = np.sqrt(np.nansum((mixing.weights * basis_step[:, None]) ** 2, axis=0))
+        derived = np.isfinite(plan.tolerance) & (spread > 0)
+        derived[mixing.basis_columns] = False
+        if derived.any():
+            with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+                shrink = float(np.min(0.3 * 2.0 * plan.tolerance[derived] / spread[derived]))
+            # a derived column with a zero tolerance, or weights so large that the spread
+            # overflows, leaves no room to round the basis: it is kept exactly
+            basis_step = basis_step * min(1.0, shrink) if np.isfinite(shrink) and shrink > 0 \
+                else np.full(c, np.nan)
+    # residual steps follow the basis as built too: a column the plan kept as basis that is
+    # derived now (a refit may choose other columns) gets the residual coding of its tolerance
+    steps = plan.residual_step.copy()
+    if mixing.basis_columns is not None:
+        moved = np.setdiff1d(plan.basis, mixing.basis_columns)
+        if plan.residual != "corrections":
+            steps[moved] = 2.0 * plan.tolerance[moved]
+        steps[mixing.basis_columns] = np.nan
+    return Coding(plan.tolerance, steps, basis_step,
+                  float32_scores=build.method == "svd" and not np.isfinite(plan.tolerance).any())
+
+
+def sample_basis(sample: np.ndarray, mixing: Mixing, coding: Coding, transform: Transform,
+                  score_right: np.ndarray | None):
+    """The sample's basis values as the encode pass stores them (m, c) and their Arrow arrays."""
+    if mixing.basis_columns is not None:
+        return stored_basis(sample[:, mixing.basis_columns], coding.basis_step, False)
+    scores = np.nan_to_num(transform.apply(sample), nan=0.0) @ score_right
+    return stored_basis(scores, coding.basis_step, coding.float32_scores)
+
+
+def with_row_differences(choice, coding: Coding, numeric: list[str], sample: np.ndarray | None,
+                         run_starts: np.ndarray | None, mixing: Mixing, transform: Transform,
+                         score_right: np.ndarray | None) -> Coding:
+    """``coding`` with the columns whose residual codes are stored as row differences
+    (``Coding.difference``): none ('off', the default), every coded column ('all'), the named
+    ones, or ('auto') those a trial on the sample measures ``predictors.DIFFERENCE_GAIN``
+    smaller (``predictors.choose_differences``). Columns without codes never are."""
+    coded = np.isfinite(coding.residual_step)
+    if mixing.basis_columns is not None:
+        coded[mixing.basis_columns] = False
+    if choice == "off" or not coded.any():
+        return coding
+    if choice == "all":
+        flags = coded
+    elif choice == "auto":
+        if sample is None or not sample.shape[0]:
+            return coding
+        stored, _ = sample_basis(sample, mixing, coding, transform, score_right)
+        flags = choose_differences(sample, run_starts, mixing, coding, stored)
+    else:
+        flags = np.isin(np.array(numeric, dtype=object), np.array(list(choice), dtype=object)) & coded
+    return dataclasses.replace(coding, difference=flags) if flags.any() else coding
+
+
+def predictor_trial(sample: np.ndarray, mixing: Mixing, coding: Coding, transform: Transform,
+                     score_right: np.ndarray | None, plan, build, table_rows: int,
+                     anchor_values: np.ndarray, *, keep_basis: bool = False,
+                     exact_basis: Coding | None = None):
+    """The predictor of each coded column, whether the basis is rounded or kept exactly, and
+    whether to keep the basis at all, by measured trial on the profile pass's sample of runs of
+    rows (``predictors.choose_predictors``). Returns the mixing, coding and build to write, or
+    None when the trial changes nothing.
+
+    ``coding`` is the plan's; ``exact_basis`` (basis_precision 'auto'), the same coding with the
+    basis kept exactly, tried beside it. A column that keeps ``none`` gets zero weights and its
+    shift as offset (its codes are the column rounded alone). Without the basis (every column
+    rounded alone measured smaller on the sample, scaled to the table's ``table_rows``, than
+    with it plus the measured bytes of its weights and ``anchor_values``), the archive has no basis columns, no anchor rows and a step
+    of twice its tolerance per column; never with ``keep_basis`` (the user gave the basis size).
+    The encode pass measures whatever is chosen: no bound rests on the trial."""
+    c = mixing.weights.shape[0]
+    if c == 0:
+        return None
+    tried = []
+    for candidate in (coding,) if exact_basis is None else (coding, exact_basis):
+        stored, arrays = sample_basis(sample, mixing, candidate, transform, score_right)
+        tried.append((choose_predictors(sample, mixing, candidate, transform.shift, stored, arrays), candidate))
+    choice, chosen = min(tried, key=lambda pair: pair[0].basis_bytes)
+    rows = sample.shape[0]
+    notes = []
+    if len(tried) == 2:
+        rounded, exact = (t[0].basis_bytes for t in tried)
+        notes.append(f"basis {'kept exactly' if chosen is exact_basis else 'rounded to the tolerance'} "
+                     f"({min(rounded, exact)} against {max(rounded, exact)} bytes on a sample of {rows} rows)")
+    width = mixing.weights.shape[1]
+    # a basis also costs what no sample shows: its weights and its anchor rows, measured
+    fixed = values_bytes(mixing.weights, anchor_values)
+    if choice.drop_basis(table_rows, fixed) and plan.residual != "corrections" and not keep_basis:
+        alone = Mixing(np.zeros((0, width)), transform.shift.copy(), np.zeros(0),
+                       None if mixing.basis_columns is None else np.zeros(0, np.int64))
+        tolerance = coding.tolerance
+        alone_coding = Coding(tolerance, 2.0 * tolerance, np.zeros(0))
+        reason = (f"{build.reason}; no basis: every column rounded alone measured smaller on a sample of "
+                  f"{rows} rows ({choice.alone_bytes} against {choice.basis_bytes} bytes, and "
+                  f"{int(fixed)} bytes of weights and anchor rows)")
+        return alone, alone_coding, dataclasses.replace(build, rank=0, n_columns=0, n_rows=0, reason=reason)
+    coded = np.isfinite(chosen.residual_step)
+    if mixing.basis_columns is not None:
+        coded[mixing.basis_columns] = False
+    alone_columns = coded & ~choice.lowrank
+    if alone_columns.any():
+        weights, offset = mixing.weights.copy(), mixing.offset.copy()
+        weights[:, alone_columns] = 0.0
+        offset[alone_columns] = transform.shift[alone_columns]
+        mixing = Mixing(weights, offset, mixing.fill, mixing.basis_columns)
+        if mixing.basis_columns is not None and np.isfinite(chosen.basis_step).any():
+            chosen = coding_for_plan(plan, mixing, build)  # the basis steps follow the remaining weights
+        notes.append(f"{int(alone_columns.sum())} of {int(coded.sum())} coded columns rounded alone "
+                     f"(smaller than their low-rank residual on a sample of {rows} rows)")
+    if not notes:
+        return None
+    return mixing, chosen, dataclasses.replace(build, reason="; ".join([build.reason, *notes]))
+
+
+def trim_factors(mixing: Mixing, tolerance: np.ndarray, profile: ColumnProfile) -> Mixing:
+    """Trim the mantissas of offsets and weights so that their rounding moves no rebuilt value
+    by more than 5% of its column's tolerance: |dw| <= |w| 2^-bits, so a value moves at most
+    2^-bits (|offset_j| + sum_k |w_kj| max|x_k|). The encode pass measures with the trimmed
+    factors, so bounds hold whatever the trimming did."""
+    c = mixing.weights.shape[0]
+    if mixing.basis_columns is not None and mixing.basis_columns.size == c:
+        reach = np.maximum(np.abs(profile.minimum), np.abs(profile.maximum))[mixing.basis_columns]
+        reach = np.where(np.isfinite(reach), reach, 0.0)
+    else:
+        return mixing  # synthetic scores: keep full precision
+    magnitude = np.abs(mixing.offset) + reach @ np.abs(mixing.weights)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        needed = np.ceil(np.log2(np.where(np.isfinite(tolerance) & (magnitude > 0),
+                                          magnitude / (0.05 * tolerance), 2.0**52)))
+    bits = np.clip(np.nan_to_num(needed, nan=52), 12, 52).astype(np.int64)
+    weights = trim_mantissa(mixing.weights, bits) if c else mixing.weights
+    offset = trim_mantissa(mixing.offset[None, :], bits)[0]
+    if mixing.basis_columns is not None and c:
+        weights[:, mixing.basis_columns] = np.eye(c)
+        offset[mixing.basis_columns] = 0.0
+    return Mixing(weights, offset, mixing.fill, mixing.basis_columns)
