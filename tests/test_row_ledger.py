@@ -82,14 +82,21 @@ def test_the_row_ledger_is_written_only_when_a_cell_may_need_it(kind):
     assert bool(LEDGER & _row_columns(archive)) is ledger
 
 
-def test_bounds_hold_and_are_tight_on_both_kinds(kind, assert_tight):
-    table, archive, ledger = kind
+def _within_and_tight(archive, table, assert_tight) -> np.ndarray:
+    """Every rebuilt value within its bound of the invented source (numpy), and the bounds
+    tight; returns the bounds (rows, WIDTH)."""
     truth = _truth(table)
     rebuilt = archive.rebuild(bounds=True)
     values = np.column_stack([rebuilt.column(f"c{j}").to_numpy() for j in range(WIDTH)])
     bounds = np.column_stack([rebuilt.column(f"c{j}_bound").to_numpy() for j in range(WIDTH)])
     assert np.all(np.abs(truth - values) <= bounds)
     assert_tight(archive, table, truth, values, bounds)
+    return bounds
+
+
+def test_bounds_hold_and_are_tight_on_both_kinds(kind, assert_tight):
+    table, archive, ledger = kind
+    bounds = _within_and_tight(archive, table, assert_tight)
     model = ArchiveReader(archive.path).model
     if not ledger:  # the column's bound: its largest error plus slack, capped at the tolerance
         assert np.all(bounds <= model.tolerance[None, :])
@@ -158,12 +165,7 @@ def test_an_append_keeps_what_the_archive_has(tmp_path, assert_tight, options, l
     new_part = grown.manifest["row_parts"][-1]["name"]
     assert (LEDGER <= set(pq.read_schema(grown.path / new_part).names)) is ledger
     both = pa.concat_tables([first, more])
-    truth = _truth(both)
-    rebuilt = grown.rebuild(bounds=True)
-    values = np.column_stack([rebuilt.column(f"c{j}").to_numpy() for j in range(WIDTH)])
-    bounds = np.column_stack([rebuilt.column(f"c{j}_bound").to_numpy() for j in range(WIDTH)])
-    assert np.all(np.abs(truth - values) <= bounds)
-    assert_tight(grown, both, truth, values, bounds)
+    _within_and_tight(grown, both, assert_tight)
 
 
 def _older_archive(path, monkeypatch) -> None:
