@@ -1,7 +1,9 @@
 """The schemas of an archive's table files, declared once.
 
 * ``columns.parquet``: one row per numeric column (:data:`COLUMNS_SCHEMA`), written by
-  ``model.FittedModel.to_tables`` and read by ``model.FittedModel.from_tables``.
+  ``model.FittedModel.to_tables`` and read by ``model.FittedModel.from_tables``; stored packed
+  (:func:`pack_columns_table`, :func:`packed_columns_schema`), read in either form
+  (:func:`unpack_columns_table`).
 * ``anchors.parquet``: ``_rf_row`` (int64), then one float64 column per numeric column when
   the archive keeps anchor rows (:func:`anchors_schema`).
 * ``cells.parquet``: the cells stored exactly (:data:`CELLS_SCHEMA`).
@@ -68,7 +70,7 @@ def columns_schema(optional: list[str] | tuple[str, ...] = ()) -> pa.Schema:
 # row's index; ``rel_rms`` and ``residual_step`` are NULL where they equal what the other
 # fields give (:func:`pack_columns_table`). Measured with the real writer
 # (``passes.commit.write_small_table``), bytes of columns.parquet, one field per number ->
-# packed: 7,346 -> 4,873 on benchmarks/overhead.py (2,000 x 50) and 59,657 -> 50,975 on a
+# packed: 7,346 -> 4,870 on benchmarks/overhead.py (2,000 x 50) and 59,657 -> 50,943 on a
 # real 252 x 751 table at 0.01 std (benchmarks/README.md, "Fixed overhead").
 
 #: The numbers of a column in the packed ``numbers`` list, in order (the counts as float64,
