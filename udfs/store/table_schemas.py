@@ -134,16 +134,19 @@ def pack_columns_table(columns: pa.Table) -> pa.Table:
         missing["residual_step"] = np.where(np.isfinite(tolerance), step == 2.0 * tolerance, np.isnan(step))
     missing["rel_rms"] = _same(number["rel_rms"], relative_rms(number["err_l2"], number["err_cells"], number["std"]))
     weights = columns.column("weights")
-    lengths = pc.list_value_length(weights).fill_null(0).to_numpy(zero_copy_only=False).astype(np.int64)
-    flat_weights = pc.list_flatten(weights).to_numpy(zero_copy_only=False)
-    starts = np.concatenate([[0], np.cumsum(lengths)])
-    rows, masks = [], []
-    for j in range(n):
-        rows.append(np.concatenate([[number[f][j] for f in PACKED_NUMBERS], flat_weights[starts[j]:starts[j + 1]]]))
-        masks.append(np.concatenate([[missing[f][j] for f in PACKED_NUMBERS], np.zeros(lengths[j], bool)]))
-    offsets = pa.array(np.concatenate([[0], np.cumsum(lengths + len(PACKED_NUMBERS))]).astype(np.int32))
-    flat = pa.array(np.concatenate(rows) if rows else np.zeros(0), pa.float64(),
-                    mask=np.concatenate(masks) if masks else np.zeros(0, bool))
+    lengths = pc.list_value_length(weights).fill_null(-1).to_numpy(zero_copy_only=False)
+    c = int(lengths[0]) if n else 0
+    if np.any(lengths != c):
+        raise CorruptArchiveError(
+            f"rankfold was about to write {layout.COLUMNS} with {sorted(set(lengths.tolist()))[:4]} weights "
+            "per column, where every column has one per basis entry; nothing was written. This is a "
+            "defect of rankfold: please report it.")
+    matrix = np.hstack([np.column_stack([number[f] for f in PACKED_NUMBERS]).reshape(n, len(PACKED_NUMBERS)),
+                        pc.list_flatten(weights).to_numpy(zero_copy_only=False).reshape(n, c)])
+    mask = np.hstack([np.column_stack([missing[f] for f in PACKED_NUMBERS]).reshape(n, len(PACKED_NUMBERS)),
+                      np.zeros((n, c), bool)])
+    offsets = pa.array(np.arange(n + 1, dtype=np.int32) * matrix.shape[1])
+    flat = pa.array(matrix.ravel(), pa.float64(), mask=mask.ravel())
     optional = _optional(columns.schema)
     data = {"name": columns.column("name"), "type": columns.column("type"), "role": columns.column("role"),
             "numbers": pa.ListArray.from_arrays(offsets, flat, pa.list_(pa.float64())),
