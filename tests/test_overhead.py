@@ -89,7 +89,11 @@ def test_manifest_does_not_repeat_the_tolerances_the_columns_table_holds(tmp_pat
     assert archive.manifest["targets"]["max_std_error"] == 0.02
     # those live in columns.parquet, once: 0.02 x each column's std (numpy.std, ddof=0)
     columns = pq.read_table(archive.path / layout.table_file(archive.manifest, layout.COLUMNS))
-    np.testing.assert_allclose(_stored_field(columns, "tolerance").to_numpy(), 0.02 * np.std(x, axis=0), rtol=1e-9)
+    # (stored as the ratio 0.02 to each std: table_schemas.pack_columns_table; read back unpacked)
+    tolerance = unpack_columns_table(columns, "columns.parquet").column("tolerance").to_numpy()
+    np.testing.assert_allclose(tolerance, 0.02 * np.std(x, axis=0), rtol=1e-9)
+    assert _stored_field(columns, "tolerance").null_count == columns.num_rows
+    assert set(_stored_field(columns, "tolerance_over_std").to_pylist()) == {0.02}
     # and a max_abs_error the user gives per column is recorded as given
     named = rankfold.compress(x, tmp_path / "b.rankfold", max_abs_error={"x1": 0.5}, max_std_error=None)
     assert named.manifest["targets"]["max_abs_error"] == {"x1": 0.5}

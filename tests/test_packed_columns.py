@@ -78,7 +78,12 @@ def wide_tables(draw):
     for name in ("shift", "scale", "ledger_scale", "offset", "mean", "std", "min", "max",
                  "err_max", "err_l2", "err_sum"):
         data[name] = [draw(_float) for _ in range(n)]
-    data["tolerance"] = [draw(st.one_of(st.none(), st.floats(0, 1e300))) for _ in range(n)]
+    ratio = draw(st.floats(1e-6, 10.0))  # tolerances of max_std_error: ratio * std, most of them
+    data["tolerance"] = [draw(st.one_of(st.none(), st.floats(0, 1e300),
+                                        st.just(ratio * data["std"][j] if data["std"][j] is not None else None)))
+                         for j in range(n)]
+    # as written: NULL where not finite (FittedModel.to_tables)
+    data["tolerance"] = [t if t is not None and np.isfinite(t) else None for t in data["tolerance"]]
     steps, rel = [], []
     for j in range(n):
         tol = data["tolerance"][j]
@@ -124,6 +129,9 @@ def test_derived_fields_are_stored_as_null_and_nothing_else_is(tmp_path):
     assert np.isnan(numbers[1][at("residual_step")]) and numbers[1][at("rel_rms")] == 0.123
     # c: no tolerance, no codes -> NULL; std 0 gives NaN both ways -> NULL
     assert numbers[2][at("residual_step")] is None and numbers[2][at("rel_rms")] is None
+    # tolerances 0.05 x std: stored as that ratio, the tolerance itself NULL; no tolerance: both NULL
+    assert [row[at("tolerance")] for row in numbers] == [None, None, None]
+    assert [row[at("tolerance_over_std")] for row in numbers] == [0.05, 0.05, None]
     assert [row[len(PACKED_NUMBERS):] for row in numbers] == [[1.0], [2.0], [3.0]]
     # and the real writer writes it back as it was
     write_small_table(tmp_path / "c.parquet", pack_columns_table(wide))

@@ -194,12 +194,14 @@ def _unpacked_sql(wanted: list[str]) -> list[str]:
     def entry(name: str) -> str:
         return f"numbers[{PACKED_NUMBERS.index(name) + 1}]"
 
-    std, l2, cells, tol, step = (entry(n) for n in ("std", "err_l2", "err_cells", "tolerance", "residual_step"))
+    std, l2, cells, step = (entry(n) for n in ("std", "err_l2", "err_cells", "residual_step"))
+    tol = f"coalesce({entry('tolerance')}, {entry('tolerance_over_std')} * {std})"
     expressions = {
+        "tolerance": tol,
         "position": "CAST(file_row_number AS INTEGER)",
         "rel_rms": f"coalesce({entry('rel_rms')}, CASE WHEN {std} > 0 THEN {l2} / sqrt(greatest({cells}, 1.0)) "
                    f"/ {std} ELSE CAST('NaN' AS DOUBLE) END)",
-        "residual_step": f"CASE WHEN {step} IS NULL THEN 2.0 * {tol} WHEN isnan({step}) THEN NULL ELSE {step} END",
+        "residual_step": f"CASE WHEN {step} IS NULL THEN 2.0 * ({tol}) WHEN isnan({step}) THEN NULL ELSE {step} END",
     }
     items = []
     for name in wanted:
