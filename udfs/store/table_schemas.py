@@ -68,10 +68,11 @@ def columns_schema(optional: list[str] | tuple[str, ...] = ()) -> pa.Schema:
 # column costs a column chunk, page headers and footer metadata, which for a few dozen rows
 # outweigh the numbers. Nothing that can be derived exactly is stored: ``position`` is the
 # row's index; ``rel_rms`` and ``residual_step`` are NULL where they equal what the other
-# fields give (:func:`pack_columns_table`). Measured with the real writer
-# (``passes.commit.write_small_table``), bytes of columns.parquet, one field per number ->
-# packed: 7,346 -> 4,870 on benchmarks/overhead.py (2,000 x 50) and 59,657 -> 50,943 on a
-# real 252 x 751 table at 0.01 std (benchmarks/README.md, "Fixed overhead").
+# fields give, the tolerance where its ratio to ``std`` gives it (:func:`pack_columns_table`).
+# Measured with the real writer (``passes.commit.write_small_table``), bytes of
+# columns.parquet, one field per number -> packed: 7,346 -> 4,517 on benchmarks/overhead.py
+# (2,000 x 50) and 59,657 -> 46,457 on a real 252 x 751 table at 0.01 std
+# (benchmarks/README.md, "Fixed overhead").
 
 #: The numbers of a column in the packed ``numbers`` list, in order (the counts as float64,
 #: exact below 2**53), followed by its ``weights`` (one per basis entry). All but the last are
