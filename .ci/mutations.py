@@ -139,6 +139,15 @@ MUTATIONS = {
         "                groups = self._chunk_groups(first, local, starts)",
         "                groups = groups",
         ["tests/test_row_differences.py"]),
+    "packed residual step read as the tolerance": (
+        "udfs/store/table_schemas.py",
+        '    step = np.where(nulls["residual_step"], 2.0 * tolerance, field["residual_step"])  # NaN: none',
+        '    step = np.where(nulls["residual_step"], 1.0 * tolerance, field["residual_step"])  # NaN: none',
+        ["tests/test_packed_columns.py"]),
+    "SQL packed residual step read as the tolerance": (
+        "udfs/sql/tables.py", '"residual_step": f"CASE WHEN {step} IS NULL THEN 2.0 * ({tol}) WHEN',
+        '"residual_step": f"CASE WHEN {step} IS NULL THEN 1.0 * ({tol}) WHEN',
+        ["tests/test_packed_columns.py"]),
 }
 
 

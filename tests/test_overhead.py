@@ -13,6 +13,7 @@ import json
 import duckdb
 import numpy as np
 import pyarrow as pa
+import pyarrow.compute as pc
 import pyarrow.parquet as pq
 import pytest
 
@@ -22,7 +23,13 @@ from rankfold.udfs.passes.commit import write_small_table
 from rankfold.udfs.store import layout
 from rankfold.udfs.store.aggregate import BLOCKS, pack_blocks, unpack_blocks
 from rankfold.udfs.store.manifest import file_entry, read_manifest, write_manifest
-from rankfold.udfs.store.table_schemas import CELLS_SCHEMA, COLUMNS_SCHEMA, anchors_schema
+from rankfold.udfs.store.table_schemas import (
+    CELLS_SCHEMA,
+    PACKED_NUMBERS,
+    anchors_schema,
+    packed_columns_schema,
+    unpack_columns_table,
+)
 
 
 def _low_rank(m: int, n: int, seed: int = 0) -> np.ndarray:
@@ -57,15 +64,21 @@ def test_small_tables_are_no_larger_than_any_uniform_setting(small_archive, tmp_
 
 
 def test_small_tables_read_back_with_their_declared_types(small_archive, tmp_path):
-    # the declared schema (table_schemas.COLUMNS_SCHEMA) survives without the Arrow schema in
-    # the footer: list<element> reads back equal to the declared list type
+    # the declared schema (table_schemas.packed_columns_schema) survives without the Arrow schema
+    # in the footer: list<element> reads back equal to the declared list type
     table = pq.read_table(small_archive.path / layout.table_file(small_archive.manifest, layout.COLUMNS))
-    assert table.schema.equals(COLUMNS_SCHEMA)
-    write_small_table(tmp_path / "c.parquet", table.cast(COLUMNS_SCHEMA))
-    assert pq.read_table(tmp_path / "c.parquet").equals(table)
+    assert table.schema.equals(packed_columns_schema())
+    write_small_table(tmp_path / "c.parquet", table.cast(packed_columns_schema()))
+    # (unpacked to compare: a packed NaN, a tolerance without residual codes, is a NULL there)
+    assert unpack_columns_table(pq.read_table(tmp_path / "c.parquet"), "c").equals(unpack_columns_table(table, "t"))
     # and the archive reads with every page checksum checked
     reopened = rankfold.open(small_archive.path, checksums=True)
     np.testing.assert_array_equal(reopened.to_numpy(), small_archive.to_numpy())
+
+
+def _stored_field(raw: pa.Table, name: str) -> pa.ChunkedArray:
+    # one field's entries of a stored columns table: its place in the packed numbers list
+    return pc.list_element(raw.column("numbers"), PACKED_NUMBERS.index(name))
 
 
 def test_manifest_does_not_repeat_the_tolerances_the_columns_table_holds(tmp_path):
@@ -76,7 +89,11 @@ def test_manifest_does_not_repeat_the_tolerances_the_columns_table_holds(tmp_pat
     assert archive.manifest["targets"]["max_std_error"] == 0.02
     # those live in columns.parquet, once: 0.02 x each column's std (numpy.std, ddof=0)
     columns = pq.read_table(archive.path / layout.table_file(archive.manifest, layout.COLUMNS))
-    np.testing.assert_allclose(columns.column("tolerance").to_numpy(), 0.02 * np.std(x, axis=0), rtol=1e-9)
+    # (stored as the ratio 0.02 to each std: table_schemas.pack_columns_table; read back unpacked)
+    tolerance = unpack_columns_table(columns, "columns.parquet").column("tolerance").to_numpy()
+    np.testing.assert_allclose(tolerance, 0.02 * np.std(x, axis=0), rtol=1e-9)
+    assert _stored_field(columns, "tolerance").null_count == columns.num_rows
+    assert set(_stored_field(columns, "tolerance_over_std").to_pylist()) == {0.02}
     # and a max_abs_error the user gives per column is recorded as given
     named = rankfold.compress(x, tmp_path / "b.rankfold", max_abs_error={"x1": 0.5}, max_std_error=None)
     assert named.manifest["targets"]["max_abs_error"] == {"x1": 0.5}
@@ -303,7 +320,7 @@ def test_transform_fields_equal_to_the_statistics_are_stored_once(tmp_path):
     archive = rankfold.compress(_columns(x), tmp_path / "a", seed=0, rank=2)
     raw = pq.read_table(archive.path / layout.table_file(archive.manifest, layout.COLUMNS))
     for name in ("shift", "scale", "ledger_scale"):  # the standardize transform: all repeat
-        assert raw.column(name).null_count == raw.num_rows, name
+        assert _stored_field(raw, name).null_count == raw.num_rows, name
     ledger = archive.column_ledger()  # as read: filled in, bit for bit
     assert ledger.column("shift").equals(ledger.column("mean"))
     assert ledger.column("scale").equals(ledger.column("std"))
@@ -319,7 +336,7 @@ def test_transform_fields_equal_to_the_statistics_are_stored_once(tmp_path):
     shift = ledger.column("shift").to_numpy().copy()
     grown = archive.append(_columns(_low_rank(60, 8, seed=7) + 3.0))
     raw = pq.read_table(grown.path / layout.table_file(grown.manifest, layout.COLUMNS))
-    assert raw.column("shift").null_count == 0
+    assert _stored_field(raw, "shift").null_count == 0
     np.testing.assert_array_equal(grown.column_ledger().column("shift").to_numpy(), shift)
     assert not np.array_equal(grown.column_ledger().column("mean").to_numpy(), shift)
 

@@ -31,7 +31,7 @@ import pyarrow.parquet as pq
 from ..errors import InvalidInputError, SourceChangedError
 from ..store import arithmetic, layout, row_differences
 from ..store.model import FittedModel, Mixing
-from ..store.table_schemas import CELLS_SCHEMA, check_row_schema
+from ..store.table_schemas import CELLS_SCHEMA, check_row_schema, relative_rms
 from .commit import ArchiveWriter, cell_encodings, close_parquet
 from .profile import ColumnProfile, Fingerprint, Transform, profile_block
 
@@ -116,12 +116,13 @@ def column_statistics(profile: ColumnProfile, ledger: ColumnLedger, rows: int) -
     """The measured fields of the columns table (``store.model.STATISTICS``) from the column
     statistics of every row and the column ledger of a table of ``rows`` rows."""
     std = profile.std
-    rms = np.divide(ledger.err_l2, np.sqrt(np.maximum(ledger.cells, 1)))
-    rel_rms = np.divide(rms, std, out=np.full(std.size, np.nan), where=std > 0)
+    err_l2 = ledger.l2_upper(rows)
+    # from the stored err_l2 (an upper limit): the columns table then derives it, stores nothing
+    rel_rms = relative_rms(err_l2, ledger.cells, std)
     return {"valid": profile.valid, "nulls": profile.nulls, "nans": profile.nans,
             "infinities": profile.infinities, "mean": profile.mean, "std": std,
             "min": profile.minimum, "max": profile.maximum, "err_max": arithmetic.round_up(ledger.err_max),
-            "err_l2": ledger.l2_upper(rows), "err_sum": ledger.err_sum, "err_cells": ledger.cells,
+            "err_l2": err_l2, "err_sum": ledger.err_sum, "err_cells": ledger.cells,
             "rel_rms": rel_rms}
 
 

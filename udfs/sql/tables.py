@@ -42,6 +42,7 @@ from ..store.reader import ArchiveReader
 from ..store.row_differences import signed_code_sql
 from ..store.sql_rebuild import basis_value_sql, derived_value_sql, row_bound_sql, served_sql, stored_bound_sql
 from ..store.sql_text import quote_identifier
+from ..store.table_schemas import PACKED_NUMBERS
 
 __all__ = ["scan_sql", "table_sql", "column_errors_sql", "row_errors_sql", "ResultCache",
            "sweep_spools"]
@@ -176,11 +177,46 @@ def scan_sql(reader: ArchiveReader, columns: Any = None, bounds: str = "row",
 def column_errors_sql(reader: ArchiveReader) -> str:
     wanted = ["name", "position", "type", "role", "valid", "nulls", "mean", "std", "ledger_scale",
               "err_max", "err_l2", "err_sum", "err_cells", "rel_rms", "tolerance", "residual_step"]
+    path = reader.path / layout.table_file(reader.manifest, layout.COLUMNS)
+    reader.check_table(layout.COLUMNS)  # DuckDB reads the columns table again: unchanged?
+    if reader.columns_packed:  # the stored form of table_schemas.pack_columns_table
+        return f"SELECT {', '.join(_unpacked_sql(wanted))} FROM {read_parquet_sql([path], file_row_number=True)}"
     have = set(reader.columns_table.column_names)
     # shift, scale and ledger_scale are stored once where they repeat mean or std (model.REPEATED)
     cols = ", ".join(f"coalesce({n}, {REPEATED[n]}) AS {n}" if n in REPEATED else n for n in wanted if n in have)
-    reader.check_table(layout.COLUMNS)  # DuckDB reads the columns table again: unchanged?
-    return f"SELECT {cols} FROM {read_parquet_sql([reader.path / layout.table_file(reader.manifest, layout.COLUMNS)])}"
+    return f"SELECT {cols} FROM {read_parquet_sql([path])}"
+
+
+def _unpacked_sql(wanted: list[str]) -> list[str]:
+    """SELECT items giving the fields ``wanted`` of a packed columns table read with its file
+    row numbers: what ``table_schemas.unpack_columns_table`` does, in SQL (DuckDB lists count
+    from 1; the same IEEE operations, so the same bits)."""
+    def entry(name: str) -> str:
+        return f"numbers[{PACKED_NUMBERS.index(name) + 1}]"
+
+    std, l2, cells, step = (entry(n) for n in ("std", "err_l2", "err_cells", "residual_step"))
+    tol = f"coalesce({entry('tolerance')}, {entry('tolerance_over_std')} * {std})"
+    expressions = {
+        "tolerance": tol,
+        "position": "CAST(file_row_number AS INTEGER)",
+        "rel_rms": f"coalesce({entry('rel_rms')}, CASE WHEN {std} > 0 THEN {l2} / sqrt(greatest({cells}, 1.0)) "
+                   f"/ {std} ELSE CAST('NaN' AS DOUBLE) END)",
+        "residual_step": f"CASE WHEN {step} IS NULL THEN 2.0 * ({tol}) WHEN isnan({step}) THEN NULL ELSE {step} END",
+    }
+    items = []
+    for name in wanted:
+        if name in expressions:
+            value = expressions[name]
+        elif name in REPEATED:
+            value = f"coalesce({entry(name)}, {entry(REPEATED[name])})"
+        elif name in ("valid", "nulls", "nans", "infinities", "err_cells"):
+            value = f"CAST({entry(name)} AS BIGINT)"
+        elif name in PACKED_NUMBERS:
+            value = entry(name)
+        else:
+            value = name
+        items.append(f"{value} AS {name}")
+    return items
 
 
 def row_errors_sql(reader: ArchiveReader) -> str:

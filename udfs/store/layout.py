@@ -8,7 +8,8 @@ An archive is a directory::
                            units of each column's ledger_scale, i.e. its standard deviation;
                            absent when every column has a tolerance: manifest row_ledger)
     columns.parquet        one row per numeric column: transform, offset and weights of the
-                           mixing matrix, profile counts, column ledger
+                           mixing matrix, profile counts, column ledger (its numbers packed
+                           into one list: ``table_schemas.pack_columns_table``)
     anchors.parquet        the anchor rows (R factor): _rf_row and every numeric column, exact
                            (written only when there are anchor rows)
     cells.parquet          cells stored exactly: _rf_row, _rf_column, value, reason (written

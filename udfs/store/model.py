@@ -34,7 +34,15 @@ import pyarrow.compute as pc
 
 from ..errors import CorruptArchiveError
 from . import arithmetic, layout, row_differences
-from .table_schemas import COLUMNS_OPTIONAL, anchors_schema, check_schema, columns_schema, row_file_reserved
+from .table_schemas import (
+    COLUMNS_OPTIONAL,
+    anchors_schema,
+    check_schema,
+    columns_schema,
+    pack_columns_table,
+    row_file_reserved,
+    unpack_columns_table,
+)
 
 __all__ = ["Mixing", "Coding", "FittedModel", "mixing_for_columns", "mixing_for_scores",
            "STATISTICS"]
@@ -405,7 +413,8 @@ class FittedModel:
 
     def to_tables(self) -> dict[str, pa.Table]:
         """The columns table and the anchors table (``layout.COLUMNS``, ``layout.ANCHORS``),
-        checked against their declared schemas (``table_schemas``)."""
+        checked against their declared schemas (``table_schemas``), as they are written: the
+        columns table packed (``table_schemas.pack_columns_table``)."""
         stats, coding = self.statistics or {}, self.coding
         residual_step = self.residual_step
         data = {
@@ -429,6 +438,7 @@ class FittedModel:
         columns = pa.table({f.name: pa.array(data[f.name], f.type) if not isinstance(data[f.name], pa.Array)
                             else data[f.name] for f in schema}, schema=schema)
         check_schema(columns.schema, declared, layout.COLUMNS, writing=True)
+        columns = pack_columns_table(columns)
         with_rows = bool(self.anchor_positions.size)
         anchor_cols = {layout.ROW_ID: pa.array(self.anchor_positions, pa.int64())}
         for j, name in enumerate(self.names if with_rows else []):
@@ -461,6 +471,8 @@ class FittedModel:
         names = list(manifest["numeric_columns"])
         width = len(names)
         where = Path(directory or "")
+        # either stored form: packed, or one field per number (archives written before)
+        columns = unpack_columns_table(columns, where / layout.table_file(manifest, layout.COLUMNS))
         check_schema(columns.schema, columns_schema([n for n in COLUMNS_OPTIONAL.names if n in columns.schema.names]),
                      where / layout.table_file(manifest, layout.COLUMNS))
         check_schema(anchors.schema, anchors_schema(names, anchors.num_rows > 0),

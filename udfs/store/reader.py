@@ -25,7 +25,7 @@ from .integrity import (RowFileSeal, check_tables, damaged, open_row_file, read_
 from .manifest import DIGEST_FIELD, check_files, read_manifest
 from .manifest_schema import holds_table, older_row_file_rules
 from .model import REPEATED, FittedModel
-from .table_schemas import CELLS_SCHEMA, anchors_schema, check_schema
+from .table_schemas import CELLS_SCHEMA, anchors_schema, check_schema, is_packed, unpack_columns_table
 
 __all__ = ["ArchiveReader", "Rebuilt"]
 
@@ -127,7 +127,11 @@ class ArchiveReader:
         self.numeric_columns: list[str] = list(m["numeric_columns"])
         self.column_index = {n: j for j, n in enumerate(self.numeric_columns)}
         self.rows_count = int(m["shape"][0])
-        self.columns_table = read_small_table(self.path, m, layout.table_file(m, layout.COLUMNS))
+        stored = read_small_table(self.path, m, layout.table_file(m, layout.COLUMNS))
+        #: whether columns.parquet is stored packed (``table_schemas.pack_columns_table``), as
+        #: written since; the table below is in the form of one field per number either way
+        self.columns_packed = is_packed(stored.schema)
+        self.columns_table = unpack_columns_table(stored, self.path / layout.table_file(m, layout.COLUMNS))
         if set(REPEATED) <= set(self.columns_table.column_names):  # else refused below, by its schema
             self.columns_table = FittedModel.filled_columns_table(self.columns_table)
         anchors = (read_small_table(self.path, m, layout.table_file(m, layout.ANCHORS))

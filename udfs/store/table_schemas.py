@@ -1,7 +1,9 @@
 """The schemas of an archive's table files, declared once.
 
 * ``columns.parquet``: one row per numeric column (:data:`COLUMNS_SCHEMA`), written by
-  ``model.FittedModel.to_tables`` and read by ``model.FittedModel.from_tables``.
+  ``model.FittedModel.to_tables`` and read by ``model.FittedModel.from_tables``; stored packed
+  (:func:`pack_columns_table`, :func:`packed_columns_schema`), read in either form
+  (:func:`unpack_columns_table`).
 * ``anchors.parquet``: ``_rf_row`` (int64), then one float64 column per numeric column when
   the archive keeps anchor rows (:func:`anchors_schema`).
 * ``cells.parquet``: the cells stored exactly (:data:`CELLS_SCHEMA`).
@@ -18,12 +20,15 @@ from __future__ import annotations
 
 from typing import Any
 
+import numpy as np
 import pyarrow as pa
+import pyarrow.compute as pc
 
 from ..errors import CorruptArchiveError
 from . import layout
 
-__all__ = ["COLUMNS_SCHEMA", "COLUMNS_OPTIONAL", "columns_schema", "CELLS_SCHEMA", "anchors_schema",
+__all__ = ["COLUMNS_SCHEMA", "COLUMNS_OPTIONAL", "columns_schema", "PACKED_NUMBERS", "relative_rms",
+           "packed_columns_schema", "is_packed", "pack_columns_table", "unpack_columns_table", "CELLS_SCHEMA", "anchors_schema",
            "row_file_reserved", "check_schema", "check_row_schema", "CODE_TYPES"]
 
 COLUMNS_SCHEMA = pa.schema([
@@ -56,6 +61,177 @@ def columns_schema(optional: list[str] | tuple[str, ...] = ()) -> pa.Schema:
     """The columns table's declared schema with the optional fields ``optional`` (names of
     :data:`COLUMNS_OPTIONAL`, in its order)."""
     return pa.schema(list(COLUMNS_SCHEMA) + [f for f in COLUMNS_OPTIONAL if f.name in optional])
+
+
+# -- the columns table as stored: its numbers packed ------------------------------------------
+# Every number of a column in one list (as ``blocks.parquet`` stores its sums): each Parquet
+# column costs a column chunk, page headers and footer metadata, which for a few dozen rows
+# outweigh the numbers. Nothing that can be derived exactly is stored: ``position`` is the
+# row's index; ``rel_rms`` and ``residual_step`` are NULL where they equal what the other
+# fields give, the tolerance where its ratio to ``std`` gives it (:func:`pack_columns_table`).
+# Measured with the real writer (``passes.commit.write_small_table``), bytes of
+# columns.parquet, one field per number -> packed: 7,346 -> 4,517 on benchmarks/overhead.py
+# (2,000 x 50) and 59,657 -> 46,457 on a real 252 x 751 table at 0.01 std
+# (benchmarks/README.md, "Fixed overhead").
+
+#: The numbers of a column in the packed ``numbers`` list, in order (the counts as float64,
+#: exact below 2**53), followed by its ``weights`` (one per basis entry). All but the last are
+#: fields of :data:`COLUMNS_SCHEMA`; ``tolerance_over_std`` q stands for a tolerance of q * std.
+PACKED_NUMBERS = ("valid", "nulls", "nans", "infinities", "err_cells", "shift", "scale", "ledger_scale",
+                  "offset", "mean", "std", "min", "max", "err_max", "err_l2", "err_sum", "rel_rms",
+                  "tolerance", "residual_step", "tolerance_over_std")
+_COUNTS = ("valid", "nulls", "nans", "infinities", "err_cells")
+_PACKED = pa.schema([("name", pa.string()), ("type", pa.string()), ("role", pa.string()),
+                     ("numbers", pa.list_(pa.float64()))])
+
+
+def packed_columns_schema(optional: list[str] | tuple[str, ...] = ()) -> pa.Schema:
+    """The stored (packed) columns table's schema with the optional fields ``optional``."""
+    return pa.schema(list(_PACKED) + [f for f in COLUMNS_OPTIONAL if f.name in optional])
+
+
+def is_packed(schema: pa.Schema) -> bool:
+    """Whether a columns table (as read) is in the packed form (:func:`pack_columns_table`)
+    rather than the one field per number of archives written before."""
+    return "numbers" in schema.names
+
+
+def _optional(schema: pa.Schema) -> list[str]:
+    return [n for n in COLUMNS_OPTIONAL.names if n in schema.names]
+
+
+def relative_rms(err_l2: np.ndarray, err_cells: np.ndarray, std: np.ndarray) -> np.ndarray:
+    """``rel_rms`` of the columns table: the RMS of the approximated cells' errors over the
+    column's standard deviation, err_l2 / sqrt(max(err_cells, 1)) / std (all (n,)); NaN where
+    std is not positive. With the stored (rounded up) ``err_l2`` it is an upper limit."""
+    std = np.asarray(std, dtype=np.float64)
+    rms = np.divide(np.asarray(err_l2, dtype=np.float64), np.sqrt(np.maximum(np.asarray(err_cells, np.float64), 1.0)))
+    return np.divide(rms, std, out=np.full(std.shape, np.nan), where=std > 0)
+
+
+def _same(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    return (a == b) | (np.isnan(a) & np.isnan(b))
+
+
+def _tolerance_ratio(tolerance: np.ndarray, std: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Ratios q (n,) with q * std == tolerance bit for bit, and where one is stored (n,) bool:
+    the most frequent quotient tolerance / std where it serves (max_std_error makes one ratio
+    for all), else the column's own quotient (a tolerance of about r x std given per column);
+    a positive, finite tolerance and std only. None at all where the tolerances themselves
+    repeat as often (one max_abs_error for every column): a repeated value compresses alike.
+    Measured (benchmarks/README.md): own quotients where the common one fails, 50,943 ->
+    46,457 bytes on a real 751-column table; a common max_abs_error stored as the tolerance,
+    4,749 against 5,109 bytes as ratios at 50 columns."""
+    with np.errstate(all="ignore"):
+        own = tolerance / std
+        usable = np.isfinite(tolerance) & (tolerance > 0) & np.isfinite(std) & (std > 0)
+        values, counts = np.unique(own[usable], return_counts=True)
+        common = values[np.argmax(counts)] if values.size else np.nan
+        ratio = np.where(common * std == tolerance, common, own)
+        serves = usable & (ratio * std == tolerance)
+    _, repeats = np.unique(tolerance[np.isfinite(tolerance)], return_counts=True)
+    if serves.sum() <= (repeats.max() if repeats.size else 0):
+        serves[:] = False
+    return np.where(serves, ratio, 0.0), serves
+
+
+def pack_columns_table(columns: pa.Table) -> pa.Table:
+    """The columns table of :func:`columns_schema` (one field per number, as
+    ``model.FittedModel.to_tables`` builds it) in its stored form
+    (:func:`packed_columns_schema`): one float64 list ``numbers`` per column,
+    :data:`PACKED_NUMBERS` then the weights, a NULL entry where the field is NULL; ``position``
+    left out.
+
+    The tolerance t of a column is stored as a ratio q with q * std == t bit for bit, where there
+    is one (t NULL, q stored; q is one ratio common to most columns where it serves, as
+    max_std_error makes it, so the entries repeat and compress to nearly nothing;
+    :func:`_tolerance_ratio`); else t is stored as it is and q is NULL. Two entries are NULL where derived instead: ``rel_rms`` where it equals, bit for bit,
+    :func:`relative_rms` of the stored ``err_l2``, ``err_cells`` and ``std`` (NaN counts as
+    equal to NaN); ``residual_step`` where it equals twice the column's tolerance bit for bit
+    (the step of the tolerance's residual codes), or where both are NULL (no tolerance, no
+    residual codes); a column with a tolerance but no residual codes stores NaN there.
+    :func:`unpack_columns_table` is the exact inverse, except that a NULL ``rel_rms`` (never
+    written by rankfold) reads as NaN."""
+    n = columns.num_rows
+    number = {name: columns.column(name).to_numpy(zero_copy_only=False).astype(np.float64)
+              for name in PACKED_NUMBERS[:-1]}  # NULL -> NaN; the last is packed only
+    missing = {name: columns.column(name).is_null().to_numpy(zero_copy_only=False) for name in PACKED_NUMBERS[:-1]}
+    tolerance, step = number["tolerance"], number["residual_step"]
+    with np.errstate(over="ignore"):
+        missing["residual_step"] = np.where(np.isfinite(tolerance), step == 2.0 * tolerance, np.isnan(step))
+    number["tolerance_over_std"], by_ratio = _tolerance_ratio(tolerance, number["std"])
+    missing["tolerance_over_std"] = ~by_ratio
+    missing["tolerance"] = missing["tolerance"] | by_ratio
+    missing["rel_rms"] = _same(number["rel_rms"], relative_rms(number["err_l2"], number["err_cells"], number["std"]))
+    weights = columns.column("weights")
+    lengths = pc.list_value_length(weights).fill_null(-1).to_numpy(zero_copy_only=False)
+    c = int(lengths[0]) if n else 0
+    if np.any(lengths != c):
+        raise CorruptArchiveError(
+            f"rankfold was about to write {layout.COLUMNS} with {sorted(set(lengths.tolist()))[:4]} weights "
+            "per column, where every column has one per basis entry; nothing was written. This is a "
+            "defect of rankfold: please report it.")
+    matrix = np.hstack([np.column_stack([number[f] for f in PACKED_NUMBERS]).reshape(n, len(PACKED_NUMBERS)),
+                        pc.list_flatten(weights).to_numpy(zero_copy_only=False).reshape(n, c)])
+    mask = np.hstack([np.column_stack([missing[f] for f in PACKED_NUMBERS]).reshape(n, len(PACKED_NUMBERS)),
+                      np.zeros((n, c), bool)])
+    offsets = pa.array(np.arange(n + 1, dtype=np.int32) * matrix.shape[1])
+    flat = pa.array(matrix.ravel(), pa.float64(), mask=mask.ravel())
+    optional = _optional(columns.schema)
+    data = {"name": columns.column("name"), "type": columns.column("type"), "role": columns.column("role"),
+            "numbers": pa.ListArray.from_arrays(offsets, flat, pa.list_(pa.float64())),
+            **{o: columns.column(o) for o in optional}}
+    return pa.table(data, schema=packed_columns_schema(optional))
+
+
+def unpack_columns_table(columns: pa.Table, where: Any) -> pa.Table:
+    """The columns table in the form of :func:`columns_schema` from either stored form: the
+    packed one (:func:`pack_columns_table`; its schema is checked here, refused with the file
+    ``where``) or the one of archives written before, one field per number (returned as it
+    is; its schema is checked by the caller). The one place that knows both forms."""
+    if not is_packed(columns.schema):
+        return columns
+    optional = _optional(columns.schema)
+    check_schema(columns.schema, packed_columns_schema(optional), where)
+    n, k = columns.num_rows, len(PACKED_NUMBERS)
+    numbers = columns.column("numbers")
+    lengths = pc.list_value_length(numbers).fill_null(-1).to_numpy(zero_copy_only=False).astype(np.int64)
+    if n and (lengths.min() < k or lengths.min() != lengths.max()):
+        raise CorruptArchiveError(
+            f"{where} holds lists of numbers of {sorted(set(lengths.tolist()))[:4]} entries, where the format "
+            f"has {k} for every column and one weight per basis entry, alike for all; the archive is "
+            "damaged or was edited: restore it from a copy or compress the source again.")
+    width = int(lengths[0]) if n else k
+    flat = pc.list_flatten(numbers)
+    values = flat.fill_null(np.nan).to_numpy().reshape(n, width)
+    missing = flat.is_null().to_numpy(zero_copy_only=False).reshape(n, width)
+    field = {name: values[:, i] for i, name in enumerate(PACKED_NUMBERS)}
+    nulls = {name: missing[:, i] for i, name in enumerate(PACKED_NUMBERS)}
+    if np.any(missing[:, :len(_COUNTS)]) or np.any(missing[:, k:]):
+        raise CorruptArchiveError(
+            f"{where} holds a NULL count or weight; the archive is damaged or was edited: restore it "
+            "from a copy or compress the source again.")
+    tolerance = np.where(nulls["tolerance"], field["tolerance_over_std"] * field["std"], field["tolerance"])
+    step = np.where(nulls["residual_step"], 2.0 * tolerance, field["residual_step"])  # NaN: none
+    rel_rms = np.where(nulls["rel_rms"], relative_rms(field["err_l2"], field["err_cells"], field["std"]),
+                       field["rel_rms"])
+    data: dict[str, Any] = {
+        "name": columns.column("name"), "position": pa.array(np.arange(n, dtype=np.int32)),
+        "type": columns.column("type"), "role": columns.column("role"),
+        "weights": pa.ListArray.from_arrays(pa.array(np.arange(n + 1, dtype=np.int32) * (width - k)),
+                                            pa.array(values[:, k:].ravel(), pa.float64()), pa.list_(pa.float64())),
+        "residual_step": pa.array(step, pa.float64(), mask=~np.isfinite(step)),
+        "tolerance": pa.array(tolerance, pa.float64(), mask=~np.isfinite(tolerance)),
+        "rel_rms": pa.array(rel_rms, pa.float64())}
+    for name in PACKED_NUMBERS:
+        if name in _COUNTS:
+            data[name] = pa.array(field[name].astype(np.int64), pa.int64())
+        elif name not in data:
+            data[name] = pa.array(field[name], pa.float64(), mask=nulls[name])
+    data.update({o: columns.column(o) for o in optional})
+    schema = columns_schema(optional)
+    return pa.table({f.name: data[f.name] for f in schema}, schema=schema)
+
 
 CELLS_SCHEMA = pa.schema([(layout.ROW_ID, pa.int64()), (layout.COLUMN_ID, pa.int32()),
                           ("value", pa.float64()), ("reason", pa.dictionary(pa.int32(), pa.string()))])
