@@ -277,6 +277,12 @@ class EncodeResult:
 
 _CODE_LIMIT = 2.0**31 - 1  # residual codes are stored as int32
 
+# NULL cells of columns with residual codes are stored as NULL codes in the row files (a
+# Parquet NULL costs a bit of the definition levels), not as exact cells; False writes the
+# form of archives written before (every NULL cell in cells.parquet), which readers still
+# read (tests of those archives set it).
+NULL_CODES = True
+
 
 def stored_basis(raw: np.ndarray, step: np.ndarray, float32: bool):
     """Basis values as stored, and the Arrow arrays that store them (NaN = NULL)."""
@@ -651,7 +657,7 @@ def encode_pass(stream: Stream, model: FittedModel, writer: ArchiveWriter, *, bl
                     fingerprint = fingerprint.merge(piece.fingerprint)
                 if piece.stored is not None:
                     exact_cells = piece.stored
-                    if mask is not None and with_residual.size:
+                    if NULL_CODES and mask is not None and with_residual.size:
                         # NULL cells of coded columns: NULL codes, not exact cells
                         as_null = piece.stored[:, with_residual] & mask[lo:hi][:, with_residual]
                         if as_null.any():
