@@ -28,6 +28,7 @@ import rankfold
 import rankfold.udfs
 from rankfold.udfs.passes import encode
 from rankfold.udfs.store import layout
+from rankfold.portable_view import view_sql
 
 SETTINGS = settings(max_examples=25, deadline=None, derandomize=True,
                     suppress_health_check=[HealthCheck.too_slow, HealthCheck.function_scoped_fixture])
@@ -192,6 +193,29 @@ def _same(con, a, b) -> None:
         np.testing.assert_array_equal(np.ma.getmaskarray(sa[name]), np.ma.getmaskarray(sb[name]))
         np.testing.assert_array_equal(np.ma.filled(sa[name], 0), np.ma.filled(sb[name], 0))
     names = a.numeric_columns
+    # the plain-SQL view on a bare connection (no UDFs), point lookups by predicate (one
+    # restart chunk decoded) and the SQL cell function, at NULL cells and beside them
+    bare = duckdb.connect()
+    views = []
+    for archive, view in ((a, "va"), (b, "vb")):
+        bare.execute(view_sql(archive, view, bounds="cell"))
+        views.append(bare.sql(f"SELECT * FROM {view} ORDER BY _rf_row").fetchnumpy())
+    bare.close()
+    for name in views[0]:
+        np.testing.assert_array_equal(np.ma.getmaskarray(views[0][name]), np.ma.getmaskarray(views[1][name]))
+        np.testing.assert_array_equal(np.ma.filled(views[0][name], 0), np.ma.filled(views[1][name], 0))
+        np.testing.assert_array_equal(np.ma.getmaskarray(views[0][name]), np.ma.getmaskarray(sa[name]))
+    null_rows = np.flatnonzero(np.ma.getmaskarray(sa[names[0]]))
+    last = len(sa[names[0]]) - 1
+    for row in sorted({int(null_rows[0]), int(null_rows[-1]), min(int(null_rows[-1]) + 1, last), 8192, last}):
+        for archive in (a, b):
+            one = con.sql(f"SELECT * FROM rankfold_scan('{archive.path}', bounds := 'cell', "
+                          f"predicate := 'id = {row}')").fetchnumpy()
+            cell = con.sql(f"SELECT rankfold_cell('{archive.path}', {row}, '{names[0]}')").fetchall()[0][0]
+            for name in names:
+                assert bool(np.ma.getmaskarray(one[name])[0]) == bool(np.ma.getmaskarray(sa[name])[row])
+                assert np.ma.filled(one[f"{name}_bound"], -1)[0] == np.ma.filled(sa[f"{name}_bound"], -1)[row]
+            assert (cell is None) == bool(np.ma.getmaskarray(sa[names[0]])[row])
     for where in (None, "id % 3 = 1"):
         ga, gb = a.aggregate(names, "avg", where=where), b.aggregate(names, "avg", where=where)
         for name in names:
@@ -213,3 +237,17 @@ def test_null_codes_cost_fewer_bytes_than_null_cells(tmp_path, monkeypatch):
     name = layout.CODE_PATTERN.format(0)
     column = pq.read_table(new.path / new._reader.parts[0][2], columns=[name]).column(name)
     assert column.null_count == table.column("w0").null_count
+
+
+def test_row_bound_of_a_row_whose_codes_are_all_null(tmp_path, con):
+    """A row whose only coded cell is NULL: the SQL row bound is a number (0 or more), not
+    NULL, and the cell bound is 0 (invented walk, seed 8)."""
+    rng = np.random.default_rng(8)
+    null = np.zeros(500, bool)
+    null[100:140] = True
+    table = pa.table({"w": pa.array(np.cumsum(rng.normal(size=500)), mask=null)})
+    archive = rankfold.compress(table, tmp_path / "one", max_std_error=0.01)
+    assert _coded(archive).all() and archive.manifest["null_codes"]
+    rows = con.sql(f"SELECT w, _rf_bound FROM rankfold_scan('{archive.path}') ORDER BY _rf_row").fetchnumpy()
+    assert not np.ma.getmaskarray(rows["_rf_bound"]).any()
+    np.testing.assert_array_equal(np.ma.getmaskarray(rows["w"]), null)
