@@ -101,7 +101,8 @@ def _row_files(archive: rankfold.Archive) -> list:
 
 def _overridden(archive: rankfold.Archive) -> np.ndarray:
     """Cells stored exactly, from the archive's files: basis columns stored under their own
-    name in the row files (not as codes), anchor rows, cells.parquet."""
+    name in the row files (not as codes), anchor rows, cells.parquet, and NULL cells stored
+    as NULL residual codes in the row files."""
     names = archive.numeric_columns
     stored = set(pq.read_schema(_row_files(archive)[0]).names)
     kept = np.zeros(archive.shape, bool)
@@ -109,6 +110,14 @@ def _overridden(archive: rankfold.Archive) -> np.ndarray:
     kept[archive.anchor_rows, :] = True
     cells = pq.read_table(archive.path / "cells.parquet")
     kept[cells.column(layout.ROW_ID).to_numpy(), cells.column(layout.COLUMN_ID).to_numpy()] = True
+    prefix = layout.CODE_PATTERN.format("")
+    for file in _row_files(archive):
+        rows = pq.read_table(file)
+        ids = rows.column(layout.ROW_ID).to_numpy()
+        for name in rows.column_names:
+            if name.startswith(prefix) and rows.column(name).null_count:
+                null = rows.column(name).is_null().to_numpy(zero_copy_only=False)
+                kept[ids[null], int(name[len(prefix):])] = True
     return kept
 
 
@@ -186,7 +195,7 @@ def test_blocks_have_one_record_per_row_group_with_numpy_sums(archives):
     for j in range(WIDTH):
         name = layout.CODE_PATTERN.format(j)
         if name in rows.column_names:
-            codes[:, j] = _zigzag_decode(rows.column(name).to_numpy())
+            codes[:, j] = _zigzag_decode(rows.column(name).fill_null(0).to_numpy())  # NULL code: 0
     if ArchiveReader(archive.path).model.row_ledger:
         stored_max = rows.column(layout.ROW_ERR_MAX).to_numpy().astype(np.float64)
     else:  # no row ledger (every column has a tolerance): the row figures from numpy's residual

@@ -216,6 +216,8 @@ def _write_version(reader: ArchiveReader, src, batch_rows, progress, temp: Path)
                 layout.table_file(manifest, BLOCKS)}
     new = dict(manifest)
     new["version"] = version
+    if result.null_codes:  # NULL cells stored as NULL residual codes (manifest_schema)
+        new["null_codes"] = True
     new["shape"] = [reader.rows_count + result.rows, width]
     new["row_parts"] = old_parts + list(writer.parts)
     new["tables"] = tables

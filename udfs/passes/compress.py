@@ -943,6 +943,8 @@ def _manifest(src, opts, inputs: _Inputs, build: _Build, model: FittedModel, pro
         "transform": model.transform_kind,
         "basis": model.basis_entries(),
         "row_ledger": model.row_ledger,  # False: the row files carry no row ledger
+        # NULL cells stored as NULL residual codes (absent when none are: manifest_schema)
+        **({"null_codes": True} if result.null_codes else {}),
         "anchors": [int(p) for p in model.anchor_positions],
         "row_parts": parts,
         "spectrum": [float(s) for s in spectrum.values],

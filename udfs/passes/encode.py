@@ -257,6 +257,7 @@ class EncodeResult:
     rows: int
     corrections: int = 0
     profile: ColumnProfile | None = None  # every column's statistics, when asked for
+    null_codes: int = 0  # NULL cells stored as NULL residual codes (not in the exact cells)
 
     @staticmethod
     def merge(results: list["EncodeResult"], width: int) -> "EncodeResult":
@@ -271,10 +272,17 @@ class EncodeResult:
             if profile is not None:
                 profile = profile.merge(r.profile)
         return EncodeResult(ledger, cells, fingerprint, sum(r.rows for r in results),
-                            sum(r.corrections for r in results), profile=profile)
+                            sum(r.corrections for r in results), profile=profile,
+                            null_codes=sum(r.null_codes for r in results))
 
 
 _CODE_LIMIT = 2.0**31 - 1  # residual codes are stored as int32
+
+# NULL cells of columns with residual codes are stored as NULL codes in the row files (a
+# Parquet NULL costs a bit of the definition levels), not as exact cells; False writes the
+# form of archives written before (every NULL cell in cells.parquet), which readers still
+# read (tests of those archives set it).
+NULL_CODES = True
 
 
 def stored_basis(raw: np.ndarray, step: np.ndarray, float32: bool):
@@ -515,11 +523,17 @@ class _DifferenceCarry:
         self.file_first = -1        # first row of the row file being written
         self.next_row = -1          # the row after the last one coded
 
-    def stored(self, codes: np.ndarray, first: int, writer) -> np.ndarray:
+    def stored(self, codes: np.ndarray, first: int, writer, nulls: np.ndarray | None = None) -> np.ndarray:
         """``codes`` (b, q) of rows first .. first + b - 1, with the differenced columns'
         entries replaced by what is stored: the code at each chunk's first row, else the
         difference from the previous row. ``writer`` (``commit.RowPartWriter``) tells whether
-        this batch starts a new row file (asked before the batch is handed to it)."""
+        this batch starts a new row file (asked before the batch is handed to it).
+
+        ``nulls`` (b, q) bool or None: cells stored as NULL codes. In a differenced column
+        such a cell takes the previous row's code in its chunk (0 at a chunk's first row), so
+        its difference is 0 and may be stored as NULL: a running sum that skips NULLs (SQL's
+        ``sum``, ``row_differences.undifference`` with NULLs as 0) decodes every other row
+        exactly. ``codes`` is updated in place at those cells."""
         b = codes.shape[0]
         if writer.starts_file():
             self.file_first = first
@@ -531,6 +545,9 @@ class _DifferenceCarry:
         rows = np.arange(first, first + b, dtype=np.int64)
         restart = row_differences.chunk_starts(rows, self.file_first) == rows
         previous = self.previous if self.previous is not None else np.zeros(self.slots.size)
+        if nulls is not None and b:
+            codes[:, self.slots] = row_differences.carry_forward(
+                codes[:, self.slots], nulls[:, self.slots], restart, previous)
         out = codes.copy()
         out[:, self.slots] = row_differences.difference(codes[:, self.slots], restart, previous)
         if b:
@@ -596,7 +613,7 @@ def encode_pass(stream: Stream, model: FittedModel, writer: ArchiveWriter, *, bl
     # When every column has a tolerance, the row ledger can only tighten bounds below it, so
     # it is kept coarser (4 mantissa bits: at most 12.5% loose, about half a byte per figure).
     ledger_bits = 4 if np.isfinite(tolerance).all() and width else 8
-    rows = corrections_count = 0
+    rows = corrections_count = null_count = 0
     reserved = model.row_file_reserved()
     for first, batch, block, mask in stream:
         b = block.shape[0]
@@ -622,6 +639,7 @@ def encode_pass(stream: Stream, model: FittedModel, writer: ArchiveWriter, *, bl
             stored, basis_arrays = stored_basis(scores, coding.basis_step, coding.float32_scores)
         filled = arithmetic.fill_missing(stored, mixing.fill)
         codes = np.empty((with_residual.size, b)).T if with_residual.size else None
+        code_nulls = np.zeros((b, with_residual.size), bool)  # cells stored as NULL codes
         row_max, row_l2 = np.empty(b), np.empty(b)
         if b == 0:
             fingerprint.update(first, block)
@@ -639,7 +657,16 @@ def encode_pass(stream: Stream, model: FittedModel, writer: ArchiveWriter, *, bl
                 if piece.fingerprint is not None:
                     fingerprint = fingerprint.merge(piece.fingerprint)
                 if piece.stored is not None:
-                    cells.add(first + lo, piece.stored, block[lo:hi],
+                    exact_cells = piece.stored
+                    if NULL_CODES and mask is not None and with_residual.size:
+                        # NULL cells of coded columns: NULL codes, not exact cells
+                        as_null = piece.stored[:, with_residual] & mask[lo:hi][:, with_residual]
+                        if as_null.any():
+                            exact_cells = piece.stored.copy()
+                            exact_cells[:, with_residual] &= ~as_null
+                            code_nulls[lo:hi] |= as_null
+                            null_count += int(np.count_nonzero(as_null))
+                    cells.add(first + lo, exact_cells, block[lo:hi],
                               None if mask is None else mask[lo:hi], piece.over_tolerance)
                 corrections_count += piece.corrections
                 partials.append(piece.sums)
@@ -663,9 +690,11 @@ def encode_pass(stream: Stream, model: FittedModel, writer: ArchiveWriter, *, bl
                 columns[layout.SCORE_PATTERN.format(k)] = array
         stored_codes = codes
         if carry is not None:
-            stored_codes = carry.stored(codes, first, writer)
+            stored_codes = carry.stored(codes, first, writer, code_nulls if code_nulls.any() else None)
         for t, j in enumerate(with_residual):
-            columns[layout.CODE_PATTERN.format(j)] = pa.array(arithmetic.encode_codes(stored_codes[:, t])).cast(stored_types[t])
+            stored_t = arithmetic.encode_codes(stored_codes[:, t])
+            columns[layout.CODE_PATTERN.format(j)] = pa.array(
+                stored_t, mask=code_nulls[:, t] if code_nulls[:, t].any() else None).cast(stored_types[t])
         if model.row_ledger:  # without: every bound is the column's (FittedModel.row_ledger)
             columns[layout.ROW_ERR_MAX] = pa.array(arithmetic.round_up_compact(row_max, ledger_bits))
             columns[layout.ROW_ERR_L2] = pa.array(arithmetic.round_up_compact(row_l2, ledger_bits))
@@ -675,4 +704,5 @@ def encode_pass(stream: Stream, model: FittedModel, writer: ArchiveWriter, *, bl
             reserved = None
         writer.write_rows(table, first)
         rows += b
-    return EncodeResult(ledger, cells.finish(), fingerprint, rows, corrections_count, profile=profile)
+    return EncodeResult(ledger, cells.finish(), fingerprint, rows, corrections_count, profile=profile,
+                        null_codes=null_count)

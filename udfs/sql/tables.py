@@ -139,6 +139,10 @@ def scan_sql(reader: ArchiveReader, columns: Any = None, bounds: str = "row",
         if s in with_cells:
             over_v.append(f"WHEN __ch{s} THEN __cv{s}")
             over_b.append(f"WHEN __ch{s} THEN 0.0")
+        if np.isfinite(model.residual_step[j]):
+            # a NULL code is a NULL cell (encode pass): NULL, bound 0
+            over_v.append(f"WHEN __q{s} IS NULL THEN NULL")
+            over_b.append(f"WHEN __q{s} IS NULL THEN 0.0")
         if over_v:
             outer_val = f"CASE {' '.join(over_v)} ELSE {outer_val} END"
             outer_bound = f"CASE {' '.join(over_b)} ELSE {outer_bound} END"

@@ -33,8 +33,8 @@ import pyarrow as pa
 from ..errors import InvalidInputError, UnknownColumnError
 from . import arithmetic, layout, row_differences
 from .integrity import damaged, read_parquet_sql, read_small_table, sealed_rows_sql
-from .sql_rebuild import basis_value_sql
-from .sql_text import checked_condition, quote_identifier
+from .sql_rebuild import basis_value_sql, double_list
+from .sql_text import checked_condition, quote_identifier, sql_literal
 
 __all__ = ["BLOCKS", "BlockSums", "aggregate", "covariance", "correlation", "FUNCS",
            "rows_source_sql", "check_where", "check_result_names", "pack_blocks", "unpack_blocks"]
@@ -528,10 +528,25 @@ def _scan_partials(reader, con, names, col_idx, by, where, row_range):
     items += [f"sum({e}) AS __f{t}" for t, e in enumerate(f)]
     items += [f"sum(abs({e})) AS __a{t}" for t, e in enumerate(f)]
     basis_slot = {reader.model.basis_names[t]: t for t in range(c)}
+    # NULL codes are NULL cells (encode pass): the sums skip their codes; their stored value
+    # (offset + basis . weights) is taken back out as an override, as for an exact NULL cell
+    null_coded = coded & reader.model.may_hold_nulls[col_idx]
+    f_list = f"[{', '.join(f)}]::DOUBLE[{c}]" if c else None
+    f_abs_list = f"[{', '.join(f'abs({e})' for e in f)}]::DOUBLE[{c}]" if c else None
     for s in range(q):
         if coded[s]:
             code = code_of(s)
             items += [f"sum({code})::DOUBLE AS __q{s}", f"sum(abs({code}))::DOUBLE AS __qa{s}"]
+        if null_coded[s]:
+            j = int(col_idx[s])
+            lin = sql_literal(float(reader.model.offset[j]))
+            mag = sql_literal(abs(float(reader.model.offset[j])))
+            if c:
+                lin += f" + array_inner_product({f_list}, {double_list(reader.model.weights[:, j])})"
+                mag += f" + array_inner_product({f_abs_list}, {double_list(np.abs(reader.model.weights[:, j]))})"
+            null_rows = f"FILTER (WHERE {code} IS NULL)"
+            items += [f"count(*) {null_rows} AS __qn{s}", f"sum({lin}) {null_rows} AS __qx{s}",
+                      f"sum({mag}) {null_rows} AS __qm{s}"]
         if is_basis[s]:
             col = f"CAST({quote_identifier(names[s])} AS DOUBLE)"
             items += [f"sum({col}) AS __bs{s}", f"count({col}) AS __bc{s}", f"sum(abs({col})) AS __ba{s}"]
@@ -554,6 +569,13 @@ def _scan_partials(reader, con, names, col_idx, by, where, row_range):
         if coded[s]:
             part.q_sum[:, s] = np.nan_to_num(num(f"__q{s}"))
             part.q_abs[:, s] = np.nan_to_num(num(f"__qa{s}"))
+        if null_coded[s]:
+            nulls = np.nan_to_num(num(f"__qn{s}"))
+            part.corr[:, s] -= np.nan_to_num(num(f"__qx{s}"))
+            mag = np.nan_to_num(num(f"__qm{s}"))
+            part.ov_abs[:, s] += np.where(np.isfinite(mag), mag, 0.0)
+            part.ov_cells[:, s] += nulls
+            part.ov_nulls[:, s] += nulls
         if is_basis[s]:
             t = basis_slot[names[s]]
             values = main.column(f"__bs{s}")

@@ -226,6 +226,11 @@ MANIFEST_SCHEMA = Record(
         # False: the row files carry no row ledger (absent: they do, as every archive written
         # before it; model.FittedModel.row_ledger)
         "row_ledger": Flag(),
+        # True: some NULL cells of columns with residual codes are stored as NULL codes in
+        # the row files, not in cells.parquet (absent: none are). Readers serve both forms
+        # alike (model.FittedModel.null_codes); the entry makes a reader that predates NULL
+        # codes refuse the archive (an unknown entry) instead of misreading them.
+        "null_codes": Flag(),
     },
 )
 
@@ -293,6 +298,11 @@ def older_format_rules(manifest: dict[str, Any], path: Any) -> None:
     Archives written before the manifest's ``row_ledger`` entry carry the row ledger in
     every row file: an absent entry reads as true (``model.FittedModel.from_tables``), so
     their bounds keep using the row figures, and an append to them keeps writing them.
+
+    Archives written before NULL residual codes (no ``null_codes`` entry) hold every NULL
+    cell in cells.parquet; they read as they are (a reader serves a NULL code and a NULL
+    exact cell the same way), and an append to them may add NULL codes (it then writes the
+    entry).
     """
     if DIGEST_FIELD not in manifest:
         raise CorruptArchiveError(

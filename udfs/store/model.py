@@ -246,10 +246,13 @@ class FittedModel:
             if name not in rows.column_names:
                 continue
             column = rows.column(name)
-            signed = arithmetic.decode_codes(column.to_numpy(zero_copy_only=False)).astype(np.int64)
+            # a NULL (a NULL cell) stores the difference 0 (row_differences.carry_forward)
+            nulls = column.is_null().to_numpy(zero_copy_only=False) if column.null_count else None
+            signed = arithmetic.decode_codes(
+                column.fill_null(0).to_numpy(zero_copy_only=False)).astype(np.int64)
             codes = row_differences.undifference(signed, chunks)
             rows = rows.set_column(rows.column_names.index(name), name,
-                                   pa.array(arithmetic.encode_codes(codes)).cast(column.type))
+                                   pa.array(arithmetic.encode_codes(codes), mask=nulls).cast(column.type))
         return rows
 
     @cached_property
@@ -320,6 +323,12 @@ class FittedModel:
         return np.asarray(self.statistics[name], dtype=np.float64)
 
     @cached_property
+    def may_hold_nulls(self) -> np.ndarray:
+        """(n,) bool: the column has NULL cells (the measured ``nulls``; True before the encode
+        pass measured it). Where it is False, no residual code of the column is NULL."""
+        return self._stat("nulls", 1.0) > 0
+
+    @cached_property
     def err_max(self) -> np.ndarray:
         """(n,) the column ledger: max |x - xhat| over approximated cells, rounded up."""
         return self._stat("err_max", np.inf)
@@ -366,9 +375,26 @@ class FittedModel:
         codes = np.zeros((rows.num_rows, col_idx.size))
         for t, j in enumerate(col_idx):
             if np.isfinite(steps[t]):
-                codes[:, t] = arithmetic.decode_codes(
-                    rows.column(layout.CODE_PATTERN.format(int(j))).to_numpy(zero_copy_only=False))
+                codes[:, t] = arithmetic.decode_codes(  # a NULL code (a NULL cell): 0
+                    rows.column(layout.CODE_PATTERN.format(int(j))).fill_null(0).to_numpy(zero_copy_only=False))
         return codes
+
+    def null_codes(self, rows: pa.Table, col_idx: np.ndarray) -> np.ndarray | None:
+        """(b, q) bool: the cells of the columns ``col_idx`` (q,) whose residual code is NULL
+        in the row-file table ``rows``, i.e. NULL cells of the source (the encode pass stores
+        them so instead of as exact cells; archives written before hold none); None when
+        there are none."""
+        found = None
+        for t, j in enumerate(col_idx):
+            name = layout.CODE_PATTERN.format(int(j))
+            if not np.isfinite(self.residual_step[j]) or name not in rows.column_names:
+                continue
+            column = rows.column(name)
+            if column.null_count:
+                if found is None:
+                    found = np.zeros((rows.num_rows, col_idx.size), bool)
+                found[:, t] = column.is_null().to_numpy(zero_copy_only=False)
+        return found
 
     def rebuild_block(self, rows: pa.Table, col_idx: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """The stored values (b, q) of the columns ``col_idx`` (q,) for a row-file table of b

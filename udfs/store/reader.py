@@ -380,6 +380,12 @@ class ArchiveReader:
                 values[:, t] = column.cast(pa.float64()).fill_null(np.nan).to_numpy()
                 nulls[:, t] = column.is_null().to_numpy(zero_copy_only=False)
                 exact[:, t] = True
+        # NULL cells stored as NULL residual codes (FittedModel.null_codes): NULL, exact
+        null_codes = model.null_codes(table, col_idx)
+        if null_codes is not None:
+            values[null_codes] = np.nan
+            nulls |= null_codes
+            exact |= null_codes
         # anchor rows
         if self.anchor_lookup and b:
             order = np.argsort(model.anchor_positions, kind="stable")

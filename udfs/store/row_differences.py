@@ -78,6 +78,27 @@ def difference(codes: np.ndarray, restart: np.ndarray, previous: np.ndarray) -> 
     return out
 
 
+def carry_forward(codes: np.ndarray, nulls: np.ndarray, restart: np.ndarray,
+                  previous: np.ndarray) -> np.ndarray:
+    """``codes`` (b, k) of consecutive rows of one row file with each NULL cell (``nulls``
+    (b, k) bool) given the code of the row before it in its chunk (0 at a chunk's first row,
+    ``restart`` (b,) bool; ``previous`` (k,): the codes of the row before the first one). The
+    difference stored at a NULL cell is then 0, so it may be stored as NULL: a running sum
+    that skips NULLs decodes every other row of the chunk exactly."""
+    out = np.array(codes, dtype=np.float64, copy=True)
+    b = out.shape[0]
+    rows = np.arange(b)
+    for k in range(out.shape[1]):
+        null = nulls[:, k]
+        if not null.any():
+            continue
+        column = np.where(null & restart, 0.0, out[:, k])
+        holder = np.where(~null | restart, rows, -1)  # rows whose own code stands
+        np.maximum.accumulate(holder, out=holder)
+        out[:, k] = np.where(holder >= 0, column[np.maximum(holder, 0)], float(previous[k]))
+    return out
+
+
 def undifference(stored: np.ndarray, chunks: np.ndarray) -> np.ndarray:
     """The codes (b,) int64 of stored differences (b,) of consecutive rows, ``chunks`` (b,)
     the chunk start of each row (:func:`chunk_starts`). The rows must hold every row of each
@@ -110,8 +131,11 @@ def decoded_codes_sql(source: str, columns: list[str]) -> str:
     if not columns:
         return source
     window = f"(PARTITION BY {chunk_sql()} ORDER BY {layout.ROW_ID})"
+    # a NULL difference (a NULL cell, ``carry_forward``: its difference is 0) is skipped by
+    # the sum and stays NULL
     decoded = ", ".join(
-        f"CAST(sum({layout.code_sql(quote_identifier(c))}) OVER {window} AS BIGINT) AS {quote_identifier(c)}"
+        f"CASE WHEN {quote_identifier(c)} IS NULL THEN NULL ELSE "
+        f"CAST(sum({layout.code_sql(quote_identifier(c))}) OVER {window} AS BIGINT) END AS {quote_identifier(c)}"
         for c in columns)
     return f"(SELECT * REPLACE ({decoded}) FROM {source})"
 

@@ -144,7 +144,8 @@ def row_bound_sql(model: FittedModel, cols: np.ndarray, slots: list[int], use_an
     if c:
         mag += f" + array_inner_product(__fa, {double_list(np.max(np.abs(model.weights[:, cols]), axis=1))})"
     steps = model.residual_step[cols]
-    coded = [f"abs(CAST(__q{s} AS DOUBLE)) * {sql_literal(float(steps[t]))}"
+    # a NULL code (a NULL cell, bound 0) counts as 0 here
+    coded = [f"abs(CAST(coalesce(__q{s}, 0) AS DOUBLE)) * {sql_literal(float(steps[t]))}"
              for t, s in enumerate(slots) if np.isfinite(steps[t])]
     if coded:
         mag += f" + greatest({', '.join(coded)})" if len(coded) > 1 else f" + {coded[0]}"
