@@ -63,7 +63,8 @@ print(json.dumps(time.perf_counter() - t))
 
 def _run(python: str, code: str, *args) -> str:
     done = subprocess.run([python, "-c", code, *map(str, args)], capture_output=True, text=True, check=True)
-    return done.stdout.strip().splitlines()[-1]
+    lines = done.stdout.strip().splitlines()
+    return lines[-1] if lines else ""
 
 
 def main() -> None:
