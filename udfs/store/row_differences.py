@@ -6,10 +6,12 @@ A column flagged in ``model.Coding.difference`` keeps, in its row-file column
     d_i = q_i                 at a restart row,
     d_i = q_i - q_{i-1}       at every other row (i - 1 is the previous row of the same file),
 
-so q_i = sum of d over the rows of its chunk up to i (delta coding). NULL, NaN, +-inf and
+so q_i = sum of d over the rows of its chunk up to i (delta coding). NaN, +-inf and
 corrected cells keep the code the encode pass gave them (0 where none was usable) like
 every other row: they are stored exactly elsewhere and take part in the sums as plain
-integers, so decoding stays exact.
+integers, so decoding stays exact. A NULL cell (a NULL code) carries the code of the row
+before it in its chunk, so its difference is 0 and is stored as NULL, which the running sum
+skips (:func:`carry_forward`).
 
 **Restart rule.** A row r of a row file whose first row is f restarts a chunk when r = f or
 r is a multiple of :data:`CHUNK_ROWS`. So the chunk of row r starts at
