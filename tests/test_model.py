@@ -137,6 +137,15 @@ def _rewrite_row_file(path, change):
     write_manifest(path, manifest)
 
 
+def _cast_row_file_column(path, name: str, to: pa.DataType) -> None:
+    """Rewrite the first row file with its column ``name`` cast to ``to`` (``_rewrite_row_file``)."""
+    def cast(table):
+        i = table.schema.get_field_index(name)
+        return table.set_column(i, name, table.column(i).cast(to))
+
+    _rewrite_row_file(path, cast)
+
+
 def test_a_row_file_with_another_reserved_type_is_refused(tmp_path):
     # the row ledger is float32 by the format (arithmetic.round_up_compact): a float64 one,
     # though its values are the same, is not a file this format wrote (a fixed rank: no
@@ -145,11 +154,7 @@ def test_a_row_file_with_another_reserved_type_is_refused(tmp_path):
     rankfold.compress(_table(), path, key="id", rank=2, seed=0)
     assert ArchiveReader(path).model.row_ledger  # reads before the edit
 
-    def widen(table):
-        i = table.schema.get_field_index(layout.ROW_ERR_L2)
-        return table.set_column(i, layout.ROW_ERR_L2, table.column(i).cast(pa.float64()))
-
-    _rewrite_row_file(path, widen)
+    _cast_row_file_column(path, layout.ROW_ERR_L2, pa.float64())
     with pytest.raises(rankfold.CorruptArchiveError,
                        match=r"rows-00000.parquet stores '_rf_err_l2' as double, where the format declares float"):
         ArchiveReader(path)
@@ -279,12 +284,7 @@ def test_residual_codes_wider_than_32_bits_are_refused(tmp_path):
     path = tmp_path / "a"
     rankfold.compress(_table(), path, key="id", max_abs_error=0.05, seed=0)
     codes = [n for n in ArchiveReader(path).model.row_file_reserved() if n.startswith("_rf_q_")]
-
-    def widen(table):
-        i = table.schema.get_field_index(codes[0])
-        return table.set_column(i, codes[0], table.column(i).cast(pa.uint64()))
-
-    _rewrite_row_file(path, widen)
+    _cast_row_file_column(path, codes[0], pa.uint64())
     with pytest.raises(rankfold.CorruptArchiveError,
                        match=f"stores '{codes[0]}' as uint64, where the format declares uint8 or uint16 or uint32"):
         ArchiveReader(path)
