@@ -115,10 +115,11 @@ def predictor_trial(sample: np.ndarray, mixing: Mixing, coding: Coding, transfor
     c = mixing.weights.shape[0]
     if c == 0:
         return None
-    tried = []
+    tried, alone_cache = [], {}  # columns rounded alone measure the same under either basis
     for candidate in (coding,) if exact_basis is None else (coding, exact_basis):
         stored, arrays = sample_basis(sample, mixing, candidate, transform, score_right)
-        tried.append((choose_predictors(sample, mixing, candidate, transform.shift, stored, arrays), candidate))
+        tried.append((choose_predictors(sample, mixing, candidate, transform.shift, stored, arrays,
+                                        alone_cache), candidate))
     choice, chosen = min(tried, key=lambda pair: pair[0].basis_bytes)
     rows = sample.shape[0]
     notes = []

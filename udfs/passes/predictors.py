@@ -178,8 +178,21 @@ def _value_bytes(arrays: dict[str, pa.Array]) -> int:
     return int(sum(min(by.values()) for by in tried.values()))
 
 
+def _alone_bytes(sample: np.ndarray, shift: np.ndarray, wanted: set[tuple[int, float]],
+                 cache: dict[tuple[int, float], int]) -> None:
+    """Fill ``cache`` with the sample's bytes of column j rounded alone (its shift as the
+    prediction) at step s, for every (j, s) of ``wanted`` not in it yet: one trial for all."""
+    missing = sorted(wanted - set(cache))
+    arrays = {f"a{k}": pa.array(_stored_codes(sample[:, [j]] - shift[j], np.array([step]))[:, 0])
+              for k, (j, step) in enumerate(missing)}
+    sizes = _code_bytes(arrays)
+    for k, key in enumerate(missing):
+        cache[key] = sizes[f"a{k}"]
+
+
 def choose_predictors(sample: np.ndarray, mixing: Mixing, coding: Coding, shift: np.ndarray,
-                      stored_basis: np.ndarray, basis_arrays: list[pa.Array]) -> PredictorChoice:
+                      stored_basis: np.ndarray, basis_arrays: list[pa.Array],
+                      alone_cache: dict[tuple[int, float], int] | None = None) -> PredictorChoice:
     """The trial (module docstring) on ``sample`` (m, n) raw rows, NaN where NULL.
 
     ``mixing`` and ``coding`` are the fitted archive's (weights (c, n), residual steps (n,));
@@ -187,33 +200,34 @@ def choose_predictors(sample: np.ndarray, mixing: Mixing, coding: Coding, shift:
     sample's basis values as stored (NaN where missing) and ``basis_arrays`` the c Arrow arrays
     that store them. Only columns with residual codes (a finite step, not a basis column) are
     offered ``none``; dropping the basis is on offer only when every column has a finite step
-    of its own (2 t_j) so that each can be rounded alone."""
+    of its own (2 t_j) so that each can be rounded alone. ``alone_cache``: bytes of columns
+    rounded alone, by (column, step), shared between trials of the same sample (they do not
+    depend on the basis), filled here."""
     m, n = sample.shape
+    cache = {} if alone_cache is None else alone_cache
     steps = coding.residual_step
     in_basis = np.zeros(n, bool)
     if mixing.basis_columns is not None:
         in_basis[mixing.basis_columns] = True
     coded = np.flatnonzero(np.isfinite(steps) & ~in_basis)
-    lowrank = np.ones(n, bool)
+    own_step = 2.0 * coding.tolerance
+    offer_alone = bool(stored_basis.shape[1]) and np.isfinite(own_step).all() and np.all(own_step > 0)
+    wanted = {(int(j), float(steps[j])) for j in coded}
+    if offer_alone:
+        wanted |= {(j, float(own_step[j])) for j in range(n)}
+    _alone_bytes(sample, shift, wanted, cache)
     filled = arithmetic.fill_missing(stored_basis, mixing.fill)
     predicted = arithmetic.approximate(filled, mixing.weights[:, coded], mixing.offset[coded])
-    candidates = {}
-    for t, j in enumerate(coded):
-        candidates[f"l{j}"] = pa.array(_stored_codes(sample[:, [j]] - predicted[:, [t]], steps[[j]])[:, 0])
-        candidates[f"n{j}"] = pa.array(_stored_codes(sample[:, [j]] - shift[j], steps[[j]])[:, 0])
-    sizes = _code_bytes(candidates)
+    low = _code_bytes({f"l{j}": pa.array(_stored_codes(sample[:, [j]] - predicted[:, [t]], steps[[j]])[:, 0])
+                       for t, j in enumerate(coded)})
+    lowrank = np.ones(n, bool)
     coded_bytes = 0
     for j in coded:
-        lowrank[j] = sizes[f"l{j}"] <= sizes[f"n{j}"]
-        coded_bytes += min(sizes[f"l{j}"], sizes[f"n{j}"])
+        alone_j = cache[int(j), float(steps[j])]
+        lowrank[j] = low[f"l{j}"] <= alone_j
+        coded_bytes += min(low[f"l{j}"], alone_j)
     basis_bytes = coded_bytes + _value_bytes({f"b{k}": a for k, a in enumerate(basis_arrays)})
-    alone = None
-    own_step = 2.0 * coding.tolerance
-    if stored_basis.shape[1] and np.isfinite(own_step).all() and np.all(own_step > 0):
-        reused = {f"n{j}": sizes[f"n{j}"] for j in coded if abs(steps[j] - own_step[j]) <= 0}
-        fresh = {f"a{j}": pa.array(_stored_codes(sample[:, [j]] - shift[j], own_step[[j]])[:, 0])
-                 for j in range(n) if f"n{j}" not in reused}
-        alone = int(sum(reused.values()) + sum(_code_bytes(fresh).values()))
+    alone = int(sum(cache[j, float(own_step[j])] for j in range(n))) if offer_alone else None
     return PredictorChoice(lowrank, int(basis_bytes), alone, m)
 
 
