@@ -28,7 +28,7 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from ..errors import InvalidInputError, SourceChangedError
+from ..errors import CorruptArchiveError, InvalidInputError, SourceChangedError
 from ..store import arithmetic, layout, row_differences
 from ..store.model import FittedModel, Mixing
 from ..store.table_schemas import CELLS_SCHEMA, check_row_schema, relative_rms
@@ -538,10 +538,10 @@ class _DifferenceCarry:
         if writer.starts_file():
             self.file_first = first
         elif first != self.next_row:
-            raise InvalidInputError(
-                f"The rows from {first} on continue a row file whose chunk this encode pass did not "
-                "write (difference-coded codes need the previous row). This is a defect of rankfold: "
-                "please report it.")
+            raise CorruptArchiveError(  # as the writers' other self-checks (table_schemas)
+                f"rankfold was about to write rows from {first} on into a row file whose previous rows "
+                "this encode pass did not code (difference-coded codes need the previous row); nothing "
+                "was committed. This is a defect of rankfold: please report it.")
         rows = np.arange(first, first + b, dtype=np.int64)
         restart = row_differences.chunk_starts(rows, self.file_first) == rows
         previous = self.previous if self.previous is not None else np.zeros(self.slots.size)
