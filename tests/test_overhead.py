@@ -342,11 +342,11 @@ def test_transform_fields_equal_to_the_statistics_are_stored_once(tmp_path):
 
 
 def test_a_columns_table_holding_every_value_reads_as_it_is(small_archive):
-    from rankfold.udfs.store.model import FittedModel
+    from rankfold.udfs.store.table_schemas import unpack_columns_table
 
     table = small_archive.column_ledger()  # filled: every value present, as written before
     assert all(table.column(n).null_count == 0 for n in ("shift", "scale", "ledger_scale"))
-    assert FittedModel.filled_columns_table(table).equals(table)
+    assert unpack_columns_table(table, "columns.parquet").equals(table)
 
 
 @pytest.mark.parametrize("runs_in", ["rows", "columns"])

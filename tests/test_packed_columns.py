@@ -30,6 +30,7 @@ from rankfold.udfs.store.table_schemas import (
     COLUMNS_SCHEMA,
     PACKED_NUMBERS,
     check_schema,
+    _filled,
     columns_schema,
     is_packed,
     pack_columns_table,
@@ -107,7 +108,8 @@ def test_unpacking_gives_back_the_table_of_one_field_per_number(wide):
     assert "position" not in packed.column_names
     back = unpack_columns_table(packed, "columns.parquet")
     check_schema(back.schema, columns_schema(), "columns.parquet")
-    assert _cells(back) == _cells(wide)
+    # a NULL shift, scale or ledger_scale means "the same as mean / std" (REPEATED): read filled
+    assert _cells(back) == _cells(_filled(wide))
     assert np.array_equal(back.column("rel_rms").to_numpy(), wide.column("rel_rms").to_numpy(), equal_nan=True)
 
 
@@ -135,7 +137,7 @@ def test_derived_fields_are_stored_as_null_and_nothing_else_is(tmp_path):
     assert [row[len(PACKED_NUMBERS):] for row in numbers] == [[1.0], [2.0], [3.0]]
     # and the real writer writes it back as it was
     write_small_table(tmp_path / "c.parquet", pack_columns_table(wide))
-    assert _cells(unpack_columns_table(pq.read_table(tmp_path / "c.parquet"), "c")) == _cells(wide)
+    assert _cells(unpack_columns_table(pq.read_table(tmp_path / "c.parquet"), "c")) == _cells(_filled(wide))
 
 
 def test_a_packed_table_with_lists_of_another_length_is_refused(tmp_path):
@@ -199,7 +201,7 @@ def test_both_forms_give_the_same_model_and_sql_gives_python_s_ledger(tmp_path, 
                   params=[str(archive.path)]).to_arrow_table()
     python = reader.columns_table.select(sql.column_names)
     for name in sql.column_names:
-        if name == "ledger_scale":  # filled from std where stored once (model.REPEATED)
+        if name == "ledger_scale":  # filled from std where stored once (table_schemas.REPEATED)
             python = python.set_column(python.schema.get_field_index(name), name,
                                        pc.coalesce(python.column(name), python.column("std")))
     assert _cells(sql.cast(python.schema)) == _cells(python)

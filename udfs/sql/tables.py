@@ -37,12 +37,11 @@ from ..errors import InvalidInputError
 from ..store import aggregate as agg
 from ..store import layout
 from ..store.integrity import read_parquet_sql
-from ..store.model import REPEATED
 from ..store.reader import ArchiveReader
 from ..store.row_differences import signed_code_sql
 from ..store.sql_rebuild import basis_value_sql, derived_value_sql, row_bound_sql, served_sql, stored_bound_sql
 from ..store.sql_text import quote_identifier
-from ..store.table_schemas import PACKED_NUMBERS
+from ..store.table_schemas import PACKED_NUMBERS, REPEATED
 
 __all__ = ["scan_sql", "table_sql", "column_errors_sql", "row_errors_sql", "ResultCache",
            "sweep_spools"]
@@ -186,7 +185,7 @@ def column_errors_sql(reader: ArchiveReader) -> str:
     if reader.columns_packed:  # the stored form of table_schemas.pack_columns_table
         return f"SELECT {', '.join(_unpacked_sql(wanted))} FROM {read_parquet_sql([path], file_row_number=True)}"
     have = set(reader.columns_table.column_names)
-    # shift, scale and ledger_scale are stored once where they repeat mean or std (model.REPEATED)
+    # shift, scale and ledger_scale are stored once where they repeat mean or std (table_schemas.REPEATED)
     cols = ", ".join(f"coalesce({n}, {REPEATED[n]}) AS {n}" if n in REPEATED else n for n in wanted if n in have)
     return f"SELECT {cols} FROM {read_parquet_sql([path])}"
 

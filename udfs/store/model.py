@@ -30,7 +30,6 @@ from typing import Any
 
 import numpy as np
 import pyarrow as pa
-import pyarrow.compute as pc
 
 from ..errors import CorruptArchiveError
 from . import arithmetic, layout, row_differences
@@ -111,27 +110,6 @@ class Coding:
     @classmethod
     def plain(cls, width: int, basis: int) -> "Coding":
         return cls(np.full(width, np.inf), np.full(width, np.nan), np.full(basis, np.nan))
-
-
-# Fields of the columns table that the standardize transform makes equal to a measured one:
-# stored as NULL where equal (bit for bit) to it, filled back on read. Measured on the
-# 2,000 x 50 table of benchmarks/overhead.py: columns.parquet 7,769 -> 6,582 bytes.
-REPEATED = {"shift": "mean", "scale": "std", "ledger_scale": "std"}
-
-
-def repeated_fields(shift: np.ndarray, scale: np.ndarray, ledger_scale: np.ndarray,
-                    statistics: dict[str, np.ndarray]) -> dict[str, pa.Array]:
-    """``shift``, ``scale`` and ``ledger_scale`` (n,) as columns-table arrays: NULL where the
-    value equals the measured field it repeats (:data:`REPEATED`; NaN never equals), so the
-    table stores it once. ``FittedModel.filled_columns_table`` puts the value back exactly."""
-    given = {"shift": shift, "scale": scale, "ledger_scale": ledger_scale}
-    out = {}
-    for name, values in given.items():
-        values = np.asarray(values, dtype=np.float64)
-        source = statistics.get(REPEATED[name])
-        same = (np.asarray(source, dtype=np.float64) == values) if source is not None else np.zeros(values.shape, bool)
-        out[name] = pa.array(values, pa.float64(), mask=same)
-    return out
 
 
 def _kind(type_name: str) -> str:
@@ -448,7 +426,7 @@ class FittedModel:
             "position": np.arange(self.width, dtype=np.int32),
             "type": self.types,
             "role": np.where(self.in_basis, "basis", "derived").tolist(),
-            **repeated_fields(self.shift, self.scale, self.ledger_scale, stats),
+            "shift": self.shift, "scale": self.scale, "ledger_scale": self.ledger_scale,
             "offset": self.offset,
             "weights": list(np.ascontiguousarray(self.weights.T)),
             **{n: stats[n] for n in STATISTICS if n in stats},  # a field missing is refused below
@@ -473,19 +451,6 @@ class FittedModel:
         return {layout.COLUMNS: columns, layout.ANCHORS: anchors}
 
     # -- the decoder -------------------------------------------------------------------------
-    @staticmethod
-    def filled_columns_table(columns: pa.Table) -> pa.Table:
-        """The columns table with the fields :func:`repeated_fields` left NULL filled in:
-        ``shift`` from ``mean``, ``scale`` and ``ledger_scale`` from ``std`` (tables written
-        before hold every value, and are returned as they are)."""
-        for name, source in REPEATED.items():
-            field = columns.column(name)
-            if field.null_count:
-                i = columns.schema.get_field_index(name)
-                filled = pc.coalesce(field, columns.column(source))
-                columns = columns.set_column(i, columns.schema.field(i), filled)
-        return columns
-
     @classmethod
     def from_tables(cls, manifest: dict[str, Any], columns: pa.Table, anchors: pa.Table,
                     row_schema: pa.Schema | None = None, directory: Path | None = None) -> "FittedModel":
@@ -522,7 +487,6 @@ class FittedModel:
                         float32_scores=float32,
                         difference=(columns.column("difference").fill_null(False).to_numpy(zero_copy_only=False)
                                     if "difference" in columns.column_names else None))
-        columns = cls.filled_columns_table(columns)
         statistics = {n: columns.column(n).to_numpy(zero_copy_only=False) for n in STATISTICS}
         types = {f["name"]: f["type"] for f in manifest["schema"]}
         positions = anchors.column(layout.ROW_ID).to_numpy()

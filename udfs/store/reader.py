@@ -24,7 +24,7 @@ from .integrity import (RowFileSeal, check_tables, damaged, open_row_file, read_
                         verified_metadata)
 from .manifest import DIGEST_FIELD, check_files, read_manifest
 from .manifest_schema import holds_table, older_row_file_rules
-from .model import REPEATED, FittedModel
+from .model import FittedModel
 from .table_schemas import CELLS_SCHEMA, anchors_schema, check_schema, is_packed, unpack_columns_table
 
 __all__ = ["ArchiveReader", "Rebuilt"]
@@ -132,8 +132,6 @@ class ArchiveReader:
         #: written since; the table below is in the form of one field per number either way
         self.columns_packed = is_packed(stored.schema)
         self.columns_table = unpack_columns_table(stored, self.path / layout.table_file(m, layout.COLUMNS))
-        if set(REPEATED) <= set(self.columns_table.column_names):  # else refused below, by its schema
-            self.columns_table = FittedModel.filled_columns_table(self.columns_table)
         anchors = (read_small_table(self.path, m, layout.table_file(m, layout.ANCHORS))
                    if holds_table(m, layout.ANCHORS) else anchors_schema(self.numeric_columns, False).empty_table())
         cells = (read_small_table(self.path, m, layout.table_file(m, layout.CELLS))
