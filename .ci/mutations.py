@@ -129,6 +129,11 @@ MUTATIONS = {
         "            path = self.writer.commit(self.manifest, self.files, at_most=goal.target_bytes)",
         "            path = self.writer.commit(self.manifest, self.files, at_most=None)",
         ["tests/test_sizes.py"]),
+    "the number of basis columns not measured (the size model's pick kept)": (
+        "udfs/passes/basis_size.py",
+        "    return min(c for c, b in measured.items() if b <= (1.0 + EVEN) * least), measured",
+        "    return first, measured",
+        ["tests/test_basis_size.py"]),
     "row-difference chunks of SQL ignore where row files start": (
         "udfs/store/row_differences.py",
         '    return f"greatest({r} // {CHUNK_ROWS} * {CHUNK_ROWS}, {r} - {p})"',

@@ -88,7 +88,9 @@ def test_a_table_without_low_rank_structure_keeps_no_basis(tmp_path):
     x = rng.integers(0, 6, size=(8000, 10)).astype(float)
     archive = rankfold.compress(x, tmp_path / "a.rankfold", max_std_error=0.01)
     assert archive.manifest["method"]["n_columns"] == 0
-    assert "rounded alone measured smaller" in archive.manifest["method"]["rank_reason"]
+    reason = archive.manifest["method"]["rank_reason"]
+    # dropped by measurement: by the number of basis columns (basis_size) or by the trial
+    assert "0 basis columns by measured trial" in reason or "rounded alone measured smaller" in reason
     _within(archive, x, 0.01 * x.std(axis=0) * (1 + 1e-9))
 
 

@@ -12,13 +12,16 @@ import dataclasses
 
 import numpy as np
 
+from ..store import arithmetic
 from ..store.arithmetic import trim_mantissa
 from ..store.model import Coding, Mixing
 from .encode import stored_basis
 from .predictors import choose_differences, choose_predictors, values_bytes
 from .profile import ColumnProfile, Transform
+from .targets import CELL_BYTES
 
-__all__ = ["coding_for_plan", "trim_factors", "sample_basis", "predictor_trial", "with_row_differences"]
+__all__ = ["coding_for_plan", "trim_factors", "sample_basis", "predictor_trial", "with_row_differences",
+           "measured_bytes"]
 
 
 def coding_for_plan(plan, mixing, build) -> Coding | None:
@@ -94,6 +97,30 @@ def with_row_differences(choice, coding: Coding, numeric: list[str], sample: np.
     else:
         flags = np.isin(np.array(numeric, dtype=object), np.array(list(choice), dtype=object)) & coded
     return dataclasses.replace(coding, difference=flags) if flags.any() else coding
+
+
+def measured_bytes(sample: np.ndarray, mixing: Mixing, coding: Coding, transform: Transform,
+                   anchor_values: np.ndarray, table_rows: int, alone_cache: dict | None = None) -> float:
+    """Bytes an archive of ``table_rows`` rows with this CUR ``mixing`` and ``coding`` is
+    estimated to take, from ``sample`` (m, n) raw rows (NaN where NULL): the sample's basis
+    values as stored and each coded column's codes under the predictor the trial would keep
+    (``predictors.choose_predictors``, the real Parquet writer), plus ``targets.CELL_BYTES``
+    per sampled cell stored exactly (a column without codes, beyond its tolerance), scaled by
+    ``table_rows / m``; plus the measured bytes of the weights and ``anchor_values``, which no
+    sample shows. Steers the number of basis columns (``basis_size``); bounds never rest on it."""
+    m, n = sample.shape
+    stored, arrays = sample_basis(sample, mixing, coding, transform, None)
+    choice = choose_predictors(sample, mixing, coding, transform.shift, stored, arrays, alone_cache)
+    uncoded = ~np.isfinite(coding.residual_step) & np.isfinite(coding.tolerance)
+    uncoded[mixing.basis_columns] = False
+    cells = 0
+    if uncoded.any():
+        predicted = arithmetic.approximate(arithmetic.fill_missing(stored, mixing.fill),
+                                           mixing.weights[:, uncoded], mixing.offset[uncoded])
+        with np.errstate(invalid="ignore"):
+            cells = int(np.sum(np.abs(sample[:, uncoded] - predicted) > coding.tolerance[uncoded]))
+    return (choice.basis_bytes + cells * CELL_BYTES) * table_rows / max(m, 1) \
+        + values_bytes(mixing.weights, anchor_values)
 
 
 def predictor_trial(sample: np.ndarray, mixing: Mixing, coding: Coding, transform: Transform,

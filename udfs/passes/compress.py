@@ -31,6 +31,7 @@ from ..version import __version__
 from ..errors import (EmptySourceError, InvalidInputError, NoNumericColumnsError,
                       SizeTargetMissedError, SourceChangedError)
 from ..factor import cur as _cur
+from ..factor import selection
 from ..factor.svd import gavish_donoho_rank
 from ..store import layout, remote, versions
 from ..store.aggregate import BlockSums
@@ -49,8 +50,8 @@ from .select import AnchorRows, AnchorScan, anchor_partial, merge_anchor_partial
 from .refit import KAPPA, OutlierScreen, refit_left_out
 from .encode import EncodeResult, column_error_figures, column_statistics, encode_pass
 from .predictors import SampleRuns, run_rows
-from .coding import coding_for_plan, predictor_trial, trim_factors, with_row_differences
-from . import sizes, targets
+from .coding import coding_for_plan, measured_bytes, predictor_trial, trim_factors, with_row_differences
+from . import basis_size, sizes, targets
 
 __all__ = ["compress"]
 
@@ -450,7 +451,8 @@ def _compress(src, new_writer, opts: CompressPlan) -> Path | str:
     goal = _Goal.from_options(opts, numeric, profile.std)
     goal.serving(src.schema, numeric, profile)
     inputs = _Inputs(numeric, passthrough, rows, profile, fingerprint, transform, sketch, read)
-    build = _first_build(opts, goal, inputs, sample)
+    model = _tolerance_model(opts, opts.method or "cur", inputs, sample) if goal.max_abs_error is not None else None
+    build = _measured_basis(_first_build(opts, goal, inputs, sample, model), opts, goal, inputs, model, passes)
     smallest = None  # the smallest archive measured exactly (target_bytes), manifest included
     for attempt in range(_MAX_ATTEMPTS):
         written = _write(src, new_writer, opts, inputs, build, passes)
@@ -640,8 +642,10 @@ class _Goal:
                       build.coding_plan, build.reason + f"; retried with {c} columns")
 
 
-def _first_build(opts, goal, inputs: _Inputs, sample) -> _Build:
-    rows, width, sketch, profile = inputs.rows, len(inputs.numeric), inputs.sketch, inputs.profile
+def _first_build(opts, goal, inputs: _Inputs, sample, model=None) -> _Build:
+    """The first attempt's sizes and coding plan, from the size model (``model``: the
+    ``_tolerance_model`` of a ``max_abs_error`` goal)."""
+    rows, width, sketch = inputs.rows, len(inputs.numeric), inputs.sketch
     transform, numeric, passthrough = inputs.transform, inputs.numeric, inputs.passthrough
     opts.check_rows(rows, width)
     method = opts.method or "cur"
@@ -660,16 +664,9 @@ def _first_build(opts, goal, inputs: _Inputs, sample) -> _Build:
         return _Build(plan.method, plan.rank, plan.columns,
                       min(2 * plan.columns, rows) if plan.method == "cur" else 0, plan, plan.reason)
     if goal.max_abs_error is not None:
-        if method == "cur":
-            predicted = targets.PredictedResiduals.of_cur(sketch.r, transform.scale, rows)
-        else:
-            predicted = targets.PredictedResiduals.of_svd(sketch.spectrum, transform.scale, rows)
-        exact = np.array([sample.get(n, 8.0) for n in numeric])
-        limit = min(width - 1, rows, max(1, width // 2)) if method == "cur" else min(width, rows, max(1, width // 2))
+        predicted, coding, limit = model
         plan = targets.plan_for_tolerance(
-            predicted, goal.stored_tolerance(),
-            targets.ToleranceCoding(opts.residual, opts.basis_precision, profile.std, exact),
-            opts.basis_sizes(method, width, max(limit, 0)),
+            predicted, goal.stored_tolerance(), coding, opts.basis_sizes(method, width, limit),
             reason=("given size; residual coded to meet the tolerance" if opts.fixed_basis
                     else "fewest predicted bytes at the tolerance"))
         c = plan.columns
@@ -689,6 +686,67 @@ def _first_build(opts, goal, inputs: _Inputs, sample) -> _Build:
                       "fewest columns whose predicted error meets rel_error")
     rank, c, r, why = _sizes(opts, rows, width, sketch.spectrum)
     return _Build(method, rank, c, r, None, why)
+
+
+def _tolerance_model(opts, method: str, inputs: _Inputs, sample):
+    """The size model under a tolerance: the predicted residuals of ``method``, the coding
+    (with ``sample``'s measured bytes per exactly stored value), and the most basis columns
+    (or scores) a plan may have."""
+    rows, width, sketch, transform = inputs.rows, len(inputs.numeric), inputs.sketch, inputs.transform
+    if method == "cur":
+        predicted = targets.PredictedResiduals.of_cur(sketch.r, transform.scale, rows)
+    else:
+        predicted = targets.PredictedResiduals.of_svd(sketch.spectrum, transform.scale, rows)
+    exact = np.array([sample.get(n, 8.0) for n in inputs.numeric])
+    limit = min(width - 1, rows, max(1, width // 2)) if method == "cur" else min(width, rows, max(1, width // 2))
+    coding = targets.ToleranceCoding(opts.residual, opts.basis_precision, inputs.profile.std, exact)
+    return predicted, coding, max(limit, 0)
+
+
+def _measured_basis(build: _Build, opts, goal, inputs: _Inputs, model, passes) -> _Build:
+    """The size model's number of basis columns checked by measured trial on the profile
+    pass's sample of runs of rows (``basis_size.climb``, ``coding.measured_bytes``); the build
+    unchanged when the model's pick measures smallest, or when nothing is on offer: a given
+    basis size, the SVD method, a link that reads anchor rows (each size would cost a pass
+    over the rows), no sample."""
+    trial = passes.trial_rows
+    if (goal.max_abs_error is None or build.method != "cur" or opts.fixed_basis or opts.link != "cx"
+            or build.coding_plan is None or trial is None or not trial.shape[0]):
+        return build
+    trial = basis_size.search_sample(trial, passes.trial_starts)
+    predicted, coding, limit = model
+    orders: list[np.ndarray] = []  # pivoted QR orders are nested: one order, sliced, serves every size
+    tolerance, transform, rows, width = goal.stored_tolerance(), inputs.transform, inputs.rows, len(inputs.numeric)
+    builds: dict[int, _Build] = {build.n_columns: build}
+    alone_cache: dict = {}
+
+    def measure(c: int) -> float:
+        if c not in builds:
+            plan = targets.plan_for_tolerance(predicted, tolerance, coding, [((c + 1) // 2, c)], reason=build.reason)
+            builds[c] = _Build("cur", plan.rank, c, opts.anchor_count(c, rows), plan, build.reason)
+        if c == 0:
+            mixing = Mixing(np.zeros((0, width)), transform.shift.copy(), np.zeros(0), np.zeros(0, np.int64))
+            anchor_values = np.zeros((0, width))
+        else:  # the first fit of ``_write``, with the same seed
+            choice = None
+            if opts.column_method == "pivoted_qr":
+                if not orders or orders[0].size < c:
+                    orders[:] = [selection.pivoted_qr_order(inputs.sketch.r, max(c, 2 * orders[0].size if orders else c))]
+                choice = _cur.ColumnChoice(orders[0][:c], None)
+            mixing, anchors, _ = _fit_cur(passes, opts, builds[c], inputs, inputs.sketch, transform,
+                                          np.random.default_rng(opts.seed), False, choice)
+            anchor_values = anchors.values
+        plan_coding = coding_for_plan(builds[c].coding_plan, mixing, builds[c])
+        mixing = trim_factors(mixing, plan_coding.tolerance, inputs.profile)
+        return measured_bytes(trial, mixing, plan_coding, transform, anchor_values, rows, alone_cache)
+
+    chosen, measured = basis_size.climb(build.n_columns, limit, measure)
+    if chosen == build.n_columns:
+        return build
+    tried = ", ".join(f"{c}: {int(b)}" for c, b in sorted(measured.items()))
+    return dataclasses.replace(
+        builds[chosen], reason=f"{build.reason}; {chosen} basis columns by measured trial, not the model's "
+        f"{build.n_columns} (bytes estimated from a sample of {trial.shape[0]} rows, by basis columns: {tried})")
 
 
 class _Written:
@@ -841,18 +899,20 @@ def _no_anchors(width: int) -> AnchorRows:
     return AnchorRows(np.zeros(0, np.int64), np.zeros((0, width)), np.zeros((0, width), bool))
 
 
-def _fit_cur(passes, opts, build, inputs: _Inputs, sketch, screen, rng, refit: bool):
+def _fit_cur(passes, opts, build, inputs: _Inputs, sketch, screen, rng, refit: bool, choice=None):
     """Basis columns, anchor rows and raw-unit mixing of one CUR fit. ``screen`` is the
     transform used to read rows (the plain transform, or an OutlierScreen for a refit);
     a ``refit`` keys the row choice's random numbers (with the seed and each row's position)
-    apart from the first fit's.
+    apart from the first fit's. ``choice``: the columns, when already chosen (else by
+    ``opts.column_method``).
 
     The ``cx`` link (C^+ Z) uses no rows: it keeps no anchor rows and spends no pass on them."""
     numeric, rows = inputs.numeric, inputs.rows
     replace = opts.sample_with_replacement
     rank = max(1, build.rank)
-    choice = _cur.choose_columns(opts.column_method, sketch.r, sketch.spectrum, rank, build.n_columns,
-                                 rng, replace=replace)
+    if choice is None:
+        choice = _cur.choose_columns(opts.column_method, sketch.r, sketch.spectrum, rank, build.n_columns,
+                                     rng, replace=replace)
     if opts.link == "cx":
         anchors = _no_anchors(len(numeric))
     else:
