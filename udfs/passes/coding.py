@@ -100,17 +100,20 @@ def with_row_differences(choice, coding: Coding, numeric: list[str], sample: np.
 
 
 def measured_bytes(sample: np.ndarray, mixing: Mixing, coding: Coding, transform: Transform,
-                   anchor_values: np.ndarray, table_rows: int, alone_cache: dict | None = None) -> float:
+                   anchor_values: np.ndarray, table_rows: int, alone_cache: dict | None = None,
+                   layouts: dict | None = None) -> tuple[float, dict]:
     """Bytes an archive of ``table_rows`` rows with this CUR ``mixing`` and ``coding`` is
     estimated to take, from ``sample`` (m, n) raw rows (NaN where NULL): the sample's basis
     values as stored and each coded column's codes under the predictor the trial would keep
     (``predictors.choose_predictors``, the real Parquet writer), plus ``targets.CELL_BYTES``
     per sampled cell stored exactly (a column without codes, beyond its tolerance), scaled by
     ``table_rows / m``; plus the measured bytes of the weights and ``anchor_values``, which no
-    sample shows. Steers the number of basis columns (``basis_size``); bounds never rest on it."""
+    sample shows. Steers the number of basis columns (``basis_size``); bounds never rest on it.
+    Returns the bytes and the layout of each coded column's codes; ``layouts`` (such layouts
+    of an earlier call) are tried alone for the columns they name (``choose_predictors``)."""
     m, n = sample.shape
     stored, arrays = sample_basis(sample, mixing, coding, transform, None)
-    choice = choose_predictors(sample, mixing, coding, transform.shift, stored, arrays, alone_cache)
+    choice = choose_predictors(sample, mixing, coding, transform.shift, stored, arrays, alone_cache, layouts)
     uncoded = ~np.isfinite(coding.residual_step) & np.isfinite(coding.tolerance)
     uncoded[mixing.basis_columns] = False
     cells = 0
@@ -119,8 +122,9 @@ def measured_bytes(sample: np.ndarray, mixing: Mixing, coding: Coding, transform
                                            mixing.weights[:, uncoded], mixing.offset[uncoded])
         with np.errstate(invalid="ignore"):
             cells = int(np.sum(np.abs(sample[:, uncoded] - predicted) > coding.tolerance[uncoded]))
-    return (choice.basis_bytes + cells * CELL_BYTES) * table_rows / max(m, 1) \
+    total = (choice.basis_bytes + cells * CELL_BYTES) * table_rows / max(m, 1) \
         + values_bytes(mixing.weights, anchor_values)
+    return total, choice.layouts
 
 
 def predictor_trial(sample: np.ndarray, mixing: Mixing, coding: Coding, transform: Transform,

@@ -719,6 +719,7 @@ def _measured_basis(build: _Build, opts, goal, inputs: _Inputs, model, passes) -
     tolerance, transform, rows, width = goal.stored_tolerance(), inputs.transform, inputs.rows, len(inputs.numeric)
     builds: dict[int, _Build] = {build.n_columns: build}
     alone_cache: dict = {}
+    layouts: dict = {}
 
     def measure(c: int) -> float:
         if c not in builds:
@@ -731,14 +732,19 @@ def _measured_basis(build: _Build, opts, goal, inputs: _Inputs, model, passes) -
             choice = None
             if opts.column_method == "pivoted_qr":
                 if not orders or orders[0].size < c:
-                    orders[:] = [selection.pivoted_qr_order(inputs.sketch.r, max(c, 2 * orders[0].size if orders else c))]
+                    orders[:] = [selection.pivoted_qr_order(inputs.sketch.r, max(c, 2 * build.n_columns))]
                 choice = _cur.ColumnChoice(orders[0][:c], None)
             mixing, anchors, _ = _fit_cur(passes, opts, builds[c], inputs, inputs.sketch, transform,
                                           np.random.default_rng(opts.seed), False, choice)
             anchor_values = anchors.values
         plan_coding = coding_for_plan(builds[c].coding_plan, mixing, builds[c])
         mixing = trim_factors(mixing, plan_coding.tolerance, inputs.profile)
-        return measured_bytes(trial, mixing, plan_coding, transform, anchor_values, rows, alone_cache)
+        # the layouts the model's pick measured smallest serve the other sizes (one write, not four)
+        total, found = measured_bytes(trial, mixing, plan_coding, transform, anchor_values, rows, alone_cache,
+                                      layouts)
+        if c == build.n_columns:
+            layouts.update(found)
+        return total
 
     chosen, measured = basis_size.climb(build.n_columns, limit, measure)
     if chosen == build.n_columns:

@@ -132,6 +132,8 @@ class PredictorChoice:
     basis_bytes: int
     alone_bytes: int | None
     sampled_rows: int = 0
+    #: the layout under which each coded column's low-rank codes measured smallest, by column
+    layouts: dict[int, ColumnLayout] = field(default_factory=dict)
 
     def drop_basis(self, rows: int, fixed_bytes: float) -> bool:
         """Whether the archive without a basis is the smaller for a table of ``rows`` rows: the
@@ -156,10 +158,26 @@ def _code_bytes(arrays: dict[str, pa.Array]) -> dict[str, int]:
     """Compressed bytes of each sampled code column under its best Parquet encoding at the row
     writer's zstd level (the level itself is chosen later, per column, by the row writer:
     ``commit.code_layouts``; trying every level here tripled the trial's time)."""
+    return {name: bytes_ for name, (bytes_, _) in _code_choices(arrays).items()}
+
+
+def _code_choices(arrays: dict[str, pa.Array], layouts: dict[str, ColumnLayout] | None = None
+                  ) -> dict[str, tuple[int, ColumnLayout]]:
+    """(bytes, layout) of each sampled code column: under its best encoding as in
+    :func:`_code_bytes`, or, for the columns ``layouts`` names, under that layout alone (one
+    file for all of them: a quarter of the writes)."""
     if not arrays:
         return {}
-    return {name: choice.sampled_bytes
-            for name, choice in choose_sample_layouts(arrays, levels=(ZSTD_LEVEL,)).items()}
+    given = {name: lay for name, lay in (layouts or {}).items() if name in arrays}
+    out = {}
+    if given:
+        for name, by in trial_sizes({n: arrays[n] for n in given}, given).items():
+            out[name] = (by[given[name]], given[name])
+    rest = {name: a for name, a in arrays.items() if name not in given}
+    if rest:
+        for name, choice in choose_sample_layouts(rest, levels=(ZSTD_LEVEL,)).items():
+            out[name] = (choice.sampled_bytes, choice.layout)
+    return out
 
 
 def values_bytes(*blocks: np.ndarray) -> int:
@@ -192,7 +210,8 @@ def _alone_bytes(sample: np.ndarray, shift: np.ndarray, wanted: set[tuple[int, f
 
 def choose_predictors(sample: np.ndarray, mixing: Mixing, coding: Coding, shift: np.ndarray,
                       stored_basis: np.ndarray, basis_arrays: list[pa.Array],
-                      alone_cache: dict[tuple[int, float], int] | None = None) -> PredictorChoice:
+                      alone_cache: dict[tuple[int, float], int] | None = None,
+                      layouts: dict[int, ColumnLayout] | None = None) -> PredictorChoice:
     """The trial (module docstring) on ``sample`` (m, n) raw rows, NaN where NULL.
 
     ``mixing`` and ``coding`` are the fitted archive's (weights (c, n), residual steps (n,));
@@ -202,7 +221,9 @@ def choose_predictors(sample: np.ndarray, mixing: Mixing, coding: Coding, shift:
     offered ``none``; dropping the basis is on offer only when every column has a finite step
     of its own (2 t_j) so that each can be rounded alone. ``alone_cache``: bytes of columns
     rounded alone, by (column, step), shared between trials of the same sample (they do not
-    depend on the basis), filled here."""
+    depend on the basis), filled here. ``layouts``: a column named there has its low-rank codes
+    measured under that layout alone (the layouts of an earlier choice, ``PredictorChoice.layouts``:
+    a cheaper trial for comparing sizes of the basis, ``basis_size``)."""
     m, n = sample.shape
     cache = {} if alone_cache is None else alone_cache
     steps = coding.residual_step
@@ -218,17 +239,17 @@ def choose_predictors(sample: np.ndarray, mixing: Mixing, coding: Coding, shift:
     _alone_bytes(sample, shift, wanted, cache)
     filled = arithmetic.fill_missing(stored_basis, mixing.fill)
     predicted = arithmetic.approximate(filled, mixing.weights[:, coded], mixing.offset[coded])
-    low = _code_bytes({f"l{j}": pa.array(_stored_codes(sample[:, [j]] - predicted[:, [t]], steps[[j]])[:, 0])
-                       for t, j in enumerate(coded)})
+    low = _code_choices({f"l{j}": pa.array(_stored_codes(sample[:, [j]] - predicted[:, [t]], steps[[j]])[:, 0])
+                         for t, j in enumerate(coded)}, {f"l{j}": lay for j, lay in (layouts or {}).items()})
     lowrank = np.ones(n, bool)
     coded_bytes = 0
     for j in coded:
         alone_j = cache[int(j), float(steps[j])]
-        lowrank[j] = low[f"l{j}"] <= alone_j
-        coded_bytes += min(low[f"l{j}"], alone_j)
+        lowrank[j] = low[f"l{j}"][0] <= alone_j
+        coded_bytes += min(low[f"l{j}"][0], alone_j)
     basis_bytes = coded_bytes + _value_bytes({f"b{k}": a for k, a in enumerate(basis_arrays)})
     alone = int(sum(cache[j, float(own_step[j])] for j in range(n))) if offer_alone else None
-    return PredictorChoice(lowrank, int(basis_bytes), alone, m)
+    return PredictorChoice(lowrank, int(basis_bytes), alone, m, {int(j): low[f"l{j}"][1] for j in coded})
 
 
 #: Row differences are kept for a column only when they measure at least this much smaller
