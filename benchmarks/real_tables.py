@@ -120,11 +120,13 @@ TABLES: dict[str, Callable[[], pa.Table]] = {
     "digits": _digits,                                # image pixels
     "sp500": _rdataset("gt", "sp500"),                # daily index prices (open/high/low/close)
     "fx": _rdataset("Ecdat", "Garch"),                # daily exchange rates, a price panel
+    "ozone": _rdataset("plyr", "ozone"),              # monthly ozone on a grid, 24 x 1728 (wide, low rank)
 }
 # the kind of each table, for the report
 KINDS = {"nci60": "expression matrix (wide)", "chicago": "daily ridership panel", "weather": "hourly weather",
          "hfi": "country panel with NULLs", "meats": "NIR spectra", "speech": "instrument readouts",
-         "digits": "image pixels", "sp500": "daily price series", "fx": "exchange-rate price panel"}
+         "digits": "image pixels", "sp500": "daily price series", "fx": "exchange-rate price panel",
+         "ozone": "ozone grid by month (wide, low rank)"}
 
 
 # -- hand methods beyond baselines.py --------------------------------------------------------------
