@@ -16,6 +16,7 @@ from __future__ import annotations
 import copy
 import dataclasses
 import datetime as _dt
+import json
 import math
 import shutil
 import tempfile
@@ -33,6 +34,7 @@ from ..errors import (EmptySourceError, InvalidInputError, NoNumericColumnsError
 from ..factor import cur as _cur
 from ..factor.svd import gavish_donoho_rank
 from ..store import layout, remote, versions
+from ..store.manifest_schema import COLUMN_TOLERANCES
 from ..store.aggregate import BlockSums
 from ..store.model import Coding, FittedModel, Mixing, mixing_for_columns, mixing_for_scores
 from ..factor.sketch import GramSketch, RowSketch
@@ -586,18 +588,26 @@ class _Goal:
                    relative, isinstance(opts.max_std_error, dict),
                    asked_abs_error=asked, asked_abs_error_per_column=isinstance(opts.max_abs_error, dict))
 
-    def recorded(self, names: list[str]) -> dict[str, Any]:
+    def recorded(self, names: list[str], tolerance: np.ndarray | None = None) -> dict[str, Any]:
         """The targets as the user asked them. The per-column tolerances max_std_error implies
         are not repeated here: ``columns.parquet`` holds every column's tolerance (measured:
-        1.5 kB of a 50-column manifest)."""
+        1.5 kB of a 50-column manifest). Nor is a per-column max_abs_error that equals, bit for
+        bit, the stored ``tolerance`` (n,) of every column it names and names every column that
+        has one: it is recorded as ``manifest_schema.COLUMN_TOLERANCES`` where that is shorter."""
         def listed(values, per_column):
             if values is None:
                 return None
             if per_column:
                 return {n: float(v) for n, v in zip(names, values) if np.isfinite(v)}
             return float(values[0])
+        absolute = listed(self.asked_abs_error, self.asked_abs_error_per_column)
+        if (isinstance(absolute, dict) and tolerance is not None
+                and len(json.dumps(absolute)) > len(json.dumps(COLUMN_TOLERANCES))  # shorter only
+                and np.array_equal(np.where(np.isfinite(tolerance), tolerance, np.inf),
+                                   np.where(np.isfinite(self.asked_abs_error), self.asked_abs_error, np.inf))):
+            absolute = COLUMN_TOLERANCES
         return {"rel_error": listed(self.rel_error, self.rel_error_per_column),
-                "max_abs_error": listed(self.asked_abs_error, self.asked_abs_error_per_column),
+                "max_abs_error": absolute,
                 "max_std_error": listed(self.max_std_error, self.max_std_error_per_column),
                 "target_bytes": self.target_bytes}
 
@@ -694,8 +704,9 @@ def _first_build(opts, goal, inputs: _Inputs, sample) -> _Build:
 class _Written:
     """One attempt written to a temporary directory, not yet committed."""
 
-    def __init__(self, writer, result, manifest, files):
+    def __init__(self, writer, result, manifest, files, tolerance=None):
         self.writer, self.result, self.manifest, self.files = writer, result, manifest, files
+        self.tolerance = tolerance  # (n,) every column's tolerance as columns.parquet holds it
         # data files as written plus an estimate of the manifest (steers target_bytes attempts;
         # the size recorded and checked is exact: ``commit``)
         self.bytes = sum(writer.size_of(f) for f in files) + sizes.manifest_allowance(manifest, files)
@@ -704,7 +715,7 @@ class _Written:
         self.writer.abort()
 
     def commit(self, goal: _Goal, attempts: int) -> Path | str:
-        self.manifest["targets"] = goal.recorded(self.manifest["numeric_columns"])
+        self.manifest["targets"] = goal.recorded(self.manifest["numeric_columns"], self.tolerance)
         self.manifest["achieved"] = {
             "bytes": int(self.bytes),  # made exact by write_manifest: every file + manifest.json
             "relative_frobenius": self.manifest["errors"]["relative_frobenius"],
@@ -816,7 +827,7 @@ def _write(src, new_writer, opts, inputs: _Inputs, build: _Build, passes: _Passe
             manifest["errors"]["note"] += (
                 "; the spectrum, and so the optimal error, is estimated from the sketch's "
                 "sample of rows; every error, and the table's norm, is measured on every row")
-        return _Written(writer, result, manifest, [p["name"] for p in writer.parts] + files)
+        return _Written(writer, result, manifest, [p["name"] for p in writer.parts] + files, model.tolerance)
     except BaseException:
         writer.abort()
         raise

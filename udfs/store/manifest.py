@@ -98,11 +98,12 @@ def sealed_manifest_text(manifest: dict[str, Any]) -> str:
     body = {k: v for k, v in written_form(manifest).items() if k != DIGEST_FIELD}
     if not isinstance(body.get("achieved"), dict) or "bytes" not in body["achieved"]:
         return manifest_text({DIGEST_FIELD: manifest_digest(body), **body})
-    achieved = body["achieved"] = manifest["achieved"] = dict(body["achieved"])
+    achieved = body["achieved"] = dict(body["achieved"])
+    recorded = manifest["achieved"] = dict(manifest["achieved"])
     data = _listed_bytes(body)
     total = data
     for _ in range(64):  # each round adds at least one digit to the figure or ends the loop
-        achieved["bytes"] = total
+        achieved["bytes"] = recorded["bytes"] = total
         text = manifest_text({DIGEST_FIELD: manifest_digest(body), **body})
         if data + len(text.encode("utf-8")) == total:
             return text

@@ -1,0 +1,189 @@
+"""The stored forms of the manifest and of the columns table (issue 14, item 3: small fixed
+overhead, nothing stored twice): each compact form reads back exactly as it was written, forms
+written before still read, and a damaged form is refused.
+
+Outside references: Python's ``json`` (RFC 8259 text) and ``base64`` (RFC 4648) modules,
+``struct`` for IEEE 754 binary64 bytes, and ``hashlib.sha256`` for the digests.
+"""
+
+from __future__ import annotations
+
+import base64
+import copy
+import hashlib
+import json
+import math
+import struct
+
+import numpy as np
+import pyarrow as pa
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+import rankfold
+from rankfold.udfs.store.manifest import DIGEST_FIELD, manifest_digest, read_manifest
+from rankfold.udfs.store.manifest_schema import (
+    COLUMN_TOLERANCES,
+    ERROR_NOTES,
+    STORED_OPTION_VALUES,
+    derived_entries,
+    written_form,
+)
+
+# names: awkward text (quotes, backslashes, unicode, digits at the end) and numbered runs
+_TEXT = st.text(alphabet=st.characters(blacklist_categories=("Cs",)), min_size=1, max_size=8)
+_RUN = st.tuples(st.sampled_from(["data.", "c", "x_", 'q"', "é", "7", ""]), st.integers(0, 120),
+                 st.integers(1, 14), st.sampled_from([0, 0, 2, 3]))
+_FLOATS = st.floats(allow_nan=False, allow_infinity=False)  # subnormals, -0.0, 1e308 included
+
+
+def _names(pieces) -> list[str]:
+    names: list[str] = []
+    for piece in pieces:
+        if isinstance(piece, str):
+            names.append(piece)
+        else:
+            prefix, first, count, width = piece
+            names.extend(f"{prefix}{k:0{width}d}" for k in range(first, first + count))
+    seen: set[str] = set()
+    return [n for n in names if not (n in seen or seen.add(n))]  # schema names are unique
+
+
+def _hex() -> st.SearchStrategy[str]:
+    return st.binary(min_size=32, max_size=32).map(lambda b: hashlib.sha256(b).hexdigest())
+
+
+@settings(max_examples=150, deadline=None, derandomize=True)
+@given(st.lists(st.one_of(_TEXT, _RUN), min_size=1, max_size=10), st.lists(_FLOATS, max_size=8),
+       st.integers(0, 5), st.lists(_hex(), min_size=1, max_size=3), st.sampled_from([0, 1, 2, "own note"]),
+       st.dictionaries(st.sampled_from(sorted(STORED_OPTION_VALUES) + ["new_option"]),
+                       st.one_of(st.none(), st.integers(0, 3), st.sampled_from(["auto", "off", "cx"]),
+                                 st.just([]), st.booleans())),
+       st.booleans())
+def test_the_stored_manifest_reads_back_exactly(pieces, spectrum, zeros, digests, note, options, same_figures):
+    names = _names(pieces)
+    schema = [{"name": n, "type": "double", "role": "numeric" if k % 3 else "exact"} for k, n in enumerate(names)]
+    numeric = [f["name"] for f in schema if f["role"] == "numeric"]
+    errors = {"relative_frobenius": 0.125, "largest_error": 1e-300,
+              "note": ERROR_NOTES[note] if isinstance(note, int) else note}
+    achieved = {"bytes": 10, "relative_frobenius": 0.125 if same_figures else 0.25, "largest_error": 1e-300}
+    manifest = {
+        "schema": schema, "spectrum": spectrum + [0.0] * zeros, "errors": errors, "achieved": achieved,
+        "method": {"kind": "cur", "options": dict(STORED_OPTION_VALUES, **options)},
+        "files": [{"name": "rows-00000.parquet", "bytes": 1, "sha256": digests[0], "footer_sha256": digests[-1],
+                   "group_sha256": digests, "column_sha256": {"_rf_row": digests[0]}}],
+        "targets": {"max_abs_error": {n: 0.1 for n in numeric} or None, "max_std_error": None},
+    }
+    stored = json.loads(json.dumps(written_form(manifest), allow_nan=False))  # through text, as on disk
+    assert "numeric_columns" not in stored
+    # every SHA-256 as 43 characters of base64url (RFC 4648, section 5), the same 32 bytes
+    for value in [stored["files"][0]["sha256"], *stored["files"][0]["group_sha256"]]:
+        assert len(value) == 43
+    assert base64.urlsafe_b64decode(stored["files"][0]["sha256"] + "=").hex() == digests[0]
+    # the spectrum's values as IEEE binary64 little-endian bytes (struct '<d'), zeros counted
+    kept = base64.b64decode(stored["spectrum"]["float64_le_base64"])
+    assert struct.unpack(f"<{len(kept) // 8}d", kept) == tuple(manifest["spectrum"][:len(kept) // 8])
+    derived_entries(stored)
+    expected = dict(manifest, numeric_columns=numeric)
+    assert stored == expected
+    # bit for bit: -0.0 and subnormals too (== alone would take -0.0 for 0.0)
+    assert [math.copysign(1.0, v) for v in stored["spectrum"]] == [math.copysign(1.0, v) for v in expected["spectrum"]]
+
+
+def test_a_run_of_numbered_names_is_stored_as_one_entry():
+    schema = [{"name": f"data.{k}", "type": "double", "role": "numeric"} for k in range(1, 6831)]
+    schema += [{"name": n, "type": "string", "role": "exact"} for n in ("ch007", "ch008", "ch009", "ch9", 'say "hi"')]
+    stored = written_form({"schema": schema})["schema"]["names"]
+    # zero-padded numbers keep their width; a run needs three names
+    assert stored == [["data.", 1, 6830, 0], ["ch", 7, 3, 3], "ch9", 'say "hi"']
+
+
+def _stored_text(path) -> dict:
+    return json.loads((path / "manifest.json").read_text(encoding="utf-8"))
+
+
+def _reseal(path, body: dict) -> None:
+    """Write ``body`` as the stored manifest, sealed with its digest, without ``written_form``
+    (as a rankfold of before wrote it)."""
+    body = {k: v for k, v in body.items() if k != DIGEST_FIELD}
+    (path / "manifest.json").write_text(json.dumps({DIGEST_FIELD: manifest_digest(body), **body}))
+
+
+def _table(rows: int = 60, cols: int = 8, seed: int = 5) -> pa.Table:
+    rng = np.random.default_rng(seed)  # invented data: rank 2 plus noise
+    x = rng.standard_normal((rows, 2)) @ rng.standard_normal((2, cols)) + 0.01 * rng.standard_normal((rows, cols))
+    return pa.table({f"v{j:02d}": x[:, j] for j in range(cols)})
+
+
+def test_a_manifest_in_the_older_stored_form_reads_and_appends(tmp_path):
+    # the form written before: hex digests, names listed, notes as text, every option, the
+    # spectrum as decimal text ({"values", "zeros"}), achieved repeating errors
+    table = _table()
+    path = tmp_path / "old.rankfold"
+    new = rankfold.compress(table.slice(0, 40), path, max_std_error=0.05)
+    expected = copy.deepcopy(new.manifest)
+    older = {k: v for k, v in copy.deepcopy(expected).items() if k != "numeric_columns"}
+    older["schema"] = {"names": [f["name"] for f in expected["schema"]], "types": [["double", 8]],
+                       "roles": [["numeric", 8]]}
+    older["spectrum"] = {"values": expected["spectrum"][:3], "zeros": len(expected["spectrum"]) - 3}
+    _reseal(path, older)
+    stored = _stored_text(path)
+    assert len(stored["files"][0]["sha256"]) == 64 and isinstance(stored["errors"]["note"], str)
+    assert "others_as_stored_values" not in stored["method"]["options"]
+    opened = rankfold.open(path, checksums=True)
+    assert opened.manifest["files"] == expected["files"] and opened.errors == expected["errors"]
+    assert opened.manifest["method"] == expected["method"] and opened.manifest["achieved"]["relative_frobenius"] \
+        == expected["achieved"]["relative_frobenius"]
+    assert opened.manifest["spectrum"] == expected["spectrum"][:3] + [0.0] * (len(expected["spectrum"]) - 3)
+    np.testing.assert_array_equal(opened.to_numpy(), new.to_numpy())
+    # an append rewrites the manifest in the stored form of today
+    appended = opened.append(table.slice(40))
+    assert appended.shape == (60, 8)
+    assert len(_stored_text(path)["files"][0]["sha256"]) == 43
+    truth = np.column_stack([c.to_numpy() for c in table.columns])
+    assert np.all(np.abs(appended.to_numpy() - truth) <= appended.cell_bounds())
+
+
+@pytest.mark.parametrize("damage", ["run beyond the width", "digest not canonical", "spectrum not base64",
+                                    "unknown note"])
+def test_a_damaged_stored_form_is_refused(tmp_path, damage):
+    path = tmp_path / "a.rankfold"
+    rankfold.compress(_table(), path, rank=2)
+    body = _stored_text(path)
+    if damage == "run beyond the width":
+        body["schema"]["names"] = [["v", 0, 9, 2]]  # nine names for eight types
+    elif damage == "digest not canonical":  # the last character carries 2 unused bits: set them
+        value = body["files"][0]["sha256"]
+        body["files"][0]["sha256"] = value[:-1] + ("B" if value[-1] == "A" else "A")
+    elif damage == "spectrum not base64":
+        body["spectrum"]["float64_le_base64"] = "not base64!"
+    else:
+        body["errors"]["note"] = len(ERROR_NOTES)
+    _reseal(path, body)  # sealed again: only the stored form's own checks can tell
+    if damage == "unknown note":  # a note the reader does not know stays a number: read, not refused
+        assert rankfold.open(path).errors["note"] == len(ERROR_NOTES)
+        return
+    with pytest.raises(rankfold.CorruptArchiveError):
+        read_manifest(path)
+        rankfold.open(path, checksums=True)
+
+
+def test_per_column_tolerances_are_stored_once(tmp_path):
+    table = _table(cols=40)
+    std = np.array([np.std(c.to_numpy()) for c in table.columns])
+    asked = {n: float(0.01 * s) for n, s in zip(table.column_names, std)}  # awkward floats
+    archive = rankfold.compress(table, tmp_path / "t.rankfold", max_abs_error=asked, max_std_error=None)
+    stored = _stored_text(archive.path)
+    assert stored["targets"]["max_abs_error"] == COLUMN_TOLERANCES  # not 40 decimals again
+    # columns.parquet holds every asked tolerance bit for bit
+    assert archive.column_ledger().column("tolerance").to_pylist() == list(asked.values())
+    assert "within its column's tolerance" in archive.guarantee
+    truth = np.column_stack([c.to_numpy() for c in table.columns])
+    assert np.all(np.abs(archive.to_numpy() - truth) <= np.array(list(asked.values())))
+    # an integer column is stored within t - 1/2 (served rounded): its target is recorded as asked
+    mixed = table.append_column("n", pa.array(np.arange(60, dtype=np.int64) * 3))
+    asked_mixed = dict(asked, n=2.0)
+    other = rankfold.compress(mixed, tmp_path / "m.rankfold", max_abs_error=asked_mixed, max_std_error=None)
+    assert _stored_text(other.path)["targets"]["max_abs_error"] == list(asked_mixed.values())
+    assert other.manifest["targets"]["max_abs_error"] == asked_mixed
