@@ -187,3 +187,26 @@ def test_per_column_tolerances_are_stored_once(tmp_path):
     other = rankfold.compress(mixed, tmp_path / "m.rankfold", max_abs_error=asked_mixed, max_std_error=None)
     assert _stored_text(other.path)["targets"]["max_abs_error"] == list(asked_mixed.values())
     assert other.manifest["targets"]["max_abs_error"] == asked_mixed
+
+
+# -- the column figures err_max and err_l2: 24 significant bits, rounded up -------------------------
+@settings(max_examples=300, deadline=None, derandomize=True)
+@given(st.lists(st.floats(min_value=0.0, max_value=1.7976931348623157e308), min_size=1, max_size=20))
+def test_column_figures_are_rounded_up_to_24_significant_bits(values):
+    from fractions import Fraction
+
+    from rankfold.udfs.store.arithmetic import round_up, round_up_short
+
+    x = np.array(values)
+    short = round_up_short(x)
+    # no narrowing to float32: finite wherever round_up is (which overflows only next to 1.8e308)
+    assert short.dtype == np.float64 and np.array_equal(np.isfinite(short), np.isfinite(round_up(x)))
+    # never below the figure (exact rational comparison, Python's fractions module) ...
+    assert all(Fraction(float(s)) >= Fraction(float(v)) for s, v in zip(short, x))
+    assert np.all((short == 0) == (x == 0))
+    # ... at most 2^-23 above round_up's figure, and on the 24-bit grid where float64 allows it
+    up = round_up(x)
+    normal = (up >= 2.0**-1000) & (short == np.where(short >= up, short, up))
+    mantissa, _ = np.frexp(short[normal])
+    assert np.all(mantissa * 2.0**24 == np.floor(mantissa * 2.0**24))
+    assert np.all(short <= np.where(np.isfinite(up), up * (1 + 2.0**-23), short))
