@@ -15,6 +15,8 @@ import json
 import math
 import struct
 
+import pyarrow.parquet  # noqa: F401  (pa.parquet)
+
 import numpy as np
 import pyarrow as pa
 import pytest
@@ -216,3 +218,166 @@ def test_a_column_figure_next_to_the_largest_float_stays_finite():
     x = np.array([1.7976931e308, 5e-324, 0.0])  # ceil to 24 bits would overflow; a subnormal
     short = round_up_short(x)
     assert np.all(short >= x) and np.array_equal(short[:2], round_up(x)[:2]) and short[2] == 0.0
+
+
+# -- the columns table stored by field ------------------------------------------------------------
+from rankfold.udfs.passes.commit import _small_table_bytes, write_small_table  # noqa: E402
+from rankfold.udfs.store import layout  # noqa: E402
+from rankfold.udfs.store.manifest import file_entry, write_manifest  # noqa: E402
+from rankfold.udfs.store.reader import ArchiveReader  # noqa: E402
+from rankfold.udfs.store.table_schemas import (  # noqa: E402
+    COLUMNS_SCHEMA,
+    by_field_columns_table,
+    is_by_field,
+    pack_columns_table,
+    unpack_columns_table,
+)
+
+_STAT = st.one_of(st.none(), st.just(float("nan")), st.floats(allow_nan=False),
+                  st.floats(1e-300, 1e-290), st.just(0.1 + 0.2))
+
+
+@st.composite
+def _columns_tables(draw):
+    """Columns tables of one field per number, as ``FittedModel.to_tables`` builds them: 0 and
+    1 columns included, NULL statistics, tolerances that are awkward floats (a common ratio to
+    std, their own, or none), residual steps twice the tolerance or not."""
+    n = draw(st.sampled_from([0, 1, 1, 2, 5, 9]))
+    c = draw(st.integers(0, 3))
+    data = {"name": [f"c{j}" for j in range(n)], "position": list(range(n)),
+            "type": ["double"] * n, "role": [draw(st.sampled_from(["basis", "derived"])) for _ in range(n)],
+            "weights": [[draw(st.floats(allow_nan=False)) for _ in range(c)] for _ in range(n)]}
+    for name in ("valid", "nulls", "nans", "infinities", "err_cells"):
+        data[name] = [draw(st.integers(0, 2**53)) for _ in range(n)]
+    for name in ("shift", "scale", "ledger_scale", "offset", "mean", "std", "min", "max",
+                 "err_max", "err_l2", "err_sum", "rel_rms"):
+        data[name] = [draw(_STAT) for _ in range(n)]
+    ratio = draw(st.floats(1e-9, 10.0))
+    tolerance = []
+    for j in range(n):
+        std = data["std"][j]
+        t = draw(st.one_of(st.none(), st.floats(0, 1e300), st.just(ratio * std if std is not None else None)))
+        tolerance.append(t if t is not None and math.isfinite(t) else None)
+    data["tolerance"] = tolerance
+    data["residual_step"] = [2.0 * t if t is not None and draw(st.booleans()) and math.isfinite(2.0 * t)
+                             else draw(st.one_of(st.none(), st.floats(1e-9, 1e9))) for t in tolerance]
+    return pa.table({f.name: pa.array(data[f.name], f.type) for f in COLUMNS_SCHEMA}, schema=COLUMNS_SCHEMA)
+
+
+def _spelled(table: pa.Table) -> dict[str, list]:
+    """Every field as a list, NaN spelled out and floats as their bits (-0.0 is not 0.0)."""
+    def one(v):
+        if isinstance(v, list):
+            return [one(e) for e in v]
+        return struct.pack("<d", v).hex() if isinstance(v, float) else v
+    return {name: one(table.column(name).to_pylist()) for name in table.column_names}
+
+
+@settings(max_examples=60, deadline=None, derandomize=True)
+@given(_columns_tables())
+def test_the_columns_table_by_field_reads_back_bit_for_bit(wide):
+    packed = pack_columns_table(wide)
+    by_field = by_field_columns_table(packed)
+    assert is_by_field(by_field.schema) and not is_by_field(packed.schema)
+    # through Parquet bytes, without the Arrow schema as the archive's writer stores them
+    # (pyarrow.parquet writes and reads them; the writer's setting trial: the archive tests below)
+    sink = pa.BufferOutputStream()
+    pa.parquet.write_table(by_field, sink, store_schema=False, column_encoding={
+        f: "BYTE_STREAM_SPLIT" for f in by_field.column_names if pa.types.is_floating(by_field.schema.field(f).type)},
+        use_dictionary=False)
+    stored = pa.parquet.read_table(pa.BufferReader(sink.getvalue()))
+    assert _spelled(unpack_columns_table(stored, "columns.parquet")) == _spelled(
+        unpack_columns_table(packed, "columns.parquet"))
+    # an entry NULL in every row is left out (its field absent), the others kept
+    assert all(by_field.column(f).null_count < by_field.num_rows for f in by_field.column_names) or wide.num_rows == 0
+
+
+def _by_field_archive(tmp_path, options) -> tuple:
+    rng = np.random.default_rng(8)  # invented data: rank 2 plus noise, NULL cells in one column
+    x = rng.standard_normal((200, 2)) @ rng.standard_normal((2, 7)) + 0.01 * rng.standard_normal((200, 7))
+    x[::9, 3] = np.nan
+    table = pa.table({f"x{j}": pa.array(x[:, j], mask=np.isnan(x[:, j])) for j in range(7)})
+    archive = rankfold.compress(table, tmp_path / "a.rankfold", seed=0, **options)
+    before = ArchiveReader(archive.path)
+    name = layout.table_file(archive.manifest, layout.COLUMNS)
+    packed = pa.parquet.read_table(archive.path / name)
+    assert not is_by_field(packed.schema)  # 7 columns: the packed form is the smaller
+    (archive.path / name).write_bytes(_small_table_bytes(by_field_columns_table(packed)))
+    manifest = json.loads((archive.path / layout.MANIFEST).read_text())
+    derived_entries(manifest)
+    manifest["files"] = [file_entry(archive.path, name) if f["name"] == name else f for f in manifest["files"]]
+    write_manifest(archive.path, {k: v for k, v in manifest.items() if k not in (DIGEST_FIELD, "numeric_columns")})
+    return x, table, archive, before
+
+
+@pytest.mark.parametrize("options", [dict(rank=2), dict(max_abs_error=0.02), dict(method="svd", rank=2)])
+def test_sql_column_errors_of_a_by_field_table_equal_python_s(tmp_path, options):
+    import duckdb
+    import pyarrow.compute as pc
+
+    import rankfold.udfs
+
+    x, table, archive, before = _by_field_archive(tmp_path, options)
+    reader = ArchiveReader(archive.path)
+    assert is_by_field(pa.parquet.read_schema(archive.path / layout.table_file(reader.manifest, layout.COLUMNS)))
+    assert _spelled(reader.columns_table) == _spelled(before.columns_table)
+    reopened = rankfold.open(archive.path, checksums=True)
+    np.testing.assert_array_equal(reopened.cell_bounds(), rankfold.open(archive.path).cell_bounds())
+    con = duckdb.connect()
+    rankfold.udfs.register(con)
+    sql = con.sql("SELECT * FROM rankfold_column_errors(?) ORDER BY position",
+                  params=[str(archive.path)]).to_arrow_table()
+    python = reader.columns_table.select(sql.column_names)
+    i = python.schema.get_field_index("ledger_scale")  # stored once where it repeats std
+    python = python.set_column(i, "ledger_scale", pc.coalesce(python.column("ledger_scale"), python.column("std")))
+    assert _spelled(sql.cast(python.schema)) == _spelled(python)
+    # an append reads the by-field table and writes the smaller form again; every bound holds
+    more = table.slice(0, 40)
+    grown = reopened.append(more)
+    truth = np.vstack([x, x[:40]])
+    got, bound = grown.to_numpy(), grown.cell_bounds()
+    finite = np.isfinite(truth)
+    assert np.all(np.abs(got[finite] - truth[finite]) <= bound[finite]) and np.all(np.isnan(got[~finite]))
+
+
+@pytest.mark.parametrize("damage", ["a count left out", "a field of another type", "an unknown field",
+                                    "weights of unequal lengths"])
+def test_a_damaged_by_field_table_is_refused(tmp_path, damage):
+    _, _, archive, _ = _by_field_archive(tmp_path, dict(rank=2))
+    name = layout.table_file(archive.manifest, layout.COLUMNS)
+    stored = pa.parquet.read_table(archive.path / name)
+    if damage == "a count left out":
+        stored = stored.drop_columns(["nans"])
+    elif damage == "a field of another type":
+        i = stored.schema.get_field_index("mean")
+        stored = stored.set_column(i, "mean", stored.column("mean").cast(pa.float32()))
+    elif damage == "an unknown field":
+        stored = stored.append_column("colour", pa.array(["red"] * stored.num_rows))
+    else:
+        weights = stored.column("weights").to_pylist()
+        weights[2] = weights[2][:-1]
+        stored = stored.set_column(stored.schema.get_field_index("weights"), "weights",
+                                   pa.array(weights, pa.list_(pa.float64())))
+    with pytest.raises(rankfold.CorruptArchiveError, match="columns.parquet"):
+        unpack_columns_table(stored, archive.path / name)
+    # and through the archive: the file rewritten and the manifest sealed again
+    write_small_table(archive.path / name, stored)
+    manifest = read_manifest(archive.path)
+    manifest["files"] = [file_entry(archive.path, name) if f["name"] == name else f for f in manifest["files"]]
+    write_manifest(archive.path, {k: v for k, v in manifest.items() if k not in (DIGEST_FIELD, "numeric_columns")})
+    with pytest.raises(rankfold.CorruptArchiveError):
+        rankfold.open(archive.path)
+
+
+def test_the_smaller_stored_form_is_written(tmp_path):
+    # narrow: packed (one column chunk); wide: by field (runs of like numbers compress)
+    rng = np.random.default_rng(9)  # invented data
+    narrow = rankfold.compress(rng.standard_normal((40, 6)), tmp_path / "n.rankfold", max_std_error=0.05)
+    wide = rankfold.compress(rng.standard_normal((40, 600)), tmp_path / "w.rankfold", max_std_error=0.05)
+    for archive, by_field in ((narrow, False), (wide, True)):
+        path = archive.path / layout.table_file(archive.manifest, layout.COLUMNS)
+        stored = pa.parquet.read_table(path)
+        assert is_by_field(stored.schema) == by_field
+        other = by_field_columns_table(stored) if not by_field else pack_columns_table(
+            unpack_columns_table(stored, path))
+        assert path.stat().st_size <= len(_small_table_bytes(other))
