@@ -62,8 +62,11 @@ def _hex() -> st.SearchStrategy[str]:
        st.dictionaries(st.sampled_from(sorted(STORED_OPTION_VALUES) + ["new_option"]),
                        st.one_of(st.none(), st.integers(0, 3), st.sampled_from(["auto", "off", "cx"]),
                                  st.just([]), st.booleans())),
-       st.booleans())
-def test_the_stored_manifest_reads_back_exactly(pieces, spectrum, zeros, digests, note, options, same_figures):
+       st.booleans(),
+       st.lists(st.tuples(_TEXT, _FLOATS, st.one_of(st.none(), st.floats(1e-300, 1e300)),
+                          st.one_of(st.none(), st.sampled_from(["_rf_basis_", "_rf_score_"]))), max_size=5))
+def test_the_stored_manifest_reads_back_exactly(pieces, spectrum, zeros, digests, note, options, same_figures,
+                                                basis):
     names = _names(pieces)
     schema = [{"name": n, "type": "double", "role": "numeric" if k % 3 else "exact"} for k, n in enumerate(names)]
     numeric = [f["name"] for f in schema if f["role"] == "numeric"]
@@ -76,6 +79,10 @@ def test_the_stored_manifest_reads_back_exactly(pieces, spectrum, zeros, digests
         "files": [{"name": "rows-00000.parquet", "bytes": 1, "sha256": digests[0], "footer_sha256": digests[-1],
                    "group_sha256": digests, "column_sha256": {"_rf_row": digests[0]}}],
         "targets": {"max_abs_error": {n: 0.1 for n in numeric} or None, "max_std_error": None},
+        # basis entries: step and stored_as present or not
+        "basis": [{"name": name, "fill": fill, **({"step": step} if step is not None else {}),
+                   **({"stored_as": f"{pattern}{k}"} if pattern is not None else {})}
+                  for k, (name, fill, step, pattern) in enumerate(basis)],
     }
     stored = json.loads(json.dumps(written_form(manifest), allow_nan=False))  # through text, as on disk
     assert "numeric_columns" not in stored

@@ -527,6 +527,7 @@ def written_form(manifest: dict[str, Any]) -> dict[str, Any]:
       6,766) as little-endian float64 bytes in base64 (:func:`_packed_floats`, exact), and the
       count of those zeros;
     * every SHA-256 of ``files`` as 43 characters of base64url instead of 64 hex digits;
+    * ``basis`` by field (:func:`_basis_by_field`: the keys once, names as runs);
     * the ``errors`` notes rankfold writes as their index in :data:`ERROR_NOTES`; ``achieved``
       without the figures equal to those of ``errors`` (:data:`_ACHIEVED_REPEATS`);
       ``method.options`` without the options recorded at their :data:`STORED_OPTION_VALUES`
@@ -546,6 +547,8 @@ def written_form(manifest: dict[str, Any]) -> dict[str, Any]:
             body["spectrum"] = {_FLOAT64: packed, "zeros": len(spectrum) - kept}
     if "files" in body:
         body["files"] = _map_file_digests(body["files"], _short_digest)
+    if "basis" in body:
+        body["basis"] = _basis_by_field(body["basis"])
     for section, keys in (("errors", _NOTE_KEYS), ):
         record = body.get(section)
         if isinstance(record, dict):
@@ -578,6 +581,40 @@ def written_form(manifest: dict[str, Any]) -> dict[str, Any]:
     return body
 
 
+_BASIS_KEYS = ("name", "fill", "step", "stored_as")  # "name" and "fill" in every entry
+
+
+def _basis_by_field(basis: Any) -> Any:
+    """The ``basis`` list stored by field, ``{"name": names, "fill": [...], "step": [...],
+    "stored_as": names}``: an entry without ``step`` or ``stored_as`` has null there (a field
+    null in every entry is left out), names in the form of :func:`_named_runs`. Anything else
+    is returned as it is."""
+    if not (isinstance(basis, list) and basis and all(
+            isinstance(b, dict) and {"name", "fill"} <= set(b) <= set(_BASIS_KEYS)
+            and all(v is not None for v in b.values()) for b in basis)):
+        return basis
+    stored: dict[str, Any] = {}
+    for key in _BASIS_KEYS:
+        values = [b.get(key) for b in basis]
+        if all(v is None for v in values):
+            continue
+        stored[key] = _named_runs(values) if key in ("name", "stored_as") and None not in values else values
+    return stored
+
+
+def _basis_entries(stored: Any) -> Any:
+    """The inverse of :func:`_basis_by_field` (a form that does not fit is returned as it is,
+    for :func:`validate` to refuse)."""
+    if not (isinstance(stored, dict) and {"name", "fill"} <= set(stored) <= set(_BASIS_KEYS)):
+        return stored
+    fields = {k: (_named_expanded(v) if k in ("name", "stored_as") else v) for k, v in stored.items()}
+    if any(not isinstance(v, list) for v in fields.values()) or len({len(v) for v in fields.values()}) != 1:
+        return stored
+    count = len(fields["name"])
+    return [{k: fields[k][i] for k in _BASIS_KEYS if k in fields and fields[k][i] is not None}
+            for i in range(count)]
+
+
 def _same_json(a: Any, b: Any) -> bool:
     """Equal as JSON values (1 and 1.0 and True differ: the stored form must give back the
     same text)."""
@@ -602,6 +639,8 @@ def derived_entries(manifest: dict[str, Any]) -> None:
             manifest["spectrum"] = values + [0.0] * spectrum["zeros"]
     if "files" in manifest:
         manifest["files"] = _map_file_digests(manifest["files"], _hex_digest)
+    if "basis" in manifest:
+        manifest["basis"] = _basis_entries(manifest["basis"])
     errors = manifest.get("errors")
     if isinstance(errors, dict):
         for key in _NOTE_KEYS:
