@@ -388,3 +388,25 @@ def test_the_smaller_stored_form_is_written(tmp_path):
         other = by_field_columns_table(stored) if not by_field else pack_columns_table(
             unpack_columns_table(stored, path))
         assert path.stat().st_size <= len(_small_table_bytes(other))
+
+
+def test_small_tables_are_checked_whole_without_a_footer_digest(tmp_path):
+    import duckdb
+
+    import rankfold.udfs
+
+    archive = rankfold.compress(_table(), tmp_path / "a.rankfold", rank=2)
+    entries = {f["name"]: f for f in archive.manifest["files"]}
+    assert "footer_sha256" in entries["rows-00000.parquet"]  # row files: checked on every open
+    assert not any("footer_sha256" in e for n, e in entries.items() if not n.startswith("rows-"))
+    # a changed byte in the columns table's footer (same size): its whole-file SHA-256 refuses it
+    path = archive.path / "columns.parquet"
+    data = bytearray(path.read_bytes())
+    data[-12] ^= 0x01
+    path.write_bytes(bytes(data))
+    with pytest.raises(rankfold.CorruptArchiveError, match="columns.parquet does not match its SHA-256"):
+        rankfold.open(archive.path)
+    con = duckdb.connect()
+    rankfold.udfs.register(con)
+    with pytest.raises(duckdb.Error, match="CorruptArchiveError"):
+        con.execute("SELECT * FROM rankfold_column_errors(?)", [str(archive.path)]).fetchall()
