@@ -25,7 +25,7 @@ from ..store.integrity import WRITE_OPTIONS
 from ..store.manifest import file_entry, write_manifest
 from ..store.chunk_codes import CHUNK_ROWS
 from ..store.code_layout import ColumnLayout, choose_sample_layouts, sample_chunks
-from ..store.table_schemas import CELLS_SCHEMA, by_field_columns_table, is_by_field, is_packed
+from ..store.table_schemas import CELLS_SCHEMA, by_field_columns_table
 
 __all__ = ["prepare_target", "ArchiveWriter", "RowPartWriter", "PART_ROWS", "concat_parquet",
            "write_small_table", "code_layouts", "CODE_LEVELS", "close_parquet", "row_file_footer",
@@ -356,7 +356,7 @@ def write_small_table(path: Path, table: pa.Table) -> None:
     (``table_schemas.by_field_columns_table``; readers take either): measured, the packed form
     at 50 columns (4,240 against 6,137 bytes), by field at 6,830 (nci60 at 0.01 std)."""
     forms = [table]
-    if is_packed(table.schema) and not is_by_field(table.schema):
+    if "numbers" in table.schema.names:  # the columns table, packed
         forms.append(by_field_columns_table(table))
     path.write_bytes(min((_small_table_bytes(form) for form in forms), key=len))
 

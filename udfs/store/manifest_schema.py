@@ -379,14 +379,14 @@ def _named_runs(names: list[Any]) -> list[Any]:
     names (same prefix and width, numbers rising by one) replaced by ``[prefix, first, count,
     width]``; other names stay strings (a list item is a run, a string a name). Measured on a
     real table of 6,830 columns named ``data.1`` .. ``data.6830``: 87,753 bytes of names -> 22."""
-    parsed = [_numbered(n) for n in names]
     stored: list[Any] = []
     i = 0
     while i < len(names):
         j = i + 1
-        if parsed[i] is not None:
-            prefix, first, width = parsed[i]
-            while j < len(names) and parsed[j] == (prefix, first + (j - i), width):
+        parsed = _numbered(names[i])
+        if parsed is not None:  # the width is a least width: c08, c09, c10 is one run
+            prefix, first, width = parsed
+            while j < len(names) and names[j] == f"{prefix}{first + (j - i):0{width}d}":
                 j += 1
         if j - i >= _MIN_NUMBERED_RUN:
             stored.append([prefix, first, j - i, width])
@@ -549,11 +549,10 @@ def written_form(manifest: dict[str, Any]) -> dict[str, Any]:
         body["files"] = _map_file_digests(body["files"], _short_digest)
     if "basis" in body:
         body["basis"] = _basis_by_field(body["basis"])
-    for section, keys in (("errors", _NOTE_KEYS), ):
-        record = body.get(section)
-        if isinstance(record, dict):
-            body[section] = {k: (ERROR_NOTES.index(v) if k in keys and v in ERROR_NOTES else v)
-                             for k, v in record.items()}
+    errors = body.get("errors")
+    if isinstance(errors, dict):
+        body["errors"] = {k: (ERROR_NOTES.index(v) if k in _NOTE_KEYS and v in ERROR_NOTES else v)
+                          for k, v in errors.items()}
     achieved, errors = body.get("achieved"), manifest.get("errors")
     if isinstance(achieved, dict) and isinstance(errors, dict):
         body["achieved"] = {k: v for k, v in achieved.items()
