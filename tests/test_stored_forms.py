@@ -418,3 +418,19 @@ def test_small_tables_are_checked_whole_without_a_footer_digest(tmp_path):
     rankfold.udfs.register(con)
     with pytest.raises(duckdb.Error, match="CorruptArchiveError"):
         con.execute("SELECT * FROM rankfold_column_errors(?)", [str(archive.path)]).fetchall()
+
+
+def test_a_wide_table_records_no_singular_values_beyond_its_rows(tmp_path):
+    # a table of m rows has rank at most m (Golub and Van Loan, "Matrix Computations", 2.4):
+    # singular values beyond the m-th are recorded as 0 (the sketch gives rounding noise there)
+    rng = np.random.default_rng(12)  # invented data: 12 rows, 40 columns
+    x = rng.standard_normal((12, 3)) @ rng.standard_normal((3, 40)) + 0.1 * rng.standard_normal((12, 40))
+    archive = rankfold.compress(x, tmp_path / "w.rankfold", max_std_error=0.05)
+    spectrum = np.array(archive.manifest["spectrum"])
+    assert spectrum.size == 40 and np.all(spectrum[12:] == 0.0)
+    assert _stored_text(archive.path)["spectrum"]["zeros"] >= 28
+    # the values kept are numpy's singular values of the standardized table (numpy.linalg.svd;
+    # std with ddof=0), and their squares sum to its squared Frobenius norm
+    z = (x - x.mean(axis=0)) / x.std(axis=0)
+    np.testing.assert_allclose(spectrum[:11], np.linalg.svd(z, compute_uv=False)[:11], rtol=1e-6)
+    np.testing.assert_allclose(np.sum(spectrum ** 2), np.sum(z ** 2), rtol=1e-9)

@@ -910,6 +910,19 @@ def _transformed_norm(profile: ColumnProfile, transform: Transform) -> float:
     return float(np.sqrt(np.sum(per_column)))
 
 
+def _recorded_spectrum(values: np.ndarray, rows_read: int) -> list[float]:
+    """The sketch's singular values (n,) as the manifest records them: a table of ``rows_read``
+    rows has rank at most ``rows_read``, so every value beyond the first ``rows_read`` is 0
+    (Golub and Van Loan, "Matrix Computations", 4th ed., 2013, section 2.4); the sketch gives
+    them as rounding noise, about sqrt(u) sigma_1 (Gram matrix eigenvalues), recorded as 0 and
+    so stored as a count (``manifest_schema.written_form``). Measured on a real 24 x 1,728 table
+    at 0.01 std: 1,704 such values, 8,745 bytes of manifest -> about 200."""
+    recorded = [float(s) for s in values]
+    for k in range(min(max(int(rows_read), 0), len(recorded)), len(recorded)):
+        recorded[k] = 0.0
+    return recorded
+
+
 def _error_summary(numeric, profile, transform, result, spectrum, rank, sampled=False) -> dict[str, Any]:
     ledger = result.ledger
     # the spectrum of a sampled sketch estimates ||Z||_F; every row's statistics give it exactly
@@ -958,7 +971,7 @@ def _manifest(src, opts, inputs: _Inputs, build: _Build, model: FittedModel, pro
         **({"null_codes": True} if result.null_codes else {}),
         "anchors": [int(p) for p in model.anchor_positions],
         "row_parts": parts,
-        "spectrum": [float(s) for s in spectrum.values],
+        "spectrum": _recorded_spectrum(spectrum.values, inputs.read.rows_read if inputs.read.sampled else rows),
         "errors": _error_summary(numeric, profile, inputs.transform, result, spectrum, build.rank,
                                  sampled=result.profile is not None),
         "files": [],
