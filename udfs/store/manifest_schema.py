@@ -534,7 +534,7 @@ def written_form(manifest: dict[str, Any]) -> dict[str, Any]:
       (the entry ``others_as_stored_values: true`` says so).
 
     Measured (DEVELOPERS.md, "Sizes"): manifest.json 4,999 -> 3,521 bytes on benchmarks/overhead.py
-    (2,000 x 50); 228,413 -> 2,875 on a real table of 6,830 columns with a tolerance per column
+    (2,000 x 50); 228,413 -> 2,751 on a real table of 6,830 columns with a tolerance per column
     (the tolerances: ``COLUMN_TOLERANCES``)."""
     body = {k: v for k, v in manifest.items() if k not in DERIVED_KEYS}
     spectrum = body.get("spectrum")
