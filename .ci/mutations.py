@@ -153,6 +153,18 @@ MUTATIONS = {
         "udfs/sql/tables.py", '"residual_step": f"CASE WHEN {step} IS NULL THEN 2.0 * ({tol}) WHEN',
         '"residual_step": f"CASE WHEN {step} IS NULL THEN 1.0 * ({tol}) WHEN',
         ["tests/test_packed_columns.py"]),
+    "stored SHA-256 read back wrong": (
+        "udfs/store/manifest_schema.py", "            return raw.hex()\n",
+        "            return raw.hex()[::-1]\n",
+        ["tests/test_stored_forms.py"]),
+    "SQL by-field columns table read as NULL": (
+        "udfs/sql/tables.py", '        return quote_identifier(name) if name in stored else "CAST(NULL AS DOUBLE)"',
+        '        return "CAST(NULL AS DOUBLE)"',
+        ["tests/test_stored_forms.py"]),
+    "column figures rounded down": (
+        "udfs/store/arithmetic.py", "    return np.where((up >= values) & np.isfinite(up), up, values)",
+        "    return np.where(np.isfinite(up), np.ldexp(np.floor(mantissa * scale) / scale, exponent), values)",
+        ["tests/test_stored_forms.py"]),
 }
 
 

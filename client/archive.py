@@ -13,6 +13,7 @@ from rankfold.udfs.errors import InvalidInputError, RankfoldError
 from rankfold.udfs.store import aggregate as _aggregate
 from rankfold.udfs.store import layout, remote
 from rankfold.udfs.store.manifest import manifest_text
+from rankfold.udfs.store.manifest_schema import COLUMN_TOLERANCES
 from rankfold.udfs.store.reader import ArchiveReader, Rebuilt
 from rankfold.udfs.store.rebuild_log import RebuildLog
 
@@ -300,6 +301,9 @@ def describe_guarantee(manifest: dict[str, Any]) -> str:
     if isinstance(absolute, dict):
         return (f"every rebuilt value of the {len(absolute)} columns named in max_abs_error is within "
                 f"its column's tolerance of the true value{tail}")
+    if absolute == COLUMN_TOLERANCES:  # per column, the tolerances columns.parquet holds
+        return (f"every rebuilt value of the columns named in max_abs_error is within its column's "
+                f"tolerance of the true value{tail}")
     return ("no tolerance was asked for (a rank or relative-error target only): each value "
             "comes with a bound, but no limit on the bounds was guaranteed")
 

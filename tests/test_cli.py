@@ -243,8 +243,11 @@ def test_inspect_json_matches_the_manifest(archive, capsys):
     data = json.loads(out)
     manifest = json.loads((Path(archive) / "manifest.json").read_text())
     assert code == 0
-    assert data["shape"] == manifest["shape"] and data["errors"] == manifest["errors"]
-    assert data["basis_columns"] == [b["name"] for b in manifest["basis"]]
+    # the errors as read (the stored form keeps rankfold's notes as their index in ERROR_NOTES)
+    assert data["shape"] == manifest["shape"] and data["errors"] == rankfold.open(archive).errors
+    assert manifest["errors"]["note"] == 0
+    assert data["basis_columns"] == [b["name"] for b in rankfold.open(archive).manifest["basis"]]
+    assert "name" in manifest["basis"]  # stored by field (names as runs: manifest_schema._named_runs)
     assert data["anchor_rows"] == manifest["anchors"]
     # every file of the archive as the file system reports it (os.stat), manifest.json included
     on_disk = sum(p.stat().st_size for p in Path(archive).iterdir())

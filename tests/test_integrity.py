@@ -200,8 +200,15 @@ def _edit_text(path: Path, old: str, new: str, count: int = 1) -> None:
 
 
 def _swap_names(path: Path) -> None:
-    text = (path / "manifest.json").read_text()
-    (path / "manifest.json").write_text(text.replace('"c1"', '"@@"').replace('"c2"', '"c1"').replace('"@@"', '"c2"'))
+    # the schema stores runs of numbered names as [prefix, first, count, width]: spelled out,
+    # with c1 and c2 swapped
+    manifest = json.loads((path / "manifest.json").read_text())
+    names = [name for item in manifest["schema"]["names"] for name in (
+        [f"{item[0]}{k:0{item[3]}d}" for k in range(item[1], item[1] + item[2])] if isinstance(item, list) else [item])]
+    i, j = names.index("c1"), names.index("c2")
+    names[i], names[j] = names[j], names[i]
+    manifest["schema"]["names"] = names
+    (path / "manifest.json").write_text(json.dumps(manifest))
 
 
 EDITS = {
@@ -600,7 +607,10 @@ def test_an_archive_with_the_older_error_names_reads_under_the_new_ones(pristine
     on_disk = json.loads((archive / "manifest.json").read_text(encoding="utf-8"))
     assert "max_abs_error" in on_disk["errors"] and "largest_error" not in on_disk["errors"]
     opened = rankfold.open(archive)
-    assert opened.errors == expected["errors"] and opened.manifest["achieved"] == expected["achieved"]
+    # the size differs: the older names are stored as they are, where the new ones repeat errors
+    assert opened.errors == expected["errors"]
+    assert {k: v for k, v in opened.manifest["achieved"].items() if k != "bytes"} == {
+        k: v for k, v in expected["achieved"].items() if k != "bytes"}
     assert opened.errors["largest_error"] > 0 and "max_abs_error" not in opened.errors
     info = _con().execute("SELECT rankfold_info(?)", [str(archive)]).fetchone()[0]
     assert info["largest_error"] == expected["errors"]["largest_error"]
@@ -701,7 +711,9 @@ def test_the_stored_form_of_a_manifest_reads_back_as_it_was(fields, every_column
     if with_numeric:
         manifest["numeric_columns"] = numeric
     stored = json.loads(json.dumps(written_form(manifest)))  # through JSON text, as on disk
-    assert "numeric_columns" not in stored and stored["schema"]["names"] == [f["name"] for f in schema]
+    assert "numeric_columns" not in stored
+    # c0, c1, ... stored as one run [prefix, first, count, width] (manifest_schema._named_runs)
+    assert stored["schema"]["names"] == ([["c", 0, len(schema), 0]] if len(schema) >= 3 else [f["name"] for f in schema])
     derived_entries(stored)
     assert stored == dict(manifest, numeric_columns=numeric)
 

@@ -7,6 +7,7 @@ the source had NULLs, and within their bounds.
 
 from __future__ import annotations
 
+import base64
 import datetime as dt
 import decimal
 import hashlib
@@ -209,7 +210,8 @@ def test_manifest_records_format_and_checksums(tmp_path):
     assert manifest["writer"] == {"name": "rankfold", "version": rankfold.__version__}
     assert manifest["shape"] == [40, 7]
     assert manifest["method"]["seed"] == 42
-    assert manifest["schema"]["names"] == _float_table().schema.names  # stored by field
+    # stored by field; the numbered names x0 .. x5 as one run [prefix, first, count, width]
+    assert manifest["schema"]["names"] == ["id", ["x", 0, 6, 0]]
     # the achieved size: every file of the archive folder as it is on disk (os.stat),
     # manifest.json included (the manifest records its own size: a fixed point)
     on_disk = sum(p.stat().st_size for p in path.iterdir())
@@ -220,7 +222,10 @@ def test_manifest_records_format_and_checksums(tmp_path):
     for entry in manifest["files"]:
         data = (path / entry["name"]).read_bytes()
         assert entry["bytes"] == len(data)
-        assert entry["sha256"] == hashlib.sha256(data).hexdigest()
+        # stored as base64url (RFC 4648, section 5) without padding; read back as hex
+        assert entry["sha256"] == base64.urlsafe_b64encode(hashlib.sha256(data).digest()).decode().rstrip("=")
+    assert {e["name"]: e["sha256"] for e in archive.manifest["files"]} == {
+        e["name"]: hashlib.sha256((path / e["name"]).read_bytes()).hexdigest() for e in manifest["files"]}
     # as read, the manifest is the stored one with what a reader derives (written_form undone)
     assert written_form(archive.manifest) == manifest
     assert [f["name"] for f in archive.manifest["schema"]] == _float_table().schema.names

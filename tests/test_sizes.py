@@ -120,11 +120,12 @@ def test_target_bytes_is_met_by_the_whole_archive_or_refused_with_a_size_that_fi
     x = _low_rank(2000, 20)
     met = rankfold.compress(x, tmp_path / "met.rankfold", target_bytes=40_000)
     assert _on_disk(tmp_path / "met.rankfold") <= 40_000
+    # (the smallest archive, rank 0, measured 9,889 bytes: row ids, offsets, codes, the manifest)
     with pytest.raises(rankfold.SizeTargetMissedError, match="is below the smallest archive") as refused:
-        rankfold.compress(x, tmp_path / "tiny.rankfold", target_bytes=10_000)
+        rankfold.compress(x, tmp_path / "tiny.rankfold", target_bytes=5_000)
     assert not (tmp_path / "tiny.rankfold").exists()
     least = refused.value.total
-    assert 10_000 < least < met.nbytes and f"at least {least}" in str(refused.value)
+    assert 5_000 < least < met.nbytes and f"at least {least}" in str(refused.value)
     fits = rankfold.compress(x, tmp_path / "fits.rankfold", target_bytes=least)
     assert _on_disk(tmp_path / "fits.rankfold") <= least
     assert fits.manifest["method"]["rank"] == 0

@@ -34,7 +34,7 @@ import numpy as np
 import pyarrow as pa
 
 from ..errors import ArchiveNotFoundError, EmptySourceError, InvalidInputError
-from ..store import layout, versions
+from ..store import arithmetic, layout, versions
 from ..store.aggregate import BLOCKS, BlockSums, pack_blocks, unpack_blocks
 from ..store.integrity import read_small_table
 from ..store.manifest import file_entry, write_manifest
@@ -206,7 +206,11 @@ def _write_version(reader: ArchiveReader, src, batch_rows, progress, temp: Path)
         stats["valid"], stats["nulls"], stats["nans"], stats["infinities"], stats["mean"],
         stats["std"] ** 2 * stats["valid"], stats["min"], stats["max"])
     profile = before.merge(state["profile"])
-    measured = reader.model.with_statistics(column_statistics(profile, ledger, first_row + result.rows))
+    figures = column_statistics(profile, ledger, first_row + result.rows)
+    # the stored err_max is an upper limit already: rounded up again (round_up_short), it would
+    # grow by a step of its 24 significant bits at every append
+    figures["err_max"] = np.maximum(old.err_max, arithmetic.round_up_short(result.ledger.err_max))
+    measured = reader.model.with_statistics(figures)
     columns_name = versions.versioned_name(f"columns.v{version}.parquet", token)
     write_small_table(temp / columns_name, measured.to_tables()[layout.COLUMNS])
     tables[layout.COLUMNS] = columns_name

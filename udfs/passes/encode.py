@@ -78,8 +78,9 @@ class ColumnLedger:
         any summation order (Higham, "Accuracy and Stability of Numerical Algorithms", 2nd
         ed., 2002, chapter 4), the square root and each of the k hypot merges of block norms
         add at most 2u more; s <= rows and k <= rows, so the norm is scaled by
-        1 + (3 rows + 8) u (1 + 5e-9 at 1.6e7 rows) and then rounded up."""
-        return arithmetic.round_up(self.err_l2 * (1.0 + (3.0 * rows + 8.0) * arithmetic.UNIT_ROUNDOFF))
+        1 + (3 rows + 8) u (1 + 5e-9 at 1.6e7 rows) and then rounded up (to
+        ``arithmetic.COLUMN_FIGURE_BITS`` significant bits: ``round_up_short``)."""
+        return arithmetic.round_up_short(self.err_l2 * (1.0 + (3.0 * rows + 8.0) * arithmetic.UNIT_ROUNDOFF))
 
     def merge(self, other: "ColumnLedger") -> "ColumnLedger":
         """The ledger of two disjoint row sets (associative: max, hypot, sums)."""
@@ -121,8 +122,12 @@ def column_statistics(profile: ColumnProfile, ledger: ColumnLedger, rows: int) -
     rel_rms = relative_rms(err_l2, ledger.cells, std)
     return {"valid": profile.valid, "nulls": profile.nulls, "nans": profile.nans,
             "infinities": profile.infinities, "mean": profile.mean, "std": std,
-            "min": profile.minimum, "max": profile.maximum, "err_max": arithmetic.round_up(ledger.err_max),
-            "err_l2": err_l2, "err_sum": ledger.err_sum, "err_cells": ledger.cells,
+            "min": profile.minimum, "max": profile.maximum, "err_max": arithmetic.round_up_short(ledger.err_max),
+            # err_sum, a descriptive figure (no bound uses it), to the same 24 significant bits,
+            # rounded to nearest: nci60 at 0.01 std, its field 49,413 -> about 25,000 bytes
+            "err_l2": err_l2, "err_sum": arithmetic.trim_mantissa(np.asarray(ledger.err_sum, np.float64),
+                                                                  arithmetic.COLUMN_FIGURE_BITS),
+            "err_cells": ledger.cells,
             "rel_rms": rel_rms}
 
 

@@ -182,20 +182,27 @@ def column_errors_sql(reader: ArchiveReader) -> str:
               "err_max", "err_l2", "err_sum", "err_cells", "rel_rms", "tolerance", "residual_step"]
     path = reader.path / layout.table_file(reader.manifest, layout.COLUMNS)
     reader.check_table(layout.COLUMNS)  # DuckDB reads the columns table again: unchanged?
-    if reader.columns_packed:  # the stored form of table_schemas.pack_columns_table
-        return f"SELECT {', '.join(_unpacked_sql(wanted))} FROM {read_parquet_sql([path], file_row_number=True)}"
+    if reader.columns_packed:  # the stored forms of table_schemas.pack_columns_table / by_field_columns_table
+        items = _unpacked_sql(wanted, reader.columns_stored_fields)
+        return f"SELECT {', '.join(items)} FROM {read_parquet_sql([path], file_row_number=True)}"
     have = set(reader.columns_table.column_names)
     # shift, scale and ledger_scale are stored once where they repeat mean or std (table_schemas.REPEATED)
     cols = ", ".join(f"coalesce({n}, {REPEATED[n]}) AS {n}" if n in REPEATED else n for n in wanted if n in have)
     return f"SELECT {cols} FROM {read_parquet_sql([path])}"
 
 
-def _unpacked_sql(wanted: list[str]) -> list[str]:
+def _unpacked_sql(wanted: list[str], stored: list[str] | None = None) -> list[str]:
     """SELECT items giving the fields ``wanted`` of a packed columns table read with its file
     row numbers: what ``table_schemas.unpack_columns_table`` does, in SQL (DuckDB lists count
-    from 1; the same IEEE operations, so the same bits)."""
+    from 1; the same IEEE operations, so the same bits). ``stored``: the stored table's field
+    names; without ``numbers`` it is stored by field (``table_schemas.by_field_columns_table``:
+    an entry is its own field, NULL in every row where the field is left out)."""
+    packed = stored is None or "numbers" in stored
+
     def entry(name: str) -> str:
-        return f"numbers[{PACKED_NUMBERS.index(name) + 1}]"
+        if packed:
+            return f"numbers[{PACKED_NUMBERS.index(name) + 1}]"
+        return quote_identifier(name) if name in stored else "CAST(NULL AS DOUBLE)"
 
     std, l2, cells, step = (entry(n) for n in ("std", "err_l2", "err_cells", "residual_step"))
     tol = f"coalesce({entry('tolerance')}, {entry('tolerance_over_std')} * {std})"

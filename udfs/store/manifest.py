@@ -30,15 +30,21 @@ REQUIRED_KEYS = ("format", "format_version", "writer", "archive_id", "shape", "s
                  "method", "basis", "anchors", "files", "errors")
 
 
+#: Stems of the small tables' file names (``columns.parquet``, ``columns.<token>.parquet``, ...):
+#: every reader hashes them whole (``integrity.read_small_table``), so their footers get no
+#: digest of their own (62 bytes of manifest each).
+_HASHED_WHOLE = tuple(n.split(".")[0] for n in (layout.COLUMNS, layout.ANCHORS, layout.CELLS, "blocks.parquet"))
+
+
 def file_entry(directory: Path, name: str, keyed: list[str] | None = None) -> dict[str, Any]:
-    """The manifest's record of one file: name, size, SHA-256, and for Parquet files the
-    SHA-256 of the footer (checked on every open, where hashing a whole row file is not);
-    for row files also the SHA-256 of each row group and of the chunks of the columns
-    ``keyed`` (``_rf_row`` and the exact columns: ``integrity.part_digests``; SQL checks only
-    what a query reads)."""
+    """The manifest's record of one file: name, size, SHA-256, and for Parquet files other
+    than the small tables (:data:`_HASHED_WHOLE`) the SHA-256 of the footer (checked on every
+    open, where hashing a whole row file is not); for row files also the SHA-256 of each row
+    group and of the chunks of the columns ``keyed`` (``_rf_row`` and the exact columns:
+    ``integrity.part_digests``; SQL checks only what a query reads)."""
     path = directory / name
-    entry = entry_of(name, path.stat().st_size, sha256_of(path),
-                     footer_sha256(path) if name.endswith(".parquet") else None)
+    footer = name.endswith(".parquet") and name.split(".")[0] not in _HASHED_WHOLE
+    entry = entry_of(name, path.stat().st_size, sha256_of(path), footer_sha256(path) if footer else None)
     if name.startswith(layout.ROWS_PATTERN.split("{")[0]) and name.endswith(".parquet"):
         entry.update(part_digests(path, keyed))
     return entry
@@ -98,11 +104,12 @@ def sealed_manifest_text(manifest: dict[str, Any]) -> str:
     body = {k: v for k, v in written_form(manifest).items() if k != DIGEST_FIELD}
     if not isinstance(body.get("achieved"), dict) or "bytes" not in body["achieved"]:
         return manifest_text({DIGEST_FIELD: manifest_digest(body), **body})
-    achieved = body["achieved"] = manifest["achieved"] = dict(body["achieved"])
+    achieved = body["achieved"] = dict(body["achieved"])
+    recorded = manifest["achieved"] = dict(manifest["achieved"])
     data = _listed_bytes(body)
     total = data
     for _ in range(64):  # each round adds at least one digit to the figure or ends the loop
-        achieved["bytes"] = total
+        achieved["bytes"] = recorded["bytes"] = total
         text = manifest_text({DIGEST_FIELD: manifest_digest(body), **body})
         if data + len(text.encode("utf-8")) == total:
             return text

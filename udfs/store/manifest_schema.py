@@ -18,8 +18,11 @@ Older format versions are handled in one place only: :func:`older_format_rules`.
 
 from __future__ import annotations
 
+import base64
+import copy
 import math
 import re
+import struct
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -27,7 +30,8 @@ from ..errors import CorruptArchiveError
 from . import layout
 
 __all__ = ["MANIFEST_SCHEMA", "DIGEST_FIELD", "RENAMED_ERROR_KEYS", "MAX_ROWS", "MAX_COLUMNS", "validate",
-           "check_plain_name", "older_format_rules", "older_row_file_rules", "DERIVED_KEYS", "derived_entries", "written_form", "sealed_by_groups",
+           "check_plain_name", "older_format_rules", "older_row_file_rules", "DERIVED_KEYS", "derived_entries", "written_form", "sealed_by_groups", "ERROR_NOTES", "STORED_OPTION_VALUES",
+           "COLUMN_TOLERANCES",
            "files_used", "OPTIONAL_TABLES", "holds_table"]
 
 DIGEST_FIELD = "manifest_sha256"
@@ -323,6 +327,11 @@ def older_format_rules(manifest: dict[str, Any], path: Any) -> None:
 #: ``numeric_columns`` is the schema's names with role "numeric", in schema order. Manifests
 #: written before kept it; their copy is checked against the schema (``_cross_check``).
 DERIVED_KEYS = ("numeric_columns",)
+#: The value of a per-column ``targets.max_abs_error`` whose every value is the tolerance the
+#: columns table holds for its column bit for bit (and that names exactly the columns that have
+#: one): the tolerances are stored once, in columns.parquet (``FittedModel.tolerance``). Measured
+#: on a real table of 6,830 columns: 150,512 bytes of decimal text in the manifest -> 32.
+COLUMN_TOLERANCES = "as columns.parquet tolerance"
 #: Target options recorded per column (``targets``); see :func:`written_form`.
 _PER_COLUMN_TARGETS = ("rel_error", "max_abs_error", "max_std_error")
 
@@ -347,6 +356,161 @@ def _expanded(runs: Any, length: int) -> list[Any] | None:
     return values
 
 
+# -- numbered names: "data.1", "data.2", ... stored as one run --------------------------------
+_NUMBERED = re.compile(r"(.*?)([0-9]{1,15})", re.DOTALL)
+#: Shortest run of numbered names worth a run entry (a run costs about as much as two names).
+_MIN_NUMBERED_RUN = 3
+
+
+def _numbered(name: Any) -> tuple[str, int, int] | None:
+    """(prefix, number, width) of a name that ends in decimal digits and is given back exactly
+    by ``prefix + format(number, f"0{width}d")`` (width 0: no padding), else None."""
+    match = _NUMBERED.fullmatch(name) if isinstance(name, str) else None
+    if match is None:
+        return None
+    prefix, digits = match.groups()
+    width = len(digits) if digits.startswith("0") and len(digits) > 1 else 0
+    number = int(digits)
+    return (prefix, number, width) if f"{prefix}{number:0{width}d}" == name else None
+
+
+def _named_runs(names: list[Any]) -> list[Any]:
+    """``names`` with every run of at least :data:`_MIN_NUMBERED_RUN` consecutive numbered
+    names (same prefix and width, numbers rising by one) replaced by ``[prefix, first, count,
+    width]``; other names stay strings (a list item is a run, a string a name). Measured on a
+    real table of 6,830 columns named ``data.1`` .. ``data.6830``: 87,753 bytes of names -> 22."""
+    stored: list[Any] = []
+    i = 0
+    while i < len(names):
+        j = i + 1
+        parsed = _numbered(names[i])
+        if parsed is not None:  # the width is a least width: c08, c09, c10 is one run
+            prefix, first, width = parsed
+            while j < len(names) and names[j] == f"{prefix}{first + (j - i):0{width}d}":
+                j += 1
+        if j - i >= _MIN_NUMBERED_RUN:
+            stored.append([prefix, first, j - i, width])
+        else:
+            stored.extend(names[i:j])
+        i = j
+    return stored
+
+
+def _named_expanded(stored: Any) -> list[Any] | None:
+    """The names of :func:`_named_runs`' form, or None when ``stored`` is not one (the caller
+    leaves the entry for :func:`validate` to refuse)."""
+    if not isinstance(stored, list):
+        return None
+    names: list[Any] = []
+    for item in stored:
+        if not isinstance(item, list):
+            names.append(item)
+            continue
+        if (len(item) != 4 or not isinstance(item[0], str) or not all(type(v) is int for v in item[1:])
+                or item[1] < 0 or not 1 <= item[2] <= MAX_COLUMNS - len(names) or not 0 <= item[3] <= 15):
+            return None
+        prefix, first, count, width = item
+        names.extend(f"{prefix}{k:0{width}d}" for k in range(first, first + count))
+    return names
+
+
+# -- digests: hex in memory, base64url (43 characters) as stored --------------------------------
+_B64_DIGEST = re.compile(r"[A-Za-z0-9_-]{43}")
+
+
+def _short_digest(value: Any) -> Any:
+    """A SHA-256 as 64 hex digits -> the same 32 bytes as 43 characters of unpadded base64url
+    (RFC 4648, section 5); anything else as it is."""
+    if isinstance(value, str) and _HEX64.fullmatch(value):
+        return base64.urlsafe_b64encode(bytes.fromhex(value)).decode("ascii").rstrip("=")
+    return value
+
+
+def _hex_digest(value: Any) -> Any:
+    """The inverse of :func:`_short_digest` (a 64-hex digest, as older manifests store it, and
+    anything else stay as they are, for :func:`validate` to judge)."""
+    if isinstance(value, str) and _B64_DIGEST.fullmatch(value):
+        raw = base64.urlsafe_b64decode(value + "=")
+        if _short_digest(raw.hex()) == value:  # the one canonical spelling only
+            return raw.hex()
+    return value
+
+
+_FILE_DIGESTS = ("sha256", "footer_sha256")
+
+
+def _map_file_digests(files: Any, convert) -> Any:
+    """``files`` with every digest of each entry passed through ``convert`` (a new list)."""
+    if not isinstance(files, list):
+        return files
+    out = []
+    for entry in files:
+        if isinstance(entry, dict):
+            entry = dict(entry)
+            for key in _FILE_DIGESTS:
+                if key in entry:
+                    entry[key] = convert(entry[key])
+            if isinstance(entry.get("group_sha256"), list):
+                entry["group_sha256"] = [convert(v) for v in entry["group_sha256"]]
+            if isinstance(entry.get("column_sha256"), dict):
+                entry["column_sha256"] = {k: convert(v) for k, v in entry["column_sha256"].items()}
+        out.append(entry)
+    return out
+
+
+# -- float64 lists: little-endian bytes in base64 -----------------------------------------------
+_FLOAT64 = "float64_le_base64"
+
+
+def _packed_floats(values: list[Any]) -> str | None:
+    """Finite float64 values as the base64 (RFC 4648) of their little-endian bytes: exact, 10.7
+    characters a value against about 19 as shortest decimal text (None: not such a list)."""
+    if not all(type(v) is float and math.isfinite(v) for v in values):
+        return None
+    return base64.b64encode(struct.pack(f"<{len(values)}d", *values)).decode("ascii")
+
+
+def _unpacked_floats(text: Any) -> list[float] | None:
+    """The inverse of :func:`_packed_floats`; None when ``text`` is not such a form."""
+    if not isinstance(text, str) or len(text) > 12 * MAX_COLUMNS:
+        return None
+    try:
+        raw = base64.b64decode(text, validate=True)
+    except ValueError:
+        return None
+    if len(raw) % 8:
+        return None
+    return list(struct.unpack(f"<{len(raw) // 8}d", raw))
+
+
+#: Texts written by every compress (``passes.compress``) or append, stored as their index here
+#: (frozen: part of the stored form; a text not listed is stored as it is).
+ERROR_NOTES = (
+    "relative figures are in transformed units (after the transform); relative RMS is per column, "
+    "divided by the column's standard deviation",
+    "relative figures are in transformed units (after the transform); relative RMS is per column, "
+    "divided by the column's standard deviation; the spectrum, and so the optimal error, is estimated "
+    "from the sketch's sample of rows; every error, and the table's norm, is measured on every row",
+    "after appends: relative_frobenius, the column figures and the cell counts cover every row; the "
+    "optimum and spectrum are those of the compressed rows",
+)
+_NOTE_KEYS = ("note", "note_append")
+#: Figures of ``achieved`` that repeat the ``errors`` record (left out where equal).
+_ACHIEVED_REPEATS = ("relative_frobenius", "largest_error")
+#: The compress options as recorded in ``method.options`` when left at these values (frozen:
+#: part of the stored form, not the code's current defaults): an option recorded with the
+#: value listed here is left out of the stored form and filled back on read.
+STORED_OPTION_VALUES = {
+    "rank": None, "seed": 0, "method": None, "column_method": "pivoted_qr", "row_method": "qdeim",
+    "link": "cx", "transform": "standardize", "n_columns": None, "n_rows": None, "replace": None,
+    "key": None, "exact_columns": [], "batch_rows": 131072, "sketch_rows": "auto", "residual": "auto",
+    "basis_precision": "auto", "row_differences": "off", "refit_outliers": None,
+}
+#: The entry of a stored ``method.options`` that says every option of
+#: :data:`STORED_OPTION_VALUES` it does not name has the value listed there.
+_OTHERS = "others_as_stored_values"
+
+
 def written_form(manifest: dict[str, Any]) -> dict[str, Any]:
     """The manifest as a writer stores it (a new dict; ``manifest`` is left alone), the inverse of
     :func:`derived_entries`. Nothing is stored twice, and what repeats is stored once:
@@ -354,21 +518,55 @@ def written_form(manifest: dict[str, Any]) -> dict[str, Any]:
     * :data:`DERIVED_KEYS` are left out;
     * ``schema`` is stored by field, ``{"names": [...], "types": runs, "roles": runs}`` with
       types and roles as runs ``[[value, count], ...]`` (a 751-column schema: 49 kB as one
-      record per column, 16 kB so);
+      record per column, 16 kB so), and runs of numbered names as ``[prefix, first, count,
+      width]`` (:func:`_named_runs`);
     * a per-column target of ``targets`` that names every numeric column in schema order is
       stored as a list of its values (the names are the schema's);
-    * the zeros that end ``spectrum`` (beyond the table's rank: a 64-row table of 6,830
-      columns has 6,766) are stored as their count, ``{"values": [...], "zeros": k}``."""
+    * ``spectrum`` is stored as ``{"float64_le_base64": text, "zeros": k}``: its values up to
+      the zeros that end it (beyond the table's rank: a 64-row table of 6,830 columns has
+      6,766) as little-endian float64 bytes in base64 (:func:`_packed_floats`, exact), and the
+      count of those zeros;
+    * every SHA-256 of ``files`` as 43 characters of base64url instead of 64 hex digits;
+    * ``basis`` by field (:func:`_basis_by_field`: the keys once, names as runs);
+    * the ``errors`` notes rankfold writes as their index in :data:`ERROR_NOTES`; ``achieved``
+      without the figures equal to those of ``errors`` (:data:`_ACHIEVED_REPEATS`);
+      ``method.options`` without the options recorded at their :data:`STORED_OPTION_VALUES`
+      (the entry ``others_as_stored_values: true`` says so).
+
+    Measured (DEVELOPERS.md, "Sizes"): manifest.json 4,999 -> 3,521 bytes on benchmarks/overhead.py
+    (2,000 x 50); 228,413 -> 2,751 on a real table of 6,830 columns with a tolerance per column
+    (the tolerances: ``COLUMN_TOLERANCES``)."""
     body = {k: v for k, v in manifest.items() if k not in DERIVED_KEYS}
     spectrum = body.get("spectrum")
-    if isinstance(spectrum, list) and len(spectrum) > 1 and spectrum[-1] == 0 and spectrum[-2] == 0:
+    if isinstance(spectrum, list):
         kept = len(spectrum)
-        while kept and spectrum[kept - 1] == 0:
+        while kept and type(spectrum[kept - 1]) is float and spectrum[kept - 1] == 0 and math.copysign(1.0, spectrum[kept - 1]) > 0:
             kept -= 1
-        body["spectrum"] = {"values": spectrum[:kept], "zeros": len(spectrum) - kept}
+        packed = _packed_floats(spectrum[:kept])
+        if packed is not None:
+            body["spectrum"] = {_FLOAT64: packed, "zeros": len(spectrum) - kept}
+    if "files" in body:
+        body["files"] = _map_file_digests(body["files"], _short_digest)
+    if "basis" in body:
+        body["basis"] = _basis_by_field(body["basis"])
+    errors = body.get("errors")
+    if isinstance(errors, dict):
+        body["errors"] = {k: (ERROR_NOTES.index(v) if k in _NOTE_KEYS and v in ERROR_NOTES else v)
+                          for k, v in errors.items()}
+    achieved, errors = body.get("achieved"), manifest.get("errors")
+    if isinstance(achieved, dict) and isinstance(errors, dict):
+        body["achieved"] = {k: v for k, v in achieved.items()
+                            if not (k in _ACHIEVED_REPEATS and k in errors and _same_json(v, errors[k]))}
+    method = body.get("method")
+    if isinstance(method, dict) and isinstance(method.get("options"), dict) and _OTHERS not in method["options"]:
+        options = method["options"]
+        kept = {k: v for k, v in options.items()
+                if not (k in STORED_OPTION_VALUES and _same_json(v, STORED_OPTION_VALUES[k]))}
+        body["method"] = {**method, "options": {_OTHERS: True, **kept}}
     schema = body.get("schema")
     if isinstance(schema, list) and all(isinstance(f, dict) and set(f) == {"name", "type", "role"} for f in schema):
-        body["schema"] = {"names": [f["name"] for f in schema], "types": _runs([f["type"] for f in schema]),
+        body["schema"] = {"names": _named_runs([f["name"] for f in schema]),
+                          "types": _runs([f["type"] for f in schema]),
                           "roles": _runs([f["role"] for f in schema])}
         numeric = [f["name"] for f in schema if f["role"] == "numeric"]
         targets = body.get("targets")
@@ -382,23 +580,90 @@ def written_form(manifest: dict[str, Any]) -> dict[str, Any]:
     return body
 
 
+_BASIS_KEYS = ("name", "fill", "step", "stored_as")  # "name" and "fill" in every entry
+
+
+def _basis_by_field(basis: Any) -> Any:
+    """The ``basis`` list stored by field, ``{"name": names, "fill": [...], "step": [...],
+    "stored_as": names}``: an entry without ``step`` or ``stored_as`` has null there (a field
+    null in every entry is left out), names in the form of :func:`_named_runs`. Anything else
+    is returned as it is."""
+    if not (isinstance(basis, list) and basis and all(
+            isinstance(b, dict) and {"name", "fill"} <= set(b) <= set(_BASIS_KEYS)
+            and all(v is not None for v in b.values()) for b in basis)):
+        return basis
+    stored: dict[str, Any] = {}
+    for key in _BASIS_KEYS:
+        values = [b.get(key) for b in basis]
+        if all(v is None for v in values):
+            continue
+        stored[key] = _named_runs(values) if key in ("name", "stored_as") and None not in values else values
+    return stored
+
+
+def _basis_entries(stored: Any) -> Any:
+    """The inverse of :func:`_basis_by_field` (a form that does not fit is returned as it is,
+    for :func:`validate` to refuse)."""
+    if not (isinstance(stored, dict) and {"name", "fill"} <= set(stored) <= set(_BASIS_KEYS)):
+        return stored
+    fields = {k: (_named_expanded(v) if k in ("name", "stored_as") else v) for k, v in stored.items()}
+    if any(not isinstance(v, list) for v in fields.values()) or len({len(v) for v in fields.values()}) != 1:
+        return stored
+    count = len(fields["name"])
+    return [{k: fields[k][i] for k in _BASIS_KEYS if k in fields and fields[k][i] is not None}
+            for i in range(count)]
+
+
+def _same_json(a: Any, b: Any) -> bool:
+    """Equal as JSON values (1 and 1.0 and True differ: the stored form must give back the
+    same text)."""
+    return type(a) is type(b) and a == b
+
+
 def derived_entries(manifest: dict[str, Any]) -> None:
     """Undo :func:`written_form` on a manifest as read (in place): the schema by field back to
-    one record per column, per-column targets stored as lists back to mappings, the spectrum's
-    count of final zeros back to zeros, and
+    one record per column (numbered runs expanded), per-column targets stored as lists back to
+    mappings, the spectrum's bytes and count of final zeros back to a list, digests back to hex,
+    notes, the repeated figures of ``achieved`` and the omitted options back, and
     :data:`DERIVED_KEYS` added (an older manifest's own copy is kept, and then checked by
     :func:`validate`). A form that does not fit together is left as it is, for :func:`validate`
-    to refuse with its place named."""
+    to refuse with its place named. Manifests written before any of these forms are read as
+    they are."""
     spectrum = manifest.get("spectrum")
-    if (isinstance(spectrum, dict) and set(spectrum) == {"values", "zeros"} and isinstance(spectrum["values"], list)
+    if (isinstance(spectrum, dict) and len(spectrum) == 2 and "zeros" in spectrum
             and type(spectrum["zeros"]) is int and 0 <= spectrum["zeros"] <= MAX_COLUMNS):
-        manifest["spectrum"] = spectrum["values"] + [0.0] * spectrum["zeros"]
+        values = (_unpacked_floats(spectrum[_FLOAT64]) if _FLOAT64 in spectrum
+                  else spectrum.get("values") if isinstance(spectrum.get("values"), list) else None)
+        if values is not None:
+            manifest["spectrum"] = values + [0.0] * spectrum["zeros"]
+    if "files" in manifest:
+        manifest["files"] = _map_file_digests(manifest["files"], _hex_digest)
+    if "basis" in manifest:
+        manifest["basis"] = _basis_entries(manifest["basis"])
+    errors = manifest.get("errors")
+    if isinstance(errors, dict):
+        for key in _NOTE_KEYS:
+            if type(errors.get(key)) is int and 0 <= errors[key] < len(ERROR_NOTES):
+                errors[key] = ERROR_NOTES[errors[key]]
+        achieved = manifest.get("achieved")
+        if isinstance(achieved, dict):
+            for key in _ACHIEVED_REPEATS:
+                if key not in achieved and key in errors:
+                    achieved[key] = errors[key]
+    method = manifest.get("method")
+    options = method.get("options") if isinstance(method, dict) else None
+    if isinstance(options, dict) and options.get(_OTHERS) is True:
+        del options[_OTHERS]
+        for key, value in STORED_OPTION_VALUES.items():
+            options.setdefault(key, copy.deepcopy(value))
     schema = manifest.get("schema")
-    if isinstance(schema, dict) and set(schema) == {"names", "types", "roles"} and isinstance(schema["names"], list):
-        names = schema["names"]
-        types, roles = _expanded(schema["types"], len(names)), _expanded(schema["roles"], len(names))
-        if types is not None and roles is not None:
-            manifest["schema"] = schema = [{"name": n, "type": t, "role": r} for n, t, r in zip(names, types, roles)]
+    if isinstance(schema, dict) and set(schema) == {"names", "types", "roles"}:
+        names = _named_expanded(schema["names"])
+        if names is not None:
+            types, roles = _expanded(schema["types"], len(names)), _expanded(schema["roles"], len(names))
+            if types is not None and roles is not None:
+                manifest["schema"] = schema = [{"name": n, "type": t, "role": r}
+                                               for n, t, r in zip(names, types, roles)]
     if not isinstance(schema, list) or not all(isinstance(f, dict) for f in schema):
         return
     numeric = [f.get("name") for f in schema if f.get("role") == "numeric"]

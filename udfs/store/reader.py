@@ -131,6 +131,9 @@ class ArchiveReader:
         #: whether columns.parquet is stored packed (``table_schemas.pack_columns_table``), as
         #: written since; the table below is in the form of one field per number either way
         self.columns_packed = is_packed(stored.schema)
+        #: the stored fields of columns.parquet (packed: ``numbers``; by field: the entries of
+        #: ``table_schemas.PACKED_NUMBERS`` it holds), for SQL that reads it
+        self.columns_stored_fields = list(stored.schema.names)
         self.columns_table = unpack_columns_table(stored, self.path / layout.table_file(m, layout.COLUMNS))
         anchors = (read_small_table(self.path, m, layout.table_file(m, layout.ANCHORS))
                    if holds_table(m, layout.ANCHORS) else anchors_schema(self.numeric_columns, False).empty_table())

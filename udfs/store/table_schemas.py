@@ -28,7 +28,8 @@ from ..errors import CorruptArchiveError
 from . import layout
 
 __all__ = ["COLUMNS_SCHEMA", "COLUMNS_OPTIONAL", "columns_schema", "PACKED_NUMBERS", "REPEATED", "relative_rms",
-           "packed_columns_schema", "is_packed", "pack_columns_table", "unpack_columns_table", "CELLS_SCHEMA", "anchors_schema",
+           "packed_columns_schema", "is_packed", "pack_columns_table", "by_field_columns_schema",
+           "is_by_field", "by_field_columns_table", "unpack_columns_table", "CELLS_SCHEMA", "anchors_schema",
            "row_file_reserved", "check_schema", "check_row_schema", "CODE_TYPES"]
 
 COLUMNS_SCHEMA = pa.schema([
@@ -90,10 +91,55 @@ def packed_columns_schema(optional: list[str] | tuple[str, ...] = ()) -> pa.Sche
     return pa.schema(list(_PACKED) + [f for f in COLUMNS_OPTIONAL if f.name in optional])
 
 
+def by_field_columns_schema(present: list[str] | tuple[str, ...],
+                            optional: list[str] | tuple[str, ...] = ()) -> pa.Schema:
+    """The schema of the columns table stored by field (:func:`by_field_columns_table`): name,
+    type and role, the entries of :data:`PACKED_NUMBERS` named in ``present`` (in that order;
+    counts int64, the others float64), ``weights``, and the optional fields ``optional``."""
+    numbers = [(n, pa.int64() if n in _COUNTS else pa.float64()) for n in PACKED_NUMBERS if n in present]
+    return pa.schema(list(_PACKED)[:3] + numbers + [("weights", pa.list_(pa.float64()))]
+                     + [f for f in COLUMNS_OPTIONAL if f.name in optional])
+
+
 def is_packed(schema: pa.Schema) -> bool:
-    """Whether a columns table (as read) is in the packed form (:func:`pack_columns_table`)
-    rather than the one field per number of archives written before."""
-    return "numbers" in schema.names
+    """Whether a columns table (as read) is in one of the stored forms written since the
+    numbers were packed: one list (:func:`pack_columns_table`) or by field
+    (:func:`by_field_columns_table`), rather than the one field per number of archives
+    written before (which has ``position``)."""
+    return "numbers" in schema.names or "position" not in schema.names
+
+
+def is_by_field(schema: pa.Schema) -> bool:
+    """Whether a stored columns table is in the form of :func:`by_field_columns_table`."""
+    return "numbers" not in schema.names and "position" not in schema.names
+
+
+def by_field_columns_table(packed: pa.Table) -> pa.Table:
+    """The packed columns table (:func:`pack_columns_table`) stored by field instead: one
+    Parquet column per entry of :data:`PACKED_NUMBERS`, holding the same entries (NULL where
+    the packed list has NULL, the counts as int64), an entry NULL in every row left out
+    altogether, and the weights as one list per column. The same numbers, bit for bit, in
+    another layout: for a wide table each field is a run of like numbers (BYTE_STREAM_SPLIT and
+    zstd work on it), where the packed list interleaves twenty kinds; for a narrow one the
+    packed list's single column chunk costs less footer. ``passes.commit.write_small_table``
+    writes both and keeps the smaller (measured: DEVELOPERS.md, "Sizes")."""
+    n, k = packed.num_rows, len(PACKED_NUMBERS)
+    flat = pc.list_flatten(packed.column("numbers"))
+    width = len(flat) // n if n else k
+    values = flat.fill_null(0.0).to_numpy().reshape(n, width)
+    missing = flat.is_null().to_numpy(zero_copy_only=False).reshape(n, width)
+    data: dict[str, Any] = {name: packed.column(name) for name in ("name", "type", "role")}
+    for i, name in enumerate(PACKED_NUMBERS):
+        if n and missing[:, i].all():
+            continue
+        data[name] = pa.array(values[:, i].astype(np.int64) if name in _COUNTS else values[:, i],
+                              pa.int64() if name in _COUNTS else pa.float64(), mask=missing[:, i])
+    data["weights"] = pa.ListArray.from_arrays(pa.array(np.arange(n + 1, dtype=np.int32) * (width - k)),
+                                               pa.array(values[:, k:].ravel(), pa.float64()),
+                                               pa.list_(pa.float64()))
+    optional = _optional(packed.schema)
+    data.update({o: packed.column(o) for o in optional})
+    return pa.table(data, schema=by_field_columns_schema([f for f in PACKED_NUMBERS if f in data], optional))
 
 
 def _optional(schema: pa.Schema) -> list[str]:
@@ -106,7 +152,8 @@ def relative_rms(err_l2: np.ndarray, err_cells: np.ndarray, std: np.ndarray) -> 
     std is not positive. With the stored (rounded up) ``err_l2`` it is an upper limit."""
     std = np.asarray(std, dtype=np.float64)
     rms = np.divide(np.asarray(err_l2, dtype=np.float64), np.sqrt(np.maximum(np.asarray(err_cells, np.float64), 1.0)))
-    return np.divide(rms, std, out=np.full(std.shape, np.nan), where=std > 0)
+    with np.errstate(over="ignore"):  # a huge error over a tiny std: inf, as it is
+        return np.divide(rms, std, out=np.full(std.shape, np.nan), where=std > 0)
 
 
 def _same(a: np.ndarray, b: np.ndarray) -> np.ndarray:
@@ -213,19 +260,41 @@ def unpack_columns_table(columns: pa.Table, where: Any) -> pa.Table:
     if not is_packed(columns.schema):
         return _filled(columns)
     optional = _optional(columns.schema)
-    check_schema(columns.schema, packed_columns_schema(optional), where)
     n, k = columns.num_rows, len(PACKED_NUMBERS)
-    numbers = columns.column("numbers")
-    lengths = pc.list_value_length(numbers).fill_null(-1).to_numpy(zero_copy_only=False).astype(np.int64)
-    if n and (lengths.min() < k or lengths.min() != lengths.max()):
-        raise CorruptArchiveError(
-            f"{where} holds lists of numbers of {sorted(set(lengths.tolist()))[:4]} entries, where the format "
-            f"has {k} for every column and one weight per basis entry, alike for all; the archive is "
-            "damaged or was edited: restore it from a copy or compress the source again.")
-    width = int(lengths[0]) if n else k
-    flat = pc.list_flatten(numbers)
-    values = flat.fill_null(np.nan).to_numpy().reshape(n, width)
-    missing = flat.is_null().to_numpy(zero_copy_only=False).reshape(n, width)
+    if is_by_field(columns.schema):
+        check_schema(columns.schema, by_field_columns_schema(
+            [f for f in PACKED_NUMBERS if f in columns.schema.names], optional), where)
+        weights = columns.column("weights")
+        lengths = pc.list_value_length(weights).fill_null(-1).to_numpy(zero_copy_only=False).astype(np.int64)
+        if n and (lengths.min() < 0 or lengths.min() != lengths.max()):
+            raise CorruptArchiveError(
+                f"{where} holds lists of weights of {sorted(set(lengths.tolist()))[:4]} entries, where the format "
+                "has one weight per basis entry, alike for all columns; the archive is damaged or was edited: "
+                "restore it from a copy or compress the source again.")
+        width = k + (int(lengths[0]) if n else 0)
+        values = np.full((n, width), np.nan)
+        missing = np.ones((n, width), bool)
+        for i, name in enumerate(PACKED_NUMBERS):
+            if name in columns.schema.names:
+                field_values = columns.column(name)
+                values[:, i] = field_values.cast(pa.float64()).fill_null(np.nan).to_numpy()
+                missing[:, i] = field_values.is_null().to_numpy(zero_copy_only=False)
+        flat_weights = pc.list_flatten(weights)
+        values[:, k:] = flat_weights.fill_null(np.nan).to_numpy().reshape(n, width - k)
+        missing[:, k:] = flat_weights.is_null().to_numpy(zero_copy_only=False).reshape(n, width - k)
+    else:
+        check_schema(columns.schema, packed_columns_schema(optional), where)
+        numbers = columns.column("numbers")
+        lengths = pc.list_value_length(numbers).fill_null(-1).to_numpy(zero_copy_only=False).astype(np.int64)
+        if n and (lengths.min() < k or lengths.min() != lengths.max()):
+            raise CorruptArchiveError(
+                f"{where} holds lists of numbers of {sorted(set(lengths.tolist()))[:4]} entries, where the format "
+                f"has {k} for every column and one weight per basis entry, alike for all; the archive is "
+                "damaged or was edited: restore it from a copy or compress the source again.")
+        width = int(lengths[0]) if n else k
+        flat = pc.list_flatten(numbers)
+        values = flat.fill_null(np.nan).to_numpy().reshape(n, width)
+        missing = flat.is_null().to_numpy(zero_copy_only=False).reshape(n, width)
     field = {name: values[:, i] for i, name in enumerate(PACKED_NUMBERS)}
     nulls = {name: missing[:, i] for i, name in enumerate(PACKED_NUMBERS)}
     if np.any(missing[:, :len(_COUNTS)]) or np.any(missing[:, k:]):
