@@ -12,13 +12,16 @@ import dataclasses
 
 import numpy as np
 
+from ..store import arithmetic
 from ..store.arithmetic import trim_mantissa
+from ..store.code_layout import PackingChoice, choose_packing
 from ..store.model import Coding, Mixing
 from .encode import stored_basis
 from .predictors import choose_differences, choose_predictors, values_bytes
 from .profile import ColumnProfile, Transform
 
-__all__ = ["coding_for_plan", "trim_factors", "sample_basis", "predictor_trial", "with_row_differences"]
+__all__ = ["coding_for_plan", "trim_factors", "sample_basis", "predictor_trial", "with_row_differences",
+           "code_packing"]
 
 
 def coding_for_plan(plan, mixing, build) -> Coding | None:
@@ -179,3 +182,28 @@ def trim_factors(mixing: Mixing, tolerance: np.ndarray, profile: ColumnProfile) 
         weights[:, mixing.basis_columns] = np.eye(c)
         offset[mixing.basis_columns] = 0.0
     return Mixing(weights, offset, mixing.fill, mixing.basis_columns)
+
+
+def code_packing(sample: np.ndarray | None, mixing: Mixing, coding: Coding, transform: Transform,
+                 score_right: np.ndarray | None, table_rows: int) -> PackingChoice | None:
+    """Whether the row files hold the residual codes as one list column
+    (``store/packed_codes.py``) or one column per coded column, by trial with the real writer
+    on the sample's codes under this attempt's factors and coding
+    (``code_layout.choose_packing``). None (one column each) without a sample, with fewer than
+    two coded columns, or when some codes are stored as row differences: the packed layout is
+    not combined with row differences (their per-column chunk decoding stays as it is)."""
+    coded = np.isfinite(coding.residual_step)
+    if mixing.basis_columns is not None:
+        coded[mixing.basis_columns] = False
+    if sample is None or not sample.shape[0] or coded.sum() < 2 or (
+            coding.difference is not None and np.any(np.asarray(coding.difference) & coded)):
+        return None
+    stored, _ = sample_basis(sample, mixing, coding, transform, score_right)
+    filled = arithmetic.fill_missing(stored, mixing.fill)
+    predicted = arithmetic.approximate(filled, mixing.weights[:, coded], mixing.offset[coded])
+    values = sample[:, coded]
+    with np.errstate(invalid="ignore", over="ignore"):  # as the encode pass stores them
+        codes = arithmetic.quantize(values - predicted, coding.residual_step[coded][None, :])
+        codes = np.where(np.isfinite(codes) & (np.abs(codes) <= 2.0**31 - 1), codes, 0.0)
+    codes = arithmetic.encode_codes(codes)
+    return choose_packing(codes, np.isnan(values), table_rows)

@@ -41,6 +41,7 @@ ROW_ERR_L2 = "_rf_err_l2"
 SCORE_PATTERN = "_rf_score_{}"
 BASIS_PATTERN = "_rf_basis_{}"   # a basis column stored quantized (integer codes x step)
 CODE_PATTERN = "_rf_q_{}"        # quantized residual codes of numeric column {position}
+PACKED_CODES = "_rf_codes"       # all residual codes of a row as one list (manifest packed_codes)
 
 
 def code_sql(column: str) -> str:

@@ -32,7 +32,7 @@ import numpy as np
 import pyarrow as pa
 
 from ..errors import CorruptArchiveError
-from . import arithmetic, layout, row_differences
+from . import arithmetic, layout, packed_codes, row_differences
 from .table_schemas import (
     COLUMNS_OPTIONAL,
     anchors_schema,
@@ -143,6 +143,11 @@ class FittedModel:
     and the row figures could only tighten it below a tolerance the user already accepted.
     Recorded as the manifest's ``row_ledger`` (archives written before it carry a ledger,
     and an append keeps what the archive has).
+    packed_codes: the row files hold the residual codes of all coded columns as one list
+    column (``packed_codes``, chosen by trial: ``code_layout.choose_packing``) instead of one
+    column per coded column; the manifest's ``packed_codes`` (absent: one column each).
+    Readers unpack at the source (:meth:`unpack_codes`), so every other method sees the
+    per-column view.
     """
 
     names: list[str]
@@ -161,6 +166,7 @@ class FittedModel:
     score_right: np.ndarray | None = None
     statistics: dict[str, np.ndarray] | None = None
     row_ledger: bool | None = None
+    packed_codes: bool = False
 
     def __post_init__(self) -> None:
         if self.row_ledger is None:  # a new model: no row ledger when the tolerances bound every cell
@@ -282,8 +288,25 @@ class FittedModel:
                 basis[name] = pa.float32() if self.coding.float32_scores else pa.float64()
             else:
                 basis[name] = None
-        codes = [layout.CODE_PATTERN.format(int(j)) for j in np.flatnonzero(np.isfinite(self.residual_step))]
-        return row_file_reserved(basis, codes, row_ledger=self.row_ledger)
+        return row_file_reserved(basis, self.code_names, row_ledger=self.row_ledger,
+                                 packed_codes=self.packed_codes)
+
+    @cached_property
+    def code_names(self) -> list[str]:
+        """The residual-code columns (``layout.CODE_PATTERN``) in position order: the order of
+        the codes in a packed row (``packed_codes``)."""
+        return [layout.CODE_PATTERN.format(int(j)) for j in np.flatnonzero(np.isfinite(self.residual_step))]
+
+    def unpack_codes(self, rows: pa.Table, wanted: Any = None, where: Any = "a row file") -> pa.Table:
+        """``rows`` as read from a row file, in the per-column view: a packed code list
+        replaced by the code columns ``wanted`` (None: all; ``packed_codes.unpack``)."""
+        if not self.packed_codes:
+            return rows
+        return packed_codes.unpack(rows, self.code_names, wanted, where)
+
+    def row_file_columns(self, columns: Any) -> list[str] | None:
+        """The row-file columns to read for the per-column view ``columns`` (None: all)."""
+        return packed_codes.file_columns(columns, self.packed_codes)
 
     def scores_right(self) -> np.ndarray | None:
         """(n, c) the right factor that turns transformed rows into scores (None: basis columns)."""
@@ -499,13 +522,19 @@ class FittedModel:
                     manifest["transform"], columns.column("shift").to_numpy(),
                     columns.column("scale").to_numpy(), mixing, basis_names, coding,
                     columns.column("ledger_scale").to_numpy(), positions, values, nulls,
-                    statistics=statistics, row_ledger=bool(manifest.get("row_ledger", True)))
+                    statistics=statistics, row_ledger=bool(manifest.get("row_ledger", True)),
+                    packed_codes=bool(manifest.get("packed_codes", False)))
         if coding.difference is not None and not np.array_equal(model.difference, coding.difference):
             raise CorruptArchiveError(
                 f"The columns table of {where} marks columns "
                 f"{[names[j] for j in np.flatnonzero(coding.difference & ~model.difference)]} as stored as "
                 "row differences, but they have no residual codes; the archive is damaged or was edited: "
                 "restore it from a copy or compress the source again.")
+        if model.packed_codes and model.difference.any():
+            raise CorruptArchiveError(
+                f"The manifest of {where} packs the residual codes into one list column, but the columns "
+                "table stores some of them as row differences, which this format keeps one column each; "
+                "the archive is damaged or was edited: restore it from a copy or compress the source again.")
         if [b.get("stored_as", b["name"]) for b in basis] != model.basis_stored:
             raise CorruptArchiveError(
                 f"The manifest of {where} stores the basis entries in the row-file columns "

@@ -303,8 +303,11 @@ class ArchiveReader:
 
     def _read_groups(self, name: str, groups: list[int], columns: list[str] | None) -> pa.Table:
         """The row groups ``groups`` (sorted) of the row file ``name``, columns ``columns``
-        (None: all), in order."""
-        return self._read(name, lambda f: f.read_row_groups(groups, columns=columns))
+        (None: all), in order; residual codes in the per-column view whatever the layout
+        (``FittedModel.unpack_codes``)."""
+        stored = self.model.row_file_columns(columns)
+        table = self._read(name, lambda f: f.read_row_groups(groups, columns=stored))
+        return self.model.unpack_codes(table, columns, self.path / name)
 
     def reads_differences(self, columns: list[str] | None) -> bool:
         """Whether reading the row-file columns ``columns`` (None: all) reads a residual-code
