@@ -237,3 +237,25 @@ def test_every_cell_of_a_packed_archive_is_within_its_tolerance(tmp_path_factory
 
 def table_nulls(table: pa.Table, names: list[str]) -> np.ndarray:
     return np.column_stack([table.column(n).is_null().to_numpy(zero_copy_only=False) for n in names])
+
+
+def test_a_packed_row_file_without_its_codes_or_with_other_types_is_refused(tmp_path):
+    """The row-file schema check (``table_schemas.check_row_schema``) covers the packed column:
+    dropped, or stored as a list of signed integers, the file is refused on open."""
+    from rankfold.udfs.store.manifest import file_entry, read_manifest, write_manifest
+
+    table = _wide(7, 30, 60, specials=False)
+    for edit, message in ((lambda t: t.drop_columns([layout.PACKED_CODES]), "lacks the column '_rf_codes'"),
+                          (lambda t: t.set_column(t.column_names.index(layout.PACKED_CODES), layout.PACKED_CODES,
+                                                  t.column(layout.PACKED_CODES).cast(pa.list_(pa.int64()))),
+                           "stores '_rf_codes' as list<element: int64>")):
+        path = rankfold.compress(table, tmp_path / message[:6], key="id", max_abs_error=0.05).path
+        assert read_manifest(path).get("packed_codes") is True
+        name = read_manifest(path)["row_parts"][0]["name"]
+        pq.write_table(edit(pq.read_table(path / name)), path / name)
+        manifest = read_manifest(path)  # sealed again: only the row file's content is wrong
+        manifest["files"] = [file_entry(path, name, [layout.ROW_ID, "id"]) if e["name"] == name else e
+                             for e in manifest["files"]]
+        write_manifest(path, manifest)
+        with pytest.raises(CorruptArchiveError, match=message.replace("(", r"\(").replace(")", r"\)")):
+            ArchiveReader(path)
