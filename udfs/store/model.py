@@ -386,9 +386,10 @@ class FittedModel:
         them so instead of as exact cells; archives written before hold none); None when
         there are none."""
         found = None
+        present = set(rows.column_names)  # once: the property builds a new list on every use
         for t, j in enumerate(col_idx):
             name = layout.CODE_PATTERN.format(int(j))
-            if not np.isfinite(self.residual_step[j]) or name not in rows.column_names:
+            if not np.isfinite(self.residual_step[j]) or name not in present:
                 continue
             column = rows.column(name)
             if column.null_count:

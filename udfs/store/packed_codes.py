@@ -89,13 +89,14 @@ def unpack(table: pa.Table, code_names: Sequence[str], wanted: Iterable[str] | N
     flat = values.fill_null(0).to_numpy(zero_copy_only=False).reshape(b, q) if q else np.zeros((b, 0), np.uint32)
     nulls = values.is_null().to_numpy(zero_copy_only=False).reshape(b, q) if values.null_count else None
     keep = set(code_names) if wanted is None else set(wanted)
-    table = table.remove_column(position)
-    for t, name in enumerate(code_names):
-        if name in keep:
-            mask = None if nulls is None or not nulls[:, t].any() else nulls[:, t]
-            table = table.append_column(pa.field(name, pa.uint32()),
-                                        pa.array(np.ascontiguousarray(flat[:, t]), pa.uint32(), mask=mask))
-    return table
+    picked = [t for t, name in enumerate(code_names) if name in keep]
+    columns = np.ascontiguousarray(flat[:, picked].T)  # one contiguous row per code column
+    arrays = [pa.array(columns[k], pa.uint32(),
+                       mask=None if nulls is None or not nulls[:, t].any() else nulls[:, t])
+              for k, t in enumerate(picked)]
+    rest = table.remove_column(position)
+    return pa.Table.from_arrays([*rest.columns, *arrays],  # one table built once: linear in q
+                                names=[*rest.column_names, *(code_names[t] for t in picked)])
 
 
 def unpacked_sql(source: str, code_names: Sequence[str]) -> str:
