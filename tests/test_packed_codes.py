@@ -159,6 +159,10 @@ def test_a_tall_table_keeps_one_column_per_code(tmp_path):
     arch = rankfold.compress(pa.table({f"w{j}": x[:, j] for j in range(8)}), tmp_path / "tall", max_std_error=0.01)
     assert "packed_codes" not in arch.manifest
     assert any(n.startswith("_rf_q_") for n in pq.read_schema(arch.path / arch._reader.parts[0][2]).names)
+    from rankfold.udfs.store.aggregate import rows_source_sql
+
+    # the SQL source of its rows is the plain file list, as before packing existed
+    assert layout.PACKED_CODES not in rows_source_sql(ArchiveReader(arch.path))
 
 
 def test_pack_and_unpack_round_trip_in_numpy_and_sql(tmp_path):
@@ -259,3 +263,11 @@ def test_a_packed_row_file_without_its_codes_or_with_other_types_is_refused(tmp_
         write_manifest(path, manifest)
         with pytest.raises(CorruptArchiveError, match=message.replace("(", r"\(").replace(")", r"\)")):
             ArchiveReader(path)
+
+
+def test_no_rows_asked_gives_empty_columns(tmp_path):
+    arch = rankfold.compress(_wide(8, 30, 40, specials=False), tmp_path / "a", key="id", max_abs_error=0.05)
+    assert arch.manifest.get("packed_codes") is True
+    names = arch.numeric_columns[:3]
+    assert arch.to_numpy([], names).shape == (0, 3)
+    assert arch.cell_bounds([], names).shape == (0, 3)

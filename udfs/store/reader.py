@@ -273,8 +273,9 @@ class ArchiveReader:
         """Row-file columns (default: all) for ``positions``, in the order given."""
         if positions.size == 0:
             schema = self.row_file_schema(self.parts[0][2])
-            names = columns or schema.names
-            return pa.table({n: pa.array([], schema.field(n).type) for n in names})
+            names = self.model.row_file_columns(columns or None) or schema.names  # packed codes: their list
+            empty = pa.table({n: pa.array([], schema.field(n).type) for n in names})
+            return self.model.unpack_codes(empty, columns or None, self.path / self.parts[0][2])
         order = np.argsort(positions, kind="stable")
         sorted_pos = positions[order]
         pieces = []
