@@ -271,3 +271,19 @@ def test_no_rows_asked_gives_empty_columns(tmp_path):
     names = arch.numeric_columns[:3]
     assert arch.to_numpy([], names).shape == (0, 3)
     assert arch.cell_bounds([], names).shape == (0, 3)
+
+
+def test_row_differences_keep_one_column_per_code(tmp_path):
+    """Packing is not combined with row differences: with every coded column difference-coded
+    the short wide table that packs otherwise keeps one column per code, and a manifest that
+    claims packed codes beside difference-coded columns is refused."""
+    from rankfold.udfs.store.manifest import read_manifest, write_manifest
+
+    table = _wide(9, 30, 60, specials=False)
+    arch = rankfold.compress(table, tmp_path / "a", key="id", max_abs_error=0.05, row_differences="all")
+    assert arch._reader.model.difference.any() and "packed_codes" not in arch.manifest
+    manifest = read_manifest(arch.path)
+    manifest["packed_codes"] = True
+    write_manifest(arch.path, manifest)  # sealed again: only the claim is wrong
+    with pytest.raises(CorruptArchiveError, match="packs the residual codes"):
+        ArchiveReader(arch.path)
