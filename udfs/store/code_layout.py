@@ -45,6 +45,7 @@ __all__ = [
     "choose_packed_layout",
     "choose_packing",
     "PACKING_CELLS",
+    "PACKING_GAIN",
 ]
 
 ENCODINGS = ("PLAIN", "DELTA_BINARY_PACKED", "BYTE_STREAM_SPLIT", "dictionary")
@@ -199,6 +200,12 @@ def chunk_overhead_bytes(coded: CodedColumn, chunks: int | None = None) -> int:
 #: codes took about 0.1 s a layout; the choice only matters where per-chunk costs dominate,
 #: which a short sample shows as well as a long one.
 PACKING_CELLS = 1 << 18
+#: Packed only when its estimate is at most this fraction of one column per code: a read of a
+#: few columns (a SQL projection, ``to_numpy(columns=...)``) then reads every code of its rows,
+#: so a gain within the estimate's noise is not worth it. Measured (benchmarks/packed_codes.py,
+#: 0.01 std): nci60 0.51, speech 0.67, meats 0.46 pass; chicago 0.99 and hfi 0.99 do not; an
+#: invented 10^6 x 100 low-rank table estimated 1.03.
+PACKING_GAIN = 0.95
 
 
 def _packed_table(codes: np.ndarray, nulls: np.ndarray | None) -> pa.Table:
@@ -267,8 +274,8 @@ def choose_packing(codes: np.ndarray, nulls: np.ndarray | None, table_rows: int,
     whole in-memory Parquet files (footers included: a column costs its footer entry too),
     each column or the list under its best encoding at zstd ``level``, then again for the
     sample's first half; the two sizes give a cost per row and a fixed cost per row group,
-    scaled to ``table_rows`` rows in row groups of ``group_rows``. Packed only when strictly
-    smaller. The sample is cut to its first ``PACKING_CELLS // q`` rows (at least 2)."""
+    scaled to ``table_rows`` rows in row groups of ``group_rows``. Packed only when at most
+    :data:`PACKING_GAIN` of one column per code. The sample is cut to its first ``PACKING_CELLS // q`` rows (at least 2)."""
     codes = np.asarray(codes)
     m, q = codes.shape
     if q < 2 or m < 2:  # one column: nothing to pack
@@ -292,4 +299,4 @@ def choose_packing(codes: np.ndarray, nulls: np.ndarray | None, table_rows: int,
     packed_bytes = _scaled(_file_bytes(_packed_table(codes, nulls), **packed_options),
                            _file_bytes(_packed_table(codes[:half], None if nulls is None else nulls[:half]),
                                        **packed_options), m, half, table_rows, groups)
-    return PackingChoice(packed_bytes < columns_bytes, packed_bytes, columns_bytes, m)
+    return PackingChoice(packed_bytes <= PACKING_GAIN * columns_bytes, packed_bytes, columns_bytes, m)
