@@ -148,6 +148,16 @@ MUTATIONS = {
         "udfs/sql/tables.py", '"residual_step": f"CASE WHEN {step} IS NULL THEN 2.0 * ({tol}) WHEN',
         '"residual_step": f"CASE WHEN {step} IS NULL THEN 1.0 * ({tol}) WHEN',
         ["tests/test_packed_columns.py"]),
+    "packed residual codes unpacked one column off": (
+        "udfs/store/packed_codes.py",
+        "    columns = np.ascontiguousarray(flat[:, picked].T)  # one contiguous row per code column\n",
+        "    columns = np.ascontiguousarray(np.roll(flat, 1, axis=1)[:, picked].T)\n",
+        ["tests/test_packed_codes.py"]),
+    "SQL unpacks packed residual codes one element off": (
+        "udfs/store/packed_codes.py",
+        '    items = [f"{packed}[{t + 1}] AS {quote_identifier(name)}" for t, name in enumerate(code_names)]\n',
+        '    items = [f"{packed}[{t + 2}] AS {quote_identifier(name)}" for t, name in enumerate(code_names)]\n',
+        ["tests/test_packed_codes.py"]),
 }
 
 
