@@ -155,8 +155,8 @@ MUTATIONS = {
         ["tests/test_packed_codes.py"]),
     "SQL unpacks packed residual codes one element off": (
         "udfs/store/packed_codes.py",
-        '    items = [f"{packed}[{t + 1}] AS {quote_identifier(name)}" for t, name in enumerate(code_names)]\n',
-        '    items = [f"{packed}[{t + 2}] AS {quote_identifier(name)}" for t, name in enumerate(code_names)]\n',
+        '    items = [f"{packed}[{t + 1}] AS {quote_identifier(name)}" for t, name in enumerate(code_names)\n',
+        '    items = [f"{packed}[{t + 2}] AS {quote_identifier(name)}" for t, name in enumerate(code_names)\n',
         ["tests/test_packed_codes.py"]),
 }
 

@@ -99,11 +99,16 @@ def unpack(table: pa.Table, code_names: Sequence[str], wanted: Iterable[str] | N
                                 names=[*rest.column_names, *(code_names[t] for t in picked)])
 
 
-def unpacked_sql(source: str, code_names: Sequence[str]) -> str:
+def unpacked_sql(source: str, code_names: Sequence[str], wanted: Iterable[str] | None = None) -> str:
     """SQL over ``source`` (a relation of packed row files) giving every column but
-    ``_rf_codes``, then each code column of ``code_names`` (packed order) by name: the SQL
-    form of :func:`unpack` (DuckDB lists count from 1). Projections and filters on the other
-    columns (``_rf_row``, key columns) still reach the Parquet scan below."""
+    ``_rf_codes``, then each code column of ``code_names`` (packed order) by name, or only
+    those of ``wanted`` (None: all): the SQL form of :func:`unpack` (DuckDB lists count from
+    1). Projections and filters on the other columns (``_rf_row``, key columns) still reach
+    the Parquet scan below. Naming only the codes a query reads keeps its SQL short: DuckDB
+    binds every expression of the text (nci60's 6,830 codes: a 5-column point lookup 0.62 s
+    with all of them named, against 0.34 s with one column per code)."""
     packed = quote_identifier(layout.PACKED_CODES)
-    items = [f"{packed}[{t + 1}] AS {quote_identifier(name)}" for t, name in enumerate(code_names)]
+    keep = None if wanted is None else set(wanted)
+    items = [f"{packed}[{t + 1}] AS {quote_identifier(name)}" for t, name in enumerate(code_names)
+             if keep is None or name in keep]
     return f"(SELECT * EXCLUDE ({packed}){''.join(', ' + item for item in items)} FROM {source})"
