@@ -99,6 +99,13 @@ def _same_everywhere(plain, packed, table, con) -> None:
         np.testing.assert_array_equal(single.bounds[0], b.bounds[row])
         cell = con.sql(f"SELECT rankfold_cell('{packed.path}', {row}, '{names[1]}')").fetchall()[0][0]
         np.testing.assert_array_equal(np.float64(np.nan if cell is None else cell), sb[names[1]][row])
+    from rankfold.sql_view import query, select_rows
+
+    np.testing.assert_array_equal(select_rows(packed, "id % 7 = 3"), np.flatnonzero(sb["id"] % 7 == 3))
+    queried = query(packed, f'SELECT "{names[2]}" FROM archive ORDER BY id')  # the Python SQL view
+    np.testing.assert_array_equal(queried.column(0).to_numpy(zero_copy_only=False), sa[names[2]])
+    errors = con.sql(f"SELECT * FROM rankfold_row_errors('{packed.path}') ORDER BY _rf_row").fetchnumpy()
+    assert errors[layout.ROW_ID].size == m
     con.execute(view_sql(packed, "packed_view"))  # the plain-SQL view (no UDFs)
     viewed = con.sql("SELECT * FROM packed_view ORDER BY _rf_row").fetchnumpy()
     for n in names:
