@@ -600,6 +600,10 @@ def encode_pass(stream: Stream, model: FittedModel, writer: ArchiveWriter, *, bl
     differenced = model.difference[with_residual]
     code_limit = np.where(differenced, [row_differences.code_limit(v) for v in code_limit], code_limit)
     carry = _DifferenceCarry(np.flatnonzero(differenced)) if differenced.any() else None
+    if model.packed_codes and [layout.CODE_PATTERN.format(int(j)) for j in with_residual] != model.code_names:
+        raise CorruptArchiveError(  # the list's order is the model's (store/packed_codes.py)
+            "rankfold was about to pack residual codes of other columns than its model declares; "
+            "nothing was committed. This is a defect of rankfold: please report it.")
     kernel = _Kernel(mixing, np.flatnonzero(is_basis), np.flatnonzero(~is_basis), with_residual,
                      steps[with_residual], tolerance, np.flatnonzero(np.isfinite(tolerance) & ~is_basis),
                      np.asarray(ledger_scale, dtype=np.float64), block_sums,
