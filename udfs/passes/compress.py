@@ -777,7 +777,7 @@ def _write(src, new_writer, opts, inputs: _Inputs, build: _Build, passes: _Passe
     coding = with_row_differences(opts.row_differences, coding, numeric, passes.trial_rows, passes.trial_starts,
                                   mixing, transform, score_right)
     # one list column of codes per row, or one column per coded column (store/packed_codes.py)
-    packing = code_packing(passes.trial_rows, mixing, coding, transform, score_right, rows)
+    packing = code_packing(passes.trial_rows, mixing, coding, transform, score_right, rows, passes.trial_starts)
     if packing is not None and packing.packed:
         build = dataclasses.replace(build, reason=(
             f"{build.reason}; residual codes packed into one list column per row ({packing.packed_bytes} "

@@ -225,19 +225,20 @@ class FittedModel:
         replaced by the residual codes themselves (zigzag, the column's type), as columns
         without differences store them. ``chunks`` (b,): each row's chunk start
         (``row_differences.chunk_starts``)."""
+        position = {name: i for i, name in enumerate(rows.column_names)}  # once: wide tables
+        columns = list(rows.columns)
         for j in np.flatnonzero(self.difference):
-            name = layout.CODE_PATTERN.format(int(j))
-            if name not in rows.column_names:
+            i = position.get(layout.CODE_PATTERN.format(int(j)))
+            if i is None:
                 continue
-            column = rows.column(name)
+            column = columns[i]
             # a NULL (a NULL cell) stores the difference 0 (row_differences.carry_forward)
             nulls = column.is_null().to_numpy(zero_copy_only=False) if column.null_count else None
             signed = arithmetic.decode_codes(
                 column.fill_null(0).to_numpy(zero_copy_only=False)).astype(np.int64)
             codes = row_differences.undifference(signed, chunks)
-            rows = rows.set_column(rows.column_names.index(name), name,
-                                   pa.array(arithmetic.encode_codes(codes), mask=nulls).cast(column.type))
-        return rows
+            columns[i] = pa.array(arithmetic.encode_codes(codes), mask=nulls).cast(column.type)
+        return pa.Table.from_arrays(columns, schema=rows.schema)  # built once: linear in the width
 
     @cached_property
     def basis_step(self) -> np.ndarray:
@@ -531,11 +532,6 @@ class FittedModel:
                 f"{[names[j] for j in np.flatnonzero(coding.difference & ~model.difference)]} as stored as "
                 "row differences, but they have no residual codes; the archive is damaged or was edited: "
                 "restore it from a copy or compress the source again.")
-        if model.packed_codes and model.difference.any():
-            raise CorruptArchiveError(
-                f"The manifest of {where} packs the residual codes into one list column, but the columns "
-                "table stores some of them as row differences, which this format keeps one column each; "
-                "the archive is damaged or was edited: restore it from a copy or compress the source again.")
         if [b.get("stored_as", b["name"]) for b in basis] != model.basis_stored:
             raise CorruptArchiveError(
                 f"The manifest of {where} stores the basis entries in the row-file columns "
