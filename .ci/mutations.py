@@ -165,6 +165,16 @@ MUTATIONS = {
         "udfs/store/arithmetic.py", "    return np.where((up >= values) & np.isfinite(up), up, values)",
         "    return np.where(np.isfinite(up), np.ldexp(np.floor(mantissa * scale) / scale, exponent), values)",
         ["tests/test_stored_forms.py"]),
+    "packed residual codes unpacked one column off": (
+        "udfs/store/packed_codes.py",
+        "    columns = np.ascontiguousarray(flat[:, picked].T)  # one contiguous row per code column\n",
+        "    columns = np.ascontiguousarray(np.roll(flat, 1, axis=1)[:, picked].T)\n",
+        ["tests/test_packed_codes.py"]),
+    "SQL unpacks packed residual codes one element off": (
+        "udfs/store/packed_codes.py",
+        '    items = [f"{packed}[{t + 1}] AS {quote_identifier(name)}" for t, name in enumerate(code_names)\n',
+        '    items = [f"{packed}[{t + 2}] AS {quote_identifier(name)}" for t, name in enumerate(code_names)\n',
+        ["tests/test_packed_codes.py"]),
 }
 
 

@@ -111,7 +111,8 @@ def select_rows(archive: Any, predicate: str) -> np.ndarray:
     try:
         # one expression over the exactly kept columns, checked by parsing (never run as given)
         condition = checked_condition(predicate, [layout.ROW_ID] + exact, what="row condition", con=con)
-        relation = rows_source_sql(arch._reader)  # this version's files, checked, no glob
+        # this version's files, checked, no glob; no residual codes needed
+        relation = rows_source_sql(arch._reader, codes=np.zeros(0, np.int64))
         con.execute(f"CREATE TEMP VIEW kept AS SELECT {', '.join(quote_identifier(n) for n in [layout.ROW_ID] + exact)} "
                     f"FROM {relation}")
         rows = con.sql(f"SELECT {layout.ROW_ID} FROM kept WHERE {condition} ORDER BY 1").fetchnumpy()

@@ -99,6 +99,12 @@ def _row_files(archive: rankfold.Archive) -> list:
     return sorted(archive.path.glob("rows-*.parquet"))
 
 
+def _read_rows(archive: rankfold.Archive, file) -> pa.Table:
+    """A row file as stored, codes in the per-column view (packed ones unpacked:
+    ``FittedModel.unpack_codes``)."""
+    return ArchiveReader(archive.path).model.unpack_codes(pq.read_table(file))
+
+
 def _overridden(archive: rankfold.Archive) -> np.ndarray:
     """Cells stored exactly, from the archive's files: basis columns stored under their own
     name in the row files (not as codes), anchor rows, cells.parquet, and NULL cells stored
@@ -112,7 +118,7 @@ def _overridden(archive: rankfold.Archive) -> np.ndarray:
     kept[cells.column(layout.ROW_ID).to_numpy(), cells.column(layout.COLUMN_ID).to_numpy()] = True
     prefix = layout.CODE_PATTERN.format("")
     for file in _row_files(archive):
-        rows = pq.read_table(file)
+        rows = _read_rows(archive, file)
         ids = rows.column(layout.ROW_ID).to_numpy()
         for name in rows.column_names:
             if name.startswith(prefix) and rows.column(name).null_count:
@@ -193,7 +199,7 @@ def test_blocks_have_one_record_per_row_group_with_numpy_sums(archives):
     assert blocks.column("rows").to_pylist() == groups
     assert blocks.column("first_row").to_pylist() == list(np.cumsum([0] + groups[:-1]))
     assert max(groups) == GROUP_ROWS and len(groups) > ROWS // GROUP_ROWS  # batch ends cut groups
-    rows = pa.concat_tables(pq.read_table(p) for p in _row_files(archive))
+    rows = pa.concat_tables(_read_rows(archive, p) for p in _row_files(archive))
     codes = np.zeros(archive.shape)
     for j in range(WIDTH):
         name = layout.CODE_PATTERN.format(j)

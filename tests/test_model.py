@@ -160,7 +160,16 @@ def test_a_row_file_with_another_reserved_type_is_refused(tmp_path):
         ArchiveReader(path)
 
 
-def test_a_row_file_without_its_residual_codes_is_refused(tmp_path):
+@pytest.fixture()
+def one_column_per_code(monkeypatch):
+    """Compress writes one column per residual code (the layout these tests edit), whatever
+    the packing trial (``code_layout.choose_packing``) would choose for the small table."""
+    from rankfold.udfs.passes import compress as compress_module
+
+    monkeypatch.setattr(compress_module, "code_packing", lambda *args, **kwargs: None)
+
+
+def test_a_row_file_without_its_residual_codes_is_refused(tmp_path, one_column_per_code):
     path = tmp_path / "a"
     rankfold.compress(_table(), path, key="id", max_abs_error=0.05, seed=0)
     codes = [n for n in ArchiveReader(path).model.row_file_reserved() if n.startswith("_rf_q_")]
@@ -264,7 +273,7 @@ def _served(path) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
             np.column_stack([sql.column(n).to_numpy(zero_copy_only=False) for n in names]).astype(float))
 
 
-def test_residual_codes_of_every_unsigned_width_read_alike_in_numpy_and_sql(tmp_path):
+def test_residual_codes_of_every_unsigned_width_read_alike_in_numpy_and_sql(tmp_path, one_column_per_code):
     # zigzag codes (common practice) hold the same integers in uint8, uint16 and uint32; the
     # numpy decoder and the SQL text (layout.code_sql) must give the same values from each
     path = tmp_path / "a"
@@ -283,7 +292,7 @@ def test_residual_codes_of_every_unsigned_width_read_alike_in_numpy_and_sql(tmp_
     np.testing.assert_array_equal(after_sql, sql)
 
 
-def test_residual_codes_wider_than_32_bits_are_refused(tmp_path):
+def test_residual_codes_wider_than_32_bits_are_refused(tmp_path, one_column_per_code):
     path = tmp_path / "a"
     rankfold.compress(_table(), path, key="id", max_abs_error=0.05, seed=0)
     codes = [n for n in ArchiveReader(path).model.row_file_reserved() if n.startswith("_rf_q_")]
@@ -293,7 +302,7 @@ def test_residual_codes_wider_than_32_bits_are_refused(tmp_path):
         ArchiveReader(path)
 
 
-def test_an_append_writes_the_archives_code_types_and_keeps_every_bound(tmp_path):
+def test_an_append_writes_the_archives_code_types_and_keeps_every_bound(tmp_path, one_column_per_code):
     # codes narrowed to uint8 by an edit: an append must write uint8 too (DuckDB reads all row
     # files with the first one's types), storing a code that uint8 cannot hold as an exact cell
     import pyarrow.parquet as pq

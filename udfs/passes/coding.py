@@ -14,6 +14,7 @@ import numpy as np
 
 from ..store import arithmetic
 from ..store.arithmetic import trim_mantissa
+from ..store.code_layout import PackingChoice, choose_packing
 from ..store.model import Coding, Mixing
 from .encode import stored_basis
 from .predictors import choose_differences, choose_predictors, values_bytes
@@ -21,7 +22,7 @@ from .profile import ColumnProfile, Transform
 from .targets import CELL_BYTES
 
 __all__ = ["coding_for_plan", "trim_factors", "sample_basis", "predictor_trial", "with_row_differences",
-           "measured_bytes"]
+           "measured_bytes", "code_packing"]
 
 
 def coding_for_plan(plan, mixing, build) -> Coding | None:
@@ -210,3 +211,39 @@ def trim_factors(mixing: Mixing, tolerance: np.ndarray, profile: ColumnProfile) 
         weights[:, mixing.basis_columns] = np.eye(c)
         offset[mixing.basis_columns] = 0.0
     return Mixing(weights, offset, mixing.fill, mixing.basis_columns)
+
+
+def code_packing(sample: np.ndarray | None, mixing: Mixing, coding: Coding, transform: Transform,
+                 score_right: np.ndarray | None, table_rows: int,
+                 run_starts: np.ndarray | None = None) -> PackingChoice | None:
+    """Whether the row files hold the residual codes as one list column
+    (``store/packed_codes.py``) or one column per coded column, by trial with the real writer
+    on the sample's codes under this attempt's factors and coding, difference-coded columns as
+    differences restarting at each run of the sample (``run_starts``, as
+    ``predictors.choose_differences`` measures them) (``code_layout.choose_packing``). None
+    (one column each) without a sample or with fewer than two coded columns."""
+    coded = np.isfinite(coding.residual_step)
+    if mixing.basis_columns is not None:
+        coded[mixing.basis_columns] = False
+    if sample is None or not sample.shape[0] or coded.sum() < 2:
+        return None
+    stored, _ = sample_basis(sample, mixing, coding, transform, score_right)
+    filled = arithmetic.fill_missing(stored, mixing.fill)
+    predicted = arithmetic.approximate(filled, mixing.weights[:, coded], mixing.offset[coded])
+    values = sample[:, coded]
+    with np.errstate(invalid="ignore", over="ignore"):  # as the encode pass stores them
+        codes = arithmetic.quantize(values - predicted, coding.residual_step[coded][None, :])
+        codes = np.where(np.isfinite(codes) & (np.abs(codes) <= 2.0**31 - 1), codes, 0.0)
+    differenced = np.zeros(int(coded.sum()), bool) if coding.difference is None else \
+        np.asarray(coding.difference, dtype=bool)[coded]
+    if differenced.any():  # stored as differences within each run (restarting at its first row)
+        first = np.zeros(codes.shape[0], bool)
+        first[0] = True
+        if run_starts is not None:
+            first[run_starts[run_starts < codes.shape[0]]] = True
+        stepped = codes[:, differenced]
+        stepped[1:] -= codes[:-1, differenced]
+        stepped[first] = codes[first][:, differenced]
+        codes[:, differenced] = stepped
+    codes = arithmetic.encode_codes(codes)
+    return choose_packing(codes, np.isnan(values), table_rows)

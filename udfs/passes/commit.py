@@ -20,11 +20,11 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from ..errors import ArchiveExistsError, InvalidInputError
-from ..store import layout, versions
+from ..store import layout, packed_codes, versions
 from ..store.integrity import WRITE_OPTIONS
 from ..store.manifest import file_entry, write_manifest
 from ..store.chunk_codes import CHUNK_ROWS
-from ..store.code_layout import ColumnLayout, choose_sample_layouts, sample_chunks
+from ..store.code_layout import ColumnLayout, choose_packed_layout, choose_sample_layouts, sample_chunks
 from ..store.table_schemas import CELLS_SCHEMA, by_field_columns_table
 
 __all__ = ["prepare_target", "ArchiveWriter", "RowPartWriter", "PART_ROWS", "concat_parquet",
@@ -90,6 +90,19 @@ def code_layouts(table: pa.Table) -> dict[str, ColumnLayout]:
     sample = table.select(names).take(pa.array(rows))
     chosen = choose_sample_layouts({n: sample.column(n).combine_chunks() for n in names}, levels=CODE_LEVELS)
     return {n: choice.layout for n, choice in chosen.items()}
+
+
+def packed_layout(table: pa.Table) -> ColumnLayout:
+    """The layout of the packed code column (``layout.PACKED_CODES``) of ``table``, chosen as
+    :func:`code_layouts` chooses per-column ones (the same sample of chunks, ``CODE_LEVELS``)
+    by ``code_layout.choose_packed_layout``."""
+    if table.num_rows == 0:
+        return ColumnLayout("BYTE_STREAM_SPLIT", ZSTD_LEVEL)
+    chunks = -(-table.num_rows // CHUNK_ROWS)
+    picked = sample_chunks(chunks, CODE_LAYOUT_SEED)
+    rows = np.concatenate([np.arange(c * CHUNK_ROWS, min((c + 1) * CHUNK_ROWS, table.num_rows)) for c in picked])
+    sample = table.column(layout.PACKED_CODES).take(pa.array(rows)).combine_chunks()
+    return choose_packed_layout(sample, levels=CODE_LEVELS).layout
 
 
 # Rows of the first table on which a row file's other columns choose their encoding: 65,536
@@ -221,6 +234,9 @@ class RowPartWriter:
         dictionary, encodings = [], {layout.ROW_ID: "DELTA_BINARY_PACKED"}  # consecutive ids
         levels = dict.fromkeys(table.column_names, ZSTD_LEVEL)
         codes = code_layouts(table)
+        if layout.PACKED_CODES in table.column_names:  # one list column: options name its values
+            levels.pop(layout.PACKED_CODES)
+            codes[packed_codes.LEAF_PATH] = packed_layout(table)
         for name, lay in codes.items():
             levels[name] = int(lay.zstd_level)
             if lay.encoding == "dictionary":
@@ -229,7 +245,7 @@ class RowPartWriter:
                 encodings[name] = lay.encoding
         sample = table.slice(0, _ROW_SAMPLE)
         for name in table.column_names:
-            if name == layout.ROW_ID or name in codes:
+            if name in (layout.ROW_ID, layout.PACKED_CODES) or name in codes:
                 continue
             setting = _smallest_setting(sample, name, only=("dictionary", "BYTE_STREAM_SPLIT"),
                                         levels=(ZSTD_LEVEL,))

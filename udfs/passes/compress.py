@@ -52,7 +52,7 @@ from .select import AnchorRows, AnchorScan, anchor_partial, merge_anchor_partial
 from .refit import KAPPA, OutlierScreen, refit_left_out
 from .encode import EncodeResult, column_error_figures, column_statistics, encode_pass
 from .predictors import SampleRuns, run_rows
-from .coding import coding_for_plan, measured_bytes, predictor_trial, trim_factors, with_row_differences
+from .coding import code_packing, coding_for_plan, measured_bytes, predictor_trial, trim_factors, with_row_differences
 from . import basis_size, sizes, targets
 
 __all__ = ["compress"]
@@ -851,11 +851,18 @@ def _write(src, new_writer, opts, inputs: _Inputs, build: _Build, passes: _Passe
                 score_right = None if score_right is None else score_right[:, :0]
     coding = with_row_differences(opts.row_differences, coding, numeric, passes.trial_rows, passes.trial_starts,
                                   mixing, transform, score_right)
+    # one list column of codes per row, or one column per coded column (store/packed_codes.py)
+    packing = code_packing(passes.trial_rows, mixing, coding, transform, score_right, rows, passes.trial_starts)
+    if packing is not None and packing.packed:
+        build = dataclasses.replace(build, reason=(
+            f"{build.reason}; residual codes packed into one list column per row ({packing.packed_bytes} "
+            f"against {packing.columns_bytes} bytes as one column each, estimated from {packing.sampled_rows} rows)"))
     model = FittedModel(
         numeric, [str(src.schema.field(n).type) for n in numeric], passthrough, transform.kind,
         transform.shift, transform.scale, mixing, basis_names, coding,
         ledger_scale(profile),  # units of the row ledger (of the sample's spread, if sampled)
-        anchors.positions, anchors.values, anchors.nulls, score_right=score_right)
+        anchors.positions, anchors.values, anchors.nulls, score_right=score_right,
+        packed_codes=packing is not None and packing.packed)
     writer = new_writer()
     sums = BlockSums(width, mixing.weights.shape[0], mixing.fill)
     try:
@@ -1035,6 +1042,8 @@ def _manifest(src, opts, inputs: _Inputs, build: _Build, model: FittedModel, pro
         "row_ledger": model.row_ledger,  # False: the row files carry no row ledger
         # NULL cells stored as NULL residual codes (absent when none are: manifest_schema)
         **({"null_codes": True} if result.null_codes else {}),
+        # every residual code of a row in one list column (store/packed_codes.py)
+        **({"packed_codes": True} if model.packed_codes else {}),
         "anchors": [int(p) for p in model.anchor_positions],
         "row_parts": parts,
         "spectrum": _recorded_spectrum(spectrum.values, inputs.read.rows_read if inputs.read.sampled else rows),

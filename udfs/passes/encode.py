@@ -29,7 +29,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from ..errors import CorruptArchiveError, InvalidInputError, SourceChangedError
-from ..store import arithmetic, layout, row_differences
+from ..store import arithmetic, layout, packed_codes, row_differences
 from ..store.model import FittedModel, Mixing
 from ..store.table_schemas import CELLS_SCHEMA, check_row_schema, relative_rms
 from .commit import ArchiveWriter, cell_encodings, close_parquet
@@ -605,6 +605,10 @@ def encode_pass(stream: Stream, model: FittedModel, writer: ArchiveWriter, *, bl
     differenced = model.difference[with_residual]
     code_limit = np.where(differenced, [row_differences.code_limit(v) for v in code_limit], code_limit)
     carry = _DifferenceCarry(np.flatnonzero(differenced)) if differenced.any() else None
+    if model.packed_codes and [layout.CODE_PATTERN.format(int(j)) for j in with_residual] != model.code_names:
+        raise CorruptArchiveError(  # the list's order is the model's (store/packed_codes.py)
+            "rankfold was about to pack residual codes of other columns than its model declares; "
+            "nothing was committed. This is a defect of rankfold: please report it.")
     kernel = _Kernel(mixing, np.flatnonzero(is_basis), np.flatnonzero(~is_basis), with_residual,
                      steps[with_residual], tolerance, np.flatnonzero(np.isfinite(tolerance) & ~is_basis),
                      np.asarray(ledger_scale, dtype=np.float64), block_sums,
@@ -696,10 +700,14 @@ def encode_pass(stream: Stream, model: FittedModel, writer: ArchiveWriter, *, bl
         stored_codes = codes
         if carry is not None:
             stored_codes = carry.stored(codes, first, writer, code_nulls if code_nulls.any() else None)
-        for t, j in enumerate(with_residual):
-            stored_t = arithmetic.encode_codes(stored_codes[:, t])
-            columns[layout.CODE_PATTERN.format(j)] = pa.array(
-                stored_t, mask=code_nulls[:, t] if code_nulls[:, t].any() else None).cast(stored_types[t])
+        if model.packed_codes and with_residual.size:  # one list column (store/packed_codes.py)
+            columns[layout.PACKED_CODES] = packed_codes.pack(arithmetic.encode_codes(stored_codes),
+                                                             code_nulls if code_nulls.any() else None)
+        else:
+            for t, j in enumerate(with_residual):
+                stored_t = arithmetic.encode_codes(stored_codes[:, t])
+                columns[layout.CODE_PATTERN.format(j)] = pa.array(
+                    stored_t, mask=code_nulls[:, t] if code_nulls[:, t].any() else None).cast(stored_types[t])
         if model.row_ledger:  # without: every bound is the column's (FittedModel.row_ledger)
             columns[layout.ROW_ERR_MAX] = pa.array(arithmetic.round_up_compact(row_max, ledger_bits))
             columns[layout.ROW_ERR_L2] = pa.array(arithmetic.round_up_compact(row_l2, ledger_bits))

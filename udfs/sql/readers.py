@@ -89,7 +89,8 @@ class _ScanReader(ArchiveReader):
     def _group(self, part: int, group: int) -> pa.Table:
         name = self.parts[part][2]
         return self._groups.get((str(self.path), name, self._sha[name], group),
-                                lambda: self._read(name, lambda f: f.read_row_group(group)))
+                                lambda: self.model.unpack_codes(  # the per-column view of codes
+                                    self._read(name, lambda f: f.read_row_group(group)), None, self.path / name))
 
     def _read_groups(self, name: str, groups: list[int], columns: list[str] | None) -> pa.Table:
         part = self._part_of[name]

@@ -236,7 +236,7 @@ def row_errors_sql(reader: ArchiveReader) -> str:
     if not reader.model.row_ledger:  # no row figures stored: every bound is the column's
         figures = ["CAST(NULL AS FLOAT)"] * 2
     return (f"SELECT {layout.ROW_ID}, {keys}{figures[0]} AS err_max_scaled, "
-            f"{figures[1]} AS err_l2_scaled FROM {agg.rows_source_sql(reader)}")
+            f"{figures[1]} AS err_l2_scaled FROM {agg.rows_source_sql(reader, codes=np.zeros(0, np.int64))}")
 
 
 _SPOOL: dict[str, Any] = {}

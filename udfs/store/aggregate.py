@@ -31,7 +31,7 @@ import numpy as np
 import pyarrow as pa
 
 from ..errors import InvalidInputError, UnknownColumnError
-from . import arithmetic, layout, row_differences
+from . import arithmetic, layout, packed_codes, row_differences
 from .integrity import damaged, read_parquet_sql, read_small_table, sealed_rows_sql
 from .sql_rebuild import basis_value_sql, double_list
 from .sql_text import checked_condition, quote_identifier, sql_literal
@@ -288,7 +288,8 @@ def _blocks(reader) -> _Blocks | None:
 
 
 # -- SQL pieces shared with the scan ----------------------------------------------------------
-def rows_source_sql(reader, sealed: str | None = None, file_row_number: bool = False) -> str:
+def rows_source_sql(reader, sealed: str | None = None, file_row_number: bool = False,
+                    codes: np.ndarray | None = None) -> str:
     """``read_parquet`` of exactly this archive version's row files (names from the manifest,
     never a glob), after checking their SHA-256: DuckDB does not verify page checksums.
 
@@ -296,12 +297,22 @@ def rows_source_sql(reader, sealed: str | None = None, file_row_number: bool = F
     (``integrity.sealed_rows_sql``; registered by ``sql.register``). With it, and row files
     that carry row-group digests, only the key columns are checked before the query
     (``ArchiveReader.check_for_scan``); otherwise the whole files. ``file_row_number``: each
-    row also carries its position in its file (``integrity.read_parquet_sql``)."""
+    row also carries its position in its file (``integrity.read_parquet_sql``).
+
+    Residual codes come as one column each (``_rf_q_<j>``) whatever the layout: codes packed
+    into one list column (``FittedModel.packed_codes``) are unpacked here, the one place SQL
+    names row files (``packed_codes.unpacked_sql``); ``codes``: the numeric columns (positions)
+    whose codes the query reads (None: every one)."""
     paths = [reader.path / p[2] for p in reader.parts]
     if sealed is not None and reader.check_for_scan():
-        return sealed_rows_sql(paths, sealed, reader.seal.token, file_row_number)
-    reader.check_row_files()
-    return read_parquet_sql(paths, file_row_number)
+        source = sealed_rows_sql(paths, sealed, reader.seal.token, file_row_number)
+    else:
+        reader.check_row_files()
+        source = read_parquet_sql(paths, file_row_number)
+    if reader.model.packed_codes:
+        wanted = None if codes is None else [layout.CODE_PATTERN.format(int(j)) for j in codes]
+        source = packed_codes.unpacked_sql(source, reader.model.code_names, wanted)
+    return source
 
 
 # Most restart chunks a filtered read decodes by name (row ranges as constants, which DuckDB
@@ -326,9 +337,9 @@ def decoded_rows_sql(reader, col_idx: np.ndarray, sealed: str | None = None, whe
     col_idx = np.asarray(col_idx, dtype=np.int64)
     differenced = reader.model.difference[col_idx] if col_idx.size else np.zeros(0, bool)
     if not differenced.any():
-        return rows_source_sql(reader, sealed), differenced
+        return rows_source_sql(reader, sealed, codes=col_idx), differenced
     names = list(dict.fromkeys(layout.CODE_PATTERN.format(int(j)) for j in col_idx[differenced]))
-    source = rows_source_sql(reader, sealed, True)
+    source = rows_source_sql(reader, sealed, True, codes=col_idx)
     if where is not None and con is not None:
         found = con.sql(f"SELECT DISTINCT {row_differences.chunk_sql()} AS c FROM {source} "
                         f"WHERE {where} ORDER BY c LIMIT {MAX_NAMED_CHUNKS + 1}").fetchnumpy()["c"]

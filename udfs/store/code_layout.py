@@ -25,6 +25,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from ..errors import InvalidInputError
+from . import layout, packed_codes
 from .chunk_codes import DIFFERENCE_PREDICTORS, CodedColumn
 
 __all__ = [
@@ -40,6 +41,11 @@ __all__ = [
     "choose_sample_layouts",
     "writer_options",
     "chunk_overhead_bytes",
+    "PackingChoice",
+    "choose_packed_layout",
+    "choose_packing",
+    "PACKING_CELLS",
+    "PACKING_GAIN",
 ]
 
 ENCODINGS = ("PLAIN", "DELTA_BINARY_PACKED", "BYTE_STREAM_SPLIT", "dictionary")
@@ -187,3 +193,110 @@ def chunk_overhead_bytes(coded: CodedColumn, chunks: int | None = None) -> int:
     used to compare predictors; the per-chunk table is written and measured by the caller."""
     per_chunk = 16 if coded.predictor in DIFFERENCE_PREDICTORS else 8
     return per_chunk * (coded.chunks if chunks is None else chunks)
+
+
+# -- one list column or one column per code (store/packed_codes.py) ----------------------------
+#: Codes the packing trial writes at most (a taller sample is cut to its first rows): 2^18
+#: codes took about 0.1 s a layout; the choice only matters where per-chunk costs dominate,
+#: which a short sample shows as well as a long one.
+PACKING_CELLS = 1 << 18
+#: Packed only when its estimate is at most this fraction of one column per code: a read of a
+#: few columns (a SQL projection, ``to_numpy(columns=...)``) then reads every code of its rows,
+#: so a gain within the estimate's noise is not worth it. Measured (benchmarks/packed_codes.py,
+#: 0.01 std): nci60 0.51, speech 0.67, meats 0.46 pass; chicago 0.99 and hfi 0.99 do not; an
+#: invented 10^6 x 100 low-rank table estimated 1.03.
+PACKING_GAIN = 0.95
+
+
+def _packed_table(codes: np.ndarray, nulls: np.ndarray | None) -> pa.Table:
+    return pa.table({layout.PACKED_CODES: packed_codes.pack(codes, nulls)})
+
+
+def _file_bytes(table: pa.Table, **options: object) -> int:
+    """Bytes of ``table`` written as a row file is (zstd, no Arrow schema, no statistics on
+    codes, page checksums): footer included."""
+    sink = pa.BufferOutputStream()
+    pq.write_table(table, sink, store_schema=False, write_statistics=False, write_page_checksum=True,
+                   **options)
+    return len(sink.getvalue())
+
+
+def _packed_options(lay: ColumnLayout) -> dict:
+    """Writer options of the packed column under ``lay`` (options name the list's values)."""
+    return writer_options({packed_codes.LEAF_PATH: lay})
+
+
+def choose_packed_layout(column: pa.Array, *, encodings: Sequence[str] = ENCODINGS,
+                         levels: Sequence[int] = ZSTD_LEVELS) -> LayoutChoice:
+    """The layout (encoding and zstd level of the list's values) under which the packed code
+    column ``column`` (a sample of rows) is smallest: every encoding at level 3, then the best
+    encoding at the other ``levels`` (the two stages of :func:`choose_layouts`)."""
+    table = pa.table({layout.PACKED_CODES: column})
+    base_level = 3 if 3 in levels else int(levels[0])
+    sizes = {}
+    for encoding in encodings:
+        lay = ColumnLayout(encoding, base_level)
+        sizes[lay] = _column_bytes(table, **_packed_options(lay))[layout.PACKED_CODES]
+    best_encoding = min(sizes, key=lambda lay: (sizes[lay], encodings.index(lay.encoding))).encoding
+    for level in levels:
+        if level != base_level:
+            lay = ColumnLayout(best_encoding, int(level))
+            sizes[lay] = _column_bytes(table, **_packed_options(lay))[layout.PACKED_CODES]
+    best = min(sizes, key=lambda lay: (sizes[lay], encodings.index(lay.encoding), lay.zstd_level))
+    return LayoutChoice(best, sizes[best], len(column), sizes)
+
+
+@dataclass(frozen=True)
+class PackingChoice:
+    """Whether the residual codes go into one list column (``packed``), with the bytes each
+    layout's code columns were estimated to take in the whole table's row files (footer
+    entries included) and the rows of the sample the estimate is scaled from."""
+
+    packed: bool
+    packed_bytes: int
+    columns_bytes: int
+    sampled_rows: int
+
+
+def _scaled(bytes_all: int, bytes_half: int, rows: int, half: int, table_rows: int, groups: int) -> int:
+    """Bytes of a table of ``table_rows`` rows in ``groups`` row groups, from the bytes of the
+    sample's ``rows`` rows and of its first ``half`` rows: a cost per row (the slope) and a
+    fixed cost per row group (footer entries, page headers, zstd frames: the intercept)."""
+    per_row = max(bytes_all - bytes_half, 0) / max(rows - half, 1)
+    fixed = max(bytes_all - rows * per_row, 0.0)
+    return int(round(groups * fixed + table_rows * per_row))
+
+
+def choose_packing(codes: np.ndarray, nulls: np.ndarray | None, table_rows: int, *,
+                   group_rows: int = layout.ROW_GROUP_ROWS, level: int = 3) -> PackingChoice:
+    """One list column or one column per code, by trial with the real writer: the sample's
+    codes ``codes`` (m, q) zigzag uint32 (NULL where ``nulls`` (m, q)) are written both ways as
+    whole in-memory Parquet files (footers included: a column costs its footer entry too),
+    each column or the list under its best encoding at zstd ``level``, then again for the
+    sample's first half; the two sizes give a cost per row and a fixed cost per row group,
+    scaled to ``table_rows`` rows in row groups of ``group_rows``. Packed only when at most
+    :data:`PACKING_GAIN` of one column per code. The sample is cut to its first ``PACKING_CELLS // q`` rows (at least 2)."""
+    codes = np.asarray(codes)
+    m, q = codes.shape
+    if q < 2 or m < 2:  # one column: nothing to pack
+        return PackingChoice(False, 0, 0, m)
+    m = min(m, max(2, PACKING_CELLS // q))
+    codes = codes[:m]
+    nulls = None if nulls is None or not np.any(nulls[:m]) else np.asarray(nulls[:m], dtype=bool)
+    half = m // 2
+    groups = max(1, -(-int(table_rows) // group_rows))
+    names = [f"c{t}" for t in range(q)]
+    arrays = {n: pa.array(codes[:, t], pa.uint32(), mask=None if nulls is None else nulls[:, t])
+              for t, n in enumerate(names)}
+    chosen = choose_sample_layouts(arrays, levels=(level,))
+    column_options = writer_options({n: chosen[n].layout for n in names})
+    per_column = pa.table(arrays)
+    columns_bytes = _scaled(_file_bytes(per_column, **column_options),
+                            _file_bytes(per_column.slice(0, half), **column_options), m, half, table_rows, groups)
+    packed_layout = choose_packed_layout(_packed_table(codes, nulls).column(0).combine_chunks(),
+                                         levels=(level,)).layout
+    packed_options = _packed_options(packed_layout)
+    packed_bytes = _scaled(_file_bytes(_packed_table(codes, nulls), **packed_options),
+                           _file_bytes(_packed_table(codes[:half], None if nulls is None else nulls[:half]),
+                                       **packed_options), m, half, table_rows, groups)
+    return PackingChoice(packed_bytes <= PACKING_GAIN * columns_bytes, packed_bytes, columns_bytes, m)

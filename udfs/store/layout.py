@@ -7,6 +7,8 @@ An archive is a directory::
                            basis columns (exact), _rf_err_max, _rf_err_l2 (row ledger, in
                            units of each column's ledger_scale, i.e. its standard deviation;
                            absent when every column has a tolerance: manifest row_ledger)
+                           and the residual codes: one column _rf_q_<j> per coded column, or
+                           every code of the row in one list _rf_codes (manifest packed_codes)
     columns.parquet        one row per numeric column: transform, offset and weights of the
                            mixing matrix, profile counts, column ledger (its numbers packed
                            into one list: ``table_schemas.pack_columns_table``)
@@ -41,6 +43,7 @@ ROW_ERR_L2 = "_rf_err_l2"
 SCORE_PATTERN = "_rf_score_{}"
 BASIS_PATTERN = "_rf_basis_{}"   # a basis column stored quantized (integer codes x step)
 CODE_PATTERN = "_rf_q_{}"        # quantized residual codes of numeric column {position}
+PACKED_CODES = "_rf_codes"       # all residual codes of a row as one list (manifest packed_codes)
 
 
 def code_sql(column: str) -> str:

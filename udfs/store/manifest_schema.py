@@ -235,6 +235,11 @@ MANIFEST_SCHEMA = Record(
         # alike (model.FittedModel.null_codes); the entry makes a reader that predates NULL
         # codes refuse the archive (an unknown entry) instead of misreading them.
         "null_codes": Flag(),
+        # True: the row files hold every residual code of a row in one list column
+        # (store/packed_codes.py, model.FittedModel.packed_codes); absent: one column per
+        # coded column, as every archive written before it. A reader that predates it refuses
+        # the archive (an unknown entry) instead of missing the codes.
+        "packed_codes": Flag(),
     },
 )
 

@@ -32,7 +32,7 @@ import numpy as np
 import pyarrow as pa
 
 from ..errors import CorruptArchiveError
-from . import arithmetic, layout, row_differences
+from . import arithmetic, layout, packed_codes, row_differences
 from .table_schemas import (
     COLUMNS_OPTIONAL,
     anchors_schema,
@@ -143,6 +143,11 @@ class FittedModel:
     and the row figures could only tighten it below a tolerance the user already accepted.
     Recorded as the manifest's ``row_ledger`` (archives written before it carry a ledger,
     and an append keeps what the archive has).
+    packed_codes: the row files hold the residual codes of all coded columns as one list
+    column (``packed_codes``, chosen by trial: ``code_layout.choose_packing``) instead of one
+    column per coded column; the manifest's ``packed_codes`` (absent: one column each).
+    Readers unpack at the source (:meth:`unpack_codes`), so every other method sees the
+    per-column view.
     """
 
     names: list[str]
@@ -161,6 +166,7 @@ class FittedModel:
     score_right: np.ndarray | None = None
     statistics: dict[str, np.ndarray] | None = None
     row_ledger: bool | None = None
+    packed_codes: bool = False
 
     def __post_init__(self) -> None:
         if self.row_ledger is None:  # a new model: no row ledger when the tolerances bound every cell
@@ -219,19 +225,20 @@ class FittedModel:
         replaced by the residual codes themselves (zigzag, the column's type), as columns
         without differences store them. ``chunks`` (b,): each row's chunk start
         (``row_differences.chunk_starts``)."""
+        position = {name: i for i, name in enumerate(rows.column_names)}  # once: wide tables
+        columns = list(rows.columns)
         for j in np.flatnonzero(self.difference):
-            name = layout.CODE_PATTERN.format(int(j))
-            if name not in rows.column_names:
+            i = position.get(layout.CODE_PATTERN.format(int(j)))
+            if i is None:
                 continue
-            column = rows.column(name)
+            column = columns[i]
             # a NULL (a NULL cell) stores the difference 0 (row_differences.carry_forward)
             nulls = column.is_null().to_numpy(zero_copy_only=False) if column.null_count else None
             signed = arithmetic.decode_codes(
                 column.fill_null(0).to_numpy(zero_copy_only=False)).astype(np.int64)
             codes = row_differences.undifference(signed, chunks)
-            rows = rows.set_column(rows.column_names.index(name), name,
-                                   pa.array(arithmetic.encode_codes(codes), mask=nulls).cast(column.type))
-        return rows
+            columns[i] = pa.array(arithmetic.encode_codes(codes), mask=nulls).cast(column.type)
+        return pa.Table.from_arrays(columns, schema=rows.schema)  # built once: linear in the width
 
     @cached_property
     def basis_step(self) -> np.ndarray:
@@ -282,8 +289,25 @@ class FittedModel:
                 basis[name] = pa.float32() if self.coding.float32_scores else pa.float64()
             else:
                 basis[name] = None
-        codes = [layout.CODE_PATTERN.format(int(j)) for j in np.flatnonzero(np.isfinite(self.residual_step))]
-        return row_file_reserved(basis, codes, row_ledger=self.row_ledger)
+        return row_file_reserved(basis, self.code_names, row_ledger=self.row_ledger,
+                                 packed_codes=self.packed_codes)
+
+    @cached_property
+    def code_names(self) -> list[str]:
+        """The residual-code columns (``layout.CODE_PATTERN``) in position order: the order of
+        the codes in a packed row (``packed_codes``)."""
+        return [layout.CODE_PATTERN.format(int(j)) for j in np.flatnonzero(np.isfinite(self.residual_step))]
+
+    def unpack_codes(self, rows: pa.Table, wanted: Any = None, where: Any = "a row file") -> pa.Table:
+        """``rows`` as read from a row file, in the per-column view: a packed code list
+        replaced by the code columns ``wanted`` (None: all; ``packed_codes.unpack``)."""
+        if not self.packed_codes:
+            return rows
+        return packed_codes.unpack(rows, self.code_names, wanted, where)
+
+    def row_file_columns(self, columns: Any) -> list[str] | None:
+        """The row-file columns to read for the per-column view ``columns`` (None: all)."""
+        return packed_codes.file_columns(columns, self.packed_codes)
 
     def scores_right(self) -> np.ndarray | None:
         """(n, c) the right factor that turns transformed rows into scores (None: basis columns)."""
@@ -363,9 +387,10 @@ class FittedModel:
         them so instead of as exact cells; archives written before hold none); None when
         there are none."""
         found = None
+        present = set(rows.column_names)  # once: the property builds a new list on every use
         for t, j in enumerate(col_idx):
             name = layout.CODE_PATTERN.format(int(j))
-            if not np.isfinite(self.residual_step[j]) or name not in rows.column_names:
+            if not np.isfinite(self.residual_step[j]) or name not in present:
                 continue
             column = rows.column(name)
             if column.null_count:
@@ -499,7 +524,8 @@ class FittedModel:
                     manifest["transform"], columns.column("shift").to_numpy(),
                     columns.column("scale").to_numpy(), mixing, basis_names, coding,
                     columns.column("ledger_scale").to_numpy(), positions, values, nulls,
-                    statistics=statistics, row_ledger=bool(manifest.get("row_ledger", True)))
+                    statistics=statistics, row_ledger=bool(manifest.get("row_ledger", True)),
+                    packed_codes=bool(manifest.get("packed_codes", False)))
         if coding.difference is not None and not np.array_equal(model.difference, coding.difference):
             raise CorruptArchiveError(
                 f"The columns table of {where} marks columns "

@@ -276,8 +276,9 @@ class ArchiveReader:
         """Row-file columns (default: all) for ``positions``, in the order given."""
         if positions.size == 0:
             schema = self.row_file_schema(self.parts[0][2])
-            names = columns or schema.names
-            return pa.table({n: pa.array([], schema.field(n).type) for n in names})
+            names = self.model.row_file_columns(columns or None) or schema.names  # packed codes: their list
+            empty = pa.table({n: pa.array([], schema.field(n).type) for n in names})
+            return self.model.unpack_codes(empty, columns or None, self.path / self.parts[0][2])
         order = np.argsort(positions, kind="stable")
         sorted_pos = positions[order]
         pieces = []
@@ -306,8 +307,11 @@ class ArchiveReader:
 
     def _read_groups(self, name: str, groups: list[int], columns: list[str] | None) -> pa.Table:
         """The row groups ``groups`` (sorted) of the row file ``name``, columns ``columns``
-        (None: all), in order."""
-        return self._read(name, lambda f: f.read_row_groups(groups, columns=columns))
+        (None: all), in order; residual codes in the per-column view whatever the layout
+        (``FittedModel.unpack_codes``)."""
+        stored = self.model.row_file_columns(columns)
+        table = self._read(name, lambda f: f.read_row_groups(groups, columns=stored))
+        return self.model.unpack_codes(table, columns, self.path / name)
 
     def reads_differences(self, columns: list[str] | None) -> bool:
         """Whether reading the row-file columns ``columns`` (None: all) reads a residual-code

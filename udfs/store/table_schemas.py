@@ -346,7 +346,8 @@ Reserved = pa.DataType | tuple[pa.DataType, ...] | None
 
 
 def row_file_reserved(basis_stored: dict[str, pa.DataType | None],
-                      code_columns: list[str], *, row_ledger: bool = True) -> dict[str, Reserved]:
+                      code_columns: list[str], *, row_ledger: bool = True,
+                      packed_codes: bool = False) -> dict[str, Reserved]:
     """Reserved columns of every row file and their types (None: any of several; a tuple:
     one of these).
 
@@ -355,12 +356,17 @@ def row_file_reserved(basis_stored: dict[str, pa.DataType | None],
     checked against the manifest's schema by the caller). ``code_columns``: the residual
     code columns (zigzag unsigned, one of :data:`CODE_TYPES`, ``arithmetic.encode_codes``).
     ``row_ledger``: the row files carry the row ledger (float32 row figures; left out when
-    every approximated column has a tolerance, ``model.FittedModel.row_ledger``)."""
+    every approximated column has a tolerance, ``model.FittedModel.row_ledger``).
+    ``packed_codes``: the codes are held by one list column instead
+    (``packed_codes.PACKED_TYPE``, ``model.FittedModel.packed_codes``)."""
     reserved: dict[str, Reserved] = {layout.ROW_ID: pa.int64()}
     if row_ledger:
         reserved.update({layout.ROW_ERR_MAX: pa.float32(), layout.ROW_ERR_L2: pa.float32()})
     reserved.update(basis_stored)
-    reserved.update({name: CODE_TYPES for name in code_columns})
+    if packed_codes and code_columns:
+        reserved[layout.PACKED_CODES] = pa.list_(pa.field("element", pa.uint32()))
+    else:
+        reserved.update({name: CODE_TYPES for name in code_columns})
     return reserved
 
 
