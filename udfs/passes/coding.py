@@ -102,7 +102,7 @@ def with_row_differences(choice, coding: Coding, numeric: list[str], sample: np.
 
 def measured_bytes(sample: np.ndarray, mixing: Mixing, coding: Coding, transform: Transform,
                    anchor_values: np.ndarray, table_rows: int, alone_cache: dict | None = None,
-                   layouts: dict | None = None) -> tuple[float, dict]:
+                   layouts: dict | None = None, packing: bool = False) -> tuple[float, dict, bool]:
     """Bytes an archive of ``table_rows`` rows with this CUR ``mixing`` and ``coding`` is
     estimated to take, from ``sample`` (m, n) raw rows (NaN where NULL): the sample's basis
     values as stored and each coded column's codes under the predictor the trial would keep
@@ -110,8 +110,11 @@ def measured_bytes(sample: np.ndarray, mixing: Mixing, coding: Coding, transform
     per sampled cell stored exactly (a column without codes, beyond its tolerance), scaled by
     ``table_rows / m``; plus the measured bytes of the weights and ``anchor_values``, which no
     sample shows. Steers the number of basis columns (``basis_size``); bounds never rest on it.
-    Returns the bytes and the layout of each coded column's codes; ``layouts`` (such layouts
-    of an earlier call) are tried alone for the columns they name (``choose_predictors``)."""
+    Returns the bytes, the layout of each coded column's codes and whether the codes would be
+    packed into one list column; ``layouts`` (such layouts of an earlier call) are tried alone
+    for the columns they name (``choose_predictors``). With ``packing``, the packing trial
+    (:func:`code_packing`) runs too, and where it packs, the codes' bytes are scaled by the
+    packed layout's measured share of one column per code."""
     m, n = sample.shape
     stored, arrays = sample_basis(sample, mixing, coding, transform, None)
     choice = choose_predictors(sample, mixing, coding, transform.shift, stored, arrays, alone_cache, layouts)
@@ -123,9 +126,30 @@ def measured_bytes(sample: np.ndarray, mixing: Mixing, coding: Coding, transform
                                            mixing.weights[:, uncoded], mixing.offset[uncoded])
         with np.errstate(invalid="ignore"):
             cells = int(np.sum(np.abs(sample[:, uncoded] - predicted) > coding.tolerance[uncoded]))
-    total = (choice.basis_bytes + cells * CELL_BYTES) * table_rows / max(m, 1) \
+    codes, packed = float(choice.coded_bytes), False
+    if packing:
+        shown = code_packing(sample, _rounded_alone(mixing, coding, choice.lowrank, transform.shift), coding,
+                             transform, None, table_rows)
+        if shown is not None and shown.packed:
+            codes, packed = codes * shown.packed_bytes / max(shown.columns_bytes, 1), True
+    total = (codes + choice.basis_bytes - choice.coded_bytes + cells * CELL_BYTES) * table_rows / max(m, 1) \
         + values_bytes(mixing.weights, anchor_values)
-    return total, choice.layouts
+    return total, choice.layouts, packed
+
+
+def _rounded_alone(mixing: Mixing, coding: Coding, lowrank: np.ndarray, shift: np.ndarray) -> Mixing:
+    """``mixing`` with the coded columns the trial rounds alone (``lowrank`` False) predicted by
+    their ``shift`` only: zero weights, the shift as offset."""
+    coded = np.isfinite(coding.residual_step)
+    if mixing.basis_columns is not None:
+        coded[mixing.basis_columns] = False
+    alone = coded & ~lowrank
+    if not alone.any():
+        return mixing
+    weights, offset = mixing.weights.copy(), mixing.offset.copy()
+    weights[:, alone] = 0.0
+    offset[alone] = shift[alone]
+    return Mixing(weights, offset, mixing.fill, mixing.basis_columns)
 
 
 def predictor_trial(sample: np.ndarray, mixing: Mixing, coding: Coding, transform: Transform,
@@ -176,10 +200,7 @@ def predictor_trial(sample: np.ndarray, mixing: Mixing, coding: Coding, transfor
         coded[mixing.basis_columns] = False
     alone_columns = coded & ~choice.lowrank
     if alone_columns.any():
-        weights, offset = mixing.weights.copy(), mixing.offset.copy()
-        weights[:, alone_columns] = 0.0
-        offset[alone_columns] = transform.shift[alone_columns]
-        mixing = Mixing(weights, offset, mixing.fill, mixing.basis_columns)
+        mixing = _rounded_alone(mixing, chosen, choice.lowrank, transform.shift)
         if mixing.basis_columns is not None and np.isfinite(chosen.basis_step).any():
             chosen = coding_for_plan(plan, mixing, build)  # the basis steps follow the remaining weights
         notes.append(f"{int(alone_columns.sum())} of {int(coded.sum())} coded columns rounded alone "

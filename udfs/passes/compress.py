@@ -730,6 +730,7 @@ def _measured_basis(build: _Build, opts, goal, inputs: _Inputs, model, passes) -
     builds: dict[int, _Build] = {build.n_columns: build}
     alone_cache: dict = {}
     layouts: dict = {}
+    packs = {"model": False}  # whether the model's pick measured its codes packed
 
     def measure(c: int) -> float:
         if c not in builds:
@@ -749,11 +750,14 @@ def _measured_basis(build: _Build, opts, goal, inputs: _Inputs, model, passes) -
             anchor_values = anchors.values
         plan_coding = coding_for_plan(builds[c].coding_plan, mixing, builds[c])
         mixing = trim_factors(mixing, plan_coding.tolerance, inputs.profile)
-        # the layouts the model's pick measured smallest serve the other sizes (one write, not four)
-        total, found = measured_bytes(trial, mixing, plan_coding, transform, anchor_values, rows, alone_cache,
-                                      layouts)
-        if c == build.n_columns:
+        # the layouts the model's pick measured smallest serve the other sizes (one write, not
+        # four); so does whether its codes pack into one list column (the table's shape decides)
+        first = c == build.n_columns
+        total, found, packed = measured_bytes(trial, mixing, plan_coding, transform, anchor_values, rows,
+                                              alone_cache, layouts, packing=first or packs["model"])
+        if first:
             layouts.update(found)
+            packs["model"] = packed
         return total
 
     chosen, measured = basis_size.climb(build.n_columns, limit, measure)

@@ -134,6 +134,8 @@ class PredictorChoice:
     sampled_rows: int = 0
     #: the layout under which each coded column's low-rank codes measured smallest, by column
     layouts: dict[int, ColumnLayout] = field(default_factory=dict)
+    #: of ``basis_bytes``, the coded columns' (the rest: the basis columns as stored)
+    coded_bytes: int = 0
 
     def drop_basis(self, rows: int, fixed_bytes: float) -> bool:
         """Whether the archive without a basis is the smaller for a table of ``rows`` rows: the
@@ -249,7 +251,8 @@ def choose_predictors(sample: np.ndarray, mixing: Mixing, coding: Coding, shift:
         coded_bytes += min(low[f"l{j}"][0], alone_j)
     basis_bytes = coded_bytes + _value_bytes({f"b{k}": a for k, a in enumerate(basis_arrays)})
     alone = int(sum(cache[j, float(own_step[j])] for j in range(n))) if offer_alone else None
-    return PredictorChoice(lowrank, int(basis_bytes), alone, m, {int(j): low[f"l{j}"][1] for j in coded})
+    return PredictorChoice(lowrank, int(basis_bytes), alone, m, {int(j): low[f"l{j}"][1] for j in coded},
+                           int(coded_bytes))
 
 
 #: Row differences are kept for a column only when they measure at least this much smaller
