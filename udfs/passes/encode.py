@@ -669,7 +669,7 @@ def encode_pass(stream: Stream, model: FittedModel, writer: ArchiveWriter, *, bl
     buffers = _Buffers(width)
     # residual codes of a batch (b, q), column-major, kept from one batch to the next: a fresh
     # 100 MB array per batch page-faults on its first write (measured 0.6 s of a 1e6 x 100
-    # pass); nothing refers to it past its batch (the row files store ``zigzag``)
+    # pass); nothing refers to it past its batch (the row files store its zigzag form)
     code_buffer = _CodeBuffer(with_residual.size)
     score_rows = sub_block_rows(width)
     anchor_lookup = {int(p): i for i, p in enumerate(model.anchor_positions)}
@@ -702,9 +702,6 @@ def encode_pass(stream: Stream, model: FittedModel, writer: ArchiveWriter, *, bl
             stored, basis_arrays = stored_basis(scores, coding.basis_step, coding.float32_scores)
         filled = arithmetic.fill_missing(stored, mixing.fill)
         codes = code_buffer.at_least(b)[:b] if with_residual.size else None
-        # the stored (zigzag) codes, filled sub-block by sub-block while the codes are in
-        # cache; difference-coded archives store them after the whole batch (``carry``)
-        zigzag = np.empty((with_residual.size, b), np.uint32).T if with_residual.size and carry is None else None
         code_nulls = np.zeros((b, with_residual.size), bool)  # cells stored as NULL codes
         row_max, row_l2 = np.empty(b), np.empty(b)
         if b == 0:
@@ -719,8 +716,6 @@ def encode_pass(stream: Stream, model: FittedModel, writer: ArchiveWriter, *, bl
                                    local_anchors[(local_anchors >= lo) & (local_anchors < hi)] - lo,
                                    buffers, (None if codes is None else codes[lo:hi],
                                              row_max[lo:hi], row_l2[lo:hi]))
-                if zigzag is not None:
-                    arithmetic.encode_codes(codes[lo:hi], out=zigzag[lo:hi])
                 ledger.add_stats(piece.block_max, piece.block_l2, piece.block_sum, piece.cells)
                 if piece.fingerprint is not None:
                     fingerprint = fingerprint.merge(piece.fingerprint)
@@ -756,13 +751,14 @@ def encode_pass(stream: Stream, model: FittedModel, writer: ArchiveWriter, *, bl
         else:
             for k, array in enumerate(basis_arrays):
                 columns[layout.SCORE_PATTERN.format(k)] = array
+        stored_codes = codes
         if carry is not None:
-            zigzag = arithmetic.encode_codes(
-                carry.stored(codes, first, writer, code_nulls if code_nulls.any() else None))
+            stored_codes = carry.stored(codes, first, writer, code_nulls if code_nulls.any() else None)
         with_nulls = code_nulls.any(axis=0) if mask is not None else np.zeros(with_residual.size, bool)
-        for t, j in enumerate(with_residual):
+        for t, j in enumerate(with_residual):  # column by column: cache-sized temporaries
             columns[layout.CODE_PATTERN.format(j)] = pa.array(
-                zigzag[:, t], mask=code_nulls[:, t] if with_nulls[t] else None).cast(stored_types[t])
+                arithmetic.encode_codes(stored_codes[:, t]),
+                mask=code_nulls[:, t] if with_nulls[t] else None).cast(stored_types[t])
         if model.row_ledger:  # without: every bound is the column's (FittedModel.row_ledger)
             columns[layout.ROW_ERR_MAX] = pa.array(arithmetic.round_up_compact(row_max, ledger_bits))
             columns[layout.ROW_ERR_L2] = pa.array(arithmetic.round_up_compact(row_l2, ledger_bits))
