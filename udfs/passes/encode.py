@@ -354,17 +354,21 @@ class _Piece:
 
 class _Buffers:
     """Work arrays of one sub-block: xhat, residual, |residual|, slack and the residual term
-    (code * step), each (rows, n) column-major like the blocks, kept across sub-blocks and
+    (code * step), each (rows, n) column-major like the blocks, and the product of the
+    rebuild (rows, n) row-major (``arithmetic.approximate``), kept across sub-blocks and
     batches (a fresh temporary per block page-faults) and grown to the largest sub-block
     asked for."""
 
     def __init__(self, width: int):
         self.width = width
-        self.arrays: tuple[np.ndarray, ...] = tuple(np.empty((width, 0)).T for _ in range(5))
+        self.arrays: tuple[np.ndarray, ...] = self._new(0)
+
+    def _new(self, rows: int) -> tuple[np.ndarray, ...]:
+        return tuple(np.empty((self.width, rows)).T for _ in range(5)) + (np.empty((rows, self.width)),)
 
     def take(self, rows: int) -> tuple[np.ndarray, ...]:
         if rows > self.arrays[0].shape[0]:
-            self.arrays = tuple(np.empty((self.width, rows)).T for _ in range(5))
+            self.arrays = self._new(rows)
         return tuple(a[:rows] for a in self.arrays)
 
 
@@ -404,8 +408,8 @@ class _Kernel:
         codes_out, row_max_out, row_l2_out = out
         s, n = x.shape
         mixing, wr, exact = self.mixing, self.with_residual, self.exact_columns
-        xhat, residual, abs_e, slack_out, term_out = buffers.take(s)
-        arithmetic.approximate(filled, mixing.weights, mixing.offset, out=xhat)
+        xhat, residual, abs_e, slack_out, term_out, product = buffers.take(s)
+        arithmetic.approximate(filled, mixing.weights, mixing.offset, out=xhat, product=product)
         codes = term = largest_term = None
         with np.errstate(invalid="ignore", over="ignore"):
             if wr.size:
@@ -472,7 +476,8 @@ class _Kernel:
         if self.block_sums is not None:
             rows_i, cols_j = self._overridden(stored, anchors)
             sums = self.block_sums.partial(filled, codes, xhat, x, mask, code_columns=wr,
-                                           exact_columns=exact, cells=(rows_i, cols_j))
+                                           exact_columns=exact, cells=(rows_i, cols_j),
+                                           scratch=None if codes is None else slack_out[:, :wr.size])
         return _Piece(block_max, block_l2, block_sum, cells, fingerprint, corrections, stored, over, sums)
 
     def _codes(self, x: np.ndarray, xhat: np.ndarray, work: np.ndarray, codes_out: np.ndarray,
@@ -494,8 +499,10 @@ class _Kernel:
         np.subtract(x, xhat, out=work)
         if self.all_coded:
             np.divide(work, steps, out=codes)
-        else:
-            np.divide(work.T[wr], steps[:, None], out=codes.T)
+        else:  # gathered into term_out (free until the term is formed below)
+            gathered = np.take(work.T, wr, axis=0, out=term_out.T if term_out.T.flags.c_contiguous else None,
+                               mode="clip")  # wr holds valid indices: "clip" only skips a buffer
+            np.divide(gathered, steps[:, None], out=codes.T)
         np.rint(codes, out=codes)
         if codes.shape[0]:
             # NaN propagates through min and max and fails both comparisons

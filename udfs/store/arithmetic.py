@@ -40,7 +40,7 @@ def fill_missing(basis: np.ndarray, fill: np.ndarray) -> np.ndarray:
 
 
 def approximate(filled_basis: np.ndarray, weights: np.ndarray, offset: np.ndarray,
-                out: np.ndarray | None = None) -> np.ndarray:
+                out: np.ndarray | None = None, product: np.ndarray | None = None) -> np.ndarray:
     """Rebuilt values (b, n) from filled basis values (b, c), weights (c, n) and offsets (n,).
 
     A BLAS matrix product: its summation order may change with the request's shape, so two
@@ -51,6 +51,8 @@ def approximate(filled_basis: np.ndarray, weights: np.ndarray, offset: np.ndarra
     product is taken as filled_basis @ weights whatever the layout of ``out`` (BLAS may sum in
     another order when the operands are swapped), so the result has the same bits as without
     ``out``; a C-contiguous ``out`` also saves the temporaries of a new result.
+    ``product``: an optional C-contiguous float64 array (b, n) that receives the matrix product
+    when ``out`` is not C-contiguous (the same product, in place of a fresh temporary).
     """
     with np.errstate(over="ignore", invalid="ignore"):
         if out is None:
@@ -59,7 +61,7 @@ def approximate(filled_basis: np.ndarray, weights: np.ndarray, offset: np.ndarra
             np.matmul(filled_basis, weights, out=out)
             out += offset[None, :]
         else:  # via the transposes: a ufunc over operands of mixed layouts ran 20x slower
-            np.add((filled_basis @ weights).T, offset[:, None], out=out.T)
+            np.add(np.matmul(filled_basis, weights, out=product).T, offset[:, None], out=out.T)
         return out
 
 
