@@ -294,9 +294,14 @@ def stored_basis(raw: np.ndarray, step: np.ndarray, float32: bool):
         column = raw[:, k]
         if coded[k]:
             codes = arithmetic.quantize(column, step[k])
-            bad = ~np.isfinite(codes) | (np.abs(codes) > _CODE_LIMIT)
-            codes = np.where(bad, 0.0, codes)
-            values[:, k] = np.where(bad, np.nan, codes * step[k])
+            # NaN propagates through min and max and fails both comparisons: when every code
+            # is finite and within the limit, no cell is bad and the masking is skipped
+            if codes.size and -_CODE_LIMIT <= codes.min() and codes.max() <= _CODE_LIMIT:
+                bad = None
+            else:
+                bad = ~np.isfinite(codes) | (np.abs(codes) > _CODE_LIMIT)
+                codes = np.where(bad, 0.0, codes)
+            values[:, k] = codes * step[k] if bad is None else np.where(bad, np.nan, codes * step[k])
             arrays.append(pa.array(codes.astype(np.int32), pa.int32(), mask=bad))
         elif float32:
             narrow = column.astype(np.float32)
