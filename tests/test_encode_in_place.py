@@ -38,10 +38,11 @@ def _kernel(n: int, coded: np.ndarray, steps: np.ndarray, limit: np.ndarray) -> 
                           np.zeros(0, np.intp), np.ones(n), None, code_limit=limit)
 
 
-@pytest.mark.parametrize("coded", [np.arange(7), np.array([1, 2, 4, 6])], ids=["all", "some"])
-def test_kernel_codes_are_the_quantized_residual_masked_as_before(coded):
+@pytest.mark.parametrize("n, coded", [(7, np.arange(7)), (7, np.array([1, 2, 4, 6])), (70, np.arange(0, 70, 2))],
+                         ids=["all", "runs", "gathered"])
+def test_kernel_codes_are_the_quantized_residual_masked_as_before(n, coded):
     rng = np.random.default_rng(11)  # invented values
-    s, n = 300, 7
+    s = 300
     x = rng.normal(size=(s, n)) * 10.0 ** rng.integers(-3, 4, n)
     x[5, :] = np.nan
     x[6, :] = np.inf
@@ -68,6 +69,7 @@ def test_kernel_codes_are_the_quantized_residual_masked_as_before(coded):
     codes_out = np.empty((coded.size, 1000)).T[100:100 + s]
     kernel = _kernel(n, coded, steps, limit)
     assert kernel.all_coded == (coded.size == n)
+    assert (kernel.runs is None) == (n == 70)  # 35 runs of one column: gathered
     with np.errstate(invalid="ignore", over="ignore"):
         codes, term, largest = kernel._codes(np.asfortranarray(x), xhat_work, work, codes_out, term_out)
     assert codes is codes_out

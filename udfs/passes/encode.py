@@ -320,6 +320,11 @@ def stored_basis(raw: np.ndarray, step: np.ndarray, float32: bool):
 SUB_BLOCK_CELLS = 1 << 19
 
 
+# Runs of consecutive coded columns up to which the encode pass works on slices of its blocks
+# (beyond, on gathered columns): per run, two ufunc calls per sub-block.
+_MAX_RUNS = 32
+
+
 def sub_block_rows(width: int) -> int:
     """Rows per sub-block at ``width`` numeric columns: about ``SUB_BLOCK_CELLS`` cells, as a
     power of two in [16, layout.ROW_GROUP_ROWS] (it divides a full row group evenly; 16 rows
@@ -401,6 +406,14 @@ class _Kernel:
         self.code_index[self.with_residual] = np.arange(self.with_residual.size)
         # every column coded, in order: the coded columns are the block itself (no gathers)
         self.all_coded = bool(np.array_equal(self.with_residual, np.arange(self.tolerance.shape[0])))
+        # the coded columns as runs of consecutive columns (a, b) = codes (c, d), worked on as
+        # slices of the column-major blocks when there are few (the gaps are the exactly
+        # stored basis columns), else gathered
+        wr = self.with_residual
+        cuts = np.flatnonzero(np.diff(wr) != 1) + 1 if wr.size else np.zeros(0, np.intp)
+        starts, ends = np.concatenate([[0], cuts]).astype(int), np.concatenate([cuts, [wr.size]]).astype(int)
+        self.runs = ([(int(wr[c]), int(wr[d - 1]) + 1, int(c), int(d)) for c, d in zip(starts, ends)]
+                     if wr.size and starts.size <= _MAX_RUNS else None)
         self.code_limit = np.broadcast_to(np.asarray(self.code_limit, dtype=np.float64),
                                           self.with_residual.shape)
 
@@ -495,15 +508,18 @@ class _Kernel:
 
         The same numbers as quantizing ``x[:, wr] - xhat[:, wr]`` and masking with
         ``np.where``: the difference, its quotient and its rounding are the same operations on
-        the same operands, here in place and with the columns gathered as rows of the
-        transposes (each a contiguous copy; a gather of columns of these column-major blocks
-        was measured 10-40x slower). Measured at 1e6 x 100, default tolerance: 0.63 s of the
-        pass's 1.7 s in the lines this replaces."""
+        the same operands, here in place, on slices of the blocks for each run of consecutive
+        coded columns (or, with many runs, on the columns gathered as rows of the transposes:
+        a gather of columns of these column-major blocks was measured 10-40x slower). Measured
+        at 1e6 x 100, default tolerance: 0.63 s of the pass's 1.7 s in the lines this replaces."""
         wr, steps, code_limit = self.with_residual, self.steps, self.code_limit
         codes = codes_out
         np.subtract(x, xhat, out=work)
         if self.all_coded:
             np.divide(work, steps, out=codes)
+        elif self.runs is not None:
+            for a, b, c, d in self.runs:
+                np.divide(work[:, a:b], steps[c:d], out=codes[:, c:d])
         else:  # gathered into term_out (free until the term is formed below)
             gathered = np.take(work.T, wr, axis=0, out=term_out.T if term_out.T.flags.c_contiguous else None,
                                mode="clip")  # wr holds valid indices: "clip" only skips a buffer
@@ -522,6 +538,9 @@ class _Kernel:
         term = np.multiply(codes, steps[None, :], out=term_out)
         if self.all_coded:
             xhat += term
+        elif self.runs is not None:
+            for a, b, c, d in self.runs:
+                xhat[:, a:b] += term[:, c:d]
         else:
             xhat.T[wr] += term.T
         # max_i |q_ij step_j| = |step_j| max_i |q_ij|: rounding is monotone and symmetric
