@@ -105,10 +105,10 @@ class Source:
         if self._file_types is None:
             types = []
             for path in files:
-                meta = pq.ParquetFile(path)
-                too_big = any(meta.metadata.row_group(g).num_rows * len(self.schema) > DIRECT_GROUP_CELLS
-                              for g in range(meta.metadata.num_row_groups))
-                types.append({} if too_big else {f.name: f.type for f in meta.schema_arrow})
+                with pq.ParquetFile(path) as meta:
+                    too_big = any(meta.metadata.row_group(g).num_rows * len(self.schema) > DIRECT_GROUP_CELLS
+                                  for g in range(meta.metadata.num_row_groups))
+                    types.append({} if too_big else {f.name: f.type for f in meta.schema_arrow})
             self._file_types = types
         declared = {c: self.schema.field(c).type for c in columns}
         return all(all(c in found and found[c] == t for c, t in declared.items()) for found in self._file_types)
