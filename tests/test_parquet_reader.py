@@ -50,12 +50,15 @@ def _duckdb_batches(folder: Path, batch_rows: int) -> list[pa.RecordBatch]:
 
 
 @pytest.mark.parametrize("batch_rows", [7, 300, 1000, 5000])
-def test_batches_are_the_ones_duckdb_reads(tmp_path, batch_rows):
+@pytest.mark.parametrize("read_cells", [None, 700], ids=["whole groups", "a few columns per read"])
+def test_batches_are_the_ones_duckdb_reads(tmp_path, monkeypatch, batch_rows, read_cells):
+    if read_cells is not None:  # row groups of 64-500 rows read 1-10 columns at a time
+        monkeypatch.setattr(sources, "DIRECT_READ_CELLS", read_cells)
     folder = tmp_path / "data"
     _write_dataset(folder)
     source = sources.open_source(str(folder))
     try:
-        assert source._direct_parquet(source.schema.names)
+        assert source.reads_directly(source.schema.names)
         ours = list(sources.parquet_batches(source.parquet_files, source.schema, batch_rows))
     finally:
         source.close()
@@ -84,10 +87,10 @@ def test_compress_writes_the_same_archive_through_either_reader(tmp_path, monkey
     folder = tmp_path / "data"
     _write_dataset(folder, seed=1)
     opts = dict(options, batch_rows=450, key="id")  # batches that cross row groups and files
-    assert sources.open_source(str(folder))._direct_parquet(["id", "label", "a", "b", "c", "d"])
+    assert sources.open_source(str(folder)).reads_directly(["id", "label", "a", "b", "c", "d"])
     direct = rankfold.compress(str(folder), tmp_path / "direct.rankfold", **opts)
     monkeypatch.setattr(sources, "DIRECT_GROUP_CELLS", 0)  # every row group too large: DuckDB
-    assert not sources.open_source(str(folder))._direct_parquet(["a"])
+    assert not sources.open_source(str(folder)).reads_directly(["a"])
     through_duckdb = rankfold.compress(str(folder), tmp_path / "duckdb.rankfold", **opts)
     assert _archive_digest(direct.path) == _archive_digest(through_duckdb.path)
     assert np.array_equal(direct.to_numpy(), through_duckdb.to_numpy(), equal_nan=True)
@@ -102,8 +105,8 @@ def test_sources_pyarrow_would_read_otherwise_go_through_duckdb(tmp_path):
                        hive / f"region={region}" / "part.parquet")
     source = sources.open_source(str(hive))
     try:
-        assert "region" in source.schema.names and not source._direct_parquet(source.schema.names)
-        assert source._direct_parquet(["x", "y"])  # the files' own columns are read directly
+        assert "region" in source.schema.names and not source.reads_directly(source.schema.names)
+        assert source.reads_directly(["x", "y"])  # the files' own columns are read directly
     finally:
         source.close()
     # files whose types differ: DuckDB reads them as one type, pyarrow would not
@@ -113,7 +116,7 @@ def test_sources_pyarrow_would_read_otherwise_go_through_duckdb(tmp_path):
     pq.write_table(pa.table({"x": pa.array([4, 5, 6], pa.int64())}), mixed / "b.parquet")
     source = sources.open_source(str(mixed))
     try:
-        assert not source._direct_parquet(["x"])
+        assert not source.reads_directly(["x"])
         values = [v for b in source.batches(["x"], 2) for v in b.column(0).to_pylist()]
         assert values == [1, 2, 3, 4, 5, 6]
     finally:

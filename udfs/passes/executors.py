@@ -298,6 +298,11 @@ class LocalExecutor(Executor):
         if self._wide_parquet(names):
             return  # read through pyarrow: nothing to start
         columns = _columns(names, extra)
+        if self.source.reads_directly(columns):
+            # decoded by pyarrow (sources.parquet_batches): no start-up to hide, and a stream
+            # opened early holds its row groups beside the passes before it (rank 8 at
+            # 1e6 x 100, sampled sketch: peak RSS 1.10-1.15 GB against 0.87-0.89 GB)
+            return
         self.opened = (columns, self.source.stream(columns, block_rows(self.batch_rows, len(names))))
 
     def _wide_parquet(self, names: list[str]) -> bool:
