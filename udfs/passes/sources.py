@@ -147,10 +147,11 @@ def parquet_batches(files: list[str], schema: pa.Schema, batch_rows: int) -> Ite
     the batches DuckDB's ``to_arrow_reader(batch_rows)`` gives for the same files, so that a
     pass sees the same blocks whichever reader decoded them.
 
-    Decoded with pyarrow, one row group at a time (``DIRECT_READ_CELLS`` at a time within it)
-    on the calling thread (the read-ahead thread): at 1e6 x 100 float64 in 4 files of row groups of 125,000 rows (Snappy), 0.65 s
-    of CPU against 1.4 s for DuckDB on one thread (the compress passes' setting), which
-    left the profile pass waiting on its reader and took a core from the encode pass."""
+    Decoded with pyarrow, one row group at a time (``DIRECT_READ_CELLS`` cells at a time
+    within it) on the calling thread (the read-ahead thread): at 1e6 x 100 float64 in 4
+    files of row groups of 125,000 rows (Snappy), 0.4-0.7 s of CPU against 1.4 s for DuckDB
+    on one thread (the compress passes' setting), which left the profile pass waiting on its
+    reader and took a core from the encode pass."""
     import pyarrow.dataset as ds
     import pyarrow.fs as pafs
 
