@@ -8,12 +8,19 @@ scan.
 Data: invented (rank 8 plus 1% noise, fixed seeds; ``scale.generate``), deleted at the end
 unless ``--keep``. Timed: the scan (every column streamed as Arrow), compress with the default
 tolerance (max_std_error=0.05), with max_std_error=0.01, and with a fixed rank 8 for scale.
+
+``--before DIR`` times an earlier rankfold in the same run, alternated with this one: DIR is
+an import root holding that version laid out as installed (``rankfold/`` = its ``client/``,
+``rankfold/udfs/`` = its ``udfs/``), e.g. from a checkout of the earlier commit:
+``mkdir DIR && cp -r client DIR/rankfold && cp -r udfs DIR/rankfold/udfs``. Its children run
+with ``PYTHONPATH=DIR`` (found before the editable install of this one).
 """
 
 from __future__ import annotations
 
 import argparse
 import json
+import os
 import shutil
 import subprocess
 import sys
@@ -49,9 +56,10 @@ RUNS = {"scan": "scan", "default tolerance (max_std_error=0.05)": "{}",
         "max_std_error=0.01": '{"max_std_error": 0.01}', "rank 8": '{"rank": 8}'}
 
 
-def child(source: Path, target: Path, what: str) -> dict:
+def child(source: Path, target: Path, what: str, root: Path | None = None) -> dict:
+    env = dict(os.environ, PYTHONPATH=str(root)) if root is not None else None
     done = subprocess.run([sys.executable, "-c", CHILD, str(source), str(target), what],
-                          capture_output=True, text=True, check=True)
+                          capture_output=True, text=True, check=True, env=env)
     return json.loads(done.stdout.strip().splitlines()[-1])
 
 
@@ -62,15 +70,21 @@ def main() -> None:
     parser.add_argument("--out", type=Path, default=Path("speed_tmp"))
     parser.add_argument("--repeats", type=int, default=2)
     parser.add_argument("--keep", action="store_true")
+    parser.add_argument("--before", type=Path, default=None,
+                        help="import root of an earlier rankfold, timed alternately (see above)")
     args = parser.parse_args()
     data = args.out / f"data-{args.rows}x{args.width}"
     if not data.exists():
         generate(data, args.rows, args.width)
     child(data, args.out / "warm", "scan")
+    runs = [(name, what, None) for name, what in RUNS.items()]
+    if args.before is not None:  # each compress run of the earlier version right before this one's
+        runs = [r for name, what, _ in runs for r in
+                ([(f"before: {name}", what, args.before)] if what != "scan" else []) + [(name, what, None)]]
     best = {}
     for _ in range(args.repeats):
-        for name, what in RUNS.items():
-            out = child(data, args.out / "archive", what)
+        for name, what, root in runs:
+            out = child(data, args.out / "archive", what, root)
             if name not in best or out["seconds"] < best[name]["seconds"]:
                 best[name] = out
     scan = best["scan"]["seconds"]

@@ -21,6 +21,7 @@ import math
 import shutil
 import tempfile
 import uuid
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -40,7 +41,7 @@ from ..store.aggregate import BlockSums
 from ..store.model import Coding, FittedModel, Mixing, mixing_for_columns, mixing_for_scores
 from ..factor.sketch import GramSketch, RowSketch
 from .commit import ArchiveWriter, RowPartWriter, prepare_target
-from .executors import make_executor
+from .executors import make_executor, one_blas_thread
 from .keys import check_unique_key
 from .options import (AUTO_SKETCH_ROWS, AUTO_SKETCH_ROWS_PER_COLUMN, DEFAULT_RANK_CAP_DIVISOR,
                       CompressOptions)
@@ -76,14 +77,17 @@ def _profile_task(blocks, part, width: int, keep_sample: bool, seed: int = 0):
     profile = ColumnProfile.empty(width)
     fingerprint = Fingerprint()
     gram = new_sketch(width)
-    sample: dict[str, float] = {}
+    sample = None  # the bytes per value, measured on a thread of its own (pyarrow's writer
+    # releases the GIL): 0.16 s of the pass's thread at 1e6 x 100, now beside it
     runs = SampleRuns(seed, run_rows(width)) if keep_sample else None
-    for first, batch, block, mask in blocks:
-        profile, gram = profile_rows(first, block, mask, profile, fingerprint, gram)
-        if keep_sample and not sample:
-            sample = targets.column_bytes(batch.slice(0, _BYTES_SAMPLE_ROWS))
-        if runs is not None:
-            runs.add(first, block, mask)
+    with ThreadPoolExecutor(max_workers=1, thread_name_prefix="rankfold-bytes") as pool:
+        for first, batch, block, mask in blocks:
+            if keep_sample and sample is None:
+                sample = pool.submit(targets.column_bytes, batch.slice(0, _BYTES_SAMPLE_ROWS))
+            profile, gram = profile_rows(first, block, mask, profile, fingerprint, gram)
+            if runs is not None:
+                runs.add(first, block, mask)
+        sample = sample.result() if sample is not None else {}
     return profile, fingerprint, sample, gram, runs
 
 
@@ -245,7 +249,11 @@ def _compress_at(source: Any, target: Path, opts: CompressOptions) -> Path:
         executor = make_executor(opts.executor, source, opts.connection, opts.batch_rows,
                                  opts.progress, opts.storage_options)
         try:
-            return _compress_with(executor, lambda: ArchiveWriter(target, opts.overwrite), opts)
+            # BLAS on one thread between the passes too (the passes set it themselves): the
+            # fit's many small products waited on OpenBLAS's second thread, measured 0.4 s of
+            # pivoted QR and CX mixing at 1e6 x 100 on the shared machine (ms alone); same bytes
+            with one_blas_thread():
+                return _compress_with(executor, lambda: ArchiveWriter(target, opts.overwrite), opts)
         finally:
             executor.close()
 
@@ -438,6 +446,11 @@ def _compress(src, new_writer, opts: CompressPlan) -> Path | str:
                 f"Every numeric column of {src.description} holds integers beyond 2^53, which "
                 "cannot be rebuilt exactly in float64; there is nothing to factor."
             )
+    if not read.sampled and (opts.method == "svd" or opts.link == "cx"):
+        # the profile read every row and the next full pass is the encode pass (a refit's
+        # sketch pass over other columns closes it unread): DuckDB plans it and decodes its
+        # first batch while the fit and the trials run (0.4 s to the first batch at 1e6 x 100)
+        src.open_ahead(numeric, passthrough)
     width = len(numeric)
     transform = Transform.fit(opts.transform, profile)
     # the sketch comes from the profile pass's co-moments, moved to the transform's shift;

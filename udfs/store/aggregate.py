@@ -114,7 +114,8 @@ class BlockSums:
     def partial(self, filled: np.ndarray, codes: np.ndarray | None, xhat: np.ndarray,
                 block: np.ndarray, mask: np.ndarray | None, *,
                 code_columns: np.ndarray | None = None, exact_columns: np.ndarray | None = None,
-                cells: tuple[np.ndarray, np.ndarray] | None = None) -> dict[str, Any]:
+                cells: tuple[np.ndarray, np.ndarray] | None = None,
+                scratch: np.ndarray | None = None) -> dict[str, Any]:
         """The additive sums of one row range of s rows (every field of a record except
         first_row and rowmax_sum; its "rows" is s). Partials of consecutive ranges add up to the
         sums of their union, up to the order of floating-point summation.
@@ -124,6 +125,8 @@ class BlockSums:
         Overridden cells (stored exactly): the whole columns ``exact_columns`` (summed per
         column, O(s e) for e such columns), plus ``cells`` = (rows, cols) (equal-length index
         arrays, outside ``exact_columns``; summed over their indices only, O(cells)).
+        ``scratch``: an optional array of the shape of ``codes`` that receives |codes| (the
+        encode pass lends one of its work arrays instead of a fresh temporary).
         """
         s, n = block.shape
         d = filled - self.shift[None, :]
@@ -131,7 +134,7 @@ class BlockSums:
         q_sum, q_abs, q_sq = np.zeros(n), np.zeros(n), np.zeros(n)
         if codes is not None:
             where = slice(None) if code_columns is None else code_columns
-            q_sum[where], q_abs[where], q_sq[where] = (codes.sum(axis=0), np.abs(codes).sum(axis=0),
+            q_sum[where], q_abs[where], q_sq[where] = (codes.sum(axis=0), np.abs(codes, out=scratch).sum(axis=0),
                                                        np.einsum("ij,ij->j", codes, codes))
         ov_cells, ov_nulls = np.zeros(n, np.int64), np.zeros(n, np.int64)
         ov_corr, ov_abs, ov_sq = np.zeros(n), np.zeros(n), np.zeros(n)

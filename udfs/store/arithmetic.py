@@ -40,7 +40,7 @@ def fill_missing(basis: np.ndarray, fill: np.ndarray) -> np.ndarray:
 
 
 def approximate(filled_basis: np.ndarray, weights: np.ndarray, offset: np.ndarray,
-                out: np.ndarray | None = None) -> np.ndarray:
+                out: np.ndarray | None = None, product: np.ndarray | None = None) -> np.ndarray:
     """Rebuilt values (b, n) from filled basis values (b, c), weights (c, n) and offsets (n,).
 
     A BLAS matrix product: its summation order may change with the request's shape, so two
@@ -51,6 +51,8 @@ def approximate(filled_basis: np.ndarray, weights: np.ndarray, offset: np.ndarra
     product is taken as filled_basis @ weights whatever the layout of ``out`` (BLAS may sum in
     another order when the operands are swapped), so the result has the same bits as without
     ``out``; a C-contiguous ``out`` also saves the temporaries of a new result.
+    ``product``: an optional C-contiguous float64 array (b, n) that receives the matrix product
+    when ``out`` is not C-contiguous (the same product, in place of a fresh temporary).
     """
     with np.errstate(over="ignore", invalid="ignore"):
         if out is None:
@@ -59,7 +61,7 @@ def approximate(filled_basis: np.ndarray, weights: np.ndarray, offset: np.ndarra
             np.matmul(filled_basis, weights, out=out)
             out += offset[None, :]
         else:  # via the transposes: a ufunc over operands of mixed layouts ran 20x slower
-            np.add((filled_basis @ weights).T, offset[:, None], out=out.T)
+            np.add(np.matmul(filled_basis, weights, out=product).T, offset[:, None], out=out.T)
         return out
 
 
@@ -108,7 +110,8 @@ def slack(filled_basis: np.ndarray, weights: np.ndarray, offset: np.ndarray,
 
 def slack_limit(filled_basis: np.ndarray, weights: np.ndarray, offset: np.ndarray,
                 residual_term: np.ndarray | None = None,
-                residual_columns: np.ndarray | None = None) -> np.ndarray:
+                residual_columns: np.ndarray | None = None, *,
+                residual_max: np.ndarray | None = None) -> np.ndarray:
     """Per column j, shape (n,): a number at least as large as every computed entry of column
     j of ``slack`` with the same arguments, in O(b c + c n + b q) instead of a (b, n) product.
     Not finite when an entry may not be (overflow, or a NaN among the inputs).
@@ -119,6 +122,9 @@ def slack_limit(filled_basis: np.ndarray, weights: np.ndarray, offset: np.ndarra
     more roundings follow (the products by 2 gamma_{c+3} and by the factor below); while
     (c + 3) u < 2^-10 they all fit in the factor 1 + 8 (c + 3) u:
     (1 + gamma_{c+2}) (1 + u) / ((1 - gamma_{c+2}) (1 - u)^3) < 1 + (2.01 (c + 2) + 4) u.
+
+    ``residual_max`` (q,): max_i |residual_ij| per column of the residual term, when the
+    caller has it (the encode pass, from its codes' range); the term is then not scanned.
     """
     c = weights.shape[0]
     with np.errstate(over="ignore", invalid="ignore"):
@@ -126,7 +132,8 @@ def slack_limit(filled_basis: np.ndarray, weights: np.ndarray, offset: np.ndarra
         magnitude = largest @ np.abs(weights) + np.abs(offset)
         if residual_term is not None and residual_term.size:
             where = slice(None) if residual_columns is None else residual_columns
-            magnitude[where] += np.abs(residual_term).max(axis=0)
+            magnitude[where] += (np.abs(residual_term).max(axis=0) if residual_max is None
+                                 else residual_max)
         return (2.0 * _gamma(c + 3)) * magnitude * (1.0 + 8.0 * (c + 3) * UNIT_ROUNDOFF)
 
 
@@ -209,9 +216,16 @@ def encode_codes(codes: np.ndarray) -> np.ndarray:
     under every encoding and zstd level tried (measured on the codes of real tables, weather
     at 0.01 std and hfi at 0.1 std), and would have to be fixed for every row file of an
     archive before its first code is seen (DuckDB reads several files with the first one's
-    type). Readers accept every width of ``table_schemas.CODE_TYPES``."""
+    type). Readers accept every width of ``table_schemas.CODE_TYPES``.
+
+    Computed as (q << 1) ^ (q >> 63) in int64 (the arithmetic shift gives 0 or -1, so the
+    exclusive or leaves 2q, or flips it to -2q - 1): the same numbers with fewer temporaries
+    (measured 0.2 s against 1.5-2 s per 10^6 x 92 codes, column by column, on a loaded
+    machine)."""
     q = np.asarray(codes).astype(np.int64)
-    return np.where(q >= 0, 2 * q, -2 * q - 1).astype(np.uint32)
+    doubled = np.left_shift(q, 1)
+    np.bitwise_xor(doubled, np.right_shift(q, 63, out=q), out=doubled)
+    return doubled.astype(np.uint32)
 
 
 def decode_codes(stored: np.ndarray) -> np.ndarray:
