@@ -129,6 +129,11 @@ MUTATIONS = {
         "            path = self.writer.commit(self.manifest, self.files, at_most=goal.target_bytes)",
         "            path = self.writer.commit(self.manifest, self.files, at_most=None)",
         ["tests/test_sizes.py"]),
+    "codes of tables beyond one row group offered packing": (
+        "udfs/passes/coding.py",
+        "coded.sum() < 2 or table_rows > layout.ROW_GROUP_ROWS:",
+        "coded.sum() < 2:",
+        ["tests/test_packed_codes.py"]),
     "the number of basis columns not measured (the size model's pick kept)": (
         "udfs/passes/basis_size.py",
         "    return min(c for c, b in measured.items() if b <= (1.0 + EVEN) * least), measured",

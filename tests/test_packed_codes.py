@@ -23,8 +23,11 @@ import rankfold
 from rankfold.portable_view import view_sql
 from rankfold.udfs.errors import CorruptArchiveError
 from rankfold.udfs.passes import compress as compress_module
+from rankfold.udfs.passes.coding import code_packing
+from rankfold.udfs.passes.profile import Transform
 from rankfold.udfs.store import layout, packed_codes, row_differences
 from rankfold.udfs.store.code_layout import PackingChoice, choose_packing
+from rankfold.udfs.store.model import Coding, Mixing
 from rankfold.udfs.store.reader import ArchiveReader
 
 
@@ -171,6 +174,20 @@ def test_a_tall_table_keeps_one_column_per_code(tmp_path):
 
     # the SQL source of its rows is the plain file list, as before packing existed
     assert layout.PACKED_CODES not in rows_source_sql(ArchiveReader(arch.path))
+
+
+def test_codes_of_a_table_beyond_one_row_group_are_not_offered_packing():
+    """Codes that are all zero pack far smaller (each column chunk is then all overhead), but a
+    table of more than one row group keeps one column per code: the list's cost at every write
+    and read is not worth the few per-chunk bytes (coding.code_packing)."""
+    width = 30
+    sample = np.zeros((200, width))  # invented: every column constant, so every code is 0
+    mixing = Mixing(np.zeros((0, width)), np.zeros(width), np.zeros(0), np.zeros(0, np.int64))
+    coding = Coding(np.full(width, 0.5), np.full(width, 1.0), np.zeros(0))
+    transform = Transform("none", np.zeros(width), np.ones(width))
+    short = code_packing(sample, mixing, coding, transform, None, layout.ROW_GROUP_ROWS)
+    assert short is not None and short.packed
+    assert code_packing(sample, mixing, coding, transform, None, layout.ROW_GROUP_ROWS + 1) is None
 
 
 def test_pack_and_unpack_round_trip_in_numpy_and_sql(tmp_path):
