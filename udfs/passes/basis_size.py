@@ -3,7 +3,8 @@
 The size model (``targets.plan_for_tolerance``) predicts each column's residual as Gaussian
 and its codes' bytes from their entropy. On real tables that can be far off: on a table of NIR
 spectra (215 x 100) at 0.01 of each column's std it predicted 17.7 kB for one basis column,
-whose archive took 54.1 kB, while 16 basis columns wrote 34.9 kB. So, like the predictor of
+whose archive took 54.1 kB, while 16 basis columns wrote 34.9 kB (measured before residual
+codes could be packed into one list column). So, like the predictor of
 each column (``predictors``), the number of basis columns is measured: each size tried is
 fitted from the sketch, its residual codes on the profile pass's sample of runs of rows are
 written with the real Parquet writer (``predictors.choose_predictors``), and the bytes are
@@ -29,8 +30,9 @@ __all__ = ["climb", "EVEN", "SEARCH_CELLS", "search_sample"]
 
 #: Sizes measuring within this fraction of the least bytes count as even, and the fewest basis
 #: columns among them are kept: a sample's estimate is no closer than that to the archive
-#: written (on the real tables of ``benchmarks/real_tables.py``: within about 1-2%), and each
-#: basis column adds a little the estimate does not count (its entries in the columns table).
+#: written (the ridership panel of ``benchmarks/real_tables.py`` at 0.01 std: 23 and 24 basis
+#: columns estimated 4% apart wrote archives 0.3% apart), and each basis column adds a little
+#: the estimate does not count (its entries in the columns table).
 EVEN = 0.01
 
 
@@ -68,7 +70,7 @@ def climb(first: int, limit: int, measure: Callable[[int], float]) -> tuple[int,
     return min(c for c, b in measured.items() if b <= (1.0 + EVEN) * least), measured
 
 
-#: Cells of the sample the climb measures at most (2 MB of float64): every k-th run of the
+#: Cells of the sample the climb measures at most (512 kB of float64): every k-th run of the
 #: trial's sample, k as small as keeps within it. Each size tried costs a trial of the real
 #: writer on these cells; the size chosen is then tried on the whole sample as before.
 SEARCH_CELLS = 1 << 16
