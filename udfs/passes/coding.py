@@ -17,7 +17,8 @@ from ..store.arithmetic import trim_mantissa
 from ..store.code_layout import PackingChoice, choose_packing
 from ..store.model import Coding, Mixing
 from .encode import stored_basis
-from .predictors import choose_differences, choose_predictors, values_bytes
+from .predictors import (choose_differences, choose_predictors, coded_columns, residual_codes, run_differences,
+                         values_bytes)
 from .profile import ColumnProfile, Transform
 from .targets import CELL_BYTES
 
@@ -83,9 +84,7 @@ def with_row_differences(choice, coding: Coding, numeric: list[str], sample: np.
     (``Coding.difference``): none ('off', the default), every coded column ('all'), the named
     ones, or ('auto') those a trial on the sample measures ``predictors.DIFFERENCE_GAIN``
     smaller (``predictors.choose_differences``). Columns without codes never are."""
-    coded = np.isfinite(coding.residual_step)
-    if mixing.basis_columns is not None:
-        coded[mixing.basis_columns] = False
+    coded = coded_columns(mixing, coding)
     if choice == "off" or not coded.any():
         return coding
     if choice == "all":
@@ -140,9 +139,7 @@ def measured_bytes(sample: np.ndarray, mixing: Mixing, coding: Coding, transform
 def _rounded_alone(mixing: Mixing, coding: Coding, lowrank: np.ndarray, shift: np.ndarray) -> Mixing:
     """``mixing`` with the coded columns the trial rounds alone (``lowrank`` False) predicted by
     their ``shift`` only: zero weights, the shift as offset."""
-    coded = np.isfinite(coding.residual_step)
-    if mixing.basis_columns is not None:
-        coded[mixing.basis_columns] = False
+    coded = coded_columns(mixing, coding)
     alone = coded & ~lowrank
     if not alone.any():
         return mixing
@@ -195,9 +192,7 @@ def predictor_trial(sample: np.ndarray, mixing: Mixing, coding: Coding, transfor
                   f"{rows} rows ({choice.alone_bytes} against {choice.basis_bytes} bytes, and "
                   f"{int(fixed)} bytes of weights and anchor rows)")
         return alone, alone_coding, dataclasses.replace(build, rank=0, n_columns=0, n_rows=0, reason=reason)
-    coded = np.isfinite(chosen.residual_step)
-    if mixing.basis_columns is not None:
-        coded[mixing.basis_columns] = False
+    coded = coded_columns(mixing, chosen)
     alone_columns = coded & ~choice.lowrank
     if alone_columns.any():
         mixing = _rounded_alone(mixing, chosen, choice.lowrank, transform.shift)
@@ -248,28 +243,13 @@ def code_packing(sample: np.ndarray | None, mixing: Mixing, coding: Coding, tran
     a list column costs at every write and read (measured on an invented 1e6 x 100 table at the
     default tolerance, codes nearly all zero: 5% fewer bytes packed, but compress 3.1-3.3 s ->
     4.1-5.1 s, and every SQL read unpacks all codes of its rows)."""
-    coded = np.isfinite(coding.residual_step)
-    if mixing.basis_columns is not None:
-        coded[mixing.basis_columns] = False
+    coded = coded_columns(mixing, coding)
     if sample is None or not sample.shape[0] or coded.sum() < 2 or table_rows > layout.ROW_GROUP_ROWS:
         return None
     stored, _ = sample_basis(sample, mixing, coding, transform, score_right)
-    filled = arithmetic.fill_missing(stored, mixing.fill)
-    predicted = arithmetic.approximate(filled, mixing.weights[:, coded], mixing.offset[coded])
-    values = sample[:, coded]
-    with np.errstate(invalid="ignore", over="ignore"):  # as the encode pass stores them
-        codes = arithmetic.quantize(values - predicted, coding.residual_step[coded][None, :])
-        codes = np.where(np.isfinite(codes) & (np.abs(codes) <= 2.0**31 - 1), codes, 0.0)
+    codes = residual_codes(sample, mixing, coding, stored, np.flatnonzero(coded))  # as the encode pass stores them
     differenced = np.zeros(int(coded.sum()), bool) if coding.difference is None else \
         np.asarray(coding.difference, dtype=bool)[coded]
     if differenced.any():  # stored as differences within each run (restarting at its first row)
-        first = np.zeros(codes.shape[0], bool)
-        first[0] = True
-        if run_starts is not None:
-            first[run_starts[run_starts < codes.shape[0]]] = True
-        stepped = codes[:, differenced]
-        stepped[1:] -= codes[:-1, differenced]
-        stepped[first] = codes[first][:, differenced]
-        codes[:, differenced] = stepped
-    codes = arithmetic.encode_codes(codes)
-    return choose_packing(codes, np.isnan(values), table_rows)
+        codes[:, differenced] = run_differences(codes[:, differenced], run_starts)
+    return choose_packing(arithmetic.encode_codes(codes), np.isnan(sample[:, coded]), table_rows)

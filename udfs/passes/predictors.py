@@ -39,6 +39,7 @@ from .commit import ZSTD_LEVEL
 from .select import row_uniforms
 
 __all__ = ["SampleRuns", "PredictorChoice", "choose_predictors", "choose_differences", "values_bytes", "RUNS",
+           "coded_columns", "residual_codes", "run_differences",
            "RUN_ROWS",
            "SAMPLE_CELLS", "DIFFERENCE_GAIN"]
 
@@ -156,6 +157,42 @@ def _stored_codes(values: np.ndarray, step: np.ndarray) -> np.ndarray:
     return arithmetic.encode_codes(codes)
 
 
+def coded_columns(mixing: Mixing, coding: Coding) -> np.ndarray:
+    """(n,) True where a numeric column has residual codes: a finite residual step, and not a
+    basis column (basis columns are stored as they are, or rounded on their own step)."""
+    coded = np.isfinite(coding.residual_step)
+    if mixing.basis_columns is not None:
+        coded[mixing.basis_columns] = False
+    return coded
+
+
+def residual_codes(sample: np.ndarray, mixing: Mixing, coding: Coding, stored_basis: np.ndarray,
+                   columns: np.ndarray, limit: float = 2.0**31 - 1) -> np.ndarray:
+    """Residual codes (m, q) of ``sample``'s (m, n) ``columns`` (q indices) under the low-rank
+    prediction from ``stored_basis`` (m, c), before zigzag: quantized at each column's residual
+    step, 0 where not finite or beyond ``limit`` in magnitude (such cells are stored exactly)."""
+    filled = arithmetic.fill_missing(stored_basis, mixing.fill)
+    predicted = arithmetic.approximate(filled, mixing.weights[:, columns], mixing.offset[columns])
+    with np.errstate(invalid="ignore", over="ignore"):
+        codes = arithmetic.quantize(sample[:, columns] - predicted, coding.residual_step[columns][None, :])
+    return np.where(np.isfinite(codes) & (np.abs(codes) <= limit), codes, 0.0)
+
+
+def run_differences(codes: np.ndarray, run_starts: np.ndarray | None) -> np.ndarray:
+    """Each row of ``codes`` (m, q) minus the previous row, restarting (the codes as they are)
+    at the first row and at each of ``run_starts`` (r,): the row-difference form
+    (``store.row_differences``) on a sample of runs of rows."""
+    m = codes.shape[0]
+    differences = codes.copy()
+    differences[1:] -= codes[:-1]
+    first = np.zeros(m, bool)
+    if run_starts is not None:
+        first[run_starts[run_starts < m]] = True
+    first[:1] = True
+    differences[first] = codes[first]
+    return differences
+
+
 def _code_bytes(arrays: dict[str, pa.Array]) -> dict[str, int]:
     """Compressed bytes of each sampled code column under its best Parquet encoding at the row
     writer's zstd level (the level itself is chosen later, per column, by the row writer:
@@ -229,20 +266,16 @@ def choose_predictors(sample: np.ndarray, mixing: Mixing, coding: Coding, shift:
     m, n = sample.shape
     cache = {} if alone_cache is None else alone_cache
     steps = coding.residual_step
-    in_basis = np.zeros(n, bool)
-    if mixing.basis_columns is not None:
-        in_basis[mixing.basis_columns] = True
-    coded = np.flatnonzero(np.isfinite(steps) & ~in_basis)
+    coded = np.flatnonzero(coded_columns(mixing, coding))
     own_step = 2.0 * coding.tolerance
     offer_alone = bool(stored_basis.shape[1]) and np.isfinite(own_step).all() and np.all(own_step > 0)
     wanted = {(int(j), float(steps[j])) for j in coded}
     if offer_alone:
         wanted |= {(j, float(own_step[j])) for j in range(n)}
     _alone_bytes(sample, shift, wanted, cache)
-    filled = arithmetic.fill_missing(stored_basis, mixing.fill)
-    predicted = arithmetic.approximate(filled, mixing.weights[:, coded], mixing.offset[coded])
-    low = _code_choices({f"l{j}": pa.array(_stored_codes(sample[:, [j]] - predicted[:, [t]], steps[[j]])[:, 0])
-                         for t, j in enumerate(coded)}, {f"l{j}": lay for j, lay in (layouts or {}).items()})
+    codes = arithmetic.encode_codes(residual_codes(sample, mixing, coding, stored_basis, coded))
+    low = _code_choices({f"l{j}": pa.array(codes[:, t]) for t, j in enumerate(coded)},
+                        {f"l{j}": lay for j, lay in (layouts or {}).items()})
     lowrank = np.ones(n, bool)
     coded_bytes = 0
     for j in coded:
@@ -270,24 +303,13 @@ def choose_differences(sample: np.ndarray, run_starts: np.ndarray, mixing: Mixin
     (r,)), as the archive's restart chunks make them restart (every 8,192 rows and at each row
     file's start). Both forms are written with the real writer (``_code_bytes``)."""
     m, n = sample.shape
-    in_basis = np.zeros(n, bool)
-    if mixing.basis_columns is not None:
-        in_basis[mixing.basis_columns] = True
-    coded = np.flatnonzero(np.isfinite(coding.residual_step) & ~in_basis)
+    coded = np.flatnonzero(coded_columns(mixing, coding))
     flags = np.zeros(n, bool)
     if not coded.size or m < 2:
         return flags
-    filled = arithmetic.fill_missing(stored_basis, mixing.fill)
-    predicted = arithmetic.approximate(filled, mixing.weights[:, coded], mixing.offset[coded])
-    with np.errstate(invalid="ignore", over="ignore"):
-        codes = arithmetic.quantize(sample[:, coded] - predicted, coding.residual_step[coded][None, :])
-    codes = np.where(np.isfinite(codes) & (np.abs(codes) <= 2.0**30 - 1), codes, 0.0)
-    differences = codes.copy()
-    differences[1:] -= codes[:-1]
-    first = np.zeros(m, bool)
-    first[run_starts[run_starts < m]] = True
-    first[0] = True
-    differences[first] = codes[first]
+    # at most 2^30 - 1: a difference of two such codes still fits the zigzag uint32
+    codes = residual_codes(sample, mixing, coding, stored_basis, coded, limit=2.0**30 - 1)
+    differences = run_differences(codes, run_starts)
     arrays = {}
     for t, j in enumerate(coded):
         arrays[f"p{j}"] = pa.array(arithmetic.encode_codes(codes[:, t]))
