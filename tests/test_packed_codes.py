@@ -20,7 +20,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 import rankfold
-from rankfold.portable_view import view_sql
+from archive_checks import assert_reads_alike, source_values as _truth, with_specials
 from rankfold.udfs.errors import CorruptArchiveError
 from rankfold.udfs.passes import compress as compress_module
 from rankfold.udfs.passes.coding import code_packing
@@ -41,24 +41,11 @@ def _wide(seed: int, m: int, n: int, specials: bool, first: int = 0) -> pa.Table
         values = x[:, j].copy()
         nulls = np.zeros(m, bool)
         if specials and j % 7 == 0:
-            u = rng.random(m)
-            values[u < 0.03] = np.nan
-            values[(u >= 0.03) & (u < 0.05)] = np.inf
-            values[(u >= 0.05) & (u < 0.07)] = -np.inf
-            nulls = (u >= 0.07) & (u < 0.12)
+            nulls = with_specials(values, rng.random(m), (0.03, 0.02, 0.02, 0.05))
         columns[f"c{j}"] = pa.array(values, mask=nulls)
     columns["count"] = pa.array(np.round(x[:, 0] * 40).astype(np.int32))
     columns["narrow"] = pa.array(x[:, 1].astype(np.float32))
     return pa.table(columns)
-
-
-def _truth(table: pa.Table, names: list[str]) -> np.ndarray:
-    out = []
-    for n in names:
-        column = table.column(n)
-        values = column.fill_null(0).to_numpy(zero_copy_only=False).astype(np.float64)
-        out.append(np.where(column.is_null().to_numpy(zero_copy_only=False), np.nan, values))
-    return np.column_stack(out)
 
 
 def _forced(monkeypatch, packed: bool) -> None:
@@ -67,42 +54,17 @@ def _forced(monkeypatch, packed: bool) -> None:
                         lambda *args, **kwargs: PackingChoice(packed, 0, 0, 0))
 
 
-def _scan(con, path, where: str = "", **named) -> dict:
-    args = "".join(f", {k} := {v}" for k, v in named.items())
-    return con.sql(f"SELECT * FROM rankfold_scan('{path}'{args}) {where} ORDER BY _rf_row").fetchnumpy()
-
-
 def _same_everywhere(plain, packed, table, con, rows: tuple[int, ...] = ()) -> None:
     """Python and SQL reads of ``packed`` equal those of ``plain``; every served value lies
-    within its bound of the source."""
+    within its bound of the source (``archive_checks.assert_reads_alike``); then the other
+    read paths over packed codes."""
     names = packed.numeric_columns
-    a, b = plain._reader.rebuild(), packed._reader.rebuild()
-    np.testing.assert_array_equal(b.values, a.values)
-    np.testing.assert_array_equal(b.bounds, a.bounds)
-    np.testing.assert_array_equal(b.nulls, a.nulls)
-    truth = _truth(table, names)
-    finite = np.isfinite(truth)
-    assert np.all(np.abs(truth[finite] - b.values[finite]) <= b.bounds[finite])
-    np.testing.assert_array_equal(np.isnan(b.values), np.isnan(truth))  # NULL and NaN cells as they were
-    sa, sb = _scan(con, plain.path, bounds="'cell'"), _scan(con, packed.path, bounds="'cell'")
-    for n in names:
-        np.testing.assert_array_equal(sb[n], sa[n])
-        np.testing.assert_array_equal(sb[n + "_bound"], sa[n + "_bound"])
     m = table.num_rows
-    picked = _scan(con, packed.path, predicate=f"'id % 7 = 3 OR id = {m - 1}'")
-    keep = (sb["id"] % 7 == 3) | (sb["id"] == m - 1)
-    for n in names:
-        np.testing.assert_array_equal(picked[n], sb[n][keep])
-    for row in sorted({0, 1, m // 2, m - 1, *rows}):  # point lookups: SQL, Python and the cell function
-        one = _scan(con, packed.path, where=f"WHERE id = {int(sb['id'][row])}")
-        single = packed._reader.rebuild(rows=[row])
-        for n in names:
-            np.testing.assert_array_equal(one[n], sb[n][row:row + 1])
-        # one row may be summed in another BLAS order than all of them (the slack covers it)
-        np.testing.assert_allclose(single.values[0], b.values[row], rtol=1e-13)
-        np.testing.assert_allclose(single.bounds[0], b.bounds[row], rtol=1e-13)
-        cell = con.sql(f"SELECT rankfold_cell('{packed.path}', {row}, '{names[1]}')").fetchall()[0][0]
-        np.testing.assert_array_equal(np.float64(np.nan if cell is None else cell), sb[names[1]][row])
+    # one row may be summed in another BLAS order than all of them (the slack covers it)
+    a, b, sa, sb, truth = assert_reads_alike(plain, packed, table, con, {0, 1, m // 2, m - 1, *rows},
+                                             cell_column=names[1], view="packed_view", single_rtol=1e-13)
+    np.testing.assert_array_equal(b.nulls, a.nulls)
+    np.testing.assert_array_equal(np.isnan(b.values), np.isnan(truth))  # NULL and NaN cells as they were
     from rankfold.sql_view import query, select_rows
 
     np.testing.assert_array_equal(select_rows(packed, "id % 7 = 3"), np.flatnonzero(sb["id"] % 7 == 3))
@@ -110,10 +72,6 @@ def _same_everywhere(plain, packed, table, con, rows: tuple[int, ...] = ()) -> N
     np.testing.assert_array_equal(queried.column(0).to_numpy(zero_copy_only=False), sa[names[2]])
     errors = con.sql(f"SELECT * FROM rankfold_row_errors('{packed.path}') ORDER BY _rf_row").fetchnumpy()
     assert errors[layout.ROW_ID].size == m
-    con.execute(view_sql(packed, "packed_view"))  # the plain-SQL view (no UDFs)
-    viewed = con.sql("SELECT * FROM packed_view ORDER BY _rf_row").fetchnumpy()
-    for n in names:
-        np.testing.assert_array_equal(viewed[n], sa[n])
     for where in (None, "id % 5 <> 1"):
         got = packed.aggregate(names[:40], "sum", where=where)
         want = plain.aggregate(names[:40], "sum", where=where)

@@ -25,7 +25,7 @@ from rankfold.udfs.passes import commit
 from rankfold.udfs.store import layout, row_differences
 from rankfold.udfs.store.manifest import file_entry, read_manifest, write_manifest
 from rankfold.udfs.store.reader import ArchiveReader
-from rankfold.portable_view import view_sql
+from archive_checks import assert_reads_alike, scan as _scan, source_values as _truth, with_specials
 
 K = row_differences.CHUNK_ROWS
 
@@ -83,15 +83,6 @@ def test_chunk_sql_matches_numpy(tmp_path):
 
 # -- whole archives ------------------------------------------------------------------------------
 
-def _truth(table: pa.Table, names: list[str]) -> np.ndarray:
-    out = []
-    for n in names:
-        column = table.column(n)
-        values = column.fill_null(0).to_numpy(zero_copy_only=False).astype(np.float64)
-        out.append(np.where(column.is_null().to_numpy(zero_copy_only=False), np.nan, values))
-    return np.column_stack(out)
-
-
 def _walks(seed: int, m: int, n: int, specials: bool, first: int = 0) -> pa.Table:
     """Invented random walks (numpy Generator), an int32 and a float32 walk, a key, and with
     ``specials`` NULL, NaN and +-inf cells in the float64 walks."""
@@ -102,20 +93,11 @@ def _walks(seed: int, m: int, n: int, specials: bool, first: int = 0) -> pa.Tabl
         values = x[:, j].copy()
         nulls = np.zeros(m, bool)
         if specials:
-            u = rng.random(m)
-            values[u < 0.01] = np.nan
-            values[(u >= 0.01) & (u < 0.02)] = np.inf
-            values[(u >= 0.02) & (u < 0.03)] = -np.inf
-            nulls = (u >= 0.03) & (u < 0.04)
+            nulls = with_specials(values, rng.random(m), (0.01, 0.01, 0.01, 0.01))
         columns[f"w{j}"] = pa.array(values, mask=nulls)
     columns["steps"] = pa.array(np.cumsum(rng.integers(-3, 4, m)).astype(np.int32))
     columns["narrow"] = pa.array((np.cumsum(rng.normal(size=m)) * 0.1).astype(np.float32))
     return pa.table(columns)
-
-
-def _scan(con, path, where: str = "", **named) -> dict:
-    args = "".join(f", {k} := {v}" for k, v in named.items())
-    return con.sql(f"SELECT * FROM rankfold_scan('{path}'{args}) {where} ORDER BY _rf_row").fetchnumpy()
 
 
 def _compress_pair(tmp_path, table, part_rows, batch_rows, tolerance):
@@ -128,43 +110,17 @@ def _compress_pair(tmp_path, table, part_rows, batch_rows, tolerance):
 
 def _same_everywhere(plain, coded, table, con) -> None:
     """Python and SQL reads of ``coded`` equal those of ``plain``, and every served value is
-    within its bound of the source."""
+    within its bound of the source (``archive_checks.assert_reads_alike``), rows past a
+    chunk boundary included; then what only row differences need checked."""
     names = coded.numeric_columns
-    a, b = plain._reader.rebuild(), coded._reader.rebuild()
-    np.testing.assert_array_equal(b.values, a.values)
-    np.testing.assert_array_equal(b.bounds, a.bounds)
-    truth = _truth(table, names)
-    finite = np.isfinite(truth)
-    assert np.all(np.abs(truth[finite] - b.values[finite]) <= b.bounds[finite])  # the served bound holds
-    # SQL full scan: equal to the plain archive's, and to the Python rebuild within its bound
-    sa, sb = _scan(con, plain.path, bounds="'cell'"), _scan(con, coded.path, bounds="'cell'")
-    for n in names:
-        np.testing.assert_array_equal(sb[n], sa[n])
-        np.testing.assert_array_equal(sb[n + "_bound"], sa[n + "_bound"])
-    # filtered scan (predicate on the key, rows filtered before the rebuild) = unfiltered rows
     m = table.num_rows
-    picked = _scan(con, coded.path, predicate=f"'id % 7 = 3 OR id = {m - 1}'")
-    keep = (sb["id"] % 7 == 3) | (sb["id"] == m - 1)
-    for n in names:
-        np.testing.assert_array_equal(picked[n], sb[n][keep])
-    # point lookups: SQL (WHERE on the key) and Python, rows past a chunk boundary included
-    for row in sorted({0, K - 1, K, min(K + 1, m - 1), m - 1, m // 2}):
-        one = _scan(con, coded.path, where=f"WHERE id = {int(sb['id'][row])}")
-        named = _scan(con, coded.path, predicate=f"'id = {int(sb['id'][row])}'")  # decodes one chunk
+    lookups = {0, K - 1, K, min(K + 1, m - 1), m - 1, m // 2}
+    a, b, sa, sb, truth = assert_reads_alike(plain, coded, table, con, lookups, cell_column=names[0],
+                                             view="coded_view")
+    for row in sorted(lookups):  # a named predicate decodes one chunk
+        named = _scan(con, coded.path, predicate=f"'id = {int(sb['id'][row])}'")
         for n in names:
-            np.testing.assert_array_equal(one[n], sb[n][row:row + 1])
             np.testing.assert_array_equal(named[n], sb[n][row:row + 1])
-        single = coded._reader.rebuild(rows=[row])
-        np.testing.assert_array_equal(single.values[0], b.values[row])
-        np.testing.assert_array_equal(single.bounds[0], b.bounds[row])
-        # the SQL cell function (rows through the SQL functions' cached reader)
-        cell = con.sql(f"SELECT rankfold_cell('{coded.path}', {row}, '{names[0]}')").fetchall()[0][0]
-        np.testing.assert_array_equal(np.float64(np.nan if cell is None else cell), sb[names[0]][row])
-    # the plain-SQL view (no UDFs) serves what the scan serves
-    con.execute(view_sql(coded, "coded_view"))
-    viewed = con.sql("SELECT * FROM coded_view ORDER BY _rf_row").fetchnumpy()
-    for n in names:
-        np.testing.assert_array_equal(viewed[n], sa[n])
     # covariance of the stored values (one pass over them when residuals are coded)
     clean = [n for n in names if np.isfinite(truth[:, names.index(n)]).all()]  # the others are refused
     got_cov, want_cov = coded.covariance(clean), plain.covariance(clean)
